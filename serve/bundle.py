@@ -1,0 +1,415 @@
+"""The bundle: demur's portable model artifact, and the only contract between
+``export/`` (which writes it) and ``serve/`` (which reads it).
+
+A bundle is a directory::
+
+    BUNDLE/
+      manifest.json        what the model is and how to use it (schema below)
+      manifest.sha256      hex SHA-256 of manifest.json's bytes: the bundle's seal
+      <graph>.onnx         one or more ONNX graphs named in the manifest
+
+The seal is the bundle's identity: responses name it as the model checksum.
+Each graph's SHA-256 is recorded in the manifest, so the seal covers the whole
+directory. Loading checks, in order: the seal, the JSON, the format name and
+version, the schema, then every graph file's digest. Nothing is returned until
+everything has passed, so a bundle is never loaded half-way.
+
+Compatibility policy: ``format_version`` is an integer. A reader refuses a
+version newer than ``FORMAT_VERSION``; it accepts older ones. Unknown
+top-level keys and unknown keys inside ``extensions`` are kept verbatim and
+written back when the manifest is rewritten (by calibration), so later
+features can add sections without breaking older readers.
+
+Graph I/O contract (every graph kind):
+  input  ``x``:     float32[B, *input.shape], already standardised
+  output ``draws``: float32[S, B, K] -- classification: logits, K = len(labels);
+                    regression: K = 2, (mean, log-variance) in standardised
+                    target units (see ``Manifest.target``).
+"""
+
+from __future__ import annotations
+
+import copy
+import datetime as _dt
+import hashlib
+import json
+import os
+import tempfile
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Literal
+
+from .errors import BundleNotFound, ChecksumMismatch, ManifestInvalid, UnsupportedFormat
+
+__all__ = [
+    "FORMAT_NAME",
+    "FORMAT_VERSION",
+    "GRAPH_KINDS",
+    "SCORES",
+    "Bundle",
+    "Decision",
+    "GraphEntry",
+    "InputSpec",
+    "Manifest",
+    "load_bundle",
+    "sha256_file",
+    "write_bundle",
+    "write_manifest",
+]
+
+FORMAT_NAME = "demur-bundle"
+FORMAT_VERSION = 1
+MANIFEST = "manifest.json"
+SEAL = "manifest.sha256"
+
+GRAPH_KINDS = ("stacked", "sampler", "means", "flip")
+"""stacked: S pre-drawn weight sets in one graph; sampler: fresh noise drawn in
+the graph per call; means: the deterministic graph of the posterior means
+(S = 1); flip: a bank of base draws re-randomised per call by sign flips."""
+
+SCORES = ("mutual_information", "predictive_entropy", "one_minus_max_prob", "interval_width", "epistemic_std")
+"""Decision scores a bundle may name (see serve/decision.py for their meaning)."""
+
+Task = Literal["classification", "regression"]
+
+
+@dataclass(frozen=True)
+class InputSpec:
+    """What one case looks like.
+
+    ``shape`` excludes the batch axis ([64] for flat digits, [1, 8, 8] for the
+    conv net). ``names`` has prod(shape) entries, in C order. ``center`` and
+    ``scale`` standardise raw inputs: x_std = (x - center) / scale, per
+    feature. ``low``/``high`` are the training range of each raw feature,
+    shown to reviewers beside each value.
+    """
+
+    names: tuple[str, ...]
+    shape: tuple[int, ...]
+    center: tuple[float, ...]
+    scale: tuple[float, ...]
+    low: tuple[float, ...]
+    high: tuple[float, ...]
+    dtype: str = "float32"
+    kind: Literal["tabular", "image"] = "tabular"
+
+    @property
+    def size(self) -> int:
+        n = 1
+        for d in self.shape:
+            n *= d
+        return n
+
+
+@dataclass(frozen=True)
+class GraphEntry:
+    """One ONNX file: its kind, file name (inside the bundle), digest and draw count."""
+
+    kind: str
+    file: str
+    sha256: str
+    draws: int
+    seed: int | None = None
+
+
+@dataclass(frozen=True)
+class Decision:
+    """The abstention rule: abstain when ``score`` > ``threshold``.
+
+    ``calibration`` is the record written by ``demur calibrate`` (method,
+    target, delta, n, achieved figures, bound, data fingerprint, date), or
+    ``None`` for an uncalibrated bundle.
+    """
+
+    score: str
+    threshold: float
+    calibration: dict[str, Any] | None = None
+
+
+@dataclass(frozen=True)
+class Manifest:
+    """The parsed manifest. ``raw`` keeps the JSON exactly as read, including
+    keys this version does not know, so a rewrite loses nothing."""
+
+    model_name: str
+    model_version: str
+    created: str
+    task: Task
+    labels: tuple[str, ...]
+    inputs: InputSpec
+    posterior: dict[str, Any]
+    graphs: dict[str, GraphEntry]
+    decision: Decision
+    interval_level: float
+    drift_reference: dict[str, Any]
+    target: dict[str, float]
+    raw: dict[str, Any] = field(repr=False, compare=False, default_factory=dict)
+
+    @property
+    def outputs(self) -> int:
+        """K, the last axis of every graph's ``draws`` output."""
+        return len(self.labels) if self.task == "classification" else 2
+
+
+@dataclass(frozen=True)
+class Bundle:
+    """A verified bundle on disk. ``checksum`` is the seal (SHA-256 of manifest.json)."""
+
+    path: Path
+    manifest: Manifest
+    checksum: str
+
+    def graph_path(self, kind: str) -> Path:
+        if kind not in self.manifest.graphs:
+            have = ", ".join(sorted(self.manifest.graphs)) or "none"
+            raise ManifestInvalid(
+                f"bundle {self.path} has no '{kind}' graph; it has: {have}", field="graphs"
+            )
+        return self.path / self.manifest.graphs[kind].file
+
+
+def sha256_file(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for block in iter(lambda: f.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def _need(obj: dict[str, Any], key: str, kind: type | tuple[type, ...], where: str) -> Any:
+    if not isinstance(obj, dict) or key not in obj:
+        raise ManifestInvalid(f"manifest is missing '{where}{key}'", field=f"{where}{key}")
+    value = obj[key]
+    if not isinstance(value, kind) or (isinstance(value, bool) and bool not in _as_tuple(kind)):
+        want = " or ".join(t.__name__ for t in _as_tuple(kind))
+        raise ManifestInvalid(
+            f"manifest '{where}{key}' must be {want}; got {type(value).__name__}", field=f"{where}{key}"
+        )
+    return value
+
+
+def _as_tuple(kind: type | tuple[type, ...]) -> tuple[type, ...]:
+    return kind if isinstance(kind, tuple) else (kind,)
+
+
+def _parse(raw: dict[str, Any]) -> Manifest:
+    fmt = _need(raw, "format", str, "")
+    if fmt != FORMAT_NAME:
+        raise UnsupportedFormat(f"format is '{fmt}'; demur reads '{FORMAT_NAME}'", field="format")
+    version = _need(raw, "format_version", int, "")
+    if version > FORMAT_VERSION or version < 1:
+        raise UnsupportedFormat(
+            f"format_version {version} is not supported (this demur reads 1..{FORMAT_VERSION}); "
+            "upgrade demur or re-export the bundle",
+            field="format_version",
+        )
+    model = _need(raw, "model", dict, "")
+    task = _need(raw, "task", str, "")
+    if task not in ("classification", "regression"):
+        raise ManifestInvalid(f"task must be 'classification' or 'regression'; got '{task}'", field="task")
+    labels = tuple(str(x) for x in _need(raw, "labels", list, ""))
+    if task == "classification" and len(labels) < 2:
+        raise ManifestInvalid(f"a classifier needs at least 2 labels; got {len(labels)}", field="labels")
+
+    spec = _need(raw, "inputs", dict, "")
+    shape = tuple(int(d) for d in _need(spec, "shape", list, "inputs."))
+    names = tuple(str(x) for x in _need(spec, "names", list, "inputs."))
+    size = 1
+    for d in shape:
+        size *= d
+    vectors = {}
+    for key in ("names", "center", "scale", "low", "high"):
+        vec = _need(spec, key, list, "inputs.")
+        if len(vec) != size:
+            raise ManifestInvalid(
+                f"inputs.{key} must have {size} entries (prod of shape {list(shape)}); got {len(vec)}",
+                field=f"inputs.{key}",
+            )
+        vectors[key] = vec
+    if any(float(s) <= 0 for s in vectors["scale"]):
+        raise ManifestInvalid("inputs.scale must be positive everywhere", field="inputs.scale")
+    inputs = InputSpec(
+        names=names,
+        shape=shape,
+        center=tuple(float(v) for v in vectors["center"]),
+        scale=tuple(float(v) for v in vectors["scale"]),
+        low=tuple(float(v) for v in vectors["low"]),
+        high=tuple(float(v) for v in vectors["high"]),
+        dtype=str(spec.get("dtype", "float32")),
+        kind=spec.get("kind", "image" if len(shape) > 1 else "tabular"),
+    )
+
+    graphs_raw = _need(raw, "graphs", dict, "")
+    if not graphs_raw:
+        raise ManifestInvalid("manifest lists no graphs", field="graphs")
+    graphs = {}
+    for kind, entry in graphs_raw.items():
+        where = f"graphs.{kind}."
+        file = _need(entry, "file", str, where)
+        if os.path.isabs(file) or ".." in Path(file).parts or Path(file).name != file:
+            raise ManifestInvalid(f"{where}file must be a plain file name inside the bundle; got '{file}'",
+                                  field=f"{where}file")
+        graphs[kind] = GraphEntry(
+            kind=kind,
+            file=file,
+            sha256=_need(entry, "sha256", str, where),
+            draws=int(_need(entry, "draws", int, where)),
+            seed=entry.get("seed"),
+        )
+
+    dec = _need(raw, "decision", dict, "")
+    score = _need(dec, "score", str, "decision.")
+    if score not in SCORES:
+        raise ManifestInvalid(f"decision.score must be one of {', '.join(SCORES)}; got '{score}'",
+                              field="decision.score")
+    decision = Decision(
+        score=score,
+        threshold=float(_need(dec, "threshold", (int, float), "decision.")),
+        calibration=dec.get("calibration"),
+    )
+    level = float(raw.get("interval_level", 0.9))
+    if not 0.0 < level < 1.0:
+        raise ManifestInvalid(f"interval_level must be in (0, 1); got {level}", field="interval_level")
+    return Manifest(
+        model_name=str(_need(model, "name", str, "model.")),
+        model_version=str(_need(model, "version", str, "model.")),
+        created=str(model.get("created", "")),
+        task=task,  # type: ignore[arg-type]
+        labels=labels,
+        inputs=inputs,
+        posterior=dict(raw.get("posterior", {})),
+        graphs=graphs,
+        decision=decision,
+        interval_level=level,
+        drift_reference=dict(raw.get("drift_reference", {})),
+        target=dict(raw.get("target", {"center": 0.0, "scale": 1.0})),
+        raw=raw,
+    )
+
+
+def load_bundle(path: str | os.PathLike[str], *, verify: bool = True) -> Bundle:
+    """Read and verify a bundle directory; raise a ``BundleError`` subclass naming what is wrong.
+
+    Example::
+
+        bundle = load_bundle("build/digits-radial")
+        bundle.manifest.labels   # ('0', '1', ..., '9')
+    """
+    root = Path(path)
+    manifest_path = root / MANIFEST
+    if not root.is_dir():
+        raise BundleNotFound(f"no bundle directory at {root}", field="bundle")
+    if not manifest_path.is_file():
+        raise BundleNotFound(f"{root} has no {MANIFEST}; is this a demur bundle?", field=MANIFEST)
+    data = manifest_path.read_bytes()
+    checksum = hashlib.sha256(data).hexdigest()
+    seal_path = root / SEAL
+    if verify:
+        if not seal_path.is_file():
+            raise BundleNotFound(f"{root} has no {SEAL}; the bundle is incomplete", field=SEAL)
+        recorded = seal_path.read_text(encoding="ascii", errors="replace").strip()
+        if recorded != checksum:
+            raise ChecksumMismatch(
+                f"{MANIFEST} has SHA-256 {checksum[:12]}…, but {SEAL} records {recorded[:12]}…; "
+                "the manifest was changed or damaged: re-export or re-calibrate the bundle",
+                field=MANIFEST,
+            )
+    try:
+        raw = json.loads(data)
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise ManifestInvalid(f"{MANIFEST} is not valid JSON: {exc}", field=MANIFEST) from exc
+    if not isinstance(raw, dict):
+        raise ManifestInvalid(f"{MANIFEST} must hold a JSON object", field=MANIFEST)
+    manifest = _parse(raw)
+    if verify:
+        for entry in manifest.graphs.values():
+            gpath = root / entry.file
+            if not gpath.is_file():
+                raise BundleNotFound(f"graph file {entry.file} named in the manifest is missing",
+                                     field=f"graphs.{entry.kind}.file")
+            digest = sha256_file(gpath)
+            if digest != entry.sha256:
+                raise ChecksumMismatch(
+                    f"graph file {entry.file} has SHA-256 {digest[:12]}…, the manifest records "
+                    f"{entry.sha256[:12]}…; the file was changed or damaged",
+                    field=f"graphs.{entry.kind}.sha256",
+                )
+    return Bundle(path=root, manifest=manifest, checksum=checksum)
+
+
+def _atomic_write(path: Path, data: bytes) -> None:
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.")
+    try:
+        with os.fdopen(fd, "wb") as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def write_manifest(root: str | os.PathLike[str], raw: dict[str, Any]) -> str:
+    """Write manifest.json then its seal, each atomically; return the new checksum.
+
+    The raw dict is validated first (same parser as loading), so a bad
+    manifest is never written. Graph digests are recomputed from the files.
+    """
+    root = Path(root)
+    raw = copy.deepcopy(raw)
+    for entry in raw.get("graphs", {}).values():
+        gpath = root / entry["file"]
+        if gpath.is_file():
+            entry["sha256"] = sha256_file(gpath)
+    _parse(raw)
+    data = (json.dumps(raw, indent=2, sort_keys=False) + "\n").encode("utf-8")
+    checksum = hashlib.sha256(data).hexdigest()
+    _atomic_write(root / MANIFEST, data)
+    _atomic_write(root / SEAL, (checksum + "\n").encode("ascii"))
+    return checksum
+
+
+def write_bundle(
+    root: str | os.PathLike[str],
+    *,
+    model_name: str,
+    model_version: str,
+    task: Task,
+    labels: list[str],
+    inputs: dict[str, Any],
+    posterior: dict[str, Any],
+    graphs: dict[str, dict[str, Any]],
+    decision: dict[str, Any],
+    interval_level: float = 0.9,
+    drift_reference: dict[str, Any] | None = None,
+    target: dict[str, float] | None = None,
+    extensions: dict[str, Any] | None = None,
+) -> Bundle:
+    """Write manifest + seal for graph files already placed in ``root``; return the loaded bundle.
+
+    ``graphs`` maps kind -> {"file", "draws", optional "seed"}; digests are filled in here.
+    """
+    root = Path(root)
+    raw: dict[str, Any] = {
+        "format": FORMAT_NAME,
+        "format_version": FORMAT_VERSION,
+        "model": {
+            "name": model_name,
+            "version": model_version,
+            "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        },
+        "task": task,
+        "labels": [str(x) for x in labels],
+        "inputs": inputs,
+        "posterior": posterior,
+        "graphs": {k: {**v, "sha256": ""} for k, v in graphs.items()},
+        "decision": decision,
+        "interval_level": interval_level,
+        "target": target or {"center": 0.0, "scale": 1.0},
+        "drift_reference": drift_reference or {},
+        "extensions": extensions or {},
+    }
+    write_manifest(root, raw)
+    return load_bundle(root)

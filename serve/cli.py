@@ -1,0 +1,71 @@
+"""The ``demur`` command.
+
+Subcommands that only need the runtime live in ``serve/`` and are registered
+below; the torch-side ones (train, export, calibrate, bench) are found through
+the ``demur.commands`` entry-point group, so ``serve/`` never imports
+``export/`` and a runtime-only install simply lacks them.
+
+Each registration function has the shape ``register(subparsers) -> None`` and
+sets ``func`` on its parser: ``func(args) -> int`` (the exit status).
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+from collections.abc import Callable, Sequence
+from importlib.metadata import entry_points
+
+from .errors import DemurError
+
+__all__ = ["build_parser", "main"]
+
+_BUILTIN = (
+    "serve.server:register",
+    "serve.snapshot:register",
+)
+
+
+def _load(ref: str) -> Callable[[argparse._SubParsersAction], None]:
+    module, _, attr = ref.partition(":")
+    return getattr(importlib.import_module(module), attr)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="demur",
+        description="Serve variational neural networks on CPU; abstain when unsure; route abstentions to people.",
+    )
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+    registrations: list[tuple[str, str]] = [(ref, ref) for ref in _BUILTIN]
+    registrations += [(ep.name, ep.value) for ep in entry_points(group="demur.commands")]
+    for name, ref in registrations:
+        try:
+            _load(ref)(sub)
+        except ImportError as exc:
+            missing = sub.add_parser(name.split(".")[-1].split(":")[0], help=f"(unavailable: {exc.name} is not installed)")
+            missing.set_defaults(func=lambda _a, _e=exc, _n=name: _unavailable(_n, _e))
+    return parser
+
+
+def _unavailable(name: str, exc: ImportError) -> int:
+    print(f"demur: '{name}' needs {exc.name}, which is not installed; pip install 'demur[export]'", file=sys.stderr)
+    return 2
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return int(args.func(args) or 0)
+    except DemurError as exc:
+        print(f"demur {args.command}: {exc.message}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

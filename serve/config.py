@@ -1,0 +1,173 @@
+"""The server's settings: one frozen object, built once, passed down.
+
+Sources, later ones winning: the defaults below, a TOML file (``--config``),
+environment variables prefixed ``DEMUR_`` (``DEMUR_PORT=8080``), then
+command-line flags. Nothing here reads the environment at import time;
+``build_config`` is handed the environment explicitly.
+
+Example::
+
+    cfg = build_config(file=None, env=os.environ, flags={"bundle": "build/bundle", "port": 8080})
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import os
+import tomllib
+from collections.abc import Mapping
+from dataclasses import dataclass, fields
+from pathlib import Path
+from typing import Any, get_type_hints
+
+from .errors import ConfigError
+
+__all__ = ["ENV_PREFIX", "ServeConfig", "build_config"]
+
+ENV_PREFIX = "DEMUR_"
+
+DEFAULT_HOST = "127.0.0.1"
+DEFAULT_PORT = 8600
+DEFAULT_MAX_CASES = 1024
+DEFAULT_MAX_BODY_BYTES = 8 * 1024 * 1024
+DEFAULT_LEASE_S = 300.0
+
+
+@dataclass(frozen=True)
+class ServeConfig:
+    """Every setting the server reads. Units are in the names (``_s`` seconds,
+    ``_ms`` milliseconds, ``_bytes``)."""
+
+    bundle: str = ""
+    host: str = DEFAULT_HOST
+    port: int = DEFAULT_PORT
+    workers: int = 1
+    threads: int = 8
+    # graph
+    graph: str = "auto"  # auto | stacked | sampler | flip | means
+    ort_intra_threads: int = 1
+    ort_inter_threads: int = 1
+    seed: int | None = None  # fixes the sampler's random stream (tests only)
+    # decision
+    score: str = ""  # empty: the bundle's decision.score
+    threshold: float | None = None  # None: the bundle's decision.threshold
+    interval_level: float | None = None  # None: the bundle's interval_level
+    # request limits
+    max_cases: int = DEFAULT_MAX_CASES
+    max_body_bytes: int = DEFAULT_MAX_BODY_BYTES
+    request_timeout_s: float = 10.0
+    # micro-batching
+    batch_wait_ms: float = 1.0
+    batch_max_rows: int = 256
+    queue_max_requests: int = 512
+    # review
+    data_dir: str = "demur-data"
+    review_store: str = ""  # "" -> sqlite:///<data_dir>/reviews.sqlite3 ; or postgresql://...
+    review_lease_s: float = DEFAULT_LEASE_S
+    audit_fraction: float = 0.01
+    spool_replay_s: float = 5.0
+    # access: tokens come from these files or the matching DEMUR_*_TOKENS env (comma separated)
+    predict_tokens: str = ""  # empty: predict is open
+    review_tokens: str = ""
+    admin_tokens: str = ""
+    token_file: str = ""  # lines "scope:token"
+    # monitoring
+    drift_window: int = 500  # recent cases kept for PSI / KS
+    abstain_window: int = 1000  # recent decisions for the instant abstention rate
+    metrics_multiprocess_dir: str = ""
+
+    def replace(self, **changes: Any) -> ServeConfig:
+        return dataclasses.replace(self, **changes)
+
+    @property
+    def review_store_url(self) -> str:
+        if self.review_store:
+            return self.review_store
+        return f"sqlite:///{Path(self.data_dir) / 'reviews.sqlite3'}"
+
+
+def _coerce(name: str, hint: Any, value: Any, source: str) -> Any:
+    text = str(hint)
+    try:
+        if value is None:
+            return None
+        if "bool" in text and not isinstance(value, bool):
+            low = str(value).strip().lower()
+            if low in ("1", "true", "yes", "on"):
+                return True
+            if low in ("0", "false", "no", "off"):
+                return False
+            raise ValueError(value)
+        if text.startswith("int") or text == "int | None":
+            if isinstance(value, str) and value.strip() == "" and "None" in text:
+                return None
+            return int(value)
+        if text.startswith("float") or text == "float | None":
+            if isinstance(value, str) and value.strip() == "" and "None" in text:
+                return None
+            return float(value)
+        return str(value)
+    except (TypeError, ValueError):
+        raise ConfigError(f"setting '{name}' from {source} must be {text}; got {value!r}", field=name) from None
+
+
+def build_config(
+    file: str | os.PathLike[str] | None = None,
+    env: Mapping[str, str] | None = None,
+    flags: Mapping[str, Any] | None = None,
+) -> ServeConfig:
+    """Defaults, then the TOML file, then ``DEMUR_*`` environment variables, then flags.
+
+    Unknown keys in the file or flags are an error (a typo should not pass silently);
+    flags whose value is ``None`` mean "not given" and are skipped.
+    """
+    hints = get_type_hints(ServeConfig)
+    known = {f.name for f in fields(ServeConfig)}
+    values: dict[str, Any] = {}
+
+    if file:
+        try:
+            with open(file, "rb") as f:
+                data = tomllib.load(f)
+        except FileNotFoundError:
+            raise ConfigError(f"config file {file} does not exist", field="config") from None
+        except tomllib.TOMLDecodeError as exc:
+            raise ConfigError(f"config file {file} is not valid TOML: {exc}", field="config") from None
+        for key, value in data.items():
+            if key not in known:
+                raise ConfigError(f"config file {file} has unknown setting '{key}'", field=key)
+            values[key] = _coerce(key, hints[key], value, f"file {file}")
+
+    for key, value in (env or {}).items():
+        if key.startswith(ENV_PREFIX):
+            name = key[len(ENV_PREFIX):].lower()
+            if name in known:
+                values[name] = _coerce(name, hints[name], value, f"environment {key}")
+
+    for key, value in (flags or {}).items():
+        if value is None:
+            continue
+        if key not in known:
+            raise ConfigError(f"unknown setting '{key}'", field=key)
+        values[key] = _coerce(key, hints[key], value, f"flag --{key.replace('_', '-')}")
+
+    cfg = ServeConfig(**values)
+    _check(cfg)
+    return cfg
+
+
+def _check(cfg: ServeConfig) -> None:
+    if not 0 < cfg.port < 65536:
+        raise ConfigError(f"port must be in 1..65535; got {cfg.port}", field="port")
+    for name in ("workers", "threads", "ort_intra_threads", "ort_inter_threads", "max_cases",
+                 "max_body_bytes", "batch_max_rows", "queue_max_requests", "drift_window", "abstain_window"):
+        if getattr(cfg, name) < 1:
+            raise ConfigError(f"{name} must be at least 1; got {getattr(cfg, name)}", field=name)
+    if cfg.graph not in ("auto", "stacked", "sampler", "flip", "means"):
+        raise ConfigError(f"graph must be auto, stacked, sampler, flip or means; got '{cfg.graph}'", field="graph")
+    if not 0.0 <= cfg.audit_fraction <= 1.0:
+        raise ConfigError(f"audit_fraction must be in [0, 1]; got {cfg.audit_fraction}", field="audit_fraction")
+    if cfg.interval_level is not None and not 0.0 < cfg.interval_level < 1.0:
+        raise ConfigError(f"interval_level must be in (0, 1); got {cfg.interval_level}", field="interval_level")
+    if cfg.batch_wait_ms < 0 or cfg.request_timeout_s <= 0 or cfg.review_lease_s <= 0:
+        raise ConfigError("batch_wait_ms must be >= 0; request_timeout_s and review_lease_s > 0", field="timing")

@@ -1,0 +1,160 @@
+"""Every error the runtime raises on purpose.
+
+One root, ``DemurError``; each subclass is also the built-in it most resembles,
+so callers that only know Python's own exceptions still catch it::
+
+    DemurError
+    ├── ConfigError(ValueError)              a setting is missing or malformed
+    ├── BundleError(ValueError)              a bundle cannot be trusted
+    │   ├── BundleNotFound(FileNotFoundError)
+    │   ├── ManifestInvalid                  JSON or schema problem in manifest.json
+    │   ├── UnsupportedFormat                format name or version we cannot read
+    │   └── ChecksumMismatch                 a file's SHA-256 is not the recorded one
+    ├── InvalidInput(ValueError)             a request is wrong (HTTP 400)
+    │   ├── PayloadTooLarge                  body or case count over the limit (413)
+    │   └── UnsupportedMediaType             not application/json (415)
+    ├── Unauthorized(PermissionError)        no or unknown token (401)
+    ├── Forbidden(PermissionError)           token lacks the scope (403)
+    ├── NotFound(LookupError)                no such item or route (404)
+    ├── Conflict(RuntimeError)               state forbids the change (409)
+    ├── NotLoaded(RuntimeError)              engine used before a bundle is loaded (503)
+    ├── Overloaded(RuntimeError)             queue full or deadline passed (503)
+    ├── GraphRunError(RuntimeError)          onnxruntime failed on validated input (500)
+    ├── ReviewStoreUnavailable(ConnectionError)  the review store cannot be reached
+    └── CalibrationInfeasible(ValueError)    no threshold meets the target
+
+Every error carries ``field`` (the offending key path, or ``None``), an HTTP
+``status`` and a short machine ``code``; ``to_payload`` gives the JSON body
+``{"error": {"code", "message", "field"}}`` that the app returns.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+__all__ = [
+    "BundleError",
+    "BundleNotFound",
+    "CalibrationInfeasible",
+    "ChecksumMismatch",
+    "ConfigError",
+    "Conflict",
+    "DemurError",
+    "Forbidden",
+    "GraphRunError",
+    "InvalidInput",
+    "ManifestInvalid",
+    "NotFound",
+    "NotLoaded",
+    "Overloaded",
+    "PayloadTooLarge",
+    "ReviewStoreUnavailable",
+    "Unauthorized",
+    "UnsupportedFormat",
+    "UnsupportedMediaType",
+]
+
+
+class DemurError(Exception):
+    """Root of demur's errors: a message, the offending field, an HTTP status."""
+
+    status: int = 500
+    code: str = "internal"
+
+    def __init__(self, message: str, *, field: str | None = None) -> None:
+        super().__init__(message)
+        self.message = message
+        self.field = field
+
+    def to_payload(self) -> dict[str, Any]:
+        return {"error": {"code": self.code, "message": self.message, "field": self.field}}
+
+
+class ConfigError(DemurError, ValueError):
+    status = 500
+    code = "bad_config"
+
+
+class BundleError(DemurError, ValueError):
+    status = 422
+    code = "bad_bundle"
+
+
+class BundleNotFound(BundleError, FileNotFoundError):
+    code = "bundle_not_found"
+
+
+class ManifestInvalid(BundleError):
+    code = "manifest_invalid"
+
+
+class UnsupportedFormat(BundleError):
+    code = "unsupported_format"
+
+
+class ChecksumMismatch(BundleError):
+    code = "checksum_mismatch"
+
+
+class InvalidInput(DemurError, ValueError):
+    status = 400
+    code = "invalid_input"
+
+
+class PayloadTooLarge(InvalidInput):
+    status = 413
+    code = "payload_too_large"
+
+
+class UnsupportedMediaType(InvalidInput):
+    status = 415
+    code = "unsupported_media_type"
+
+
+class Unauthorized(DemurError, PermissionError):
+    status = 401
+    code = "unauthorized"
+
+
+class Forbidden(DemurError, PermissionError):
+    status = 403
+    code = "forbidden"
+
+
+class NotFound(DemurError, LookupError):
+    status = 404
+    code = "not_found"
+
+
+class Conflict(DemurError, RuntimeError):
+    status = 409
+    code = "conflict"
+
+
+class NotLoaded(DemurError, RuntimeError):
+    status = 503
+    code = "not_loaded"
+
+
+class Overloaded(DemurError, RuntimeError):
+    status = 503
+    code = "overloaded"
+
+    def __init__(self, message: str, *, retry_after_s: float = 1.0, field: str | None = None) -> None:
+        super().__init__(message, field=field)
+        self.retry_after_s = retry_after_s
+
+
+class GraphRunError(DemurError, RuntimeError):
+    status = 500
+    code = "graph_run_failed"
+
+
+class ReviewStoreUnavailable(DemurError, ConnectionError):
+    status = 503
+    code = "review_store_unavailable"
+
+
+class CalibrationInfeasible(DemurError, ValueError):
+    status = 422
+    code = "calibration_infeasible"

@@ -1,0 +1,1 @@
+"""Shared fixtures. Bundles built here are reused by every test module."""
