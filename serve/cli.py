@@ -22,8 +22,8 @@ from .errors import DemurError
 __all__ = ["build_parser", "main"]
 
 _BUILTIN = (
-    "serve.server:register",
-    "serve.snapshot:register",
+    ("serve", "serve.server:register"),
+    ("status", "serve.snapshot:register"),
 )
 
 
@@ -39,13 +39,13 @@ def build_parser() -> argparse.ArgumentParser:
     )
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
-    registrations: list[tuple[str, str]] = [(ref, ref) for ref in _BUILTIN]
+    registrations: list[tuple[str, str]] = list(_BUILTIN)
     registrations += [(ep.name, ep.value) for ep in entry_points(group="demur.commands")]
     for name, ref in registrations:
         try:
             _load(ref)(sub)
         except ImportError as exc:
-            missing = sub.add_parser(name.split(".")[-1].split(":")[0], help=f"(unavailable: {exc.name} is not installed)")
+            missing = sub.add_parser(name, help=f"(unavailable: {exc.name} is not installed)")
             missing.set_defaults(func=lambda _a, _e=exc, _n=name: _unavailable(_n, _e))
     return parser
 
