@@ -32,7 +32,10 @@ def _load(ref: str) -> Callable[[argparse._SubParsersAction], None]:
     return getattr(importlib.import_module(module), attr)
 
 
-def build_parser() -> argparse.ArgumentParser:
+def build_parser(only: str | None = None) -> argparse.ArgumentParser:
+    """The full ``demur`` parser; ``only`` (a built-in command name) registers just that
+    command, so ``demur serve`` never imports the torch-side commands: a gunicorn master
+    holding torch would hand its thread pools to every forked worker."""
     parser = argparse.ArgumentParser(
         prog="demur",
         description="Serve variational neural networks on CPU; abstain when unsure; route abstentions to people.",
@@ -40,7 +43,10 @@ def build_parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
     registrations: list[tuple[str, str]] = list(_BUILTIN)
-    registrations += [(ep.name, ep.value) for ep in entry_points(group="demur.commands")]
+    if only in dict(_BUILTIN):
+        registrations = [(only, dict(_BUILTIN)[only])]
+    else:
+        registrations += [(ep.name, ep.value) for ep in entry_points(group="demur.commands")]
     for name, ref in registrations:
         try:
             _load(ref)(sub)
@@ -56,8 +62,10 @@ def _unavailable(name: str, exc: ImportError) -> int:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
+    words = list(sys.argv[1:] if argv is None else argv)
+    first = words[0] if words and not words[0].startswith("-") else None
+    parser = build_parser(only=first)
+    args = parser.parse_args(words)
     try:
         return int(args.func(args) or 0)
     except DemurError as exc:

@@ -39,6 +39,7 @@ class ServeConfig:
     ``_ms`` milliseconds, ``_bytes``)."""
 
     bundle: str = ""
+    bundles_dir: str = ""  # admin roll-outs may load only bundles under here; "" = the bundle's parent
     host: str = DEFAULT_HOST
     port: int = DEFAULT_PORT
     workers: int = 1
@@ -87,7 +88,7 @@ class ServeConfig:
 
 
 def _coerce(name: str, hint: Any, value: Any, source: str) -> Any:
-    text = str(hint)
+    text = hint.__name__ if isinstance(hint, type) else str(hint)  # int -> "int", not "<class 'int'>"
     try:
         if value is None:
             return None

@@ -9,7 +9,8 @@ so callers that only know Python's own exceptions still catch it::
     │   ├── BundleNotFound(FileNotFoundError)
     │   ├── ManifestInvalid                  JSON or schema problem in manifest.json
     │   ├── UnsupportedFormat                format name or version we cannot read
-    │   └── ChecksumMismatch                 a file's SHA-256 is not the recorded one
+    │   ├── ChecksumMismatch                 a file's SHA-256 is not the recorded one
+    │   └── SmokeFailed                      loads, but its smoke prediction fails (roll-outs)
     ├── InvalidInput(ValueError)             a request is wrong (HTTP 400)
     │   ├── PayloadTooLarge                  body or case count over the limit (413)
     │   └── UnsupportedMediaType             not application/json (415)
@@ -49,6 +50,7 @@ __all__ = [
     "Overloaded",
     "PayloadTooLarge",
     "ReviewStoreUnavailable",
+    "SmokeFailed",
     "Unauthorized",
     "UnsupportedFormat",
     "UnsupportedMediaType",
@@ -94,6 +96,12 @@ class UnsupportedFormat(BundleError):
 
 class ChecksumMismatch(BundleError):
     code = "checksum_mismatch"
+
+
+class SmokeFailed(BundleError):
+    """A candidate bundle passed its checksums but failed its smoke prediction."""
+
+    code = "smoke_failed"
 
 
 class InvalidInput(DemurError, ValueError):

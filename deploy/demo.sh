@@ -1,0 +1,49 @@
+#!/usr/bin/env bash
+# The main job end to end on the embedded defaults, on CPU:
+#   train the demo model -> export bundles -> calibrate the threshold -> serve ->
+#   send the sample requests -> one human-review round trip -> monitoring snapshot.
+# Usage: deploy/demo.sh [BUILD_DIR]   (make demo runs it inside the project's venv)
+set -euo pipefail
+cd "$(dirname "$0")/.."
+BUILD=${1:-build/demo}
+PORT=${DEMUR_DEMO_PORT:-8600}
+URL="http://127.0.0.1:${PORT}"
+REVIEW_TOKEN=${DEMUR_DEMO_REVIEW_TOKEN:-depot-reviewer-demo-token}
+mkdir -p "$BUILD"
+
+step() { printf '\n== %s\n' "$*"; }
+
+step "1/7 train: radial variational MLP on the depot's handwritten postcode digits"
+demur train --data digits --posterior radial --out "$BUILD/checkpoint"
+
+step "2/7 export: stacked-draws bundle (S=32) and fresh-draw sampler bundle"
+rm -rf "$BUILD/bundle" "$BUILD/bundle-sampler"
+demur export "$BUILD/checkpoint" --draws 32 --out "$BUILD/bundle"
+demur export "$BUILD/checkpoint" --sampler --out "$BUILD/bundle-sampler"
+
+step "3/7 calibrate: accepted digits >= 98.5% correct with 90% confidence, at most 30% keyed by hand"
+demur calibrate "$BUILD/bundle" --data digits --target-accuracy 0.985 --confidence 0.9 \
+  --max-abstain 0.3 --report "$BUILD/report"
+
+step "4/7 serve on $URL"
+rm -rf "$BUILD/data"
+DEMUR_REVIEW_TOKENS="$REVIEW_TOKEN" demur serve "$BUILD/bundle" --host 127.0.0.1 --port "$PORT" \
+  --data-dir "$BUILD/data" --audit-fraction 0.05 > "$BUILD/server.log" 2>&1 &
+SERVER=$!
+trap 'kill $SERVER 2>/dev/null; wait $SERVER 2>/dev/null || true' EXIT
+for _ in $(seq 1 120); do
+  curl -fsS "$URL/readyz" >/dev/null 2>&1 && break
+  kill -0 $SERVER 2>/dev/null || { cat "$BUILD/server.log"; exit 1; }
+  sleep 0.5
+done
+curl -fsS "$URL/readyz" >/dev/null
+
+step "5/7 sample requests (clear, ambiguous, corrupted digit; a batch)"
+DEMUR_URL="$URL" bash sample_requests/send.sh
+
+step "6/7 human review: claim the next abstained case, key the digit, export decisions"
+DEMUR_URL="$URL" DEMUR_TOKEN="$REVIEW_TOKEN" python sample_requests/review_round.py
+
+step "7/7 monitoring snapshot"
+demur status --url "$URL"
+printf '\nReport: %s/report/index.html   Bundle: %s/bundle\n' "$BUILD" "$BUILD"

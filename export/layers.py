@@ -1,0 +1,387 @@
+"""Variational Linear and Conv2d layers: a distribution over every weight.
+
+Each layer holds, for its weight and its bias, a mean ``*_mu`` and an
+unconstrained ``*_rho``; the scale is ``sigma = softplus(rho)`` so it stays
+positive without clipping. Two posterior families share these parameters:
+
+``"gaussian"``  mean-field: w = mu + sigma * eps, eps ~ N(0, I) elementwise.
+
+``"radial"``    w = mu + sigma * (eps / ||eps||) * r, with eps ~ N(0, I) over the
+                whole parameter tensor and r ~ N(0, 1) one scalar per draw
+                (Farquhar, Osborne & Gal, "Radial Bayesian Neural Networks:
+                Beyond Discrete Support in Large-Scale Bayesian Deep
+                Learning", AISTATS 2020, eq. 2). The direction is uniform on
+                the unit sphere and the radius is |r|, so the perturbation
+                does not concentrate on the thin shell of radius sqrt(d) that
+                a d-dimensional Gaussian lives on.
+
+The prior is N(0, prior_scale^2) on every parameter. ``kl()`` is the
+Gaussian-to-Gaussian KL in closed form; for the radial posterior it is the
+paper's estimate (section 3.1): the entropy term in closed form up to an
+additive constant that does not depend on the parameters (-sum log sigma),
+plus the cross-entropy to the prior by a one-draw Monte Carlo estimate.
+
+Drop them into any torch model::
+
+    layer = VariationalLinear(64, 10, posterior="radial", prior_scale=1.0)
+    logits = layer(x)                    # one fresh draw, reparameterised
+    loss = nll(logits, y) + layer.kl() / n_train
+    draws = layer.draw(32)               # {"weight": [32, 10, 64], "bias": [32, 10]}
+
+``build_model`` assembles the two demo architectures from only the modules
+the ONNX graph builder understands (``VariationalLinear``,
+``VariationalConv2d``, ``nn.ReLU``, ``nn.Flatten``); ``sample_network`` and
+``forward_draws`` are the torch reference for the exported graphs.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from typing import Literal
+
+import torch
+import torch.nn.functional as F
+from torch import nn
+
+from .errors import LayerConfigError
+
+__all__ = [
+    "ARCHITECTURES",
+    "POSTERIORS",
+    "VariationalConv2d",
+    "VariationalLayer",
+    "VariationalLinear",
+    "build_model",
+    "forward_draws",
+    "inverse_softplus",
+    "sample_network",
+    "total_kl",
+    "variational_layers",
+]
+
+POSTERIORS = ("radial", "gaussian")
+"""Posterior families every variational layer supports."""
+
+ARCHITECTURES = ("mlp", "conv")
+"""Model kinds ``build_model`` knows."""
+
+Posterior = Literal["radial", "gaussian"]
+Draw = dict[str, torch.Tensor]
+
+_HALF_LOG_2PI = 0.5 * math.log(2.0 * math.pi)
+
+
+def inverse_softplus(sigma: float) -> float:
+    """rho such that softplus(rho) == sigma (sigma > 0), stable for small sigma."""
+    if sigma <= 0:
+        raise LayerConfigError(f"init_sigma must be > 0; got {sigma}", field="init_sigma")
+    return sigma + math.log(-math.expm1(-sigma))
+
+
+class VariationalLayer(nn.Module):
+    """Shared machinery: parameters, sampling, KL. Subclasses define the op.
+
+    Parameters (all float32): ``weight_mu``/``weight_rho`` shaped like the
+    deterministic layer's weight, ``bias_mu``/``bias_rho`` shaped [out].
+    """
+
+    weight_mu: nn.Parameter
+    weight_rho: nn.Parameter
+    bias_mu: nn.Parameter
+    bias_rho: nn.Parameter
+
+    def __init__(
+        self,
+        weight_shape: tuple[int, ...],
+        out_features: int,
+        fan_in: int,
+        *,
+        posterior: Posterior = "radial",
+        prior_scale: float = 1.0,
+        init_sigma: float = 1e-3,
+        init_spread: float | None = None,
+    ) -> None:
+        super().__init__()
+        if posterior not in POSTERIORS:
+            raise LayerConfigError(
+                f"posterior must be one of {list(POSTERIORS)}; got {posterior!r}", field="posterior"
+            )
+        if not (prior_scale > 0 and math.isfinite(prior_scale)):
+            raise LayerConfigError(f"prior_scale must be a positive number; got {prior_scale}", field="prior_scale")
+        self.posterior: Posterior = posterior
+        self.prior_scale = float(prior_scale)
+        self.init_sigma = float(init_sigma)
+        # Means start like torch's own Linear/Conv2d (uniform, +-1/sqrt(fan_in));
+        # small sigmas let the data shape the means before noise matters.
+        bound = 1.0 / math.sqrt(fan_in)
+        self.init_spread = None if init_spread is None else float(init_spread)
+        self.weight_mu = nn.Parameter(torch.empty(weight_shape).uniform_(-bound, bound))
+        self.weight_rho = nn.Parameter(torch.full(weight_shape, self._initial_rho(math.prod(weight_shape))))
+        self.bias_mu = nn.Parameter(torch.empty(out_features).uniform_(-bound, bound))
+        self.bias_rho = nn.Parameter(torch.full((out_features,), self._initial_rho(out_features)))
+
+    def _initial_rho(self, d: int) -> float:
+        """rho giving the initial sigma of a d-element tensor (see ``init_spread``)."""
+        if self.init_spread is None:
+            return inverse_softplus(self.init_sigma)
+        if not (self.init_spread > 0 and math.isfinite(self.init_spread)):
+            raise LayerConfigError(f"init_spread must be a positive number; got {self.init_spread}",
+                                   field="init_spread")
+        scale = math.sqrt(d) if self.posterior == "radial" else 1.0
+        return inverse_softplus(self.init_spread * scale)
+
+    # -- distribution ---------------------------------------------------------
+    @property
+    def weight_sigma(self) -> torch.Tensor:
+        return F.softplus(self.weight_rho)
+
+    @property
+    def bias_sigma(self) -> torch.Tensor:
+        return F.softplus(self.bias_rho)
+
+    def _noise(self, S: int, shape: torch.Size, generator: torch.Generator | None) -> torch.Tensor:
+        """Standardised perturbation [S, *shape]: Gaussian, or radial per tensor and draw."""
+        eps = torch.randn((S, *shape), generator=generator, dtype=self.weight_mu.dtype)
+        if self.posterior == "gaussian":
+            return eps
+        flat = eps.reshape(S, -1)
+        direction = flat / flat.norm(dim=1, keepdim=True)
+        r = torch.randn((S, 1), generator=generator, dtype=self.weight_mu.dtype)
+        return (direction * r).reshape(S, *shape)
+
+    def draw(self, S: int, generator: torch.Generator | None = None) -> Draw:
+        """S weight sets: {"weight": [S, *weight.shape], "bias": [S, out]}.
+
+        Differentiable in mu and rho (reparameterisation); wrap in
+        ``torch.no_grad()`` when only the values are wanted.
+        """
+        if S < 1:
+            raise LayerConfigError(f"number of draws must be >= 1; got {S}", field="draws")
+        w = self.weight_mu + self.weight_sigma * self._noise(S, self.weight_mu.shape, generator)
+        b = self.bias_mu + self.bias_sigma * self._noise(S, self.bias_mu.shape, generator)
+        return {"weight": w, "bias": b}
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        """One fresh draw shared by the batch (training, reparameterised)."""
+        d = self.draw(1)
+        return self.forward_with(x, d["weight"][0], d["bias"][0])
+
+    def forward_mean(self, x: torch.Tensor) -> torch.Tensor:
+        """The deterministic network of the means (the "means" graph)."""
+        return self.forward_with(x, self.weight_mu, self.bias_mu)
+
+    def forward_with(self, x: torch.Tensor, weight: torch.Tensor, bias: torch.Tensor) -> torch.Tensor:
+        raise NotImplementedError
+
+    # -- KL to the prior ------------------------------------------------------
+    def kl(self) -> torch.Tensor:
+        """KL(q || p) in nats, summed over weight and bias (a scalar tensor).
+
+        gaussian: closed form, sum of log(p/sigma) + (sigma^2 + mu^2) / (2 p^2) - 1/2.
+        radial: -sum log sigma (the entropy term, up to a parameter-free
+        constant) + (-log p(w)) at one fresh draw w (the cross-entropy term by
+        Monte Carlo), Farquhar et al. 2020, section 3.1.
+        """
+        total = self.weight_mu.new_zeros(())
+        p = self.prior_scale
+        if self.posterior == "gaussian":
+            for mu, sigma in ((self.weight_mu, self.weight_sigma), (self.bias_mu, self.bias_sigma)):
+                total = total + (
+                    math.log(p) - torch.log(sigma) + (sigma.square() + mu.square()) / (2 * p * p) - 0.5
+                ).sum()
+            return total
+        d = self.draw(1)
+        for sigma, w in ((self.weight_sigma, d["weight"]), (self.bias_sigma, d["bias"])):
+            neg_entropy = -torch.log(sigma).sum()
+            cross_entropy = (w.square() / (2 * p * p)).sum() + w.numel() * (math.log(p) + _HALF_LOG_2PI)
+            total = total + neg_entropy + cross_entropy
+        return total
+
+
+class VariationalLinear(VariationalLayer):
+    """y = x W^T + b with W, b drawn from the posterior. x: [B, in], y: [B, out]."""
+
+    def __init__(
+        self,
+        in_features: int,
+        out_features: int,
+        *,
+        posterior: Posterior = "radial",
+        prior_scale: float = 1.0,
+        init_sigma: float = 1e-3,
+        init_spread: float | None = None,
+    ) -> None:
+        if in_features < 1 or out_features < 1:
+            raise LayerConfigError(
+                f"features must be >= 1; got in={in_features}, out={out_features}", field="features"
+            )
+        super().__init__(
+            (out_features, in_features), out_features, in_features,
+            posterior=posterior, prior_scale=prior_scale, init_sigma=init_sigma,
+            init_spread=init_spread,
+        )
+        self.in_features = int(in_features)
+        self.out_features = int(out_features)
+
+    def forward_with(self, x: torch.Tensor, weight: torch.Tensor, bias: torch.Tensor) -> torch.Tensor:
+        """x: [B, in]; weight: [out, in]; bias: [out] -> [B, out]."""
+        return F.linear(x, weight, bias)
+
+    def extra_repr(self) -> str:
+        return f"{self.in_features}, {self.out_features}, posterior={self.posterior}, prior_scale={self.prior_scale}"
+
+
+class VariationalConv2d(VariationalLayer):
+    """2-D convolution (NCHW, square kernel, no dilation/groups) with drawn weights.
+
+    x: [B, in_c, H, W] -> [B, out_c, H', W'] with
+    H' = floor((H + 2 * padding - kernel_size) / stride) + 1.
+    """
+
+    def __init__(
+        self,
+        in_channels: int,
+        out_channels: int,
+        kernel_size: int,
+        *,
+        stride: int = 1,
+        padding: int = 0,
+        posterior: Posterior = "radial",
+        prior_scale: float = 1.0,
+        init_sigma: float = 1e-3,
+        init_spread: float | None = None,
+    ) -> None:
+        if min(in_channels, out_channels, kernel_size, stride) < 1 or padding < 0:
+            raise LayerConfigError(
+                f"conv needs positive channels/kernel/stride and padding >= 0; got in={in_channels}, "
+                f"out={out_channels}, kernel={kernel_size}, stride={stride}, padding={padding}",
+                field="conv",
+            )
+        k = int(kernel_size)
+        super().__init__(
+            (out_channels, in_channels, k, k), out_channels, in_channels * k * k,
+            posterior=posterior, prior_scale=prior_scale, init_sigma=init_sigma,
+            init_spread=init_spread,
+        )
+        self.in_channels = int(in_channels)
+        self.out_channels = int(out_channels)
+        self.kernel_size = k
+        self.stride = int(stride)
+        self.padding = int(padding)
+
+    def forward_with(self, x: torch.Tensor, weight: torch.Tensor, bias: torch.Tensor) -> torch.Tensor:
+        """x: [B, in_c, H, W]; weight: [out_c, in_c, k, k]; bias: [out_c]."""
+        return F.conv2d(x, weight, bias, stride=self.stride, padding=self.padding)
+
+    def output_size(self, size: int) -> int:
+        """Spatial output length for an input length ``size``."""
+        return (size + 2 * self.padding - self.kernel_size) // self.stride + 1
+
+    def extra_repr(self) -> str:
+        return (
+            f"{self.in_channels}, {self.out_channels}, kernel_size={self.kernel_size}, stride={self.stride}, "
+            f"padding={self.padding}, posterior={self.posterior}, prior_scale={self.prior_scale}"
+        )
+
+
+# -- whole networks -----------------------------------------------------------
+def build_model(
+    kind: str,
+    input_shape: Sequence[int],
+    outputs: int,
+    posterior: Posterior,
+    prior_scale: float = 1.0,
+    hidden: Sequence[int] = (256, 256),
+    channels: Sequence[int] = (16, 32),
+    init_sigma: float = 1e-3,
+    init_spread: float | None = None,
+) -> nn.Sequential:
+    """The demo architectures, built only from modules the graph builder knows.
+
+    ``"mlp"``: Flatten, then VariationalLinear + ReLU per ``hidden`` width, then
+    a VariationalLinear to ``outputs``. Works for any ``input_shape``.
+
+    ``"conv"``: for image inputs [C, H, W] (digits: [1, 8, 8]): a 3x3 conv
+    (padding 1) to ``channels[0]``, then one 3x3 stride-2 conv (padding 1) per
+    further entry of ``channels``, ReLU after each, Flatten, VariationalLinear
+    to ``outputs``. Digits: [1,8,8] -> [16,8,8] -> [32,4,4] -> 512 -> 10.
+    """
+    shape = tuple(int(d) for d in input_shape)
+    kw = {"posterior": posterior, "prior_scale": prior_scale, "init_sigma": init_sigma, "init_spread": init_spread}
+    if outputs < 1:
+        raise LayerConfigError(f"outputs must be >= 1; got {outputs}", field="outputs")
+    if kind == "mlp":
+        layers: list[nn.Module] = [nn.Flatten()]
+        width = math.prod(shape)
+        for h in hidden:
+            layers += [VariationalLinear(width, int(h), **kw), nn.ReLU()]
+            width = int(h)
+        layers.append(VariationalLinear(width, outputs, **kw))
+        return nn.Sequential(*layers)
+    if kind == "conv":
+        if len(shape) != 3:
+            raise LayerConfigError(
+                f"the conv net needs input_shape [C, H, W]; got {list(shape)}", field="input_shape"
+            )
+        if not channels:
+            raise LayerConfigError("the conv net needs at least one channel count", field="channels")
+        c, h, w = shape
+        layers = []
+        for i, out_c in enumerate(channels):
+            conv = VariationalConv2d(c, int(out_c), 3, stride=1 if i == 0 else 2, padding=1, **kw)
+            layers += [conv, nn.ReLU()]
+            c, h, w = int(out_c), conv.output_size(h), conv.output_size(w)
+        layers += [nn.Flatten(), VariationalLinear(c * h * w, outputs, **kw)]
+        return nn.Sequential(*layers)
+    raise LayerConfigError(f"arch must be one of {list(ARCHITECTURES)}; got {kind!r}", field="arch")
+
+
+def variational_layers(model: nn.Module) -> list[VariationalLayer]:
+    """The variational layers of ``model`` in module (registration) order."""
+    return [m for m in model.modules() if isinstance(m, VariationalLayer)]
+
+
+def total_kl(model: nn.Module) -> torch.Tensor:
+    """Sum of every variational layer's ``kl()`` (nats, scalar tensor)."""
+    layers = variational_layers(model)
+    if not layers:
+        raise LayerConfigError("model has no variational layers", field="model")
+    return torch.stack([layer.kl() for layer in layers]).sum()
+
+
+@torch.no_grad()
+def sample_network(model: nn.Module, S: int, generator: torch.Generator | None = None) -> list[Draw]:
+    """S weight sets for the whole network: one ``draw`` dict per variational layer, in order.
+
+    Draws are detached. With the same seeded ``generator`` the result repeats.
+    """
+    return [layer.draw(S, generator) for layer in variational_layers(model)]
+
+
+@torch.no_grad()
+def forward_draws(model: nn.Sequential, x: torch.Tensor, draws: Sequence[Draw]) -> torch.Tensor:
+    """The torch reference output for given draws: float32[S, B, K].
+
+    ``x``: [B, *input_shape] already standardised; ``draws`` from
+    ``sample_network`` (one dict per variational layer, each with S sets).
+    Only ``nn.Sequential`` chains of variational layers and parameter-free
+    modules are supported, like the graph builder.
+    """
+    layers = variational_layers(model)
+    if len(draws) != len(layers):
+        raise LayerConfigError(
+            f"need one draw dict per variational layer ({len(layers)}); got {len(draws)}", field="draws"
+        )
+    S = int(draws[0]["weight"].shape[0])
+    outs = []
+    for s in range(S):
+        h, i = x, 0
+        for module in model:
+            if isinstance(module, VariationalLayer):
+                h = module.forward_with(h, draws[i]["weight"][s], draws[i]["bias"][s])
+                i += 1
+            else:
+                h = module(h)
+        outs.append(h)
+    return torch.stack(outs)

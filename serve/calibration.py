@@ -1,0 +1,538 @@
+"""Held-out metrics, and thresholds chosen from labelled data with a stated guarantee.
+
+Pure numpy + scipy (no flask, no onnxruntime): the inputs are the serving
+path's own summaries and scores, computed by the caller (``demur calibrate``).
+
+Threshold choice -- three ways
+------------------------------
+1. Target accuracy on accepted cases, with confidence 1 - delta
+   (``select_for_accuracy``). The candidates are the calibration scores'
+   order statistics s_(k) at up to ``MAX_CANDIDATES`` evenly spaced ranks k
+   whose calibration coverage is at least 1 - max_abstain. Candidate k accepts
+   the cases with score < s_(k); the threshold written to the bundle is the
+   float just below s_(k), so the served rule "abstain iff score > threshold"
+   accepts exactly those cases. For each candidate the accepted-case error
+   rate gets the one-sided Clopper-Pearson upper bound (Clopper & Pearson
+   1934), ``beta.ppf(1 - level, e + 1, a - e)`` for e errors in a accepted.
+   Why this is valid for a data-chosen threshold: given s_(k), the k - 1
+   cases below it are i.i.d. draws of the score distribution truncated at
+   s_(k) (a standard order-statistic fact), so their error count is exactly
+   Binomial(k - 1, R(s_(k))), R(t) = P(error | score < t).
+
+   Two multiple-testing rules are offered:
+
+   ``"fixed_sequence"`` (default): Learn then Test, fixed-sequence testing
+       (Angelopoulos, Bates, Candès, Jordan & Lei 2021, Section on fixed-
+       sequence testing). Candidates are tested in a pre-set order of
+       increasing coverage, each at the full level delta; testing stops at the
+       first candidate whose bound misses the target, and the largest certified
+       one is kept. The sequence starts at the larger of the lowest allowed
+       coverage (1 - max_abstain) and the fewest accepted cases at which
+       ``SEQUENCE_TOLERANCE`` errors could still be certified (a function of n,
+       target and delta only, so the order is fixed before the data are seen):
+       started lower, one early confidently-wrong case ends the sequence. Chosen as the
+       default because it pays no multiplicity price: on the digits demo
+       (359 calibration cases) a 0.99 target is reachable with it and is not
+       with a Bonferroni split over 50 candidates (it would need >= 619
+       error-free accepted cases). The caveat, stated plainly: the family-
+       wise proof of fixed-sequence testing is for thresholds fixed before
+       the data; ours are order statistics of the calibration scores, so the
+       guarantee is exact per candidate and approximate for the sequence.
+       tests/serve/test_calibration.py measures the violation rate over
+       hundreds of random calibration/test splits.
+   ``"bonferroni"``: selective classification with guaranteed risk
+       (Geifman & El-Yaniv, NeurIPS 2017) with a union bound over the m
+       candidates: every candidate is bounded at level delta / m. Fully
+       rigorous for order-statistic thresholds (the union bound needs only
+       each candidate's own validity) but needs more calibration data.
+
+   The abstention budget ``max_abstain`` limits the search to calibration
+   coverage >= 1 - max_abstain. If no candidate is certified,
+   ``CalibrationInfeasible`` says so with the best figures achievable.
+
+2. Target abstention rate r (``select_for_abstain``): the threshold is the
+   ceil((n + 1)(1 - r))-th smallest calibration score. By exchangeability a new
+   case's score is <= it with probability >= ceil((n+1)(1-r))/(n+1) >= 1 - r,
+   so the expected abstention rate is at most r (and at least r - 1/(n+1)
+   for continuous scores): the finite-sample-corrected empirical quantile
+   (the split-conformal quantile argument; Lei et al. 2018, and Vovk et al.
+   2005 for the exchangeability lemma).
+
+3. Regression intervals (``conformal_scale``): split conformal prediction
+   with locally weighted residuals (Lei, G'Sell, Rinaldo, Tibshirani &
+   Wasserman 2018, JASA, Section 5.2): R_i = |y_i - mean_i| / sd_i with sd the
+   model's total predictive standard deviation; q = the ceil((n+1)(1-alpha))-th
+   smallest R_i. The served interval mean ± q * sd has marginal coverage
+   >= 1 - alpha. serve/summary.py applies it (manifest ``target.conformal_q``
+   at ``target.conformal_level``).
+
+Held-out metrics
+----------------
+accuracy; NLL (mean -ln p_y, nats); Brier score (Brier 1950: mean over cases
+of Σ_k (p_k - 1[y = k])^2, range [0, 2]; halved for two classes, as
+sklearn.metrics.brier_score_loss does); ECE with 15 equal-width bins on the
+max-probability confidence, bins ((m-1)/M, m/M] (Guo, Pleiss, Sun & Weinberger
+2017, eq. 3); the risk-coverage curve and AURC (its mean risk over the n
+coverage steps, cases ordered by increasing score, ties in input order;
+Geifman, Uziel & El-Yaniv 2019); accuracy at referral rates 0, 5, 10, 20, 30,
+50 % (the round(r n) highest-score cases referred). Regression: coverage,
+mean interval width, RMSE, MAE.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from scipy import stats
+
+from .errors import CalibrationInfeasible, ConfigError
+
+__all__ = [
+    "ECE_BINS",
+    "MAX_CANDIDATES",
+    "REFERRAL_RATES",
+    "ThresholdChoice",
+    "accuracy_at_referral",
+    "aurc",
+    "brier_score",
+    "calibration_record",
+    "classification_metrics",
+    "clopper_pearson",
+    "conformal_scale",
+    "error_upper_bound",
+    "expected_calibration_error",
+    "fingerprint",
+    "negative_log_likelihood",
+    "regression_metrics",
+    "reliability_bins",
+    "risk_coverage",
+    "select_for_abstain",
+    "select_for_accuracy",
+]
+
+ECE_BINS = 15
+"""Equal-width confidence bins for ECE (Guo et al. 2017 use 15)."""
+
+REFERRAL_RATES = (0.0, 0.05, 0.10, 0.20, 0.30, 0.50)
+"""Shares of cases sent to people at which accepted-case accuracy is reported."""
+
+MAX_CANDIDATES = 50
+"""Most thresholds searched when targeting an accuracy."""
+
+METHODS = ("fixed_sequence", "bonferroni")
+
+SEQUENCE_TOLERANCE = 2
+"""Errors the first candidate of the fixed sequence may hold and still pass (see ``_sequence_start``)."""
+
+
+# --------------------------------------------------------------------------- bounds
+
+
+def clopper_pearson(k: int, n: int, confidence: float = 0.95) -> tuple[float, float]:
+    """Two-sided exact (Clopper-Pearson 1934) interval for a binomial proportion k/n.
+
+    Equals ``scipy.stats.binomtest(k, n).proportion_ci(confidence, method="exact")``.
+    """
+    _check_counts(k, n)
+    a = 1.0 - confidence
+    lo = 0.0 if k == 0 else float(stats.beta.ppf(a / 2, k, n - k + 1))
+    hi = 1.0 if k == n else float(stats.beta.ppf(1 - a / 2, k + 1, n - k))
+    return lo, hi
+
+
+def error_upper_bound(errors: int | np.ndarray, n: int | np.ndarray, delta: float) -> np.ndarray:
+    """One-sided Clopper-Pearson upper bound on an error rate, holding with probability
+    >= 1 - delta: ``beta.ppf(1 - delta, e + 1, n - e)``; 1 where e = n (and for n = 0)."""
+    e = np.asarray(errors, dtype=np.float64)
+    m = np.asarray(n, dtype=np.float64)
+    full = (e >= m) | (m <= 0)
+    b = np.ones(np.broadcast(e, m).shape)
+    ok = ~full
+    if np.any(ok):
+        ee, mm = np.broadcast_to(e, b.shape)[ok], np.broadcast_to(m, b.shape)[ok]
+        b[ok] = stats.beta.ppf(1.0 - delta, ee + 1.0, mm - ee)
+    return b
+
+
+def _check_counts(k: int, n: int) -> None:
+    if n < 1 or not 0 <= k <= n:
+        raise ValueError(f"need 0 <= k <= n and n >= 1; got k={k}, n={n}")
+
+
+# --------------------------------------------------------------------------- metrics
+
+
+def _labels(probs: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    p = np.asarray(probs, dtype=np.float64)
+    t = np.asarray(y).astype(np.int64).ravel()
+    if p.ndim != 2 or p.shape[0] != t.shape[0]:
+        raise ValueError(f"probs must be [N, K] and y [N]; got {list(p.shape)} and {list(t.shape)}")
+    if t.size and (t.min() < 0 or t.max() >= p.shape[1]):
+        raise ValueError(f"labels must be class indices in 0..{p.shape[1] - 1}")
+    return p, t
+
+
+def negative_log_likelihood(probs: np.ndarray, y: np.ndarray) -> float:
+    """Mean -ln p_y in nats (probabilities floored at float64 eps, as sklearn.metrics.log_loss clips)."""
+    p, t = _labels(probs, y)
+    eps = np.finfo(np.float64).eps
+    return float(-np.mean(np.log(np.clip(p[np.arange(len(t)), t], eps, 1.0))))
+
+
+def brier_score(probs: np.ndarray, y: np.ndarray) -> float:
+    """Brier (1950) score: mean over cases of Σ_k (p_k - 1[y=k])^2; halved when K = 2."""
+    p, t = _labels(probs, y)
+    onehot = np.zeros_like(p)
+    onehot[np.arange(len(t)), t] = 1.0
+    b = float(np.mean(np.sum((p - onehot) ** 2, axis=1)))
+    return b / 2.0 if p.shape[1] == 2 else b
+
+
+def reliability_bins(probs: np.ndarray, y: np.ndarray, bins: int = ECE_BINS) -> dict[str, np.ndarray]:
+    """Per-bin count, mean confidence and accuracy; bin m holds confidences in ((m-1)/M, m/M]."""
+    p, t = _labels(probs, y)
+    conf = p.max(axis=1)
+    correct = (p.argmax(axis=1) == t).astype(np.float64)
+    idx = np.clip(np.ceil(conf * bins).astype(np.int64) - 1, 0, bins - 1)
+    count = np.bincount(idx, minlength=bins).astype(np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean_conf = np.bincount(idx, weights=conf, minlength=bins) / count
+        acc = np.bincount(idx, weights=correct, minlength=bins) / count
+    return {"edges": np.linspace(0.0, 1.0, bins + 1), "count": count, "confidence": mean_conf, "accuracy": acc}
+
+
+def expected_calibration_error(probs: np.ndarray, y: np.ndarray, bins: int = ECE_BINS) -> float:
+    """ECE = Σ_m (|B_m| / n) |acc(B_m) - conf(B_m)| (Guo et al. 2017, eq. 3), equal-width bins."""
+    r = reliability_bins(probs, y, bins)
+    n = r["count"].sum()
+    filled = r["count"] > 0
+    gap = np.abs(r["accuracy"][filled] - r["confidence"][filled])
+    return float(np.sum(r["count"][filled] / n * gap)) if n else 0.0
+
+
+def risk_coverage(scores: np.ndarray, correct: np.ndarray) -> dict[str, np.ndarray]:
+    """Cases ordered by increasing score (most sure first); for i = 1..n the coverage i/n,
+    the risk (error rate) of the first i, and the score of the i-th (accept if score <= it)."""
+    s = np.asarray(scores, dtype=np.float64).ravel()
+    c = np.asarray(correct, dtype=bool).ravel()
+    order = np.argsort(s, kind="stable")
+    errors = np.cumsum(~c[order])
+    i = np.arange(1, len(s) + 1)
+    return {"coverage": i / len(s), "risk": errors / i, "score": s[order]}
+
+
+def aurc(scores: np.ndarray, correct: np.ndarray) -> float:
+    """Area under the risk-coverage curve: the mean of the risk over the n coverage steps."""
+    return float(np.mean(risk_coverage(scores, correct)["risk"]))
+
+
+def accuracy_at_referral(scores: np.ndarray, correct: np.ndarray,
+                         rates: tuple[float, ...] = REFERRAL_RATES) -> dict[str, float]:
+    """Accuracy on the cases kept when the round(r n) highest-score cases go to people."""
+    rc = risk_coverage(scores, correct)
+    n = len(rc["risk"])
+    out = {}
+    for r in rates:
+        keep = n - int(round(r * n))
+        out[f"{r:.2f}"] = float(1.0 - rc["risk"][keep - 1]) if keep > 0 else float("nan")
+    return out
+
+
+def classification_metrics(probs: np.ndarray, y: np.ndarray, scores: np.ndarray,
+                           threshold: float | None = None) -> dict[str, Any]:
+    """All held-out classification figures as plain floats (JSON-ready)."""
+    p, t = _labels(probs, y)
+    correct = p.argmax(axis=1) == t
+    out: dict[str, Any] = {
+        "n": int(len(t)),
+        "accuracy": float(correct.mean()),
+        "nll": negative_log_likelihood(p, t),
+        "brier": brier_score(p, t),
+        "ece": expected_calibration_error(p, t),
+        "aurc": aurc(scores, correct),
+        "accuracy_at_referral": accuracy_at_referral(scores, correct),
+        "score_mean_correct": float(np.mean(scores[correct])) if correct.any() else None,
+        "score_mean_wrong": float(np.mean(scores[~correct])) if (~correct).any() else None,
+    }
+    if threshold is not None:
+        accepted = np.asarray(scores) <= threshold
+        out["at_threshold"] = {
+            "threshold": float(threshold),
+            "abstain_rate": float(1.0 - accepted.mean()),
+            "accepted": int(accepted.sum()),
+            "accuracy_accepted": float(correct[accepted].mean()) if accepted.any() else None,
+        }
+    return out
+
+
+def regression_metrics(y: np.ndarray, mean: np.ndarray, lower: np.ndarray, upper: np.ndarray,
+                       scores: np.ndarray | None = None, threshold: float | None = None) -> dict[str, Any]:
+    """Coverage of [lower, upper], mean interval width, RMSE and MAE (target units)."""
+    y = np.asarray(y, dtype=np.float64).ravel()
+    inside = (y >= lower) & (y <= upper)
+    err = y - mean
+    out: dict[str, Any] = {
+        "n": int(len(y)),
+        "coverage": float(inside.mean()),
+        "mean_interval_width": float(np.mean(upper - lower)),
+        "rmse": float(np.sqrt(np.mean(err**2))),
+        "mae": float(np.mean(np.abs(err))),
+    }
+    if scores is not None and threshold is not None:
+        accepted = np.asarray(scores) <= threshold
+        out["at_threshold"] = {
+            "threshold": float(threshold),
+            "abstain_rate": float(1.0 - accepted.mean()),
+            "accepted": int(accepted.sum()),
+            "coverage_accepted": float(inside[accepted].mean()) if accepted.any() else None,
+            "rmse_accepted": float(np.sqrt(np.mean(err[accepted] ** 2))) if accepted.any() else None,
+        }
+    return out
+
+
+# --------------------------------------------------------------------------- threshold choice
+
+
+@dataclass(frozen=True)
+class ThresholdChoice:
+    """A chosen threshold and what it achieved on the calibration set.
+
+    ``curve`` lists every candidate searched: threshold, calibration coverage,
+    accuracy and certified accuracy lower bound (``None`` where not tested).
+    """
+
+    method: str
+    threshold: float
+    n: int
+    accepted: int
+    errors: int
+    abstain_rate: float
+    accuracy: float | None
+    accuracy_bound: float | None = None
+    delta: float | None = None
+    target: dict[str, float] = field(default_factory=dict)
+    candidates: int = 0
+    tested: int = 0
+    curve: list[dict[str, Any]] = field(default_factory=list, repr=False)
+
+
+def _check_fraction(name: str, value: float, *, closed: bool = False) -> float:
+    v = float(value)
+    ok = (0.0 <= v <= 1.0) if closed else (0.0 < v < 1.0)
+    if not ok:
+        raise ConfigError(f"{name} must be in {'[0, 1]' if closed else '(0, 1)'}; got {value}", field=name)
+    return v
+
+
+def select_for_accuracy(
+    scores: np.ndarray,
+    correct: np.ndarray,
+    target_accuracy: float,
+    delta: float,
+    *,
+    max_abstain: float = 1.0,
+    method: str = "fixed_sequence",
+    max_candidates: int = MAX_CANDIDATES,
+) -> ThresholdChoice:
+    """The largest threshold whose accepted-case accuracy is >= ``target_accuracy`` with
+    confidence 1 - ``delta`` (see the module docstring), abstaining on at most
+    ``max_abstain`` of the calibration cases. ``scores``: float[n]; ``correct``: bool[n].
+    Raises ``CalibrationInfeasible`` (with the best achievable figures) if none is certified.
+    """
+    target_accuracy = _check_fraction("target_accuracy", target_accuracy)
+    delta = _check_fraction("delta", delta)
+    max_abstain = _check_fraction("max_abstain", max_abstain, closed=True)
+    if method not in METHODS:
+        raise ConfigError(f"method must be one of {', '.join(METHODS)}; got '{method}'", field="method")
+    s = np.asarray(scores, dtype=np.float64).ravel()
+    c = np.asarray(correct, dtype=bool).ravel()
+    n = len(s)
+    if n < 2 or len(c) != n or not np.all(np.isfinite(s)):
+        raise ConfigError(f"need >= 2 finite scores with one correctness flag each; got {n} scores, "
+                          f"{len(c)} flags", field="scores")
+    srt = np.sort(s)
+    # Fewest accepted cases that could be certified at all (zero errors):
+    # 1 - level**(1/a) <= 1 - target  <=>  a >= ln(level) / ln(target). Smaller
+    # candidates can never pass whatever the labels, so the (label-free) grid skips them.
+    worst_level = delta / max_candidates if method == "bonferroni" else delta
+    a_min = math.ceil(math.log(worst_level) / math.log(target_accuracy) - 1e-9)
+    if a_min > n - 1:
+        raise CalibrationInfeasible(
+            f"accepted-case accuracy {target_accuracy:.4g} with confidence {1 - delta:.4g} needs at least "
+            f"{a_min} error-free accepted calibration cases ({method}); got {n} cases in all. "
+            "Lower the target or the confidence, or calibrate on more labelled cases",
+            field="target_accuracy",
+        )
+    if method == "fixed_sequence":
+        a_min = _sequence_start(n, 1.0 - target_accuracy, delta, a_min)
+    # rank k (1-based) accepts about k - 1 cases; allowed: k - 1 >= (1 - max_abstain) n
+    k_min = min(n, max(2, a_min + 1, math.ceil((1.0 - max_abstain) * n - 1e-9) + 1))
+    ranks = np.unique(np.linspace(k_min, n, min(max_candidates, n - k_min + 1)).round().astype(np.int64))
+    cand = srt[ranks - 1]
+    accepted = np.searchsorted(srt, cand, side="left")  # number of scores < candidate
+    allowed = accepted >= (1.0 - max_abstain) * n - 1e-9  # ties can shrink an accepted set
+    cand, accepted = cand[allowed], accepted[allowed]
+    if len(cand) == 0:
+        raise CalibrationInfeasible(
+            f"every candidate threshold abstains on more than {max_abstain:.1%} of the {n} calibration "
+            "cases (many tied scores?); raise --max-abstain", field="max_abstain")
+    err_sorted = np.concatenate([[0], np.cumsum(~c[np.argsort(s, kind="stable")])])
+    # errors among cases with score < candidate (ties: all cases of smaller score)
+    errors = err_sorted[accepted]
+    m = len(cand)
+    level = delta / m if method == "bonferroni" else delta
+    bound = error_upper_bound(errors, accepted, level)
+    acc_lower = 1.0 - bound
+    ok = acc_lower >= target_accuracy
+    if method == "fixed_sequence":
+        fails = np.flatnonzero(~ok)
+        tested = int(fails[0]) + 1 if len(fails) else m
+        certified = np.zeros(m, dtype=bool)
+        certified[: tested - (1 if len(fails) else 0)] = True
+    else:
+        tested = m
+        certified = ok
+    thresholds = np.nextafter(cand, -np.inf)
+    curve = [
+        {"threshold": float(thresholds[j]), "coverage": float(accepted[j] / n),
+         "accuracy": float(1.0 - errors[j] / accepted[j]) if accepted[j] else None,
+         "accuracy_bound": float(acc_lower[j]) if j < tested else None,
+         "certified": bool(certified[j])}
+        for j in range(m)
+    ]
+    target = {"accuracy": target_accuracy, "max_abstain": max_abstain}
+    if not certified.any():
+        j = int(np.argmax(acc_lower[:tested]))
+        how = ("testing stopped at the first candidate" if method == "fixed_sequence"
+               else f"each of {m} candidates at level delta/{m}")
+        raise CalibrationInfeasible(
+            f"no threshold reaches accepted-case accuracy {target_accuracy:.4g} with confidence "
+            f"{1 - delta:.4g} while abstaining on at most {max_abstain:.1%} of cases ({method}, {how}). "
+            f"Best achievable: accuracy >= {acc_lower[j]:.4f} certified, at {1 - accepted[j] / n:.1%} "
+            f"abstention ({accepted[j]} of {n} accepted, {int(errors[j])} wrong, observed accuracy "
+            f"{(1 - errors[j] / max(accepted[j], 1)):.4f}). Lower the target, the confidence or raise "
+            f"--max-abstain, or calibrate on more labelled cases",
+            field="target_accuracy",
+        )
+    j = int(np.flatnonzero(certified)[-1])
+    return ThresholdChoice(
+        method=method, threshold=float(thresholds[j]), n=n, accepted=int(accepted[j]), errors=int(errors[j]),
+        abstain_rate=float(1.0 - accepted[j] / n), accuracy=float(1.0 - errors[j] / accepted[j]),
+        accuracy_bound=float(acc_lower[j]), delta=delta, target=target, candidates=m, tested=tested, curve=curve,
+    )
+
+
+def _sequence_start(n: int, alpha: float, delta: float, a_zero: int) -> int:
+    """Where the fixed sequence starts: the fewest accepted cases at which up to
+    ``SEQUENCE_TOLERANCE`` errors (else fewer) could still be certified.
+
+    Depends only on n, the target and delta -- never on the data -- so the order
+    stays pre-set. Starting where a single early confident error cannot end the
+    sequence matters: a bound on few cases fails on one error, and the sequence
+    stops at its first failure.
+    """
+    for e in range(SEQUENCE_TOLERANCE, 0, -1):
+        lo, hi = e + 1, n - 1
+        if hi < lo or float(error_upper_bound(e, hi, delta)) > alpha:
+            continue
+        while lo < hi:  # smallest a with bound(e, a) <= alpha (the bound falls as a grows)
+            mid = (lo + hi) // 2
+            if float(error_upper_bound(e, mid, delta)) <= alpha:
+                hi = mid
+            else:
+                lo = mid + 1
+        return lo
+    return a_zero
+
+
+def _finite_sample_rank(n: int, level: float, what: str) -> int:
+    k = math.ceil((n + 1) * level - 1e-12)
+    if k > n:
+        need = math.ceil(level / (1.0 - level) - 1e-12)
+        raise CalibrationInfeasible(
+            f"{what} needs at least {need} calibration cases for level {level:.4g}; got {n}",
+            field="data",
+        )
+    return max(k, 1)
+
+
+def select_for_abstain(scores: np.ndarray, rate: float, correct: np.ndarray | None = None) -> ThresholdChoice:
+    """Threshold = the ceil((n+1)(1-rate))-th smallest score: expected abstention <= rate."""
+    rate = _check_fraction("target_abstain", rate)
+    s = np.sort(np.asarray(scores, dtype=np.float64).ravel())
+    n = len(s)
+    k = _finite_sample_rank(n, 1.0 - rate, f"an abstention rate of {rate:.4g}")
+    t = float(s[k - 1])
+    raw = np.asarray(scores, dtype=np.float64).ravel()
+    acc_mask = raw <= t
+    errors = int(np.sum(~np.asarray(correct, dtype=bool)[acc_mask])) if correct is not None else 0
+    accepted = int(acc_mask.sum())
+    return ThresholdChoice(
+        method="abstain_quantile", threshold=t, n=n, accepted=accepted, errors=errors,
+        abstain_rate=float(1.0 - accepted / n),
+        accuracy=(1.0 - errors / accepted) if correct is not None and accepted else None,
+        target={"abstain_rate": rate},
+    )
+
+
+def conformal_scale(y: np.ndarray, mean: np.ndarray, sd: np.ndarray, alpha: float) -> float:
+    """Split-conformal scale q (Lei et al. 2018): the ceil((n+1)(1-alpha))-th smallest
+    |y - mean| / sd, so mean ± q sd covers a new case with probability >= 1 - alpha."""
+    alpha = _check_fraction("alpha", alpha)
+    r = np.abs(np.asarray(y, dtype=np.float64) - mean) / np.asarray(sd, dtype=np.float64)
+    r = np.sort(r.ravel())
+    k = _finite_sample_rank(len(r), 1.0 - alpha, f"a {1 - alpha:.4g} conformal interval")
+    return float(r[k - 1])
+
+
+# --------------------------------------------------------------------------- record
+
+
+def fingerprint(*arrays: np.ndarray) -> str:
+    """SHA-256 over each array's dtype, shape and C-order bytes: identifies the calibration data."""
+    h = hashlib.sha256()
+    for a in arrays:
+        a = np.ascontiguousarray(a)
+        h.update(f"{a.dtype.str}{list(a.shape)}".encode())
+        h.update(a.tobytes())
+    return h.hexdigest()
+
+
+def calibration_record(choice: ThresholdChoice, *, score: str, data: dict[str, Any],
+                       conformal: dict[str, Any] | None = None, now: _dt.datetime | None = None) -> dict[str, Any]:
+    """The JSON record written under the manifest's ``decision.calibration``."""
+    references = {
+        "fixed_sequence": "Learn then Test, fixed-sequence testing (Angelopoulos et al. 2021); "
+                          "one-sided Clopper-Pearson bound per candidate",
+        "bonferroni": "selective classification with guaranteed risk (Geifman & El-Yaniv 2017); "
+                      "Clopper-Pearson bound, union bound over candidates",
+        "abstain_quantile": "finite-sample corrected empirical quantile of the score (split-conformal argument)",
+    }
+    rec: dict[str, Any] = {
+        "method": choice.method,
+        "reference": references.get(choice.method, ""),
+        "score": score,
+        "threshold": choice.threshold,
+        "target": dict(choice.target),
+        "delta": choice.delta,
+        "confidence": None if choice.delta is None else 1.0 - choice.delta,
+        "n": choice.n,
+        "achieved": {
+            "accepted": choice.accepted,
+            "abstain_rate": choice.abstain_rate,
+            "accuracy": choice.accuracy,
+        },
+        "bound": None if choice.accuracy_bound is None else {
+            "accuracy_lower": choice.accuracy_bound, "candidates": choice.candidates, "tested": choice.tested,
+        },
+        "data": dict(data),
+        "date": (now or _dt.datetime.now(_dt.timezone.utc)).isoformat(timespec="seconds"),
+    }
+    if conformal is not None:
+        rec["conformal"] = dict(conformal)
+    return rec

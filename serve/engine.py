@@ -1,0 +1,291 @@
+"""The engine: a bundle's ONNX graphs opened in onnxruntime on CPU, returning Monte-Carlo draws.
+
+``run(x_raw)`` takes raw inputs ``float[B, *inputs.shape]`` (or ``[B, F]``
+flat), standardises them once here with the manifest's ``center``/``scale``
+(the graphs expect standardised input and nothing else standardises), runs
+the chosen graph and returns ``float32[S, B, K]``: logits per draw, or
+(mean, log-variance) per draw for regression.
+
+Graph choice: ``"auto"`` takes the sampler graph if the bundle has one (fresh
+weights on every call), else the stacked draws; ``"stacked"``, ``"sampler"``,
+``"means"`` and ``"flip"`` pick one by name.
+
+Seeding the sampler graph. onnxruntime's RandomNormal behaves like this: with
+a ``seed`` attribute its stream is reproducible across sessions but moves on
+from call to call within one session; without a seed, two sessions in one
+process repeat each other, and sessions created before a fork repeat the same
+draws in every worker. So ``load()`` rewrites every RandomNormal seed in
+memory before opening the session: from ``seed`` when one is configured
+(tests, replays), otherwise from ``os.urandom`` at load time. **Call
+``load()`` after any fork** (in each worker, e.g. gunicorn's ``post_fork``),
+never in a parent whose sessions the children would inherit.
+
+onnxruntime sessions are thread-safe for ``run``; the engine's loaded state is
+one immutable object swapped in by ``load()``, so ``run`` needs no lock.
+
+Example::
+
+    engine = Engine(load_bundle("build/digits-radial"), intra_threads=1)
+    engine.load()
+    draws = engine.run(pixels)          # float32[S, B, 10]
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import threading
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any, TypeVar
+
+import numpy as np
+import onnxruntime as ort
+
+from .bundle import Bundle, Manifest
+from .errors import ChecksumMismatch, ConfigError, GraphRunError, InvalidInput, NotLoaded
+
+__all__ = ["GRAPH_CHOICES", "Engine", "reseed_graph"]
+
+GRAPH_CHOICES = ("auto", "stacked", "sampler", "means", "flip")
+"""Values for ``Engine(graph=...)``."""
+
+_RANDOM_OPS = ("RandomNormal", "RandomNormalLike", "RandomUniform", "RandomUniformLike", "Multinomial")
+_SEED_MODULUS = 1 << 24  # the seed attribute is float32: integers below 2**24 are exact
+_SEED_STRIDE = 7919      # same rule as export.graphs.node_seed (kept in step by a test)
+_SAMPLING_KINDS = ("sampler", "flip")  # graphs with random nodes, reseeded at load
+
+_T = TypeVar("_T")
+
+
+def _ort_errors() -> tuple[type[BaseException], ...]:
+    state = ort.capi.onnxruntime_pybind11_state
+    found = [v for v in vars(state).values() if isinstance(v, type) and issubclass(v, Exception)]
+    return tuple(found) + (RuntimeError,)
+
+
+_ORT_ERRORS = _ort_errors()
+
+
+def _guard(what: str, fn: Callable[[], _T]) -> _T:
+    """The one place onnxruntime exceptions become ``GraphRunError``."""
+    try:
+        return fn()
+    except _ORT_ERRORS as exc:
+        raise GraphRunError(f"onnxruntime failed to {what}: {type(exc).__name__}: {exc}", field="graph") from exc
+
+
+def reseed_graph(data: bytes, seed: int) -> tuple[bytes, int]:
+    """Rewrite the seed of every random node of a serialised ONNX model; return (bytes, nodes changed).
+
+    Node ``i`` (in graph order) gets ``(seed + 7919 * i) mod 2**24``, the rule
+    ``export.graphs.node_seed`` uses at export, so distinct nodes keep distinct
+    streams. Needs the ``onnx`` package (only for graphs that sample).
+    """
+    import onnx  # only sampler graphs need it; stacked bundles run without
+
+    model = onnx.load_from_string(data)
+    changed = 0
+    for node in model.graph.node:
+        if node.op_type not in _RANDOM_OPS:
+            continue
+        value = float((int(seed) + _SEED_STRIDE * changed) % _SEED_MODULUS)
+        for attr in node.attribute:
+            if attr.name == "seed":
+                attr.f = value
+                break
+        else:
+            node.attribute.append(onnx.helper.make_attribute("seed", value))
+        changed += 1
+    return model.SerializeToString(), changed
+
+
+@dataclass(frozen=True)
+class _Loaded:
+    kind: str
+    session: Any
+    draws: int
+    seed: int | None
+    means: Any | None
+    center: np.ndarray
+    scale: np.ndarray
+
+
+class Engine:
+    """Runs one bundle's graphs. Constructing stores settings; ``load()`` opens the sessions.
+
+    ``graph``: one of ``GRAPH_CHOICES``. ``intra_threads``/``inter_threads``:
+    onnxruntime thread pools per session (1 each suits one worker process per
+    core). ``seed``: fixes the sampler graph's noise (tests); ``None`` draws a
+    fresh seed from ``os.urandom`` at every ``load()``.
+    """
+
+    def __init__(
+        self,
+        bundle: Bundle,
+        *,
+        graph: str = "auto",
+        intra_threads: int = 1,
+        inter_threads: int = 1,
+        seed: int | None = None,
+    ) -> None:
+        if graph not in GRAPH_CHOICES:
+            raise ConfigError(f"graph must be one of {', '.join(GRAPH_CHOICES)}; got '{graph}'", field="graph")
+        for name, value in (("intra_threads", intra_threads), ("inter_threads", inter_threads)):
+            if not isinstance(value, int) or isinstance(value, bool) or value < 0:
+                raise ConfigError(f"{name} must be an integer >= 0 (0 = onnxruntime's default); got {value!r}",
+                                  field=name)
+        self.bundle = bundle
+        self.graph = graph
+        self.intra_threads = intra_threads
+        self.inter_threads = inter_threads
+        self.seed = seed
+        self._state: _Loaded | None = None
+        self._lock = threading.Lock()
+
+    # -- loading ----------------------------------------------------------------
+    def _choose(self) -> str:
+        graphs = self.bundle.manifest.graphs
+        if self.graph == "auto":
+            for kind in ("sampler", "stacked", "flip", "means"):
+                if kind in graphs:
+                    return kind
+        if self.graph not in graphs:
+            have = ", ".join(sorted(graphs))
+            raise ConfigError(f"bundle has no '{self.graph}' graph; it has: {have}", field="graph")
+        return self.graph
+
+    def _options(self) -> ort.SessionOptions:
+        opts = ort.SessionOptions()
+        opts.intra_op_num_threads = self.intra_threads
+        opts.inter_op_num_threads = self.inter_threads
+        opts.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+        opts.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
+        opts.log_severity_level = 3  # errors only; warnings would go to stderr per session
+        return opts
+
+    def _read(self, kind: str) -> bytes:
+        """Graph bytes, re-checked against the manifest digest (the file may have changed since loading)."""
+        entry = self.bundle.manifest.graphs[kind]
+        path = self.bundle.graph_path(kind)
+        try:
+            data = path.read_bytes()
+        except OSError as exc:
+            raise ChecksumMismatch(f"graph file {entry.file} cannot be read: {exc}",
+                                   field=f"graphs.{kind}.file") from exc
+        digest = hashlib.sha256(data).hexdigest()
+        if digest != entry.sha256:
+            raise ChecksumMismatch(
+                f"graph file {entry.file} has SHA-256 {digest[:12]}…, the manifest records {entry.sha256[:12]}…; "
+                "the file changed after the bundle was loaded", field=f"graphs.{kind}.sha256")
+        return data
+
+    def _session(self, kind: str, seed: int | None) -> Any:
+        data = self._read(kind)
+        if seed is not None and kind in _SAMPLING_KINDS:
+            data, _ = reseed_graph(data, seed)
+        return _guard(f"open the {kind} graph",
+                      lambda: ort.InferenceSession(data, sess_options=self._options(),
+                                                   providers=["CPUExecutionProvider"]))
+
+    def load(self) -> Engine:
+        """Open the sessions (after any fork); returns ``self``. Calling it again reloads and reseeds."""
+        with self._lock:
+            kind = self._choose()
+            seed = self.seed
+            if kind in _SAMPLING_KINDS and seed is None:
+                seed = int.from_bytes(os.urandom(4), "little") % _SEED_MODULUS
+            session = self._session(kind, seed)
+            means = None
+            if "means" in self.bundle.manifest.graphs:
+                means = session if kind == "means" else self._session("means", None)
+            spec = self.bundle.manifest.inputs
+            self._state = _Loaded(
+                kind=kind,
+                session=session,
+                draws=int(self.bundle.manifest.graphs[kind].draws),
+                seed=seed if kind in _SAMPLING_KINDS else None,
+                means=means,
+                center=np.asarray(spec.center, dtype=np.float64).reshape(spec.shape),
+                scale=np.asarray(spec.scale, dtype=np.float64).reshape(spec.shape),
+            )
+        return self
+
+    def _loaded(self) -> _Loaded:
+        state = self._state
+        if state is None:
+            raise NotLoaded(f"engine for bundle {self.bundle.path} is not loaded; call load() first", field="engine")
+        return state
+
+    # -- running ------------------------------------------------------------------
+    def standardise(self, x_raw: Any) -> np.ndarray:
+        """Raw inputs float[B, *shape] (or [B, F]) -> float32[B, *shape], (x - center) / scale."""
+        state = self._loaded()
+        spec = self.bundle.manifest.inputs
+        try:
+            x = np.asarray(x_raw, dtype=np.float64)  # standardise in float64, hand float32 to the graph
+        except (TypeError, ValueError) as exc:
+            raise InvalidInput(f"x must be an array of numbers; got {type(x_raw).__name__} ({exc})", field="x") from exc
+        if x.ndim < 1 or x.shape[0] < 1:
+            raise InvalidInput(f"x must hold at least one case; got shape {list(x.shape)}", field="x")
+        if x.shape[1:] != spec.shape:
+            if x.ndim == 2 and x.shape[1] == spec.size:
+                x = x.reshape(x.shape[0], *spec.shape)
+            else:
+                raise InvalidInput(f"x must be [B, {', '.join(map(str, spec.shape))}] (or [B, {spec.size}]); "
+                                   f"got {list(x.shape)}", field="x")
+        return np.ascontiguousarray((x - state.center) / state.scale, dtype=np.float32)
+
+    def _run(self, session: Any, x_std: np.ndarray, what: str) -> np.ndarray:
+        out = _guard(f"run the {what} graph", lambda: session.run(["draws"], {"x": x_std})[0])
+        return np.asarray(out, dtype=np.float32)
+
+    def run(self, x_raw: Any) -> np.ndarray:
+        """float[B, *shape] raw inputs -> float32[S, B, K] draws from the chosen graph."""
+        state = self._loaded()
+        return self._run(state.session, self.standardise(x_raw), state.kind)
+
+    def run_standardised(self, x_std: Any) -> np.ndarray:
+        """Like ``run`` for inputs already standardised (float32[B, *shape]); nothing is re-applied."""
+        state = self._loaded()
+        return self._run(state.session, np.ascontiguousarray(x_std, dtype=np.float32), state.kind)
+
+    def run_means(self, x_raw: Any) -> np.ndarray:
+        """float[B, *shape] raw inputs -> float32[1, B, K] from the means graph (the deterministic fallback)."""
+        state = self._loaded()
+        if state.means is None:
+            raise ConfigError(f"bundle {self.bundle.path} has no 'means' graph", field="graph")
+        return self._run(state.means, self.standardise(x_raw), "means")
+
+    # -- description --------------------------------------------------------------
+    @property
+    def loaded(self) -> bool:
+        return self._state is not None
+
+    @property
+    def kind(self) -> str:
+        """The graph kind in use (after ``load()``)."""
+        return self._loaded().kind
+
+    @property
+    def draws(self) -> int:
+        """S, the number of draws ``run`` returns."""
+        return self._loaded().draws
+
+    @property
+    def seed_in_use(self) -> int | None:
+        """The sampler's base seed for this load (``None`` for graphs that do not sample)."""
+        return self._loaded().seed
+
+    @property
+    def task(self) -> str:
+        return self.bundle.manifest.task
+
+    @property
+    def manifest(self) -> Manifest:
+        return self.bundle.manifest
+
+    @property
+    def checksum(self) -> str:
+        """The bundle's seal (SHA-256 of manifest.json), reported with every response."""
+        return self.bundle.checksum

@@ -1,0 +1,344 @@
+"""From Monte-Carlo weight draws to predictive summaries: pure numpy, no framework.
+
+The engine hands over ``draws: float[S, B, K]`` (S weight draws, B cases, K
+outputs). This module turns them into what a caller acts on. Everything is
+vectorised over draws, cases and classes; there is no Python loop over cases.
+
+Classification (``K`` logits per draw)
+    p_s = softmax(logits_s), computed as exp(log-softmax) with log-sum-exp.
+    ``mean_probs``          p̄ = (1/S) Σ_s p_s                          [B, K]
+    ``prediction``          argmax_k p̄                                 [B]
+    ``lower`` / ``upper``   per-class quantiles of p_s over the draws at
+                            (1-level)/2 and (1+level)/2                 [B, K]
+    ``predictive_entropy``  H[p̄] = -Σ_k p̄_k ln p̄_k                    [B]
+    ``expected_entropy``    (1/S) Σ_s H[p_s]                           [B]
+    ``mutual_information``  H[p̄] - (1/S) Σ_s H[p_s]                   [B]
+        the BALD decomposition of Houlsby et al. (2011), eq. (1): the mutual
+        information between the label and the weights under the S-draw
+        posterior sample. It is >= 0 by Jensen's inequality; values below
+        zero can only be float round-off (of order 1e-16) and are clipped to 0.
+    ``one_minus_max_prob``  1 - max_k p̄_k                              [B]
+
+Regression (``K = 2``: mean and log-variance in standardised target units)
+    Each draw is a Gaussian N(mu_s, var_s); in target units
+    mu_s = m_s * scale + center and var_s = exp(v_s) * scale**2.
+    ``mean``                mixture mean (1/S) Σ_s mu_s                 [B]
+    ``epistemic_var``       variance of the draw means (1/S) Σ_s (mu_s - mean)^2
+    ``aleatoric_var``       mean of the draw variances (1/S) Σ_s var_s
+    ``total_var``           epistemic + aleatoric (the mixture's variance)
+    ``lower`` / ``upper``   the equal-tailed quantiles of the Gaussian mixture
+                            itself, solved numerically (safeguarded Newton on
+                            the mixture CDF, bracketed by the component
+                            quantiles) -- not a normal approximation. With one
+                            draw it is exactly scipy.stats.norm.ppf.
+    ``interval_width``      upper - lower                               [B]
+    ``epistemic_std``       sqrt(epistemic_var), target units           [B]
+    ``expected_entropy``    (1/S) Σ_s ½ ln(2πe var_s): exact mean differential
+                            entropy of the draws, nats
+    ``predictive_entropy``  ½ ln(2πe total_var): the entropy of the moment-
+                            matched Gaussian, an UPPER BOUND on the mixture's
+                            differential entropy (a Gaussian has the largest
+                            entropy for a given variance)
+    ``mutual_information``  predictive_entropy - expected_entropy
+                            = ½ ln total_var - (1/S) Σ_s ½ ln var_s, nats.
+        What it is, precisely: an upper bound on the mutual information between
+        the target y and the weight draw s under the S-draw mixture,
+        I(y; s) = H[mixture] - E_s H[N(mu_s, var_s)] <= this value. It is >= 0
+        (Jensen: mean ln var_s <= ln aleatoric_var <= ln total_var), is 0 when
+        all draws agree, and does not depend on the target's units. It is
+        deliberately not ½ ln(total/aleatoric): that quantity is the exact
+        mutual information only of a homoscedastic Gaussian model and can be 0
+        while I(y; s) > 0 (draws with equal means but different variances).
+        Entropies of continuous targets are differential entropies; they
+        depend on the target's units and may be negative.
+
+Conformal intervals: after ``demur calibrate`` on a regression bundle the
+manifest's ``target`` holds ``conformal_q`` and ``conformal_level``. When the
+requested level equals ``conformal_level`` the served interval is
+``mean ± conformal_q * sqrt(total_var)`` (split-conformal, Lei et al. 2018,
+with the normalised residual |y - mean| / sqrt(total_var)); at any other
+level the model's own mixture interval is served. ``interval_method`` says
+which.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from scipy.special import ndtr, ndtri
+
+from .errors import ConfigError, InvalidInput
+
+__all__ = [
+    "UNIT",
+    "ClassificationSummary",
+    "RegressionSummary",
+    "Summary",
+    "classification_summary",
+    "mixture_quantile",
+    "regression_summary",
+    "summarise",
+]
+
+UNIT = "nats"
+"""Unit of every entropy and of mutual information (natural logarithms)."""
+
+_LOG_VAR_LIMIT = 60.0
+"""Log-variances (standardised units) are clipped to ±this before exp(), so a
+wild draw gives a huge but finite variance instead of an overflow."""
+
+_LN_2PIE = float(np.log(2.0 * np.pi * np.e))
+
+
+@dataclass(frozen=True)
+class ClassificationSummary:
+    """Per-case summaries of S draws of K-class logits (all float64; entropies in nats)."""
+
+    level: float
+    draws: int
+    mean_probs: np.ndarray  # [B, K]
+    prediction: np.ndarray  # int64[B], index into the bundle's labels
+    lower: np.ndarray  # [B, K]
+    upper: np.ndarray  # [B, K]
+    predictive_entropy: np.ndarray  # [B]
+    expected_entropy: np.ndarray  # [B]
+    mutual_information: np.ndarray  # [B]
+    one_minus_max_prob: np.ndarray  # [B]
+    task: str = "classification"
+    unit: str = UNIT
+
+    def __len__(self) -> int:
+        return int(self.prediction.shape[0])
+
+
+@dataclass(frozen=True)
+class RegressionSummary:
+    """Per-case summaries of S Gaussian draws, in target units (entropies in nats)."""
+
+    level: float
+    draws: int
+    mean: np.ndarray  # [B]
+    epistemic_var: np.ndarray  # [B]
+    aleatoric_var: np.ndarray  # [B]
+    total_var: np.ndarray  # [B]
+    lower: np.ndarray  # [B]
+    upper: np.ndarray  # [B]
+    interval_width: np.ndarray  # [B]
+    epistemic_std: np.ndarray  # [B]
+    predictive_entropy: np.ndarray  # [B], moment-matched Gaussian bound
+    expected_entropy: np.ndarray  # [B]
+    mutual_information: np.ndarray  # [B], upper bound, see module docstring
+    interval_method: str = "mixture"  # "mixture" or "conformal"
+    task: str = "regression"
+    unit: str = UNIT
+
+    @property
+    def prediction(self) -> np.ndarray:
+        """The point prediction: the mixture mean [B]."""
+        return self.mean
+
+    def __len__(self) -> int:
+        return int(self.mean.shape[0])
+
+
+Summary = ClassificationSummary | RegressionSummary
+
+
+def _check_draws(draws: np.ndarray, k: int | None = None) -> np.ndarray:
+    a = np.asarray(draws, dtype=np.float64)
+    if a.ndim != 3:
+        raise InvalidInput(f"draws must be a 3-d array [S, B, K]; got shape {list(a.shape)}", field="draws")
+    if a.shape[0] < 1:
+        raise InvalidInput("draws must hold at least one draw (S >= 1); got S = 0", field="draws")
+    if k is not None and a.shape[2] != k:
+        raise InvalidInput(f"draws must have K = {k} outputs; got {a.shape[2]}", field="draws")
+    return a
+
+
+def _logsumexp(z: np.ndarray, axis: int) -> np.ndarray:
+    """log Σ exp(z) along ``axis`` (kept as a length-1 axis), shifted by the max for stability.
+
+    Same values as scipy.special.logsumexp for finite input, without its
+    per-call argument handling (which cost more than the arithmetic here).
+    """
+    m = np.max(z, axis=axis, keepdims=True)
+    return m + np.log(np.sum(np.exp(z - m), axis=axis, keepdims=True))
+
+
+def _quantiles(a: np.ndarray, probs: tuple[float, ...]) -> np.ndarray:
+    """Quantiles along axis 0 from one sort: numpy's default 'linear' rule
+    (h = (S - 1) q, interpolate between order statistics floor(h) and floor(h) + 1),
+    the same values as np.quantile(a, probs, axis=0), for all probs at once."""
+    s = np.sort(a, axis=0)
+    n = s.shape[0]
+    out = []
+    for q in probs:
+        h = (n - 1) * q
+        lo = int(np.floor(h))
+        hi = min(lo + 1, n - 1)
+        out.append(s[lo] + (h - lo) * (s[hi] - s[lo]))
+    return np.stack(out)
+
+
+def _check_level(level: float) -> float:
+    level = float(level)
+    if not 0.0 < level < 1.0:
+        raise ConfigError(f"interval level must be in (0, 1); got {level}", field="interval_level")
+    return level
+
+
+def classification_summary(logits: np.ndarray, level: float = 0.9) -> ClassificationSummary:
+    """Summarise ``logits: float[S, B, K]`` (see the module docstring for each field).
+
+    Example::
+
+        s = classification_summary(np.zeros((8, 3, 10)), 0.9)
+        s.mutual_information   # array([0., 0., 0.]): every draw agrees
+    """
+    z = _check_draws(logits)
+    level = _check_level(level)
+    n_draws = z.shape[0]
+    if z.shape[2] < 2:
+        raise InvalidInput(f"a classifier needs K >= 2 logits; got {z.shape[2]}", field="draws")
+
+    log_p = z - _logsumexp(z, axis=2)  # [S, B, K] log-softmax
+    p = np.exp(log_p)
+    # Σ_k p ln p with p = exp(log p): finite even where p underflows to 0.
+    expected_entropy = -np.mean(np.sum(p * log_p, axis=2), axis=0)  # [B]
+    log_mean = _logsumexp(log_p, axis=0)[0] - np.log(n_draws)  # [B, K], ln p̄
+    mean_probs = np.exp(log_mean)
+    predictive_entropy = -np.sum(mean_probs * log_mean, axis=1)
+    mutual_information = np.maximum(predictive_entropy - expected_entropy, 0.0)
+
+    q = _quantiles(p, ((1.0 - level) / 2.0, (1.0 + level) / 2.0))  # [2, B, K]
+    return ClassificationSummary(
+        level=level,
+        draws=n_draws,
+        mean_probs=mean_probs,
+        prediction=np.argmax(mean_probs, axis=1),
+        lower=q[0],
+        upper=q[1],
+        predictive_entropy=predictive_entropy,
+        expected_entropy=expected_entropy,
+        mutual_information=mutual_information,
+        one_minus_max_prob=1.0 - np.max(mean_probs, axis=1),
+    )
+
+
+def mixture_quantile(mu: np.ndarray, sd: np.ndarray, prob: float, *, tol: float = 1e-12,
+                     max_iter: int = 100) -> np.ndarray:
+    """Quantile at ``prob`` of the equal-weight Gaussian mixture of ``mu, sd: float[S, B]``.
+
+    Solves (1/S) Σ_s Φ((y - mu_s)/sd_s) = prob for y, per case. The root lies
+    between the smallest and largest component quantile (at the smallest every
+    component CDF is <= prob, at the largest >= prob), which brackets a
+    safeguarded Newton iteration: a Newton step that leaves the bracket is
+    replaced by bisection. With S = 1 the bracket is a single point, so the
+    result is exactly ``mu + sd * ndtri(prob)`` (scipy.stats.norm.ppf).
+    Returns float[B].
+    """
+    mu = np.asarray(mu, dtype=np.float64)
+    sd = np.asarray(sd, dtype=np.float64)
+    z = float(ndtri(prob))
+    comp = mu + sd * z  # [S, B]
+    lo = comp.min(axis=0)
+    hi = comp.max(axis=0)
+    y = np.where(lo == hi, lo, mu.mean(axis=0).clip(lo, hi))
+    active = lo < hi
+    for _ in range(max_iter):
+        if not active.any():
+            break
+        u = (y[None, :] - mu) / sd
+        f = ndtr(u).mean(axis=0) - prob
+        dens = (np.exp(-0.5 * u * u) / (sd * np.sqrt(2.0 * np.pi))).mean(axis=0)
+        lo = np.where(f < 0, y, lo)
+        hi = np.where(f > 0, y, hi)
+        done = (np.abs(f) <= tol) | (hi - lo <= 4 * np.finfo(np.float64).eps * np.maximum(1.0, np.abs(y)))
+        active &= ~done
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            step = y - f / dens
+        inside = np.isfinite(step) & (step > lo) & (step < hi)
+        y = np.where(active, np.where(inside, step, 0.5 * (lo + hi)), y)
+    return y
+
+
+def regression_summary(
+    draws: np.ndarray,
+    level: float = 0.9,
+    target_center: float = 0.0,
+    target_scale: float = 1.0,
+    *,
+    conformal_q: float | None = None,
+) -> RegressionSummary:
+    """Summarise ``draws: float[S, B, 2]`` (mean, log-variance; standardised units).
+
+    ``conformal_q``, if given, replaces the mixture interval by
+    ``mean ± conformal_q * sqrt(total_var)`` (see the module docstring).
+    """
+    d = _check_draws(draws, k=2)
+    level = _check_level(level)
+    scale = float(target_scale)
+    if not scale > 0:
+        raise ConfigError(f"target scale must be positive; got {target_scale}", field="target.scale")
+    mu = d[:, :, 0] * scale + float(target_center)  # [S, B]
+    log_var_std = np.clip(d[:, :, 1], -_LOG_VAR_LIMIT, _LOG_VAR_LIMIT)
+    sd = np.exp(0.5 * log_var_std) * scale  # [S, B], target units
+    var = sd * sd
+    log_var = log_var_std + 2.0 * np.log(scale)
+
+    mean = mu.mean(axis=0)
+    epistemic_var = np.mean((mu - mean) ** 2, axis=0)
+    aleatoric_var = var.mean(axis=0)
+    total_var = epistemic_var + aleatoric_var
+    expected_entropy = 0.5 * (_LN_2PIE + log_var.mean(axis=0))
+    predictive_entropy = 0.5 * (_LN_2PIE + np.log(total_var))
+    mutual_information = np.maximum(predictive_entropy - expected_entropy, 0.0)
+
+    if conformal_q is not None:
+        half = float(conformal_q) * np.sqrt(total_var)
+        lower, upper, method = mean - half, mean + half, "conformal"
+    else:
+        lower = mixture_quantile(mu, sd, (1.0 - level) / 2.0)
+        upper = mixture_quantile(mu, sd, (1.0 + level) / 2.0)
+        method = "mixture"
+    return RegressionSummary(
+        level=level,
+        draws=d.shape[0],
+        mean=mean,
+        epistemic_var=epistemic_var,
+        aleatoric_var=aleatoric_var,
+        total_var=total_var,
+        lower=lower,
+        upper=upper,
+        interval_width=upper - lower,
+        epistemic_std=np.sqrt(epistemic_var),
+        predictive_entropy=predictive_entropy,
+        expected_entropy=expected_entropy,
+        mutual_information=mutual_information,
+        interval_method=method,
+    )
+
+
+def summarise(task: str, draws: np.ndarray, level: float, target: Mapping[str, Any] | None = None) -> Summary:
+    """Dispatch on the bundle's task. ``target`` is the manifest's ``target`` section
+    ({"center", "scale"} and, after conformal calibration, "conformal_q" and
+    "conformal_level"); it is ignored for classification.
+    """
+    if task == "classification":
+        return classification_summary(draws, level)
+    if task == "regression":
+        target = target or {}
+        q = target.get("conformal_q")
+        q_level = target.get("conformal_level")
+        use_q = q is not None and q_level is not None and abs(float(q_level) - float(level)) < 1e-9
+        return regression_summary(
+            draws,
+            level,
+            float(target.get("center", 0.0)),
+            float(target.get("scale", 1.0)),
+            conformal_q=float(q) if use_q else None,
+        )
+    raise ConfigError(f"task must be 'classification' or 'regression'; got '{task}'", field="task")

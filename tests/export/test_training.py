@@ -1,0 +1,208 @@
+"""export/training.py: ELBO training, metrics, the checkpoint and ``demur train``.
+
+References: Guo et al., "On Calibration of Modern Neural Networks", ICML 2017,
+eq. 3 (ECE, worked example below computed by hand); scikit-learn
+(accuracy_score, log_loss); scipy.stats.norm (Gaussian log-density);
+sklearn's bundled digits and diabetes data; torch.load(weights_only=True).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+import scipy.stats
+import torch
+from sklearn.datasets import load_diabetes
+from sklearn.metrics import accuracy_score, log_loss
+
+import export.training as training
+from export.datasets import load_dataset
+from export.errors import CheckpointError, LayerConfigError
+from export.layers import VariationalLinear, variational_layers
+from export.training import (
+    CHECKPOINT_FORMAT,
+    evaluate,
+    expected_calibration_error,
+    load_checkpoint,
+    standardise_inputs,
+    train,
+)
+from serve.cli import main
+
+
+def test_all_is_exact():
+    assert sorted(training.__all__) == sorted(
+        ["CHECKPOINT_FORMAT", "CHECKPOINT_VERSION", "DEFAULTS", "EVAL_DRAWS", "KL_WARMUP", "KL_WEIGHT",
+         "SCALE_FLOOR", "TrainResult", "evaluate", "expected_calibration_error", "load_checkpoint",
+         "predict_draws", "register", "standardise_inputs", "summary_line", "train"]
+    )
+    assert all(hasattr(training, n) for n in training.__all__)
+
+
+def test_ece_worked_example():
+    # Guo et al. 2017, eq. 3, by hand: two cases at confidence 0.9 (one right) and two at
+    # 0.6 (both right): ECE = 2/4 * |0.5 - 0.9| + 2/4 * |1.0 - 0.6| = 0.4
+    probs = np.array([[0.9, 0.1], [0.9, 0.1], [0.4, 0.6], [0.4, 0.6]])
+    y = np.array([0, 1, 1, 1])
+    assert expected_calibration_error(probs, y) == pytest.approx(0.4, abs=1e-12)
+    # perfectly confident and right -> 0
+    assert expected_calibration_error(np.eye(3), np.arange(3)) == pytest.approx(0.0)
+
+
+def test_classification_metrics_match_sklearn():
+    # references: sklearn.metrics.accuracy_score and log_loss on the draw-averaged softmax
+    rng = np.random.default_rng(0)
+    draws = torch.as_tensor(rng.normal(size=(6, 50, 4)) * 2, dtype=torch.float32)
+    y = rng.integers(0, 4, size=50)
+    probs = torch.softmax(draws.double(), dim=-1).mean(0).numpy()
+    m = evaluate(draws, y, "classification")
+    assert m["accuracy"] == pytest.approx(accuracy_score(y, probs.argmax(1)))
+    assert m["nll"] == pytest.approx(log_loss(y, probs, labels=range(4)), rel=1e-9)
+    assert m["ece"] == pytest.approx(expected_calibration_error(probs, y))
+
+
+def test_regression_metrics_match_scipy_norm():
+    # reference: scipy.stats.norm.logpdf in target units, one draw (a one-component mixture)
+    rng = np.random.default_rng(1)
+    mean_std, logvar = rng.normal(size=20), rng.normal(size=20) * 0.3
+    target = {"center": 150.0, "scale": 75.0}
+    y = rng.normal(150, 75, size=20)
+    draws = torch.as_tensor(np.stack([mean_std, logvar], -1)[None], dtype=torch.float64)
+    m = evaluate(draws, y, "regression", target)
+    mu = mean_std * 75 + 150
+    sd = np.exp(logvar / 2) * 75
+    assert m["nll"] == pytest.approx(-scipy.stats.norm.logpdf(y, mu, sd).mean(), rel=1e-9)
+    assert m["rmse"] == pytest.approx(np.sqrt(np.mean((mu - y) ** 2)))
+
+
+def test_standardisation_floors_constant_features():
+    # digits: the corner pixel px_r0c0 is 0 in every image, so its std is 0 -> scale 1
+    ds = load_dataset("digits")
+    spec = training._input_spec(ds, "mlp")
+    assert spec["scale"][0] == 1.0 and spec["center"][0] == 0.0
+    np.testing.assert_allclose(spec["center"], ds.x_train.mean(0))
+    z = standardise_inputs(spec, ds.x_train)
+    assert z.dtype == np.float32 and z.shape == (989, 64)
+    varying = ds.x_train.std(0) > training.SCALE_FLOOR
+    np.testing.assert_allclose(z[:, varying].std(0), 1.0, atol=1e-5)
+    conv = training._input_spec(ds, "conv")
+    assert conv["shape"] == [1, 8, 8] and standardise_inputs(conv, ds.x_test[:3]).shape == (3, 1, 8, 8)
+
+
+def test_checkpoint_loads_with_weights_only(tmp_path):
+    ds = load_dataset("digits")
+    result = train(ds, epochs=1, out=tmp_path, hidden=(16,), progress=False)
+    # reference: torch.load(weights_only=True) refuses anything but tensors and plain containers
+    raw = torch.load(tmp_path / "checkpoint.pt", weights_only=True)
+    assert raw["format"] == CHECKPOINT_FORMAT and raw["version"] == 1
+    for key in ("arch", "state_dict", "task", "labels", "inputs", "target", "data", "metrics", "drift_features"):
+        assert key in raw, key
+    assert raw["arch"] == {"kind": "mlp", "hidden": [16], "channels": [16, 32], "posterior": "radial",
+                           "prior_scale": 1.0, "init_sigma": 1e-3}
+    assert raw["data"] == {"source": "digits", "target": "digit", "seed": 0}
+    assert set(raw["inputs"]) >= {"names", "shape", "center", "scale", "low", "high", "kind"}
+    assert len(raw["drift_features"]["edges"]) == 64
+    model, meta = load_checkpoint(tmp_path)
+    assert "state_dict" not in meta and meta["labels"] == [str(i) for i in range(10)]
+    for a, b in zip(variational_layers(model), variational_layers(result.model)):
+        assert torch.equal(a.weight_mu, b.weight_mu) and torch.equal(a.bias_rho, b.bias_rho)
+    record = json.loads((tmp_path / "training.json").read_text())
+    assert record["history"][0]["epoch"] == 1 and "test" in record["metrics"]
+
+
+def test_foreign_checkpoints_are_refused(tmp_path):
+    with pytest.raises(CheckpointError, match="no checkpoint at"):
+        load_checkpoint(tmp_path)
+    torch.save({"format": "something-else"}, tmp_path / "checkpoint.pt")
+    with pytest.raises(CheckpointError, match="format must be 'demur-checkpoint'; got 'something-else'"):
+        load_checkpoint(tmp_path)
+    torch.save({"format": CHECKPOINT_FORMAT, "version": 99}, tmp_path / "checkpoint.pt")
+    with pytest.raises(CheckpointError, match="version 99 is not supported"):
+        load_checkpoint(tmp_path)
+    torch.save({"layer": VariationalLinear(2, 2)}, tmp_path / "checkpoint.pt")  # a pickled module
+    with pytest.raises(CheckpointError, match="not a readable demur checkpoint"):
+        load_checkpoint(tmp_path)
+
+
+def test_bad_settings_are_named():
+    ds = load_dataset("diabetes")
+    with pytest.raises(LayerConfigError, match="arch 'conv' needs image inputs"):
+        train(ds, arch="conv", epochs=1)
+    with pytest.raises(LayerConfigError, match="unknown training settings"):
+        train(ds, epochs=1, learning_rate=0.1)
+    with pytest.raises(LayerConfigError, match="epochs must be >= 1"):
+        train(ds, epochs=0)
+
+
+def test_training_is_seedable():
+    ds = load_dataset("digits")
+    threads = torch.get_num_threads()
+    a = train(ds, epochs=1, seed=5, hidden=(16,), progress=False)
+    assert torch.get_num_threads() == threads  # the thread setting is restored afterwards
+    b = train(ds, epochs=1, seed=5, hidden=(16,), progress=False)
+    c = train(ds, epochs=1, seed=6, hidden=(16,), progress=False)
+    la, lb, lc = (variational_layers(r.model)[0].weight_mu for r in (a, b, c))
+    assert torch.equal(la, lb) and not torch.equal(la, lc)
+
+
+def test_gaussian_mlp_smoke():
+    # 10 classes: chance is 0.1; a few epochs already learn most digits
+    r = train(load_dataset("digits"), posterior="gaussian", epochs=5, hidden=(64, 64), progress=False)
+    assert r.metrics["test"]["accuracy"] > 0.5
+    assert r.meta["arch"]["posterior"] == "gaussian"
+
+
+def test_conv_smoke():
+    r = train(load_dataset("digits"), arch="conv", posterior="radial", epochs=5, channels=(8, 16), progress=False)
+    assert r.metrics["test"]["accuracy"] > 0.5
+    assert r.meta["inputs"]["shape"] == [1, 8, 8]
+
+
+def test_csv_regression_smoke(tmp_path):
+    # sklearn's bundled diabetes data written as a CSV; better than predicting the
+    # training mean (RMSE below the test targets' std) -- a baseline, common practice
+    ref = load_diabetes(scaled=False)
+    lines = [",".join(ref.feature_names + ["progression"])]
+    lines += [",".join(f"{v:g}" for v in (*row, t)) for row, t in zip(ref.data, ref.target)]
+    csv = tmp_path / "diabetes.csv"
+    csv.write_text("\n".join(lines) + "\n")
+    ds = load_dataset(csv, "progression")
+    r = train(ds, epochs=40, out=tmp_path / "run", progress=False, hidden=(32, 32))
+    assert ds.task == "regression" and r.meta["labels"] == ["progression"]
+    assert r.meta["target"]["center"] == pytest.approx(ds.y_train.mean())
+    assert r.metrics["test"]["rmse"] < ds.y_test.std()
+    assert math.isfinite(r.metrics["test"]["nll"])
+    model, meta = load_checkpoint(tmp_path / "run")
+    assert meta["task"] == "regression" and model(torch.zeros(2, 10)).shape == (2, 2)
+
+
+def test_cli_train_writes_checkpoint_and_prints_summary(tmp_path, capsys):
+    code = main(["train", "--data", "digits", "--posterior", "gaussian", "--epochs", "1", "--hidden", "16",
+                 "--out", str(tmp_path / "run"), "--no-progress"])
+    assert code == 0
+    out = capsys.readouterr().out
+    assert "test accuracy" in out and "ECE" in out and "checkpoint.pt" in out
+    assert (tmp_path / "run" / "checkpoint.pt").is_file()
+
+
+def test_cli_reports_a_missing_target_column(tmp_path, capsys):
+    csv = tmp_path / "p.csv"
+    csv.write_text("a,b\n1,2\n")
+    code = main(["train", "--data", str(csv), "--target", "postcode", "--out", str(tmp_path / "run")])
+    assert code == 1
+    assert "'postcode' is not in" in capsys.readouterr().err
+
+
+@pytest.mark.slow
+def test_demo_radial_mlp_reaches_95_percent_on_digits(tmp_path):
+    # The issue's bar: the demo radial MLP with the default settings reaches accuracy >= 0.95
+    # on the digits test split (359 images of sklearn's bundled digits). ECE (Guo et al. 2017,
+    # 15 bins) and the wall time are printed, not asserted (no timed tests).
+    r = train(load_dataset("digits"), arch="mlp", posterior="radial", out=tmp_path, progress=False)
+    t = r.metrics["test"]
+    print(f"\n{training.summary_line(r)}; sigma median {r.metrics['sigma']['median']:.4f}")
+    assert t["accuracy"] >= 0.95
+    assert 0.0 <= t["ece"] < 0.1

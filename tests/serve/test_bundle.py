@@ -1,0 +1,138 @@
+"""serve/bundle.py: a damaged, incomplete or future bundle is refused with a named error,
+and nothing is loaded half-way.
+
+Reference for the digests: hashlib.sha256 of the file bytes (FIPS 180-4), the
+same digest ``sha256sum`` prints.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from pathlib import Path
+
+import pytest
+
+import serve.bundle as bundle_mod
+from serve.bundle import FORMAT_VERSION, load_bundle, sha256_file, write_manifest
+from serve.engine import Engine
+from serve.errors import (
+    BundleError,
+    BundleNotFound,
+    ChecksumMismatch,
+    ManifestInvalid,
+    NotLoaded,
+    UnsupportedFormat,
+)
+
+
+def _flip(path: Path, offset: int | None = None) -> None:
+    data = bytearray(path.read_bytes())
+    data[len(data) // 2 if offset is None else offset] ^= 0x20
+    path.write_bytes(bytes(data))
+
+
+def _raw(path: Path) -> dict:
+    return json.loads((path / "manifest.json").read_text())
+
+
+def _assert_nothing_loaded(path: Path, error: type[BundleError], field: str) -> None:
+    with pytest.raises(error) as info:
+        load_bundle(path)
+    assert info.value.field == field
+    assert info.value.message  # says what was found and what was expected
+
+
+@pytest.mark.parametrize("kind", ["stacked", "sampler"])
+def test_a_flipped_byte_in_a_graph_is_refused(tiny_bundle_factory, copy_bundle, kind: str) -> None:
+    path = copy_bundle(tiny_bundle_factory(kind=kind))
+    _flip(path / f"{kind}.onnx")
+    _assert_nothing_loaded(path, ChecksumMismatch, f"graphs.{kind}.sha256")
+
+
+def test_a_flipped_byte_in_the_manifest_breaks_the_seal(tiny_bundle_factory, copy_bundle) -> None:
+    path = copy_bundle(tiny_bundle_factory())
+    text = (path / "manifest.json").read_bytes()
+    _flip(path / "manifest.json", text.index(b'"threshold"') + 2)  # "threshold" -> "tHreshold"
+    with pytest.raises(ChecksumMismatch, match="manifest.sha256 records") as info:
+        load_bundle(path)
+    assert info.value.field == "manifest.json"
+
+
+def test_a_missing_graph_file_is_refused(tiny_bundle_factory, copy_bundle) -> None:
+    path = copy_bundle(tiny_bundle_factory())
+    (path / "means.onnx").unlink()
+    with pytest.raises(BundleNotFound, match="means.onnx named in the manifest is missing"):
+        load_bundle(path)
+
+
+@pytest.mark.parametrize("name", ["manifest.json", "manifest.sha256"])
+def test_a_missing_manifest_or_seal_is_refused(tiny_bundle_factory, copy_bundle, name: str) -> None:
+    path = copy_bundle(tiny_bundle_factory())
+    (path / name).unlink()
+    _assert_nothing_loaded(path, BundleNotFound, name)
+
+
+def test_a_missing_directory_is_refused(tmp_path: Path) -> None:
+    _assert_nothing_loaded(tmp_path / "nowhere", BundleNotFound, "bundle")
+
+
+def test_a_future_format_version_is_refused(tiny_bundle_factory, copy_bundle) -> None:
+    """A correctly sealed manifest from a newer demur: refused, naming format_version."""
+    path = copy_bundle(tiny_bundle_factory())
+    raw = _raw(path)
+    raw["format_version"] = FORMAT_VERSION + 1
+    data = (json.dumps(raw) + "\n").encode()
+    (path / "manifest.json").write_bytes(data)
+    (path / "manifest.sha256").write_text(hashlib.sha256(data).hexdigest() + "\n")
+    with pytest.raises(UnsupportedFormat, match=f"format_version {FORMAT_VERSION + 1} is not supported"):
+        load_bundle(path)
+
+
+def test_a_graph_path_outside_the_bundle_is_refused(tiny_bundle_factory, copy_bundle) -> None:
+    path = copy_bundle(tiny_bundle_factory())
+    raw = _raw(path)
+    raw["graphs"]["stacked"]["file"] = "../stacked.onnx"
+    with pytest.raises(ManifestInvalid, match="plain file name"):
+        write_manifest(path, raw)  # the writer validates with the same parser
+
+
+def test_the_seal_and_digests_are_sha256_of_the_bytes(tiny_bundle_factory) -> None:
+    """Reference: hashlib.sha256 over each file's bytes."""
+    bundle = tiny_bundle_factory(kind="sampler")
+    assert bundle.checksum == hashlib.sha256((bundle.path / "manifest.json").read_bytes()).hexdigest()
+    assert (bundle.path / "manifest.sha256").read_text().strip() == bundle.checksum
+    for kind, entry in bundle.manifest.graphs.items():
+        assert entry.sha256 == hashlib.sha256(bundle.graph_path(kind).read_bytes()).hexdigest()
+        assert sha256_file(bundle.graph_path(kind)) == entry.sha256
+
+
+def test_unknown_keys_survive_a_rewrite(tiny_bundle_factory, copy_bundle) -> None:
+    """Compatibility policy (serve/bundle.py): unknown sections are written back verbatim."""
+    path = copy_bundle(tiny_bundle_factory())
+    raw = _raw(path)
+    raw["future_section"] = {"kept": [1, 2, 3]}
+    raw["extensions"]["later"] = "x"
+    write_manifest(path, raw)
+    again = load_bundle(path).manifest.raw
+    assert again["future_section"] == {"kept": [1, 2, 3]} and again["extensions"]["later"] == "x"
+
+
+def test_a_refused_bundle_leaves_a_running_engine_untouched(tiny_bundle_factory, copy_bundle) -> None:
+    """Nothing half-way: a failed load neither returns a bundle nor swaps what an engine serves."""
+    good = tiny_bundle_factory()
+    engine = Engine(good).load()
+    path = copy_bundle(good)
+    _flip(path / "stacked.onnx")
+    with pytest.raises(ChecksumMismatch):
+        Engine(load_bundle(path))
+    assert engine.loaded and engine.checksum == good.checksum
+    fresh = Engine(good)
+    with pytest.raises(NotLoaded):
+        fresh.run([[0.0] * 64])
+
+
+def test_all_is_exact() -> None:
+    public = {"FORMAT_NAME", "FORMAT_VERSION", "GRAPH_KINDS", "SCORES", "Bundle", "Decision", "GraphEntry",
+              "InputSpec", "Manifest", "load_bundle", "sha256_file", "write_bundle", "write_manifest"}
+    assert set(bundle_mod.__all__) == public

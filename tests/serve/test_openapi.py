@@ -1,0 +1,80 @@
+"""serve/openapi.json: a valid OpenAPI 3.1 document that matches the live routes.
+
+References: the OpenAPI Specification 3.1.0 (paths, operations, components; its
+schemas are JSON Schema 2020-12, checked with jsonschema's Draft202012Validator.check_schema).
+
+Rule for everyone adding routes: every route the app serves must be listed in
+serve/openapi.json with its methods; a path served only when a component is
+configured carries ``"x-demur-component": "<name>"`` on its path item.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+from typing import Any
+
+from jsonschema import Draft202012Validator
+
+from serve.app import OPENAPI_PATH
+
+DOC = json.loads(OPENAPI_PATH.read_text())
+HTTP_METHODS = {"get", "put", "post", "delete", "options", "head", "patch", "trace"}
+
+
+def _live_routes(app: Any) -> set[tuple[str, str]]:
+    out = set()
+    for rule in app.url_map.iter_rules():
+        if rule.endpoint == "static":
+            continue
+        path = re.sub(r"<(?:[^:<>]+:)?([^<>]+)>", r"{\1}", rule.rule)
+        for method in rule.methods - {"HEAD", "OPTIONS"}:
+            out.add((path, method.lower()))
+    return out
+
+
+def _documented() -> set[tuple[str, str]]:
+    return {(path, m) for path, item in DOC["paths"].items() for m in item if m in HTTP_METHODS}
+
+
+def test_document_is_openapi_3_1() -> None:
+    assert DOC["openapi"].startswith("3.1.")
+    assert {"title", "version"} <= set(DOC["info"])
+    for name, schema in DOC["components"]["schemas"].items():
+        Draft202012Validator.check_schema(schema)
+    for path, item in DOC["paths"].items():
+        assert path.startswith("/")
+        for method, op in item.items():
+            if method in HTTP_METHODS:
+                assert op["responses"], f"{method.upper()} {path} documents no response"
+                assert op.get("operationId"), f"{method.upper()} {path} has no operationId"
+    ids = [op["operationId"] for item in DOC["paths"].values() for m, op in item.items() if m in HTTP_METHODS]
+    assert len(ids) == len(set(ids)), "operationIds must be unique (OpenAPI 3.1, 4.8.10)"
+
+
+def test_refs_resolve() -> None:
+    text = OPENAPI_PATH.read_text()
+    for ref in set(re.findall(r'"\$ref": "#/components/schemas/([^"]+)"', text)):
+        assert ref in DOC["components"]["schemas"], ref
+
+
+def test_live_routes_match_the_document(app: Any) -> None:
+    live = _live_routes(app)
+    documented = _documented()
+    assert live - documented == set(), f"routes served but not in serve/openapi.json: {sorted(live - documented)}"
+    core = {(p, m) for p, m in documented if "x-demur-component" not in DOC["paths"][p]}
+    assert core - live == set(), f"documented core routes the app does not serve: {sorted(core - live)}"
+
+
+def test_contract_routes_present() -> None:
+    """Issue 3's contract routes."""
+    documented = _documented()
+    for route in [("/v1/predict", "post"), ("/v1/model", "get"), ("/healthz", "get"), ("/readyz", "get"),
+                  ("/openapi.json", "get")]:
+        assert route in documented
+
+
+def test_served_document_is_the_file(client: Any) -> None:
+    r = client.get("/openapi.json")
+    assert r.status_code == 200 and r.mimetype == "application/json"
+    assert r.get_data() == OPENAPI_PATH.read_bytes()

@@ -1,0 +1,188 @@
+"""The review router (serve/review.py): who goes to review, what happens when the store is down,
+and the accuracy estimate from decided items.
+
+References: the exact binomial interval of Clopper & Pearson (1934), in its beta-quantile form
+(Brown, Cai & DasGupta 2001, "Interval Estimation for a Binomial Proportion", section 2.1):
+lower = Beta(a/2; k, n-k+1), upper = Beta(1-a/2; k+1, n-k), checked with scipy.stats.beta;
+the audit sample size against scipy.stats.binom quantiles.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from serve import review as review_module
+from serve.errors import ReviewStoreUnavailable
+from serve.review import ReviewRouter, accuracy_estimate, audit_draw
+from serve.review_store import NewItem, SqliteStore
+from serve.spool import Spool
+from tests.serve._review_helpers import MODEL
+
+
+def test_all_is_exact() -> None:
+    assert sorted(review_module.__all__) == sorted(["SPOOL_FILE", "ReviewRouter", "accuracy_estimate", "audit_draw"])
+
+
+class SwitchStore:
+    """A real SQLite store behind a switch: while ``down`` every call fails as if unreachable."""
+
+    def __init__(self, inner: SqliteStore) -> None:
+        self.inner = inner
+        self.down = False
+        self.calls = 0
+        self.lease_s = inner.lease_s
+
+    def enqueue(self, items: Sequence[NewItem]) -> list[str]:
+        self.calls += 1
+        if self.down:
+            raise ReviewStoreUnavailable("connection refused (test)")
+        return self.inner.enqueue(items)
+
+    def __getattr__(self, name: str) -> Any:
+        if self.down:
+            raise ReviewStoreUnavailable("connection refused (test)")
+        return getattr(self.inner, name)
+
+
+@pytest.fixture()
+def parts(tmp_path: Path) -> Iterator[tuple[SwitchStore, Spool]]:
+    inner = SqliteStore(tmp_path / "reviews.sqlite3", lease_s=60)
+    yield SwitchStore(inner), Spool(tmp_path / "spool.sqlite3")
+    inner.close()
+
+
+def _results(decisions: list[str], case_ids: list[str | None] | None = None) -> list[dict[str, Any]]:
+    ids = case_ids or [None] * len(decisions)
+    return [{"case_id": cid, "decision": d, "prediction": "7", "mean": [0.1] * 10,
+             "interval": {"level": 0.9, "lower": [0.0] * 10, "upper": [0.2] * 10},
+             "uncertainty": {"mutual_information": 0.3, "predictive_entropy": 2.0, "expected_entropy": 1.7,
+                             "unit": "nats"},
+             "score": {"name": "mutual_information", "value": 0.3}, "threshold": 0.2, "reason": "r"}
+            for d, cid in zip(decisions, ids)]
+
+
+def test_abstentions_are_queued_before_the_answer(parts: tuple[SwitchStore, Spool]) -> None:
+    store, spool = parts
+    router = ReviewRouter(store, spool)
+    x = np.arange(3 * 64, dtype=np.float32).reshape(3, 64)
+    notes = router.route(_results(["abstain", "accept", "abstain"]), x, None, None, MODEL)
+    assert notes[1] is None
+    for i in (0, 2):
+        got = store.inner.get(notes[i]["review_id"])  # committed: readable now
+        assert got.kind == "abstain" and got.case["values"] == x[i].tolist()
+        assert got.model_checksum == MODEL["checksum"] and got.prediction == "7"
+    assert router.stats()["queued"] == 2 and router.failures == 0
+
+
+def test_store_down_spools_says_so_counts_and_replays_exactly_once(parts: tuple[SwitchStore, Spool]) -> None:
+    store, spool = parts
+    seen: list[int] = []
+    router = ReviewRouter(store, spool, replay_s=60, on_failure=seen.append)
+    x = np.zeros((2, 64), dtype=np.float32)
+    store.down = True
+    notes = router.route(_results(["abstain", "abstain"], ["parcel-1", None]), x, None, None, MODEL)
+    for note in notes:
+        review = note["review"]
+        assert review["queued"] is False and review["spooled"] is True and "unavailable" in review["reason"]
+    assert router.failures == 2 and seen == [2] and spool.size() == 2
+    # The client retries parcel-1 while the store is still down: spooled again, with another id.
+    router.route(_results(["abstain"], ["parcel-1"]), x[:1], None, None, MODEL)
+    calls = store.calls
+    assert calls == 1, "after a failure the store is not tried on the request path until the replayer finds it"
+    store.down = False
+    assert router.replayer is not None
+    router.replayer.run_once()
+    router.replayer.stop()
+    counts = store.inner.counts()
+    assert counts["total"] == 2, "two cases: parcel-1 (deduplicated on the case id) and the anonymous one"
+    for note in notes:
+        assert store.inner.get(note["review"]["pending_review_id"]).status == "pending"
+    assert spool.size() == 0
+    # the store is tried on the request path again
+    again = router.route(_results(["abstain"]), x[:1], None, None, MODEL)
+    assert "review_id" in again[0]
+
+
+def test_without_a_working_spool_the_answer_says_not_queued(tmp_path: Path, parts: tuple[SwitchStore, Spool]) -> None:
+    store, _ = parts
+    (tmp_path / "file").write_text("x")
+    router = ReviewRouter(store, Spool(tmp_path / "file" / "spool.sqlite3"))
+    store.down = True
+    [note] = router.route(_results(["abstain"]), np.zeros((1, 64)), None, None, MODEL)
+    assert note == {"review": {"queued": False, "spooled": False, "reason": note["review"]["reason"]}}
+    assert router.stats()["unspooled"] == 1 and router.failures == 1
+
+
+def test_audit_sampling_goes_to_review_silently(parts: tuple[SwitchStore, Spool]) -> None:
+    store, spool = parts
+    router = ReviewRouter(store, spool, audit_fraction=1.0)
+    notes = router.route(_results(["accept"] * 4), np.zeros((4, 64)), None, None, MODEL)
+    assert notes == [None] * 4  # the client is not told
+    assert [i.kind for i in store.inner.list()] == ["audit"] * 4
+    assert ReviewRouter(store, spool, audit_fraction=0.0).route(
+        _results(["accept"]), np.zeros((1, 64)), None, None, MODEL) == [None]
+
+
+def test_audit_choice_is_deterministic_per_case_id_and_near_the_fraction() -> None:
+    """20,000 case ids at 5%: the count lies inside the central 99.99% of Binomial(20000, 0.05)."""
+    n, p = 20_000, 0.05
+    chosen = sum(audit_draw(MODEL["checksum"], f"parcel-{i}") < p for i in range(n))
+    lo, hi = stats.binom.ppf([0.00005, 0.99995], n, p)
+    assert lo <= chosen <= hi
+    assert audit_draw("a", "parcel-1") == audit_draw("a", "parcel-1") != audit_draw("b", "parcel-1")
+
+
+@pytest.mark.parametrize("k, n", [(0, 1), (1, 1), (7, 10), (95, 100), (0, 50), (412, 500)])
+def test_accuracy_interval_is_clopper_pearson(k: int, n: int) -> None:
+    """Beta-quantile form of the Clopper-Pearson interval (Brown, Cai & DasGupta 2001, sec. 2.1)."""
+    a = 0.05
+    est = accuracy_estimate(k, n)
+    lower = 0.0 if k == 0 else stats.beta.ppf(a / 2, k, n - k + 1)
+    upper = 1.0 if k == n else stats.beta.ppf(1 - a / 2, k + 1, n - k)
+    assert est["accuracy"] == pytest.approx(k / n)
+    assert est["interval"]["lower"] == pytest.approx(lower, abs=1e-9)
+    assert est["interval"]["upper"] == pytest.approx(upper, abs=1e-9)
+
+
+def test_accuracy_known_value_zero_of_one() -> None:
+    """0 successes in 1 trial: the 95% exact upper bound is 1 - 0.025 = 0.975 (closed form 1 - (a/2)^(1/n))."""
+    assert accuracy_estimate(0, 1)["interval"]["upper"] == pytest.approx(0.975)
+    assert accuracy_estimate(0, 0)["accuracy"] is None
+
+
+def test_router_accuracy_from_decided_items(parts: tuple[SwitchStore, Spool]) -> None:
+    store, spool = parts
+    router = ReviewRouter(store, spool, audit_fraction=1.0)
+    router.route(_results(["accept"] * 4 + ["abstain"] * 2), np.zeros((6, 64)), None, None, MODEL)
+    labels = {"audit": ["7", "7", "7", "1"], "abstain": ["2", "7"]}
+    for _ in range(6):
+        got = store.inner.claim_next("r")
+        store.inner.decide(got.id, "r", label=labels[got.kind].pop())
+    acc = router.accuracy()
+    assert (acc["accepted"]["agree"], acc["accepted"]["n"]) == (3, 4)
+    assert (acc["abstained"]["agree"], acc["abstained"]["n"]) == (1, 2)
+    described = router.describe()
+    assert described["available"] and described["queue"]["decided"] == 6
+    store.down = True
+    router._described = None
+    assert router.describe()["available"] is False  # never raises
+
+
+def test_from_config_uses_sqlite_under_data_dir(tmp_path: Path) -> None:
+    from serve.config import ServeConfig
+
+    router = ReviewRouter.from_config(ServeConfig(data_dir=str(tmp_path / "d"), audit_fraction=0.02))
+    try:
+        assert isinstance(router.store, SqliteStore)
+        assert router.store.path == tmp_path / "d" / "reviews.sqlite3"
+        assert router.spool is not None and router.spool.path == tmp_path / "d" / "review-spool.sqlite3"
+        assert router.audit_fraction == 0.02
+        assert not (tmp_path / "d").exists(), "nothing touches disk before the first item"
+    finally:
+        router.close()
