@@ -27,8 +27,8 @@ demur calibrate "$BUILD/bundle" --data digits --target-accuracy 0.985 --confiden
 
 step "4/7 serve on $URL"
 rm -rf "$BUILD/data"
-DEMUR_REVIEW_TOKENS="$REVIEW_TOKEN" demur serve "$BUILD/bundle" --host 127.0.0.1 --port "$PORT" \
-  --data-dir "$BUILD/data" --audit-fraction 0.05 > "$BUILD/server.log" 2>&1 &
+DEMUR_REVIEW_TOKENS="$REVIEW_TOKEN" DEMUR_AUDIT_FRACTION=0.05 demur serve "$BUILD/bundle" \
+  --host 127.0.0.1 --port "$PORT" --data-dir "$BUILD/data" > "$BUILD/server.log" 2>&1 &
 SERVER=$!
 trap 'kill $SERVER 2>/dev/null; wait $SERVER 2>/dev/null || true' EXIT
 for _ in $(seq 1 120); do
