@@ -15,6 +15,18 @@ positive without clipping. Two posterior families share these parameters:
                 does not concentrate on the thin shell of radius sqrt(d) that
                 a d-dimensional Gaussian lives on.
 
+Initial scale: ``init_sigma`` sets sigma itself (same value for every
+tensor and both families). ``init_spread``, when given, sets instead each
+weight's initial posterior standard deviation, which is what a draw really
+perturbs: for ``"gaussian"`` that is sigma; for ``"radial"`` one coordinate
+of the unit direction has variance 1/d for a d-element tensor and E[r^2] = 1,
+so each weight's spread is sigma / sqrt(d) and the layer starts at
+sigma = init_spread * sqrt(d) (per tensor: weight and bias separately). With
+the same ``init_sigma`` a 64x256 radial weight would otherwise start 128
+times quieter per weight than a Gaussian one. ``demur train`` uses
+``init_spread`` (see export/training.py for the measured default); the
+parameters and the checkpoint are the same either way.
+
 The prior is N(0, prior_scale^2) on every parameter. ``kl()`` is the
 Gaussian-to-Gaussian KL in closed form; for the radial posterior it is the
 paper's estimate (section 3.1): the entropy term in closed form up to an
@@ -113,9 +125,10 @@ class VariationalLayer(nn.Module):
         self.prior_scale = float(prior_scale)
         self.init_sigma = float(init_sigma)
         # Means start like torch's own Linear/Conv2d (uniform, +-1/sqrt(fan_in));
-        # small sigmas let the data shape the means before noise matters.
+        # sigma from init_sigma, or from init_spread (see the module docstring).
         bound = 1.0 / math.sqrt(fan_in)
         self.init_spread = None if init_spread is None else float(init_spread)
+        inverse_softplus(self.init_sigma)  # validates init_sigma even when init_spread decides
         self.weight_mu = nn.Parameter(torch.empty(weight_shape).uniform_(-bound, bound))
         self.weight_rho = nn.Parameter(torch.full(weight_shape, self._initial_rho(math.prod(weight_shape))))
         self.bias_mu = nn.Parameter(torch.empty(out_features).uniform_(-bound, bound))
@@ -306,6 +319,8 @@ def build_model(
     (padding 1) to ``channels[0]``, then one 3x3 stride-2 conv (padding 1) per
     further entry of ``channels``, ReLU after each, Flatten, VariationalLinear
     to ``outputs``. Digits: [1,8,8] -> [16,8,8] -> [32,4,4] -> 512 -> 10.
+
+    ``init_sigma`` / ``init_spread`` go to every layer (module docstring).
     """
     shape = tuple(int(d) for d in input_shape)
     kw = {"posterior": posterior, "prior_scale": prior_scale, "init_sigma": init_sigma, "init_spread": init_spread}

@@ -106,7 +106,7 @@ def decide(summary: Summary, rule: DecisionRule) -> Decisions:
     unit = SCORE_UNITS[rule.score]
     unit = f" {unit}" if unit else ""
     reason = [
-        f"{rule.score} {v:.3f}{unit} {'>' if a else '<='} threshold {rule.threshold:.3f}"
+        f"{rule.score} {v:.4g}{unit} {'>' if a else '<='} threshold {rule.threshold:.4g}"
         for v, a in zip(score.tolist(), abstain.tolist())
     ]
     return Decisions(score=score, abstain=abstain, reason=reason)

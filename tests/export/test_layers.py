@@ -150,6 +150,27 @@ def test_radial_perturbation_norm_is_halfnormal_whatever_d(make):
     assert chi.pvalue < 1e-12  # not the Gaussian's thin shell
 
 
+@pytest.mark.parametrize("posterior", ["radial", "gaussian"])
+def test_init_spread_is_each_weights_initial_sd(posterior):
+    # Farquhar et al. 2020, eq. 2: a coordinate of the uniform unit direction has variance 1/d
+    # and E[r^2] = 1, so a radial weight's sd is sigma / sqrt(d); init_spread sets that sd
+    # (radial sigma = spread * sqrt(d)), a Gaussian weight's sd is sigma itself. The mean square
+    # of (w - mu) pooled over the 240 weights and 2,000 draws is, for radial, exactly
+    # spread^2 * mean(r^2) (the direction has unit norm), i.e. spread^2 * chi2(2000) / 2000;
+    # for Gaussian spread^2 * chi2(480000) / 480000, narrower. 99.9% interval from scipy.stats.chi2.
+    layer = VariationalLinear(40, 6, posterior=posterior, init_spread=0.02)
+    expected_sigma = 0.02 * math.sqrt(240) if posterior == "radial" else 0.02
+    assert torch.allclose(layer.weight_sigma, torch.full((6, 40), expected_sigma), rtol=1e-5)
+    with torch.no_grad():
+        w = layer.draw(N_DRAWS, torch.Generator().manual_seed(21))["weight"] - layer.weight_mu
+    var = w.double().square().mean().item()  # mean zero by construction: pooled E[(w - mu)^2]
+    dof = N_DRAWS  # exact for radial, conservative for Gaussian (see above)
+    lo, hi = scipy.stats.chi2.ppf([0.0005, 0.9995], dof) / dof
+    assert lo * 0.02**2 < var < hi * 0.02**2
+    with pytest.raises(LayerConfigError, match="init_spread must be a positive number"):
+        VariationalLinear(4, 2, init_spread=0.0)
+
+
 def test_radial_direction_is_unit_and_uniform_on_the_sphere():
     # The direction eps/||eps|| has unit norm, and is uniform on the sphere: in 3-D each
     # coordinate of a uniform point on the sphere is Uniform(-1, 1) (Archimedes' hat-box

@@ -51,7 +51,7 @@ def test_reason_text_worked_example():
     s = classification_summary(np.array([[[9.0, 0.0]], [[0.0, 9.0]]]), 0.9)  # MI = ln 2 - H(p) ≈ 0.692
     d = decide(s, DecisionRule("mutual_information", 0.15, "calibrated"))
     assert d.abstain.tolist() == [True]
-    assert d.reason == ["mutual_information 0.692 nats > threshold 0.150"]
+    assert d.reason == ["mutual_information 0.6919 nats > threshold 0.15"]
 
 
 def test_scores_that_do_not_fit_the_task_are_config_errors():
