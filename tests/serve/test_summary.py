@@ -43,7 +43,7 @@ logit_arrays = arrays(
 def test_all_is_exact():
     assert sorted(summary_mod.__all__) == sorted(
         ["UNIT", "ClassificationSummary", "RegressionSummary", "Summary", "classification_summary",
-         "mixture_quantile", "regression_summary", "summarise"]
+         "conformal_variance", "mixture_quantile", "regression_summary", "summarise"]
     )
 
 
