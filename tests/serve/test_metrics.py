@@ -17,12 +17,9 @@ import contextlib
 import glob
 import json
 import os
-import signal
 import socket
-import subprocess
 import sys
 import threading
-import time
 import urllib.error
 import urllib.request
 from collections.abc import Iterator
@@ -41,6 +38,7 @@ from serve.config import ServeConfig
 from serve.engine import Engine
 from serve.errors import ReviewStoreUnavailable
 from serve.metrics import SCORE_BUCKETS, Metrics
+from tests._processes import supervised
 
 ROOT = Path(__file__).resolve().parents[2]
 
@@ -302,34 +300,15 @@ def demur_server(bundle_path: Path, *, workers: int, threads: int, log: Path, en
     full_env = {k: v for k, v in os.environ.items() if not k.startswith("DEMUR_") and k != "PROMETHEUS_MULTIPROC_DIR"}
     full_env.update(env or {})
     full_env["DEMUR_DATA_DIR"] = str(log.parent / "demur-data")
-    with open(log, "wb") as out:
-        proc = subprocess.Popen(cmd, stdout=out, stderr=subprocess.STDOUT, env=full_env, cwd=str(ROOT),
-                                start_new_session=True)
     url = f"http://127.0.0.1:{port}"
-    try:
-        deadline = time.monotonic() + timeout_s
-        while True:
-            if proc.poll() is not None:
-                raise AssertionError(f"demur serve exited with {proc.returncode}:\n{log.read_text()[-3000:]}")
-            if log.read_text(errors="replace").count("worker") and \
-                    log.read_text(errors="replace").count(" ready at ") >= workers:
-                try:
-                    if http("GET", url + "/readyz", timeout=2.0)[0] == 200:
-                        break
-                except OSError:
-                    pass
-            if time.monotonic() > deadline:
-                raise AssertionError(f"demur serve not ready in {timeout_s}s:\n{log.read_text()[-3000:]}")
-            time.sleep(0.2)
+
+    def ready() -> bool:
+        text = log.read_text(errors="replace") if log.exists() else ""
+        return ("worker" in text and text.count(" ready at ") >= workers
+                and http("GET", url + "/readyz", timeout=2.0)[0] == 200)
+
+    with supervised(cmd, log=log, ready=ready, what="demur serve", timeout_s=timeout_s, env=full_env, cwd=ROOT):
         yield url
-    finally:
-        if proc.poll() is None:
-            proc.send_signal(signal.SIGTERM)
-            try:
-                proc.wait(timeout=30)
-            except subprocess.TimeoutExpired:
-                os.killpg(proc.pid, signal.SIGKILL)
-                proc.wait(timeout=10)
 
 
 def test_two_workers_counts_served_equal_counts_scraped(tiny: Any, tmp_path: Path) -> None:

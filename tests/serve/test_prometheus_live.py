@@ -15,8 +15,6 @@ import contextlib
 import json
 import os
 import shutil
-import signal
-import subprocess
 import time
 import urllib.parse
 from collections.abc import Iterator
@@ -27,6 +25,7 @@ import numpy as np
 import pytest
 import yaml
 
+from tests._processes import supervised
 from tests.serve.test_metrics import demur_server, free_port, http
 
 pytestmark = pytest.mark.prometheus
@@ -71,34 +70,12 @@ def prometheus(target: str, rule_files: list[str], tmp: Path, timeout_s: float =
     cfg = tmp / "prometheus.yml"
     cfg.write_text(yaml.safe_dump(config))
     log = tmp / "prometheus.log"
-    with open(log, "wb") as out:
-        proc = subprocess.Popen(
-            [prometheus_binary(), f"--config.file={cfg}", f"--storage.tsdb.path={tmp / 'tsdb'}",
-             f"--web.listen-address=127.0.0.1:{port}"],
-            stdout=out, stderr=subprocess.STDOUT, start_new_session=True)
     url = f"http://127.0.0.1:{port}"
-    try:
-        deadline = time.monotonic() + timeout_s
-        while True:
-            if proc.poll() is not None:
-                raise AssertionError(f"prometheus exited with {proc.returncode}:\n{log.read_text()[-3000:]}")
-            try:
-                if http("GET", url + "/-/ready", timeout=2.0)[0] == 200:
-                    break
-            except OSError:
-                pass
-            if time.monotonic() > deadline:
-                raise AssertionError(f"prometheus not ready in {timeout_s}s:\n{log.read_text()[-3000:]}")
-            time.sleep(0.3)
+    cmd = [prometheus_binary(), f"--config.file={cfg}", f"--storage.tsdb.path={tmp / 'tsdb'}",
+           f"--web.listen-address=127.0.0.1:{port}"]
+    with supervised(cmd, log=log, ready=lambda: http("GET", url + "/-/ready", timeout=2.0)[0] == 200,
+                    what="prometheus", timeout_s=timeout_s, poll_s=0.3, stop_timeout_s=20.0):
         yield url
-    finally:
-        if proc.poll() is None:
-            proc.send_signal(signal.SIGTERM)
-            try:
-                proc.wait(timeout=20)
-            except subprocess.TimeoutExpired:
-                os.killpg(proc.pid, signal.SIGKILL)
-                proc.wait(timeout=10)
 
 
 def query(prom: str, expr: str) -> list[dict[str, Any]]:
