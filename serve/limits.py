@@ -147,11 +147,18 @@ def install_limits(app: Any, config: ServeConfig, *, endpoints: tuple[str, ...] 
         if name.split(".")[-1] in endpoints and not getattr(view, "_demur_gated", False):
             app.view_functions[name] = _gated(view, gate)
 
+    # Built once: eight ``setdefault`` calls per response each scan the header
+    # list, so the hook checks the (few) headers a view set once and adds the
+    # missing ones in one ``extend``. A view's own value still wins (the review
+    # page sets a stricter Content-Security-Policy).
+    added = tuple({**SECURITY_HEADERS, "Cache-Control": "no-store"}.items())
+    names = frozenset(key.lower() for key, _ in added)
+
     @app.after_request
     def _headers(response: Any) -> Any:
-        for key, value in SECURITY_HEADERS.items():
-            response.headers.setdefault(key, value)
-        response.headers.setdefault("Cache-Control", "no-store")
+        headers = response.headers
+        present = {key.lower() for key, _ in headers} & names
+        headers.extend([item for item in added if item[0].lower() not in present] if present else added)
         return response
 
     return gate

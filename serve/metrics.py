@@ -75,6 +75,7 @@ Example::
 
 from __future__ import annotations
 
+import bisect
 import glob
 import logging
 import os
@@ -178,6 +179,10 @@ class Metrics:
         self._abstain_next = 0
         self._abstain_filled = 0
         self._abstain_count = 0
+        # Labelled children, looked up once per label set: ``labels()`` costs
+        # about 10 us a call (argument checks, a lock), several times per
+        # request. Safe to keep because these metrics are never cleared.
+        self._children: dict[tuple[Any, ...], Any] = {}
         self._build(self.registry)
         self.registry.register(_StateCollector(self, pooled_from=None))
 
@@ -287,14 +292,14 @@ class Metrics:
             return
         n_abstain = int(abstain.sum())
         if n_abstain:
-            self.cases.labels(decision="abstain").inc(n_abstain)
+            self._child(self.cases, "abstain").inc(n_abstain)
         if b - n_abstain:
-            self.cases.labels(decision="accept").inc(b - n_abstain)
+            self._child(self.cases, "accept").inc(b - n_abstain)
         self.graph_seconds.observe(float(graph_seconds))
         self.predict_seconds.observe(float(total_seconds))
         self.batch_cases.observe(b)
         score_name = self._rule.score if self._rule is not None else "unknown"
-        _observe_many(self.score.labels(score=score_name), scores)
+        _observe_many(self._child(self.score, score_name), scores)
         mi = getattr(summary, "mutual_information", None)
         if mi is not None:
             _observe_many(self.mutual_information, np.asarray(mi, dtype=np.float64).ravel())
@@ -317,8 +322,16 @@ class Metrics:
 
     def observe_request(self, route: str, method: str, status: int, seconds: float) -> None:
         """Record one answered HTTP request (the app's ``after_request`` hook calls this)."""
-        self.requests.labels(route=route, method=method, status=str(status)).inc()
-        self.request_seconds.labels(route=route).observe(max(0.0, float(seconds)))
+        self._child(self.requests, route, method, str(status)).inc()
+        self._child(self.request_seconds, route).observe(max(0.0, float(seconds)))
+
+    def _child(self, metric: Any, *values: str) -> Any:
+        """``metric.labels(*values)``, cached (a dict read after the first call)."""
+        key = (id(metric), *values)
+        child = self._children.get(key)
+        if child is None:
+            child = self._children[key] = metric.labels(*values)
+        return child
 
     def review_enqueue_failed(self, n: int = 1) -> None:
         """Count abstained cases that the review queue did not accept at once."""
@@ -327,6 +340,15 @@ class Metrics:
 
     def _push_abstentions(self, abstain: np.ndarray) -> None:
         w = self._abstain_ring.size
+        if abstain.size == 1:  # the common one-case request, without index arrays
+            i, new = self._abstain_next, bool(abstain[0])
+            if i < self._abstain_filled:  # slots below `filled` hold data; this one is evicted
+                self._abstain_count -= int(self._abstain_ring[i])
+            self._abstain_ring[i] = new
+            self._abstain_count += int(new)
+            self._abstain_next = (i + 1) % w
+            self._abstain_filled = min(self._abstain_filled + 1, w)
+            return
         if abstain.size > w:
             abstain = abstain[-w:]
         pos = (self._abstain_next + np.arange(abstain.size)) % w
@@ -434,6 +456,10 @@ def calibrated_abstain_ratio(manifest: Any, rule: Any) -> float | None:
     return None
 
 
+_FEW = 8
+"""Batches up to this many values are observed with ``bisect`` instead of numpy."""
+
+
 def _observe_many(hist: Any, values: np.ndarray) -> None:
     """``hist.observe`` for every finite value, one bucket increment per bucket hit.
 
@@ -450,6 +476,11 @@ def _observe_many(hist: Any, values: np.ndarray) -> None:
     if bounds is None or buckets is None or total is None or len(bounds) != len(buckets):
         for v in values.tolist():
             hist.observe(v)
+        return
+    if values.size <= _FEW:  # one or a few cases: plain Python beats numpy's call overhead
+        total.inc(float(values.sum()))
+        for v in values.tolist():
+            buckets[bisect.bisect_left(bounds, v)].inc(1)  # == searchsorted(side="left")
         return
     idx = np.searchsorted(np.asarray(bounds, dtype=np.float64), values, side="left")
     total.inc(float(values.sum()))

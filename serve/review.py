@@ -171,7 +171,7 @@ class ReviewRouter:
         """One annotation per result: ``{"review_id": id}`` for a queued abstention,
         ``{"review": {"queued": false, ...}}`` for one that was not, ``None`` otherwise."""
         x = np.asarray(getattr(cases, "x", cases))
-        view = self._view(model)
+        view: dict[str, Any] | None = None  # built on the first picked case: most requests pick none
         picked: list[tuple[int, NewItem]] = []
         now = time.time()
         for i, result in enumerate(results):
@@ -179,6 +179,8 @@ class ReviewRouter:
             cid = result.get("case_id")
             if not abstained and not self._audit(model["checksum"], cid):
                 continue
+            if view is None:
+                view = self._view(model)
             picked.append((i, self._item("abstain" if abstained else "audit", result, x[i], model, view, now)))
         notes: list[dict[str, Any] | None] = [None] * len(results)
         if not picked:
