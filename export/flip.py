@@ -74,7 +74,7 @@ import onnx
 from onnx import TensorProto, helper, numpy_helper
 
 from .errors import GraphBuildError
-from .graphs import IR_VERSION, OPSET, LayerParams, NetworkPlan, node_seed
+from .graphs import LayerParams, NetworkPlan, checked_model, node_seed
 
 __all__ = ["DEFAULT_BANK", "flip_graph"]
 
@@ -240,14 +240,7 @@ def flip_graph(
            f"{'fresh base per call' if not bank else f'bank of {bank} bases'}): {S} sign-flipped draws per call, "
            "output draws[S, B, K]")
     graph = helper.make_graph(g.nodes, "flip", [x_info], [y_info, *g.extra], initializer=g.inits, doc_string=doc)
-    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)], producer_name="demur",
-                              doc_string=doc)
-    model.ir_version = IR_VERSION
-    try:
-        onnx.checker.check_model(model, full_check=True)
-    except (onnx.checker.ValidationError, onnx.shape_inference.InferenceError) as exc:
-        raise GraphBuildError(f"the flip graph failed ONNX validation: {exc}", field="graph") from exc
-    return model
+    return checked_model(graph, "flip", doc)
 
 
 def _layer(g: _Builder, x: str, layer: LayerParams, i: int, S: int, radial: bool, bank: int, pick: str | None,

@@ -53,6 +53,7 @@ from .errors import GraphBuildError
 __all__ = [
     "IR_VERSION",
     "OPSET",
+    "checked_model",
     "SEED_MODULUS",
     "LayerParams",
     "NetworkPlan",
@@ -277,6 +278,14 @@ def _model(plan: NetworkPlan, S: int, g: _Graph, graph_name: str, doc: str) -> o
     x = helper.make_tensor_value_info("x", TensorProto.FLOAT, ["B", *plan.input_shape])
     y = helper.make_tensor_value_info("draws", TensorProto.FLOAT, [S, "B", plan.outputs])
     graph = helper.make_graph(g.nodes, graph_name, [x], [y, *g.outputs], initializer=g.inits, doc_string=doc)
+    return checked_model(graph, graph_name, doc)
+
+
+def checked_model(graph: onnx.GraphProto, graph_name: str, doc: str) -> onnx.ModelProto:
+    """Wrap ``graph`` as a model at demur's opset and IR version, validated by onnx's full check.
+
+    Every graph kind ends here, so all bundles share one opset/IR pair and one
+    validation; a failure raises ``GraphBuildError`` naming the graph kind."""
     model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)],
                               producer_name="demur", doc_string=doc)
     model.ir_version = IR_VERSION
