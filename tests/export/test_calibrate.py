@@ -18,12 +18,13 @@ import pytest
 import export.calibrate as calibrate_mod
 from export.calibrate import calibrate
 from serve.bundle import load_bundle, write_manifest
-from serve.calibration import conformal_scale, select_for_abstain
+from serve.calibration import select_for_abstain
 from serve.cli import main
 from serve.decision import rule_from, score_values
 from serve.engine import Engine
 from serve.errors import CalibrationInfeasible, ConfigError
 from serve.summary import conformal_variance, summarise
+from tests._conformal import split_coverages
 
 
 def _sha(path):
@@ -202,13 +203,8 @@ def test_diabetes_interval_is_wider_out_of_range_and_still_covers(diabetes_bundl
     y = np.concatenate([ds.y_cal, ds.y_test])
     r = summarise("regression", engine.run(x), 0.9, base)
     sd = np.sqrt(conformal_variance(r.epistemic_var, r.aleatoric_var, floor))
-    rng = np.random.default_rng(41)
-    alpha, covs, n = 0.1, [], len(y)
-    for _ in range(300):
-        perm = rng.permutation(n)
-        ci, ti = perm[: n // 2], perm[n // 2:]
-        q = conformal_scale(y[ci], r.mean[ci], sd[ci], alpha)
-        covs.append(np.mean(np.abs(y[ti] - r.mean[ti]) <= q * sd[ti]))
+    alpha = 0.1
+    covs = split_coverages(y, r.mean, sd, alpha, seed=41)
     mean_cov = float(np.mean(covs))
     print(f"\n[diabetes, floored] floor sd {math.sqrt(floor):.2f}; mean width in range "
           f"{inside.interval_width.mean():.1f}, out of range {outside.interval_width.mean():.1f} "

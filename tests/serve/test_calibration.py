@@ -39,6 +39,7 @@ from serve.calibration import (
 )
 from serve.errors import CalibrationInfeasible, ConfigError
 from serve.summary import regression_summary
+from tests._conformal import split_coverages
 
 
 def test_all_is_exact():
@@ -350,13 +351,8 @@ def test_conformal_coverage_and_out_of_range_width_on_diabetes_bundle(diabetes_b
     y = np.concatenate([diabetes_dataset.y_cal, diabetes_dataset.y_test])
     r = summarise("regression", engine.run(x), 0.9, {"center": m.target["center"], "scale": m.target["scale"]})
     sd = np.sqrt(r.total_var)
-    rng = np.random.default_rng(31)
-    alpha, covs, n = 0.1, [], len(y)
-    for _ in range(300):
-        perm = rng.permutation(n)
-        ci, ti = perm[: n // 2], perm[n // 2:]
-        q = conformal_scale(y[ci], r.mean[ci], sd[ci], alpha)
-        covs.append(np.mean(np.abs(y[ti] - r.mean[ti]) <= q * sd[ti]))
+    alpha = 0.1
+    covs = split_coverages(y, r.mean, sd, alpha, seed=31)
     mean_cov = float(np.mean(covs))
     q_all = conformal_scale(y, r.mean, sd, alpha)
     low, high = np.asarray(m.inputs.low), np.asarray(m.inputs.high)
