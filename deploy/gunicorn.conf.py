@@ -7,12 +7,13 @@
 the server agree. Settings come from ``$DEMUR_CONFIG`` (a TOML file of
 ServeConfig fields, optional) and ``DEMUR_*`` environment variables.
 
-Sizing for a 2-core host (deploy/README.md, "Sizing"): 2 worker processes x
-4 threads, one onnxruntime thread per session. The graph run is CPU-bound
-and releases the GIL, so one process per core keeps both cores busy; the
-threads cover I/O (review store, client sockets) while another request
-computes. Unset ``DEMUR_WORKERS``/``DEMUR_THREADS`` default to that here
-(the cores gunicorn sees, and 4).
+Sizing for a 2-core host (deploy/README.md, "Sizing"): 2 worker processes of
+demur's loop worker (``serve.front.FrontWorker``: predict answered in batches
+on an event loop), one onnxruntime thread per session; 4 threads per worker
+run the other routes (review API, metrics, admin). One process per core
+keeps both cores busy. Unset ``DEMUR_WORKERS``/``DEMUR_THREADS`` default to
+that here (the cores gunicorn sees, and 4); ``DEMUR_FRONT=threads`` selects
+gunicorn's threaded worker for every route instead.
 
 Timeouts: a worker silent for ``timeout`` seconds is killed and replaced
 (3x the per-request timeout, at least 30 s); SIGTERM lets in-flight

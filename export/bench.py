@@ -90,9 +90,11 @@ _MODEL_ENV = "DEMUR_BENCH_TORCH_MODEL"      # read by torch_app() in the baselin
 def _settings(quick: bool) -> dict[str, Any]:
     if quick:
         return {"draws": [32], "batches": [1, 64], "repeats": 3, "budget_s": 0.04, "http_s": 2,
-                "worker_models": [(2, 8, 1, 1.0)], "rss": True}
+                "worker_models": [("loop", 2, 4, 1, 1.0), ("threads", 2, 4, 1, 1.0)], "rss": True}
     return {"draws": [8, 32, 128], "batches": [1, 64], "repeats": 5, "budget_s": 0.2, "http_s": 6,
-            "worker_models": [(1, 8, 1, 1.0), (2, 8, 1, 1.0), (2, 4, 1, 1.0), (1, 8, 2, 1.0), (2, 8, 1, 0.0)],
+            "worker_models": [("loop", 2, 4, 1, 1.0), ("loop", 1, 4, 1, 1.0), ("loop", 1, 4, 2, 1.0),
+                              ("loop", 2, 4, 1, 0.0), ("loop", 2, 4, 1, 2.0), ("threads", 2, 4, 1, 1.0),
+                              ("threads", 2, 8, 1, 1.0)],
             "rss": True}
 
 
@@ -427,10 +429,11 @@ def _body(xs: np.ndarray, B: int) -> bytes:
     return json.dumps({"cases": [[float(v) for v in row] for row in xs[:B]]}, separators=(",", ":")).encode()
 
 
-def _demur_argv(bundle: Bundle, port: int, workers: int, threads: int, ort: int, graph: str, data: Path) -> list[str]:
+def _demur_argv(bundle: Bundle, port: int, front: str, workers: int, threads: int, ort: int, graph: str,
+                data: Path) -> list[str]:
     return [sys.executable, "-m", "serve.cli", "serve", str(bundle.path), "--host", "127.0.0.1", "--port", str(port),
-            "--workers", str(workers), "--threads", str(threads), "--ort-threads", str(ort), "--graph", graph,
-            "--data-dir", str(data)]
+            "--front", front, "--workers", str(workers), "--threads", str(threads), "--ort-threads", str(ort),
+            "--graph", graph, "--data-dir", str(data)]
 
 
 def _torch_argv(port: int, workers: int, threads: int) -> list[str]:
@@ -451,33 +454,35 @@ def _http_section(bundles: dict[int, dict[str, Bundle]], xs: np.ndarray, model_f
                                "load_generator": "wrk (Debian), 1 thread, keep-alive, Lua POST body",
                                "worker_models": [], "cases": []}
 
-    def demur(workers: int, threads: int, ort: int, wait_ms: float, graph: str, B: int) -> dict[str, Any]:
+    def demur(front: str, workers: int, threads: int, ort: int, wait_ms: float, graph: str, B: int) -> dict[str, Any]:
         port = _free_port()
         env = _child_env(DEMUR_BATCH_WAIT_MS=str(wait_ms))
-        with _server(_demur_argv(bundle, port, workers, threads, ort, graph, workdir / f"data-{port}"), env, port,
+        with _server(_demur_argv(bundle, port, front, workers, threads, ort, graph, workdir / f"data-{port}"), env, port,
                      logs) as (ready, pgid):
             url = f"http://127.0.0.1:{port}/v1/predict"
             _wrk(url, one, 1, workdir)  # warm-up
             r = _measured(url, one if B == 1 else big, cfg["http_s"], workdir, pgid)
-        r.update({"server": "demur", "graph": graph, "batch": B, "workers": workers, "threads": threads,
+        r.update({"server": "demur", "front": front, "graph": graph, "batch": B, "workers": workers,
+                  "threads": threads,
                   "ort_threads": ort, "batch_wait_ms": wait_ms, "ready_s": ready,
                   "rows_per_s": r["requests_per_s"] * B})
-        log(f"  http demur {graph:>7} w={workers} t={threads} ort={ort} wait={wait_ms}ms B={B:<3} "
+        log(f"  http demur {front:>7} {graph:>7} w={workers} t={threads} ort={ort} wait={wait_ms}ms B={B:<3} "
             f"{r['requests_per_s']:8.0f} req/s p50 {r['p50_ms']:.1f} ms p99 {r['p99_ms']:.1f} ms; server CPU "
             f"{r['server_cpu_ms_per_request']:.2f} ms/req, wrk {r['client_cpu_ms_per_request']:.2f}")
         return r
 
-    for workers, threads, ort, wait_ms in cfg["worker_models"]:
-        section["worker_models"].append(demur(workers, threads, ort, wait_ms, "stacked", 1))
+    for front, workers, threads, ort, wait_ms in cfg["worker_models"]:
+        section["worker_models"].append(demur(front, workers, threads, ort, wait_ms, "stacked", 1))
     fit = [r for r in section["worker_models"] if r["p99_ms"] < TARGETS["http_p99_ms"] and not r["non_2xx"]]
     best = max(fit or section["worker_models"], key=lambda r: r["requests_per_s"])
-    chosen = {k: best[k] for k in ("workers", "threads", "ort_threads", "batch_wait_ms")}
+    chosen = {k: best[k] for k in ("front", "workers", "threads", "ort_threads", "batch_wait_ms")}
     section["chosen"] = chosen
-    w, t, o, wait = chosen["workers"], chosen["threads"], chosen["ort_threads"], chosen["batch_wait_ms"]
+    f, w, t, o = chosen["front"], chosen["workers"], chosen["threads"], chosen["ort_threads"]
+    wait = chosen["batch_wait_ms"]
     section["cases"].append(best)
-    section["cases"].append(demur(w, t, o, wait, "flip", 1))
-    section["cases"].append(demur(w, t, o, wait, "stacked", 64))
-    section["cases"].append(demur(w, t, o, wait, "flip", 64))
+    section["cases"].append(demur(f, w, t, o, wait, "flip", 1))
+    section["cases"].append(demur(f, w, t, o, wait, "stacked", 64))
+    section["cases"].append(demur(f, w, t, o, wait, "flip", 64))
 
     port = _free_port()
     env = _child_env(**{_MODEL_ENV: str(model_file), "DEMUR_BENCH_DRAWS": str(S)})
@@ -486,8 +491,8 @@ def _http_section(bundles: dict[int, dict[str, Bundle]], xs: np.ndarray, model_f
             url = f"http://127.0.0.1:{port}/v1/predict"
             _wrk(url, one, 1, workdir)
             r = _measured(url, one if B == 1 else big, cfg["http_s"], workdir, pgid)
-        r.update({"server": "torch_loop_flask", "graph": "torch loop", "batch": B, "workers": w, "threads": t,
-                  "ort_threads": None, "batch_wait_ms": None, "ready_s": ready, "rows_per_s": r["requests_per_s"] * B})
+        r.update({"server": "torch_loop_flask", "front": "gthread", "graph": "torch loop", "batch": B,
+                  "workers": w, "threads": t, "ort_threads": None, "batch_wait_ms": None, "ready_s": ready, "rows_per_s": r["requests_per_s"] * B})
         log(f"  http torch-loop flask B={B:<3} {r['requests_per_s']:8.0f} req/s p50 {r['p50_ms']:.1f} ms "
             f"p99 {r['p99_ms']:.1f} ms")
         section["cases"].append(r)
@@ -700,18 +705,18 @@ def format_table(result: dict[str, Any]) -> str:
     lines += ["", "HTTP on 127.0.0.1: " + (http.get("skipped") or
               f"{http['load_generator']}, {http['clients']} connections, {http['seconds']} s per run, S={http['draws']}")]
     if "cases" in http:
-        lines.append(f"{'server':>17} {'graph':>10} {'B':>3} {'w x t x ort':>11} {'wait':>5} {'req/s':>8} "
+        lines.append(f"{'server':>17} {'front':>7} {'graph':>10} {'B':>3} {'w x t x ort':>11} {'wait':>5} {'req/s':>8} "
                      f"{'rows/s':>9} {'p50 ms':>7} {'p99 ms':>7} {'non2xx':>6} {'ready s':>7} {'srvCPU ms/req':>13} "
                      f"{'wrkCPU':>6} {'implied req/s':>13}")
         for r in http["worker_models"] + http["cases"][1:]:
             shape = f"{r['workers']}x{r['threads']}x{r['ort_threads'] or '-'}"
             wait = "-" if r["batch_wait_ms"] is None else f"{r['batch_wait_ms']:g}"
-            lines.append(f"{r['server']:>17} {r['graph']:>10} {r['batch']:>3} {shape:>11} {wait:>5} "
+            lines.append(f"{r['server']:>17} {r.get('front', '-'):>7} {r['graph']:>10} {r['batch']:>3} {shape:>11} {wait:>5} "
                          f"{r['requests_per_s']:8.0f} {r['rows_per_s']:9.0f} {r['p50_ms']:7.2f} {r['p99_ms']:7.2f} "
                          f"{r['non_2xx']:>6} {r['ready_s']:7.2f} {r['server_cpu_ms_per_request']:13.3f} "
                          f"{r['client_cpu_ms_per_request']:6.3f} {r['implied_requests_per_s']:13.0f}")
         c = http["chosen"]
-        lines.append(f"chosen worker model: {c['workers']} processes x {c['threads']} threads x "
+        lines.append(f"chosen worker model: {c['front']} front, {c['workers']} processes x {c['threads']} threads x "
                      f"{c['ort_threads']} onnxruntime threads, batch wait {c['batch_wait_ms']:g} ms")
     lines += ["", "ratios"]
     for k, v in result["ratios"].items():

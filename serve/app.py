@@ -75,7 +75,7 @@ from .errors import (
 from .limits import install_limits
 from .metrics import Metrics
 from .summary import summarise
-from .validation import parse_json, validate_predict
+from .validation import PredictRequest, parse_json, validate_predict
 
 __all__ = ["CAUTION", "EXTENSION", "OPENAPI_PATH", "EngineHolder", "Live", "Runtime", "create_app", "json_response"]
 
@@ -250,35 +250,58 @@ class Runtime:
 
     # -- answering ---------------------------------------------------------------
     def predict(self, body: Any) -> dict[str, Any]:
-        """A parsed predict body -> the response dict (see serve/render.py)."""
+        """A parsed predict body -> the response dict (see serve/render.py); raises ``DemurError``."""
+        _, (answer,) = self.answer([body])
+        if isinstance(answer, DemurError):
+            raise answer
+        return answer
+
+    def answer(self, bodies: list[Any], runner: Callable[[Any, np.ndarray], np.ndarray] | None = None
+               ) -> tuple[Live, list[dict[str, Any] | DemurError]]:
+        """Answer several parsed predict bodies with ONE graph run; return the model that
+        answered and, per body in order, its response dict or the ``DemurError`` it earned.
+
+        Why together: the graph call, the summaries, the decision, the review write and the
+        metrics each cost a fixed overhead per call; the HTTP front (serve/front.py) hands
+        over every request that arrived in one pass of its event loop. A body that fails
+        validation gets its own error and does not touch the others. ``runner`` overrides
+        ``self.runner`` (the front batches itself and calls the engine directly).
+        """
         t0 = time.perf_counter()
         live = self.engines.live
-        g.demur_live = live
         manifest = live.manifest
-        req = validate_predict(body, manifest.inputs, self.config.max_cases)
+        answers: list[dict[str, Any] | DemurError] = []
+        valid: list[tuple[int, Any]] = []
+        for body in bodies:
+            try:
+                valid.append((len(answers), validate_predict(body, manifest.inputs, self.config.max_cases)))
+                answers.append({})
+            except DemurError as exc:
+                answers.append(exc)
+        if not valid:
+            return live, answers
+        req = valid[0][1] if len(valid) == 1 else PredictRequest(
+            x=np.concatenate([r.x for _, r in valid]), case_ids=[c for _, r in valid for c in r.case_ids])
         t1 = time.perf_counter()
-        draws = self.runner(live.engine, req.x)
+        draws = (runner or self.runner)(live.engine, req.x)
         t2 = time.perf_counter()
         summary = summarise(manifest.task, draws, live.level, manifest.target)
         decisions = decide(summary, live.rule)
         results = render.results(summary, decisions, live.rule, manifest.labels, req.case_ids)
-        t3 = time.perf_counter()
         self._annotate(results, req, summary, decisions, live)
-        payload = {
-            "model": live.model,
-            "results": results,
-            "draws": int(np.shape(draws)[0]),
-            "decision_rule": {"score": live.rule.score, "threshold": live.rule.threshold,
-                              "source": live.rule.source},
-        }
-        seconds = {"validation": t1 - t0, "graph": t2 - t1, "summary": t3 - t2,
-                   "total": time.perf_counter() - t0}
+        rule = {"score": live.rule.score, "threshold": live.rule.threshold, "source": live.rule.source}
+        draw_count = int(np.shape(draws)[0])
+        start = 0
+        for i, r in valid:
+            answers[i] = {"model": live.model, "results": results[start:start + r.size], "draws": draw_count,
+                          "decision_rule": rule}
+            start += r.size
         try:
             self.metrics.observe_predict(x_raw=req.x, summary=summary, decisions=decisions,
-                                         graph_seconds=seconds["graph"], total_seconds=seconds["total"])
+                                         graph_seconds=t2 - t1, total_seconds=time.perf_counter() - t0)
         except Exception:  # metrics must never cost an answer
             log.exception("metrics hook failed")
-        return payload
+        return live, answers
 
     def _annotate(self, results: list[dict[str, Any]], req: Any, summary: Any, decisions: Any,
                   live: Live) -> None:
@@ -397,7 +420,11 @@ def create_app(
         if length is not None and length > config.max_body_bytes:
             raise PayloadTooLarge(f"body is {length} bytes; the limit is {config.max_body_bytes}", field="body")
         body = parse_json(request.get_data(cache=False))
-        return json_response(runtime.predict(body))
+        live, (answer,) = runtime.answer([body])
+        g.demur_live = live
+        if isinstance(answer, DemurError):
+            raise answer
+        return json_response(answer)
 
     @app.get("/v1/model")
     def model() -> Response:

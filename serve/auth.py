@@ -48,6 +48,7 @@ from .errors import ConfigError, Forbidden, Unauthorized
 
 __all__ = [
     "AUTH_EXTENSION",
+    "CHALLENGE",
     "SCOPES",
     "Principal",
     "TokenSet",
@@ -60,7 +61,9 @@ SCOPES = ("predict", "review", "admin")
 AUTH_EXTENSION = "demur.auth"
 """Key under ``app.extensions`` where the app's ``TokenSet`` lives."""
 
-_REALM = 'Bearer realm="demur"'
+CHALLENGE = 'Bearer realm="demur"'
+"""The ``WWW-Authenticate`` value of every 401 (RFC 6750's bearer scheme)."""
+
 _F = TypeVar("_F", bound=Callable[..., Any])
 
 
@@ -195,7 +198,7 @@ def install_auth(app: Any, config: ServeConfig, tokens: TokenSet | None = None) 
     @app.after_request
     def _challenge(response: Any) -> Any:
         if response.status_code == 401 and "WWW-Authenticate" not in response.headers:
-            response.headers["WWW-Authenticate"] = _REALM
+            response.headers["WWW-Authenticate"] = CHALLENGE
         return response
 
     return tokens

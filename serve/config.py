@@ -22,7 +22,7 @@ from typing import Any, get_type_hints
 
 from .errors import ConfigError
 
-__all__ = ["ENV_PREFIX", "ServeConfig", "build_config"]
+__all__ = ["ENV_PREFIX", "FRONTS", "ServeConfig", "build_config"]
 
 ENV_PREFIX = "DEMUR_"
 
@@ -31,6 +31,10 @@ DEFAULT_PORT = 8600
 DEFAULT_MAX_CASES = 1024
 DEFAULT_MAX_BODY_BYTES = 8 * 1024 * 1024
 DEFAULT_LEASE_S = 300.0
+
+FRONTS = ("loop", "threads")
+"""HTTP fronts: ``loop`` answers predict on an event loop in batches (serve/front.py),
+``threads`` runs every route in gunicorn's threaded worker."""
 
 
 @dataclass(frozen=True)
@@ -44,6 +48,7 @@ class ServeConfig:
     port: int = DEFAULT_PORT
     workers: int = 1
     threads: int = 8
+    front: str = "loop"  # loop: predict on an event loop (serve/front.py); threads: everything in Flask threads
     # graph
     graph: str = "auto"  # auto | stacked | sampler | flip | means
     ort_intra_threads: int = 1
@@ -164,6 +169,8 @@ def _check(cfg: ServeConfig) -> None:
                  "max_body_bytes", "batch_max_rows", "queue_max_requests", "drift_window", "abstain_window"):
         if getattr(cfg, name) < 1:
             raise ConfigError(f"{name} must be at least 1; got {getattr(cfg, name)}", field=name)
+    if cfg.front not in FRONTS:
+        raise ConfigError(f"front must be one of {', '.join(FRONTS)}; got '{cfg.front}'", field="front")
     if cfg.graph not in ("auto", "stacked", "sampler", "flip", "means"):
         raise ConfigError(f"graph must be auto, stacked, sampler, flip or means; got '{cfg.graph}'", field="graph")
     if not 0.0 <= cfg.audit_fraction <= 1.0:

@@ -32,7 +32,7 @@ import sys
 from typing import Any
 
 from .bundle import load_bundle
-from .config import ServeConfig, build_config
+from .config import FRONTS, ServeConfig, build_config
 from .decision import rule_from
 
 __all__ = ["ACCESS_LOG_FORMAT", "app_from_environment", "build_app", "gunicorn_options", "register", "serve"]
@@ -58,6 +58,8 @@ def register(subparsers: Any) -> None:
     p.add_argument("--port", type=int, help="port (default 8600)")
     p.add_argument("--workers", type=int, help="worker processes (default 1)")
     p.add_argument("--threads", type=int, help="threads per worker (default 8)")
+    p.add_argument("--front", choices=FRONTS,
+                   help="loop (default): predict answered in batches on an event loop; threads: all routes in threads")
     p.add_argument("--single", action="store_true", help="one worker process (same as --workers 1)")
     p.add_argument("--score", help="decision score, overriding the bundle's (needs --threshold)")
     p.add_argument("--threshold", type=float, help="abstain when the score is above this")
@@ -73,7 +75,7 @@ def register(subparsers: Any) -> None:
     p.set_defaults(func=_main)
 
 
-_FLAG_FIELDS = ("host", "port", "workers", "threads", "score", "threshold", "interval_level", "graph",
+_FLAG_FIELDS = ("host", "port", "workers", "threads", "front", "score", "threshold", "interval_level", "graph",
                 "ort_intra_threads", "max_cases", "max_body_bytes", "seed", "data_dir", "review_store")
 
 
@@ -99,7 +101,7 @@ def gunicorn_options(config: ServeConfig) -> dict[str, Any]:
         "bind": f"{config.host}:{config.port}",
         "workers": config.workers,
         "threads": config.threads,
-        "worker_class": "gthread",
+        "worker_class": "serve.front.FrontWorker" if config.front == "loop" else "gthread",
         "preload_app": False,
         "timeout": max(30, int(config.request_timeout_s * 3)),
         "graceful_timeout": GRACEFUL_TIMEOUT_S,

@@ -359,3 +359,27 @@ def test_sample_requests_are_answered_and_reproducible(client: Any) -> None:
         assert r.status_code == 200, r.get_json()
         _validator("PredictResponse").validate(r.get_json())
         assert [x["case_id"] for x in r.get_json()["results"]] == body["case_ids"]
+
+
+# --- several requests, one graph run (what the HTTP front does) --------------------------------
+
+
+def test_answer_merges_valid_bodies_and_isolates_bad_ones(app: Any, client: Any) -> None:
+    """``Runtime.answer`` on [good, bad, good]: each good body gets exactly what it gets alone
+    (stacked draws are fixed, so the numbers must agree to float32 rounding); the bad one
+    gets its own 400 naming the field; one metrics batch covers both good bodies."""
+    runtime = app.extensions[EXTENSION]
+    a, b = {"cases": _rows(2, seed=1), "case_ids": ["a1", "a2"]}, {"cases": _rows(3, seed=2)}
+    bad = {"cases": [[1.0, 2.0]]}
+    with app.test_request_context():
+        live, answers = runtime.answer([a, bad, b])
+    assert live is runtime.engines.live
+    first, error, second = answers
+    assert isinstance(error, app_module.DemurError) and error.status == 400 and error.field == "cases[0]"
+    for body, got in ((a, first), (b, second)):
+        alone = _post(client, body).get_json()
+        assert [r["case_id"] for r in got["results"]] == [r["case_id"] for r in alone["results"]]
+        for x, y in zip(got["results"], alone["results"]):
+            np.testing.assert_allclose(x["mean"], y["mean"], rtol=1e-5, atol=1e-7)
+            assert x["decision"] == y["decision"]
+        assert got["model"] == alone["model"] and got["draws"] == alone["draws"]

@@ -24,7 +24,7 @@ from serve.errors import ConfigError, DemurError, Forbidden, Unauthorized
 
 
 def test_all_is_exact() -> None:
-    assert sorted(auth.__all__) == sorted(["AUTH_EXTENSION", "SCOPES", "Principal", "TokenSet", "authenticate",
+    assert sorted(auth.__all__) == sorted(["AUTH_EXTENSION", "CHALLENGE", "SCOPES", "Principal", "TokenSet", "authenticate",
                                           "install_auth", "require"])
 
 

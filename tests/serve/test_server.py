@@ -121,7 +121,9 @@ def test_gunicorn_options() -> None:
 
     opts = gunicorn_options(ServeConfig(bundle="b", port=8601, workers=3, threads=4))
     assert opts["bind"] == "127.0.0.1:8601" and opts["workers"] == 3 and opts["threads"] == 4
-    assert opts["worker_class"] == "gthread" and opts["preload_app"] is False  # app built after fork
+    assert opts["worker_class"] == "serve.front.FrontWorker" and opts["preload_app"] is False  # app after fork
+    threaded = gunicorn_options(ServeConfig(bundle="b", front="threads"))
+    assert threaded["worker_class"] == "gthread"
     assert "%(U)s" in ACCESS_LOG_FORMAT and "%(q)s" not in ACCESS_LOG_FORMAT and "%(r)s" not in ACCESS_LOG_FORMAT
 
 
