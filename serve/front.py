@@ -134,6 +134,7 @@ class _Connection(asyncio.Protocol):
         self.size = 0
         self.refused: tuple[int, bytes] | None = None
         self.t0 = 0.0
+        self.began = 0.0  # time.monotonic() at the request's first byte
 
     # -- asyncio ----------------------------------------------------------------
     def connection_made(self, transport: asyncio.BaseTransport) -> None:
@@ -164,6 +165,7 @@ class _Connection(asyncio.Protocol):
         self._reset()
         self.in_message = True
         self.t0 = time.perf_counter()
+        self.began = time.monotonic()
 
     def on_url(self, url: bytes) -> None:
         self.url += url
@@ -289,14 +291,15 @@ class _Front:
         return True
 
     def sweep(self) -> None:
-        """Close connections idle past the keep-alive time, and requests stalled mid-message."""
+        """Close connections idle past the keep-alive time, and requests whose bytes have
+        been arriving for longer than the request timeout (a client trickling a request)."""
         now = time.monotonic()
         stall = self.config.request_timeout_s
         for conn in list(self.connections):
-            quiet = now - conn.last_active
             if conn.transport is None:
                 continue
-            if (conn.idle and quiet > self.keepalive_s) or (conn.in_message and quiet > stall):
+            if (conn.idle and now - conn.last_active > self.keepalive_s) or (conn.in_message
+                                                                            and now - conn.began > stall):
                 conn.transport.close()
 
     # -- dispatch -----------------------------------------------------------------

@@ -174,21 +174,12 @@ def _check_draws(draws: np.ndarray, k: int | None = None) -> np.ndarray:
     return a
 
 
-def _logsumexp(z: np.ndarray, axis: int) -> np.ndarray:
-    """log Σ exp(z) along ``axis`` (kept as a length-1 axis), shifted by the max for stability.
-
-    Same values as scipy.special.logsumexp for finite input, without its
-    per-call argument handling (which cost more than the arithmetic here).
-    """
-    m = np.max(z, axis=axis, keepdims=True)
-    return m + np.log(np.sum(np.exp(z - m), axis=axis, keepdims=True))
-
-
-def _quantiles(a: np.ndarray, probs: tuple[float, ...]) -> np.ndarray:
-    """Quantiles along axis 0 from one sort: numpy's default 'linear' rule
+def _quantiles(a: np.ndarray, probs: tuple[float, ...], axis: int = 0) -> np.ndarray:
+    """Quantiles along ``axis`` from one sort: numpy's default 'linear' rule
     (h = (S - 1) q, interpolate between order statistics floor(h) and floor(h) + 1),
-    the same values as np.quantile(a, probs, axis=0), for all probs at once."""
-    s = np.sort(a, axis=0)
+    the same values as np.quantile(a, probs, axis=axis), for all probs at once
+    (the quantile axis first, then ``a``'s other axes in order)."""
+    s = np.moveaxis(np.sort(a, axis=axis), axis, 0)
     n = s.shape[0]
     out = []
     for q in probs:
@@ -197,6 +188,15 @@ def _quantiles(a: np.ndarray, probs: tuple[float, ...]) -> np.ndarray:
         hi = min(lo + 1, n - 1)
         out.append(s[lo] + (h - lo) * (s[hi] - s[lo]))
     return np.stack(out)
+
+
+def _rows(op: np.ufunc, a: np.ndarray) -> np.ndarray:
+    """``op.reduce(a, axis=0)`` for a few long rows (the K classes), one row at a time:
+    numpy's reduction over a short leading axis measured ~4x slower here."""
+    out = a[0].copy()
+    for row in a[1:]:
+        op(out, row, out=out)
+    return out
 
 
 def _check_level(level: float) -> float:
@@ -220,16 +220,27 @@ def classification_summary(logits: np.ndarray, level: float = 0.9) -> Classifica
     if z.shape[2] < 2:
         raise InvalidInput(f"a classifier needs K >= 2 logits; got {z.shape[2]}", field="draws")
 
-    log_p = z - _logsumexp(z, axis=2)  # [S, B, K] log-softmax
-    p = np.exp(log_p)
-    # Σ_k p ln p with p = exp(log p): finite even where p underflows to 0.
-    expected_entropy = -np.mean(np.sum(p * log_p, axis=2), axis=0)  # [B]
-    log_mean = _logsumexp(log_p, axis=0)[0] - np.log(n_draws)  # [B, K], ln p̄
-    mean_probs = np.exp(log_mean)
-    predictive_entropy = -np.sum(mean_probs * log_mean, axis=1)
+    n_cases, k = z.shape[1], z.shape[2]
+    # Class axis first, [K, S*B]: every reduction over classes is then K whole-row
+    # operations (_rows), and exp runs once over the draws (measured ~2.5x faster
+    # than reducing over a trailing axis of 10 at S = 32, B = 64).
+    zk = np.array(np.moveaxis(z, 2, 0), order="C").reshape(k, -1)  # a copy: changed in place below
+    zk -= _rows(np.maximum, zk)                            # shift by the max logit: exp <= 1
+    e = np.exp(zk)
+    total = _rows(np.add, e)                               # [S*B], >= 1
+    p = e / total                                          # softmax [K, S*B]
+    log_p = zk - np.log(total)                             # log-softmax, finite where p underflows
+    # Σ_k p ln p from log p: finite even where p underflows to 0.
+    expected_entropy = -_rows(np.add, p * log_p).reshape(n_draws, n_cases).mean(axis=0)  # [B]
+    p = p.reshape(k, n_draws, n_cases)
+    mean_probs = p.mean(axis=1)                            # [K, B], p̄
+    log_mean = np.log(np.where(mean_probs > 0.0, mean_probs, 1.0))  # 0 ln 0 = 0 where every draw underflowed
+    predictive_entropy = -_rows(np.add, mean_probs * log_mean)
     mutual_information = np.maximum(predictive_entropy - expected_entropy, 0.0)
+    mean_probs = np.ascontiguousarray(mean_probs.T)       # [B, K]
 
-    q = _quantiles(p, ((1.0 - level) / 2.0, (1.0 + level) / 2.0))  # [2, B, K]
+    q = _quantiles(p, ((1.0 - level) / 2.0, (1.0 + level) / 2.0), axis=1)  # [2, K, B]
+    q = np.ascontiguousarray(np.moveaxis(q, 1, 2))         # [2, B, K]
     return ClassificationSummary(
         level=level,
         draws=n_draws,

@@ -268,7 +268,7 @@ def test_tokens_and_back_pressure(bundle: Any, tmp_path: Path) -> None:
     with 503 and Retry-After, RFC 9110 section 10.2.3)."""
     srv = _start(bundle.path, tmp_path, "--workers", "1", "--threads", "1",
                  env={"DEMUR_PREDICT_TOKENS": "depot-key", "DEMUR_BATCH_WAIT_MS": "400",
-                      "DEMUR_QUEUE_MAX_REQUESTS": "1"})
+                      "DEMUR_QUEUE_MAX_REQUESTS": "1", "DEMUR_REQUEST_TIMEOUT_S": "2"})
     try:
         payload = json.dumps({"cases": _rows(1)}).encode()
         with _connect(srv) as sock:
@@ -286,6 +286,22 @@ def test_tokens_and_back_pressure(bundle: Any, tmp_path: Path) -> None:
         assert refused[0] == 503 and int(refused[1]["retry-after"]) >= 1
         assert json.loads(refused[2])["error"]["code"] == "overloaded"
         assert answered[0] == 200
+        # a client trickling its request head past the 2 s request timeout is cut off
+        with _connect(srv) as slow:
+            slow.sendall(b"POST /v1/predict HTTP/1.1\r\n")
+            slow.settimeout(0.5)
+            closed = False
+            for i in range(20):  # at most about 10 s
+                try:
+                    slow.sendall(b"X-Slow-%d: 1\r\n" % i)
+                    closed = slow.recv(1) == b""
+                except socket.timeout:
+                    continue
+                except (BrokenPipeError, ConnectionResetError):
+                    closed = True
+                if closed:
+                    break
+            assert closed and i >= 3
     finally:
         assert srv.stop() == 0
 
