@@ -65,7 +65,8 @@ SEAL = "manifest.sha256"
 GRAPH_KINDS = ("stacked", "sampler", "means", "flip")
 """stacked: S pre-drawn weight sets in one graph; sampler: fresh noise drawn in
 the graph per call; means: the deterministic graph of the posterior means
-(S = 1); flip: a bank of base draws re-randomised per call by sign flips."""
+(S = 1); flip: Flipout sign flips on a fresh low-rank base per call, its noise
+fed by the engine (export/flip.py)."""
 
 SCORES = ("mutual_information", "predictive_entropy", "one_minus_max_prob", "interval_width", "epistemic_std")
 """Decision scores a bundle may name (see serve/decision.py for their meaning)."""

@@ -10,6 +10,19 @@ Graph choice: ``"auto"`` takes the sampler graph if the bundle has one (fresh
 weights on every call), else the stacked draws; ``"stacked"``, ``"sampler"``,
 ``"means"`` and ``"flip"`` pick one by name.
 
+Noise fed by the engine. A graph may declare float32 inputs besides ``x``
+whose values the engine draws afresh on every call (the default flip graph,
+export/flip.py, draws nothing itself: onnxruntime's generators cost 6-17 ns a
+number; numpy fills the bench MLP's 60k noise numbers at S = 32 in about
+43 us, mostly signs from raw bits). The input's name says its law, by the
+part before the first dot: ``signs`` uniform +-1 (one random bit each),
+``normals`` N(0, 1), ``uniforms`` uniform on (0, 1]; the shape is the
+graph's, fixed. ``load()`` reads them from the session, so the bundle needs no
+extra manifest field, and a graph with an input of another law is refused
+(``UnsupportedFormat``). The numbers come from one ``numpy`` PCG64 generator
+per load, seeded like the random nodes below; it is thread-safe (numpy holds
+its lock per call), so ``run`` still needs no lock of its own.
+
 Seeding the sampler graph. onnxruntime's RandomNormal behaves like this: with
 a ``seed`` attribute its stream is reproducible across sessions but moves on
 from call to call within one session; without a seed, two sessions in one
@@ -18,7 +31,9 @@ draws in every worker. So ``load()`` rewrites every RandomNormal seed in
 memory before opening the session: from ``seed`` when one is configured
 (tests, replays), otherwise from ``os.urandom`` at load time. **Call
 ``load()`` after any fork** (in each worker, e.g. gunicorn's ``post_fork``),
-never in a parent whose sessions the children would inherit.
+never in a parent whose sessions the children would inherit. The same seed
+starts the noise generator, so the default flip graph repeats under a
+configured seed and differs between workers without one.
 
 onnxruntime sessions are thread-safe for ``run``; the engine's loaded state is
 one immutable object swapped in by ``load()``, so ``run`` needs no lock.
@@ -43,7 +58,7 @@ import numpy as np
 import onnxruntime as ort
 
 from .bundle import Bundle, Manifest
-from .errors import ChecksumMismatch, ConfigError, GraphRunError, InvalidInput, NotLoaded
+from .errors import ChecksumMismatch, ConfigError, GraphRunError, InvalidInput, NotLoaded, UnsupportedFormat
 
 __all__ = ["GRAPH_CHOICES", "Engine", "reseed_graph"]
 
@@ -54,6 +69,10 @@ _RANDOM_OPS = ("RandomNormal", "RandomNormalLike", "RandomUniform", "RandomUnifo
 _SEED_MODULUS = 1 << 24  # the seed attribute is float32: integers below 2**24 are exact
 _SEED_STRIDE = 7919      # same rule as export.graphs.node_seed (kept in step by a test)
 _SAMPLING_KINDS = ("sampler", "flip")  # graphs with random nodes, reseeded at load
+
+_NOISE_LAWS = ("signs", "normals", "uniforms")  # graph inputs besides x that the engine fills, by name prefix
+_SIGN_BYTES = np.where(np.unpackbits(np.arange(256, dtype=np.uint8)[:, None], axis=1), -1.0, 1.0).astype(np.float32)
+"""float32[256, 8]: row b is the 8 bits of byte b as +-1 (a uniform byte gives 8 uniform signs)."""
 
 _T = TypeVar("_T")
 
@@ -100,6 +119,51 @@ def reseed_graph(data: bytes, seed: int) -> tuple[bytes, int]:
     return model.SerializeToString(), changed
 
 
+class _Noise:
+    """The noise inputs of one session and the generator that fills them (one per ``load()``)."""
+
+    def __init__(self, inputs: list[tuple[str, str, tuple[int, ...]]], seed: int | None) -> None:
+        self.inputs = inputs                                   # (name, law, shape), in graph order
+        self.counts = dict.fromkeys(_NOISE_LAWS, 0)
+        self._parts: list[tuple[str, str, int, int, tuple[int, ...]]] = []  # name, law, start, end, shape
+        for name, law, shape in inputs:
+            size = int(np.prod(shape))
+            self._parts.append((name, law, self.counts[law], self.counts[law] + size, shape))
+            self.counts[law] += size
+        self.rng = np.random.Generator(np.random.PCG64(seed))  # 64 random bits per raw value; None: OS entropy
+
+    @classmethod
+    def of(cls, session: Any, kind: str, seed: int | None) -> _Noise | None:
+        """The session's noise inputs (``None`` if it has only ``x``); refuses inputs it cannot fill."""
+        found = []
+        for arg in session.get_inputs():
+            if arg.name == "x":
+                continue
+            law = arg.name.split(".")[0]
+            shape = tuple(arg.shape)
+            if law not in _NOISE_LAWS or arg.type != "tensor(float)" or not all(isinstance(d, int) for d in shape):
+                raise UnsupportedFormat(
+                    f"the {kind} graph has an input '{arg.name}' ({arg.type}, shape {list(shape)}) that this engine "
+                    f"cannot fill: noise inputs are float32 of fixed shape named {', '.join(_NOISE_LAWS)}; re-export "
+                    "the bundle with this version of demur", field=f"graphs.{kind}")
+            found.append((arg.name, law, shape))
+        return cls(found, seed) if found else None
+
+    def draw(self) -> dict[str, np.ndarray]:
+        """Fresh values for every noise input: float32 arrays of the graph's shapes."""
+        blocks = {}
+        n = self.counts["signs"]
+        if n:
+            random_bytes = self.rng.bit_generator.random_raw((n + 63) // 64).view(np.uint8)
+            blocks["signs"] = _SIGN_BYTES.take(random_bytes, axis=0).reshape(-1)[:n]   # 8 signs per random byte
+        if self.counts["normals"]:
+            blocks["normals"] = self.rng.standard_normal(self.counts["normals"], dtype=np.float32)
+        if self.counts["uniforms"]:
+            u = self.rng.random(self.counts["uniforms"], dtype=np.float32)   # [0, 1) in steps of 2**-24
+            blocks["uniforms"] = np.subtract(np.float32(1.0), u, out=u)     # (0, 1]: logs stay finite
+        return {name: blocks[law][start:end].reshape(shape) for name, law, start, end, shape in self._parts}
+
+
 @dataclass(frozen=True)
 class _Loaded:
     kind: str
@@ -107,6 +171,7 @@ class _Loaded:
     draws: int
     seed: int | None
     means: Any | None
+    noise: _Noise | None
     center: np.ndarray
     scale: np.ndarray
 
@@ -196,6 +261,7 @@ class Engine:
             if kind in _SAMPLING_KINDS and seed is None:
                 seed = int.from_bytes(os.urandom(4), "little") % _SEED_MODULUS
             session = self._session(kind, seed)
+            noise = _Noise.of(session, kind, seed if kind in _SAMPLING_KINDS else None)
             means = None
             if "means" in self.bundle.manifest.graphs:
                 means = session if kind == "means" else self._session("means", None)
@@ -206,6 +272,7 @@ class Engine:
                 draws=int(self.bundle.manifest.graphs[kind].draws),
                 seed=seed if kind in _SAMPLING_KINDS else None,
                 means=means,
+                noise=noise,
                 center=np.asarray(spec.center, dtype=np.float64).reshape(spec.shape),
                 scale=np.asarray(spec.scale, dtype=np.float64).reshape(spec.shape),
             )
@@ -236,19 +303,20 @@ class Engine:
                                    f"got {list(x.shape)}", field="x")
         return np.ascontiguousarray((x - state.center) / state.scale, dtype=np.float32)
 
-    def _run(self, session: Any, x_std: np.ndarray, what: str) -> np.ndarray:
-        out = _guard(f"run the {what} graph", lambda: session.run(["draws"], {"x": x_std})[0])
+    def _run(self, session: Any, x_std: np.ndarray, what: str, noise: _Noise | None = None) -> np.ndarray:
+        feed = {"x": x_std, **noise.draw()} if noise is not None else {"x": x_std}
+        out = _guard(f"run the {what} graph", lambda: session.run(["draws"], feed)[0])
         return np.asarray(out, dtype=np.float32)
 
     def run(self, x_raw: Any) -> np.ndarray:
         """float[B, *shape] raw inputs -> float32[S, B, K] draws from the chosen graph."""
         state = self._loaded()
-        return self._run(state.session, self.standardise(x_raw), state.kind)
+        return self._run(state.session, self.standardise(x_raw), state.kind, state.noise)
 
     def run_standardised(self, x_std: Any) -> np.ndarray:
         """Like ``run`` for inputs already standardised (float32[B, *shape]); nothing is re-applied."""
         state = self._loaded()
-        return self._run(state.session, np.ascontiguousarray(x_std, dtype=np.float32), state.kind)
+        return self._run(state.session, np.ascontiguousarray(x_std, dtype=np.float32), state.kind, state.noise)
 
     def run_means(self, x_raw: Any) -> np.ndarray:
         """float[B, *shape] raw inputs -> float32[1, B, K] from the means graph (the deterministic fallback)."""
@@ -274,7 +342,7 @@ class Engine:
 
     @property
     def seed_in_use(self) -> int | None:
-        """The sampler's base seed for this load (``None`` for graphs that do not sample)."""
+        """The base seed of this load's random nodes and noise generator (``None`` for graphs that do not sample)."""
         return self._loaded().seed
 
     @property

@@ -1,9 +1,11 @@
 """serve/engine.py: loading, standardisation at the edge, graph choice, sampler seeding,
-and the one place onnxruntime errors become GraphRunError.
+the noise fed to graphs that declare it, and the one place onnxruntime errors become
+GraphRunError.
 
 References: onnxruntime's own InferenceSession run directly on the graph file
 (the bundle contract: input "x" already standardised, output "draws"); the
-manifest's standardisation x_std = (x - center) / scale (serve/bundle.py).
+manifest's standardisation x_std = (x - center) / scale (serve/bundle.py);
+scipy.stats (binomtest, kstest against norm and uniform) for the noise laws.
 """
 
 from __future__ import annotations
@@ -128,6 +130,88 @@ def test_reseed_rule_matches_the_exporter() -> None:
     assert seeds(exported)[1] == node_seed(12345, 1)
 
 
+def test_flip_noise_is_fresh_per_call_repeats_under_a_seed_and_differs_between_unseeded_engines(
+        tiny_bundle_factory) -> None:
+    """The default flip graph draws nothing itself: the engine feeds its noise (export/flip.py)."""
+    bundle = tiny_bundle_factory(kind="flip")
+    x = _raw_cases(bundle, 3)
+    a, b = Engine(bundle, seed=42).load(), Engine(bundle, seed=42).load()
+    assert a.kind == "flip" and a._loaded().noise is not None
+    seq_a = [a.run(x) for _ in range(3)]
+    seq_b = [b.run(x) for _ in range(3)]
+    assert seq_a[0].shape == (8, 3, 10)
+    assert not np.array_equal(seq_a[0], seq_a[1]) and not np.array_equal(seq_a[0][0], seq_a[0][1])
+    for u, v in zip(seq_a, seq_b):
+        np.testing.assert_array_equal(u, v)
+    np.testing.assert_array_equal(a.load().run(x), seq_a[0])  # reloading restarts the seeded stream
+    c, d = Engine(bundle).load(), Engine(bundle).load()
+    assert c.seed_in_use != d.seed_in_use
+    assert not np.array_equal(c.run(x), d.run(x))
+
+
+def test_noise_inputs_follow_their_laws(tiny_bundle_factory) -> None:
+    """signs: exactly +-1, balanced (scipy.stats.binomtest); normals: scipy.stats.kstest against norm;
+    uniforms: in (0, 1] and kstest against uniform. Over 20 calls of the tiny flip graph."""
+    from scipy import stats
+
+    engine = Engine(tiny_bundle_factory(kind="flip"), seed=3).load()
+    noise = engine._loaded().noise
+    assert noise is not None
+    assert {name.split(".")[0] for name, _, _ in noise.inputs} == {"signs", "normals", "uniforms"}
+    pooled: dict[str, list[np.ndarray]] = {"signs": [], "normals": [], "uniforms": []}
+    for _ in range(20):
+        feed = noise.draw()
+        for name, law, shape in noise.inputs:
+            assert feed[name].shape == shape and feed[name].dtype == np.float32
+            pooled[law].append(feed[name].ravel())
+    signs, normals, uniforms = (np.concatenate(pooled[k]) for k in ("signs", "normals", "uniforms"))
+    assert set(np.unique(signs)) == {-1.0, 1.0}
+    assert stats.binomtest(int((signs > 0).sum()), signs.size, 0.5).pvalue > 1e-3
+    assert stats.kstest(normals, stats.norm.cdf).pvalue > 1e-3
+    assert uniforms.min() > 0 and uniforms.max() <= 1
+    assert stats.kstest(uniforms, stats.uniform.cdf).pvalue > 1e-3
+
+
+def test_flip_bundles_with_in_graph_noise_still_run(tiny_bundle_factory, copy_bundle) -> None:
+    """Bundles exported before the engine fed noise (random nodes in the graph, input x only):
+    reseeded at load, fresh per call, repeatable under a seed."""
+    import onnx
+
+    from export.flip import flip_graph
+    from export.graphs import plan_from_model
+
+    source = tiny_bundle_factory(kind="flip")
+    path = copy_bundle(source)
+    plan = plan_from_model(tiny_bundle_factory.models[source.path], source.manifest.inputs.shape)
+    onnx.save_model(flip_graph(plan, 8, seed=0, rank=0), str(path / "flip.onnx"))
+    write_manifest(path, json.loads((path / "manifest.json").read_text()))  # re-digest and re-seal
+    bundle = load_bundle(path)
+    x = _raw_cases(bundle, 3)
+    a = Engine(bundle, seed=5).load()
+    assert a._loaded().noise is None
+    first = a.run(x)
+    assert first.shape == (8, 3, 10) and not np.array_equal(first, a.run(x))
+    np.testing.assert_array_equal(Engine(bundle, seed=5).load().run(x), first)
+
+
+def test_a_graph_input_the_engine_cannot_fill_is_refused_at_load(tiny_bundle_factory, copy_bundle) -> None:
+    """Noise inputs are named by law; any other extra input is UnsupportedFormat naming the input."""
+    import onnx
+    from onnx import TensorProto, helper
+
+    from serve.errors import UnsupportedFormat
+
+    path = copy_bundle(tiny_bundle_factory())
+    model = onnx.load(str(path / "stacked.onnx"))
+    model.graph.input.append(helper.make_tensor_value_info("temperature", TensorProto.FLOAT, [1]))
+    onnx.save_model(model, str(path / "stacked.onnx"))
+    write_manifest(path, json.loads((path / "manifest.json").read_text()))
+    engine = Engine(load_bundle(path))
+    with pytest.raises(UnsupportedFormat, match="input 'temperature'") as info:
+        engine.load()
+    assert info.value.field == "graphs.stacked" and not engine.loaded
+
+
 def test_stacked_engine_is_deterministic_and_thread_safe(tiny_bundle_factory) -> None:
     """onnxruntime sessions allow concurrent run(); 4 threads x 5 calls equal the serial result."""
     engine = Engine(tiny_bundle_factory(arch="conv")).load()
@@ -150,6 +234,29 @@ def test_stacked_engine_is_deterministic_and_thread_safe(tiny_bundle_factory) ->
     assert len(results) == 20
     for r in results:
         np.testing.assert_array_equal(r, expected)
+
+
+def test_flip_engine_runs_concurrently_with_distinct_draws(tiny_bundle_factory) -> None:
+    """One noise generator shared by threads (numpy holds its lock per call): 4 threads x 5 calls,
+    every result finite and different from every other."""
+    engine = Engine(tiny_bundle_factory(kind="flip"), seed=9).load()
+    x = _raw_cases(engine.bundle, 2)
+    results: list[np.ndarray] = []
+    lock = threading.Lock()
+
+    def work() -> None:
+        for _ in range(5):
+            out = engine.run(x)
+            with lock:
+                results.append(out)
+
+    threads = [threading.Thread(target=work) for _ in range(4)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(timeout=60)
+    assert len(results) == 20 and all(np.isfinite(r).all() for r in results)
+    assert len({r.tobytes() for r in results}) == 20
 
 
 # -- errors ------------------------------------------------------------------------------
