@@ -471,17 +471,28 @@ def _http_section(bundles: dict[int, dict[str, Bundle]], xs: np.ndarray, model_f
             f"{r['server_cpu_ms_per_request']:.2f} ms/req, wrk {r['client_cpu_ms_per_request']:.2f}")
         return r
 
+    # Each worker model serves one-case requests and 64-case requests; the choice is the
+    # model with the most one-case requests/s (p99 within target, no errors) among those
+    # within 15% of the best 64-case rows/s: fast for single parcels without giving up
+    # large batches.
+    singles, batches = [], []
     for front, workers, threads, ort, wait_ms in cfg["worker_models"]:
-        section["worker_models"].append(demur(front, workers, threads, ort, wait_ms, "stacked", 1))
-    fit = [r for r in section["worker_models"] if r["p99_ms"] < TARGETS["http_p99_ms"] and not r["non_2xx"]]
-    best = max(fit or section["worker_models"], key=lambda r: r["requests_per_s"])
+        singles.append(demur(front, workers, threads, ort, wait_ms, "stacked", 1))
+        batches.append(demur(front, workers, threads, ort, wait_ms, "stacked", 64))
+    section["worker_models"] = singles + batches
+    top_rows = max(r["rows_per_s"] for r in batches)
+    fit = [i for i, (one, big) in enumerate(zip(singles, batches))
+           if one["p99_ms"] < TARGETS["http_p99_ms"] and not one["non_2xx"] and not big["non_2xx"]
+           and big["rows_per_s"] >= 0.85 * top_rows]
+    pick = max(fit or range(len(singles)), key=lambda i: singles[i]["requests_per_s"])
+    best = singles[pick]
     chosen = {k: best[k] for k in ("front", "workers", "threads", "ort_threads", "batch_wait_ms")}
     section["chosen"] = chosen
     f, w, t, o = chosen["front"], chosen["workers"], chosen["threads"], chosen["ort_threads"]
     wait = chosen["batch_wait_ms"]
     section["cases"].append(best)
     section["cases"].append(demur(f, w, t, o, wait, "flip", 1))
-    section["cases"].append(demur(f, w, t, o, wait, "stacked", 64))
+    section["cases"].append(batches[pick])
     section["cases"].append(demur(f, w, t, o, wait, "flip", 64))
 
     port = _free_port()
@@ -603,9 +614,13 @@ def _ratios_and_targets(result: dict[str, Any]) -> None:
             big = _find(http["cases"], server="demur", graph=label, batch=64)
             engine_rows = _find(eng, mode=label, draws=http["draws"], batch=64)
             if big and engine_rows:
-                v = big["rows_per_s"] / engine_rows["rows_per_s"]
-                ratios[f"http_rows_over_engine_rows_{label}_B64"] = v
-                target(f"HTTP rows/s / engine rows/s, {label}, B=64", ">= 0.70", v, v >= 0.70)
+                ratios[f"http_rows_over_engine_rows_{label}_B64"] = big["rows_per_s"] / engine_rows["rows_per_s"]
+                # The engine row is one thread on one core; the server may use up to
+                # workers x onnxruntime threads cores: the fair comparison is per core used.
+                cores = min(os.cpu_count() or 1, big["workers"] * big["ort_threads"])
+                v = big["rows_per_s"] / (cores * engine_rows["rows_per_s"])
+                ratios[f"http_rows_over_engine_rows_per_core_{label}_B64"] = v
+                target(f"HTTP rows/s per core / engine rows/s, {label}, B=64", ">= 0.70", v, v >= 0.70)
         torch64 = _find(http["cases"], server="torch_loop_flask", batch=64)
         big = _find(http["cases"], server="demur", graph="stacked", batch=64)
         if big and torch64 and torch64["rows_per_s"] > 0:
@@ -708,7 +723,9 @@ def format_table(result: dict[str, Any]) -> str:
         lines.append(f"{'server':>17} {'front':>7} {'graph':>10} {'B':>3} {'w x t x ort':>11} {'wait':>5} {'req/s':>8} "
                      f"{'rows/s':>9} {'p50 ms':>7} {'p99 ms':>7} {'non2xx':>6} {'ready s':>7} {'srvCPU ms/req':>13} "
                      f"{'wrkCPU':>6} {'implied req/s':>13}")
-        for r in http["worker_models"] + http["cases"][1:]:
+        shown = [json.dumps(r, sort_keys=True, default=str) for r in http["worker_models"]]
+        rest = [c for c in http["cases"] if json.dumps(c, sort_keys=True, default=str) not in shown]
+        for r in http["worker_models"] + rest:
             shape = f"{r['workers']}x{r['threads']}x{r['ort_threads'] or '-'}"
             wait = "-" if r["batch_wait_ms"] is None else f"{r['batch_wait_ms']:g}"
             lines.append(f"{r['server']:>17} {r.get('front', '-'):>7} {r['graph']:>10} {r['batch']:>3} {shape:>11} {wait:>5} "
