@@ -63,8 +63,8 @@ class ServeConfig:
     max_body_bytes: int = DEFAULT_MAX_BODY_BYTES
     request_timeout_s: float = 10.0
     # micro-batching
-    batch_wait_ms: float = 1.0
-    batch_max_rows: int = 256
+    batch_wait_ms: float = 0.0  # loop front: 0 batches what arrived in one loop pass (measured best, demur bench)
+    batch_max_rows: int = 0  # cases per merged graph call; 0: by graph kind (serve/batching.py, rows_cap)
     queue_max_requests: int = 512
     # review
     data_dir: str = "demur-data"
@@ -166,9 +166,12 @@ def _check(cfg: ServeConfig) -> None:
     if not 0 < cfg.port < 65536:
         raise ConfigError(f"port must be in 1..65535; got {cfg.port}", field="port")
     for name in ("workers", "threads", "ort_intra_threads", "ort_inter_threads", "max_cases",
-                 "max_body_bytes", "batch_max_rows", "queue_max_requests", "drift_window", "abstain_window"):
+                 "max_body_bytes", "queue_max_requests", "drift_window", "abstain_window"):
         if getattr(cfg, name) < 1:
             raise ConfigError(f"{name} must be at least 1; got {getattr(cfg, name)}", field=name)
+    if cfg.batch_max_rows < 0:
+        raise ConfigError(f"batch_max_rows must be >= 0 (0: chosen by graph kind); got {cfg.batch_max_rows}",
+                          field="batch_max_rows")
     if cfg.front not in FRONTS:
         raise ConfigError(f"front must be one of {', '.join(FRONTS)}; got '{cfg.front}'", field="front")
     if cfg.graph not in ("auto", "stacked", "sampler", "flip", "means"):

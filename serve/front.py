@@ -15,7 +15,8 @@ What a predict request meets, in order (the Flask route checks the same):
 ``Authorization`` (serve/auth.py) -> ``Content-Type: application/json`` ->
 body size -> JSON -> the admission bound (at most ``queue_max_requests``
 waiting, else 503 + ``Retry-After``) -> the next batch, which starts after at
-most ``batch_wait_ms`` or as soon as ``batch_max_rows`` cases are waiting.
+most ``batch_wait_ms`` or as soon as ``batch_max_rows`` cases are waiting
+(by default a cap per graph kind, ``serve.batching.rows_cap``).
 Errors have the app's one shape ``{"error": {"code", "message", "field"}}``;
 malformed HTTP gets a 400 in that shape and the connection is closed.
 
@@ -59,6 +60,7 @@ import orjson
 from gunicorn.workers import base
 
 from .auth import AUTH_EXTENSION, CHALLENGE
+from .batching import rows_cap
 from .errors import DemurError, Overloaded, PayloadTooLarge, UnsupportedMediaType
 from .limits import SECURITY_HEADERS
 from .validation import parse_json
@@ -332,7 +334,7 @@ class _Front:
         cases = body.get("cases") if isinstance(body, dict) else None
         self.pending.append((conn, req, body))
         self.pending_rows += len(cases) if isinstance(cases, list) else 1
-        if self.pending_rows >= self.config.batch_max_rows:
+        if self.pending_rows >= self._rows_cap():
             self._schedule(0.0)
         else:
             self._schedule(self.wait_s)
@@ -351,9 +353,12 @@ class _Front:
         self.flush_handle = None
         pending, self.pending, self.pending_rows = self.pending, [], 0
         deadline = time.perf_counter() - self.config.request_timeout_s
+        cap = self._rows_cap()
         chunk: list[tuple[_Connection, _Request, Any]] = []
         rows = 0
         for item in pending:
+            if item[0].transport is None:  # the client went away: no one to answer, skip the work
+                continue
             if item[1].t0 < deadline:
                 self._answer_error(item[0], item[1], Overloaded(
                     f"the request waited longer than {self.config.request_timeout_s:g} s; retry later",
@@ -361,13 +366,17 @@ class _Front:
                 continue
             cases = item[2].get("cases") if isinstance(item[2], dict) else None
             n = len(cases) if isinstance(cases, list) else 1
-            if chunk and rows + n > self.config.batch_max_rows:
+            if chunk and rows + n > cap:
                 self._run(chunk)
                 chunk, rows = [], 0
             chunk.append(item)
             rows += n
         if chunk:
             self._run(chunk)
+
+    def _rows_cap(self) -> int:
+        live = self.runtime.engines._live
+        return rows_cap(self.config, live.engine.kind if live is not None else None)
 
     def _run(self, chunk: list[tuple[_Connection, _Request, Any]]) -> None:
         try:

@@ -26,7 +26,15 @@ TIMEOUT = 10.0  # bound on every wait in this module (s)
 
 
 def test_all_is_exact() -> None:
-    assert sorted(batching.__all__) == ["BatchStats", "MicroBatcher", "batching_runner"]
+    assert sorted(batching.__all__) == ["BatchStats", "DEFAULT_ROWS", "MicroBatcher", "ROWS_BY_KIND",
+                                        "batching_runner", "rows_cap"]
+
+
+def test_rows_cap_is_the_setting_or_the_kind_default() -> None:
+    assert batching.rows_cap(ServeConfig(batch_max_rows=17), "flip") == 17
+    assert batching.rows_cap(ServeConfig(), "flip") == batching.ROWS_BY_KIND["flip"]
+    assert batching.rows_cap(ServeConfig(), "stacked") == batching.DEFAULT_ROWS
+    assert batching.rows_cap(ServeConfig(), None) == batching.DEFAULT_ROWS
 
 
 class _Gate:

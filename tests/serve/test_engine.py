@@ -212,25 +212,31 @@ def test_a_graph_input_the_engine_cannot_fill_is_refused_at_load(tiny_bundle_fac
     assert info.value.field == "graphs.stacked" and not engine.loaded
 
 
+def _run_concurrently(engine: Engine, x: np.ndarray, threads: int = 4, calls: int = 5) -> list[np.ndarray]:
+    """``engine.run(x)`` from ``threads`` threads, ``calls`` times each; every result, in arrival order."""
+    results: list[np.ndarray] = []
+    lock = threading.Lock()
+
+    def work() -> None:
+        for _ in range(calls):
+            out = engine.run(x)
+            with lock:
+                results.append(out)
+
+    workers = [threading.Thread(target=work) for _ in range(threads)]
+    for t in workers:
+        t.start()
+    for t in workers:
+        t.join(timeout=60)
+    return results
+
+
 def test_stacked_engine_is_deterministic_and_thread_safe(tiny_bundle_factory) -> None:
     """onnxruntime sessions allow concurrent run(); 4 threads x 5 calls equal the serial result."""
     engine = Engine(tiny_bundle_factory(arch="conv")).load()
     x = _raw_cases(engine.bundle, 4)
     expected = engine.run(x)
-    results: list[np.ndarray] = []
-    lock = threading.Lock()
-
-    def work() -> None:
-        for _ in range(5):
-            out = engine.run(x)
-            with lock:
-                results.append(out)
-
-    threads = [threading.Thread(target=work) for _ in range(4)]
-    for t in threads:
-        t.start()
-    for t in threads:
-        t.join(timeout=60)
+    results = _run_concurrently(engine, x)
     assert len(results) == 20
     for r in results:
         np.testing.assert_array_equal(r, expected)
@@ -241,20 +247,7 @@ def test_flip_engine_runs_concurrently_with_distinct_draws(tiny_bundle_factory) 
     every result finite and different from every other."""
     engine = Engine(tiny_bundle_factory(kind="flip"), seed=9).load()
     x = _raw_cases(engine.bundle, 2)
-    results: list[np.ndarray] = []
-    lock = threading.Lock()
-
-    def work() -> None:
-        for _ in range(5):
-            out = engine.run(x)
-            with lock:
-                results.append(out)
-
-    threads = [threading.Thread(target=work) for _ in range(4)]
-    for t in threads:
-        t.start()
-    for t in threads:
-        t.join(timeout=60)
+    results = _run_concurrently(engine, x)
     assert len(results) == 20 and all(np.isfinite(r).all() for r in results)
     assert len({r.tobytes() for r in results}) == 20
 
