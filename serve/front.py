@@ -85,6 +85,14 @@ def _error(status: int, code: str, message: str, field: str | None) -> tuple[int
     return status, orjson.dumps({"error": {"code": code, "message": message, "field": field}})
 
 
+def _header(headers: list[tuple[bytes, bytes]], name: bytes) -> bytes | None:
+    """The first value of header ``name`` (lower-case), or ``None``."""
+    for key, value in headers:
+        if key.lower() == name:
+            return value
+    return None
+
+
 class _Slot:
     """One request's place in its connection's response order."""
 
@@ -110,10 +118,7 @@ class _Request:
         self.slot = slot
 
     def header(self, name: bytes) -> bytes | None:
-        for key, value in self.headers:
-            if key.lower() == name:
-                return value
-        return None
+        return _header(self.headers, name)
 
 
 class _Connection(asyncio.Protocol):
@@ -187,13 +192,13 @@ class _Connection(asyncio.Protocol):
             raise httptools.HttpParserError("headers too large")
 
     def on_headers_complete(self) -> None:
-        declared = self._header(b"content-length")
+        declared = _header(self.headers, b"content-length")
         limit = self.front.max_body
         if declared is not None and declared.isdigit() and int(declared) > limit:
             self.refused = _error(413, PayloadTooLarge.code,
                                   f"body is {int(declared)} bytes; the limit is {limit}", "body")
             raise httptools.HttpParserError("body too large")  # the body is never read
-        expect = self._header(b"expect")
+        expect = _header(self.headers, b"expect")
         if expect is not None and expect.lower() == b"100-continue" and self.transport is not None:
             self.transport.write(b"HTTP/1.1 100 Continue\r\n\r\n")
 
@@ -215,12 +220,6 @@ class _Connection(asyncio.Protocol):
             self.transport.pause_reading()
             self.paused = True
         self.front.dispatch(self, request)
-
-    def _header(self, name: bytes) -> bytes | None:
-        for key, value in self.headers:
-            if key.lower() == name:
-                return value
-        return None
 
     # -- answering --------------------------------------------------------------
     def finish(self, slot: _Slot, data: bytes, close: bool = False) -> None:
@@ -340,10 +339,11 @@ class _Front:
             self._schedule(self.wait_s)
 
     def _schedule(self, delay: float) -> None:
+        """Flush after ``delay`` s (0: once this pass of the loop has read what arrived)."""
         if self.flush_handle is not None:
-            if delay > 0:
-                return
-            self.flush_handle.cancel()
+            if delay > 0 or not isinstance(self.flush_handle, asyncio.TimerHandle):
+                return  # a flush is due no later than asked
+            self.flush_handle.cancel()  # a timed wait, overtaken by a full batch
         self.flush_handle = (self.loop.call_later(delay, self.flush) if delay > 0
                              else self.loop.call_soon(self.flush))
 
@@ -442,7 +442,7 @@ class _Front:
             self.runtime.metrics.observe_error(status=exc.status, code=exc.code, endpoint="predict")
         except Exception:
             log.exception("metrics hook failed")
-        self._answer(conn, req, *_error(exc.status, exc.code, exc.message, exc.field), model, extra)
+        self._answer(conn, req, exc.status, orjson.dumps(exc.to_payload()), model, extra)
 
     def count(self, method: bytes, path: bytes, status: int, t0: float, size: int = 0, client: str = "-") -> None:
         """Request metrics and the access-log line of one answered request (predict and refusals;
