@@ -36,7 +36,7 @@ from scipy import stats
 from export import flip
 from export.errors import GraphBuildError
 from export.flip import DEFAULT_RANK, flip_graph
-from export.graphs import plan_from_model, stacked_graph
+from export.graphs import NetworkPlan, plan_from_model, stacked_graph
 from export.layers import build_model, forward_draws, sample_network
 
 ALPHA = 1e-3
@@ -146,27 +146,30 @@ def test_gaussian_weight_marginals_match_the_posterior_per_weight(mode: dict[str
             assert abs(np.corrcoef(zi[:, 0], zi[:, k])[0, 1]) < 4 / np.sqrt(len(zi))
 
 
-def test_draws_within_one_call_are_pairwise_uncorrelated() -> None:
-    # Flipout signs (Wen et al. 2018, section 3.1): E[c_s c_t] = 0 for s != t; pooled over one layer's weights
+def _first_layer_perturbation(draws: int, noise_seed: int) -> tuple[NetworkPlan, np.ndarray]:
+    """(w - mu) / sigma of the first layer for each of ``draws`` draws of one call (float64
+    [draws, 64, 32]) of a 32-64-10 gaussian network's default flip graph."""
     model = _model("gaussian", hidden=(64,), inputs=32)
     plan = plan_from_model(model, [32])
     layer = plan.layers[0]
-    session = _session(flip_graph(plan, 4, seed=5, debug=True))
-    w = _run(session, ["sample0.weight"], np.zeros((1, 32), np.float32), np.random.default_rng(3))[0]
-    pert = ((w - layer.weight_mu) / layer.weight_sigma).reshape(4, -1)
+    session = _session(flip_graph(plan, draws, seed=5, debug=True))
+    w = _run(session, ["sample0.weight"], np.zeros((1, 32), np.float32), np.random.default_rng(noise_seed))[0]
+    return plan, ((w - layer.weight_mu) / layer.weight_sigma).astype(np.float64)
+
+
+def test_draws_within_one_call_are_pairwise_uncorrelated() -> None:
+    # Flipout signs (Wen et al. 2018, section 3.1): E[c_s c_t] = 0 for s != t; pooled over one layer's weights
+    _, pert = _first_layer_perturbation(draws=4, noise_seed=3)
+    pert = pert.reshape(4, -1)
     assert abs(np.corrcoef(pert)[0, 1]) < 4 / np.sqrt(pert.shape[1])  # 4 standard errors of a correlation
 
 
 def test_each_calls_rank_base_is_a_rank_m_matrix_as_documented() -> None:
     # the documented approximation, checked with numpy.linalg.matrix_rank: (w - mu) / sigma of one draw
     # has rank DEFAULT_RANK (the posterior's independent perturbation would have full rank 32)
-    model = _model("gaussian", hidden=(64,), inputs=32)
-    plan = plan_from_model(model, [32])
+    plan, pert = _first_layer_perturbation(draws=2, noise_seed=4)
     layer = plan.layers[0]
-    session = _session(flip_graph(plan, 2, seed=5, debug=True))
-    w = _run(session, ["sample0.weight"], np.zeros((1, 32), np.float32), np.random.default_rng(4))[0]
-    pert = ((w[0] - layer.weight_mu) / layer.weight_sigma).astype(np.float64)
-    assert np.linalg.matrix_rank(pert, tol=1e-3) == DEFAULT_RANK
+    assert np.linalg.matrix_rank(pert[0], tol=1e-3) == DEFAULT_RANK
     full = _session(flip_graph(plan, 2, seed=5, rank=0, debug=True)).run(["sample0.weight"], {"x": np.zeros((1, 32),
                                                                                                     np.float32)})[0]
     assert np.linalg.matrix_rank(((full[0] - layer.weight_mu) / layer.weight_sigma).astype(np.float64), tol=1e-3) == 32
