@@ -54,11 +54,14 @@ from .errors import ReviewStoreUnavailable
 from .review_store import NewItem, ReviewStore, new_item, open_store
 from .spool import Replayer, Spool, SpoolError
 
-__all__ = ["SPOOL_FILE", "ReviewRouter", "accuracy_estimate", "audit_draw"]
+__all__ = ["SPOOL_FILE", "STORE_RETRY_MAX_S", "ReviewRouter", "accuracy_estimate", "audit_draw"]
 
 log = logging.getLogger("demur.review")
 
 SPOOL_FILE = "review-spool.sqlite3"
+STORE_RETRY_MAX_S = 60.0
+"""Longest the router spools without trying the store after a failure, when a replayer
+watches the store (it ends the wait as soon as a replay succeeds)."""
 ACCURACY_LEVEL = 0.95
 _DESCRIBE_TTL_S = 5.0
 _UNAVAILABLE = ("the review store is unavailable; the case is kept in this server's spool and will be "
@@ -236,11 +239,17 @@ class ReviewRouter:
         return notes
 
     def _store_down(self, exc: BaseException) -> None:
+        """Spool without trying the store for a while. With a replayer, until it finds the
+        store answering (``_store_up``), at most ``STORE_RETRY_MAX_S``: each try on the
+        request path can wait out the store's connect timeout (3 s for PostgreSQL), and the
+        HTTP front runs batches on its event loop, so a try every few seconds would stall
+        the worker for most of an outage."""
         if not isinstance(exc, ReviewStoreUnavailable):
             log.error("review store enqueue failed unexpectedly: %r", exc)
         elif time.monotonic() >= self._skip_until:
             log.warning("review store unavailable; spooling: %s", getattr(exc, "message", exc))
-        self._skip_until = time.monotonic() + self._replay_s
+        hold = self._replay_s if self.replayer is None else max(self._replay_s, STORE_RETRY_MAX_S)
+        self._skip_until = time.monotonic() + hold
 
     def _store_up(self) -> None:
         self._skip_until = 0.0

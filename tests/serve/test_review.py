@@ -9,6 +9,7 @@ the audit sample size against scipy.stats.binom quantiles.
 
 from __future__ import annotations
 
+import threading
 from collections.abc import Iterator, Sequence
 from pathlib import Path
 from typing import Any
@@ -26,7 +27,7 @@ from tests.serve._review_helpers import MODEL
 
 
 def test_all_is_exact() -> None:
-    assert sorted(review_module.__all__) == sorted(["SPOOL_FILE", "ReviewRouter", "accuracy_estimate", "audit_draw"])
+    assert sorted(review_module.__all__) == sorted(["SPOOL_FILE", "STORE_RETRY_MAX_S", "ReviewRouter", "accuracy_estimate", "audit_draw"])
 
 
 class SwitchStore:
@@ -107,6 +108,26 @@ def test_store_down_spools_says_so_counts_and_replays_exactly_once(parts: tuple[
     # the store is tried on the request path again
     again = router.route(_results(["abstain"]), x[:1], None, None, MODEL)
     assert "review_id" in again[0]
+
+
+def test_while_the_store_stays_down_the_request_path_does_not_retry_it(parts: tuple[SwitchStore, Spool]) -> None:
+    """A short replay interval does not bring the store back onto the request path: only the
+    replayer's success does (or STORE_RETRY_MAX_S), so an outage costs one timeout, not one
+    per interval."""
+    store, spool = parts
+    router = ReviewRouter(store, spool, replay_s=0.05)
+    x = np.zeros((1, 64), dtype=np.float32)
+    store.down = True
+    router.route(_results(["abstain"]), x, None, None, MODEL)
+    assert router.replayer is not None
+    router.replayer.stop()  # count only the request path's calls from here
+    calls = store.calls
+    threading.Event().wait(0.2)  # four replay intervals
+    router.route(_results(["abstain"]), x, None, None, MODEL)
+    assert store.calls == calls and spool.size() == 2
+    store.down = False
+    router.replayer.run_once()
+    assert "review_id" in router.route(_results(["abstain"]), x, None, None, MODEL)[0]
 
 
 def test_without_a_working_spool_the_answer_says_not_queued(tmp_path: Path, parts: tuple[SwitchStore, Spool]) -> None:
