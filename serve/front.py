@@ -104,7 +104,7 @@ class _Slot:
 
 
 class _Request:
-    __slots__ = ("method", "path", "query", "headers", "body", "keep_alive", "version", "t0", "slot")
+    __slots__ = ("method", "path", "query", "headers", "body", "keep_alive", "version", "t0", "slot", "rows")
 
     def __init__(self, method: bytes, url: bytes, headers: list[tuple[bytes, bytes]], body: bytes,
                  keep_alive: bool, version: str, t0: float, slot: _Slot) -> None:
@@ -116,6 +116,7 @@ class _Request:
         self.version = version
         self.t0 = t0
         self.slot = slot
+        self.rows = 1  # cases in a predict body (set by the front before batching)
 
     def header(self, name: bytes) -> bytes | None:
         return _header(self.headers, name)
@@ -283,6 +284,7 @@ class _Front:
         self.server_name = "127.0.0.1"
         self.server_port = "0"
         self._date = (0, b"")
+        self._stamp = ""
         self._model: tuple[Any, bytes] = (None, b"")
         self.wsgi_busy = 0
 
@@ -331,8 +333,9 @@ class _Front:
             self._answer_error(conn, req, exc)
             return
         cases = body.get("cases") if isinstance(body, dict) else None
+        req.rows = len(cases) if isinstance(cases, list) else 1  # counted once, for the row cap
         self.pending.append((conn, req, body))
-        self.pending_rows += len(cases) if isinstance(cases, list) else 1
+        self.pending_rows += req.rows
         if self.pending_rows >= self._rows_cap():
             self._schedule(0.0)
         else:
@@ -364,8 +367,7 @@ class _Front:
                     f"the request waited longer than {self.config.request_timeout_s:g} s; retry later",
                     retry_after_s=1.0))
                 continue
-            cases = item[2].get("cases") if isinstance(item[2], dict) else None
-            n = len(cases) if isinstance(cases, list) else 1
+            n = item[1].rows
             if chunk and rows + n > cap:
                 self._run(chunk)
                 chunk, rows = [], 0
@@ -409,10 +411,15 @@ class _Front:
         return self._model[1]
 
     def _date_header(self) -> bytes:
+        self._tick()
+        return self._date[1]
+
+    def _tick(self) -> None:
+        """Date header and access-log stamp, formatted once a second (not per request)."""
         now = int(time.time())
         if self._date[0] != now:
             self._date = (now, f"Date: {formatdate(now, usegmt=True)}\r\n".encode("latin-1"))
-        return self._date[1]
+            self._stamp = time.strftime("[%d/%b/%Y:%H:%M:%S %z]", time.localtime(now))
 
     def response(self, status: int, body: bytes, *, keep_alive: bool = True, model: bytes = b"",
                  extra: bytes = b"", content_type: bytes = b"application/json") -> bytes:
@@ -460,8 +467,8 @@ class _Front:
     def log_access(self, client: str, method: bytes, path: bytes, status: int, size: int, seconds: float) -> None:
         if self.access is None:
             return
-        stamp = time.strftime("[%d/%b/%Y:%H:%M:%S %z]")
-        self.access.info('%s %s "%s %s" %d %d %dms', client, stamp, method.decode("latin-1") or "-",
+        self._tick()
+        self.access.info('%s %s "%s %s" %d %d %dms', client, self._stamp, method.decode("latin-1") or "-",
                          path.decode("latin-1") or "-", status, size, int(seconds * 1000))
 
     # -- everything else: the Flask app -------------------------------------------
