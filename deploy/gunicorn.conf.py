@@ -3,12 +3,12 @@
     DEMUR_BUNDLE=/bundles/current gunicorn -c deploy/gunicorn.conf.py
 
 ``demur serve`` needs no file: it builds the same settings from the same
-``ServeConfig`` (``serve.server.gunicorn_options``), so both ways of starting
+``ServeConfig`` (``demur.serve.web.server.gunicorn_options``), so both ways of starting
 the server agree. Settings come from ``$DEMUR_CONFIG`` (a TOML file of
 ServeConfig fields, optional) and ``DEMUR_*`` environment variables.
 
 Sizing for a 2-core host (deploy/README.md, "Sizing"): 2 worker processes of
-demur's loop worker (``serve.front.FrontWorker``: predict answered in batches
+demur's loop worker (``demur.serve.web.front.FrontWorker``: predict answered in batches
 on an event loop), one onnxruntime thread per session; 4 threads per worker
 run the other routes (review API, metrics, admin). One process per core
 keeps both cores busy. Unset ``DEMUR_WORKERS``/``DEMUR_THREADS`` default to
@@ -26,8 +26,8 @@ from __future__ import annotations
 
 import os
 
-from serve.config import build_config
-from serve.server import gunicorn_options
+from demur.serve.config import build_config
+from demur.serve.web.server import gunicorn_options
 
 _env = dict(os.environ)
 _env.setdefault("DEMUR_WORKERS", str(min(os.cpu_count() or 1, 2)))
@@ -35,7 +35,7 @@ _env.setdefault("DEMUR_THREADS", "4")
 _config = build_config(_env.get("DEMUR_CONFIG") or None, _env)
 _options = gunicorn_options(_config)
 
-wsgi_app = "serve.server:app_from_environment()"
+wsgi_app = "demur.serve.web.server:app_from_environment()"
 bind = [_options["bind"]]
 workers = _options["workers"]
 threads = _options["threads"]
@@ -60,23 +60,23 @@ raw_env = [f"DEMUR_WORKERS={workers}", f"DEMUR_THREADS={threads}"]
 def on_starting(server: object) -> None:
     """Fresh Prometheus multiprocess directory before any worker writes to it."""
     if _config.metrics_multiprocess_dir:
-        from serve import metrics
+        from demur.serve.adapters import metrics
 
         metrics.clear_multiprocess_dir(_config.metrics_multiprocess_dir)
         metrics.enable_multiprocess(_config.metrics_multiprocess_dir)
 
 
 def when_ready(server: object) -> None:
-    """SIGHUP to the master reloads the bundle inside every worker (serve/admin.py),
+    """SIGHUP to the master reloads the bundle inside every worker (serve/web/admin.py),
     instead of gunicorn's reload, which would stop the server on a bad bundle."""
-    from serve.admin import forward_reload_signal
+    from demur.serve.web.admin import forward_reload_signal
 
     forward_reload_signal(server)
 
 
 def child_exit(server: object, worker: object) -> None:
     if _config.metrics_multiprocess_dir:
-        from serve import metrics
+        from demur.serve.adapters import metrics
 
         metrics.worker_exit(worker.pid, _config.metrics_multiprocess_dir)  # type: ignore[attr-defined]
 

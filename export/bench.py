@@ -12,7 +12,7 @@ only S = 32; the JSON has the same shape):
   sampler, the flip graph with a fresh base per call (``export/flip.py``) and
   with a bank of 2 stored bases; against a torch loop of S sampled forward
   passes (the obvious code) and torch with S pre-sampled weight sets batched;
-* the summaries (``serve.summary.summarise`` + ``serve.decision.decide``) at
+* the summaries (``demur.serve.core.summary.summarise`` + ``demur.serve.core.decision.decide``) at
   B = 64, S = 32, as a share of the engine time;
 * memory per mode: graph file bytes (and their ratio to the parameter count
   x 4 bytes) and the resident set of a fresh process that loaded it;
@@ -59,14 +59,14 @@ from typing import Any
 import numpy as np
 import onnx
 
-from serve.bundle import Bundle, write_bundle
-from serve.decision import DecisionRule, decide
-from serve.engine import Engine
-from serve.summary import summarise
+from demur.serve.core.bundle import Bundle, write_bundle
+from demur.serve.core.decision import DecisionRule, decide
+from demur.serve.adapters.engine import Engine
+from demur.serve.core.summary import summarise
 
-from .errors import ExportError
-from .flip import flip_graph
-from .graphs import NetworkPlan, means_graph, plan_from_model, sampler_graph, stacked_graph
+from demur.export.errors import ExportError
+from demur.export.flip import flip_graph
+from demur.export.graphs import NetworkPlan, means_graph, plan_from_model, sampler_graph, stacked_graph
 
 __all__ = ["BENCH_FORMAT", "TARGETS", "format_table", "register", "run_bench", "torch_app"]
 
@@ -135,10 +135,10 @@ def _digits() -> tuple[np.ndarray, dict[str, Any]]:
 def _load_model(checkpoint: Path | None) -> tuple[Any, dict[str, Any], bool]:
     import torch
 
-    from .layers import build_model
+    from demur.export.layers import build_model
 
     if checkpoint is not None:
-        from .training import load_checkpoint
+        from demur.export.training import load_checkpoint
 
         model, meta = load_checkpoint(checkpoint)
         return model, meta["inputs"], True
@@ -166,7 +166,7 @@ def _bundles(model: Any, plan: NetworkPlan, spec: dict[str, Any], draws: list[in
     """Per S: one bundle with stacked, sampler, flip (fresh base) and means; one with the flip bank."""
     import torch
 
-    from .layers import sample_network
+    from demur.export.layers import sample_network
 
     out = {}
     for S in draws:
@@ -187,7 +187,7 @@ def _torch_runners(model: Any, S: int, spec: dict[str, Any]) -> dict[str, Callab
     """The two torch alternatives, taking raw inputs like the engine (standardised inside)."""
     import torch
 
-    from .layers import sample_network, variational_layers
+    from demur.export.layers import sample_network, variational_layers
 
     center = torch.tensor(spec["center"], dtype=torch.float32)
     scale = torch.tensor(spec["scale"], dtype=torch.float32)
@@ -254,8 +254,8 @@ def _summary_section(bundles: dict[int, dict[str, Bundle]], xs: np.ndarray, cfg:
 _RSS_DEMUR = """
 import json, sys
 import numpy as np
-from serve.bundle import load_bundle
-from serve.engine import Engine
+from demur.serve.core.bundle import load_bundle
+from demur.serve.adapters.engine import Engine
 def rss():
     for line in open('/proc/self/status'):
         if line.startswith('VmRSS:'):
@@ -274,7 +274,7 @@ def rss():
         if line.startswith('VmRSS:'):
             return int(line.split()[1]) * 1024
 base = rss()
-from export.bench import _baseline_model
+from demur.export.bench import _baseline_model
 model, spec = _baseline_model(sys.argv[1])
 with torch.no_grad():
     torch.stack([model(torch.zeros(64, 64)) for _ in range(int(sys.argv[2]))])
@@ -285,8 +285,8 @@ print(json.dumps({"base": base, "loaded": rss()}))
 _RATE_DEMUR = """
 import sys, time
 import numpy as np
-from serve.bundle import load_bundle
-from serve.engine import Engine
+from demur.serve.core.bundle import load_bundle
+from demur.serve.adapters.engine import Engine
 bundle, kind, rows, threads, start, seconds = sys.argv[1], sys.argv[2], int(sys.argv[3]), int(sys.argv[4]), float(sys.argv[5]), float(sys.argv[6])
 engine = Engine(load_bundle(bundle), graph=kind, intra_threads=threads).load()
 x = np.load(sys.argv[7])[:rows]
@@ -465,7 +465,7 @@ def _body(xs: np.ndarray, B: int) -> bytes:
 
 def _demur_argv(bundle: Bundle, port: int, front: str, workers: int, threads: int, ort: int, graph: str,
                 data: Path) -> list[str]:
-    return [sys.executable, "-m", "serve.cli", "serve", str(bundle.path), "--host", "127.0.0.1", "--port", str(port),
+    return [sys.executable, "-m", "demur.serve.cli", "serve", str(bundle.path), "--host", "127.0.0.1", "--port", str(port),
             "--front", front, "--workers", str(workers), "--threads", str(threads), "--ort-threads", str(ort),
             "--graph", graph, "--data-dir", str(data)]
 
@@ -473,7 +473,7 @@ def _demur_argv(bundle: Bundle, port: int, front: str, workers: int, threads: in
 def _torch_argv(port: int, workers: int, threads: int) -> list[str]:
     return [sys.executable, "-m", "gunicorn", "--bind", f"127.0.0.1:{port}", "--workers", str(workers),
             "--threads", str(threads), "--worker-class", "gthread", "--log-level", "warning",
-            "export.bench:torch_app()"]
+            "demur.export.bench:torch_app()"]
 
 
 def _http_section(bundles: dict[int, dict[str, Bundle]], xs: np.ndarray, model_file: Path, workdir: Path,
@@ -553,7 +553,7 @@ def _http_section(bundles: dict[int, dict[str, Bundle]], xs: np.ndarray, model_f
 def _baseline_model(path: str) -> tuple[Any, dict[str, Any]]:
     import torch
 
-    from .layers import build_model
+    from demur.export.layers import build_model
 
     saved = torch.load(path, weights_only=True)
     model = build_model("mlp", [64], 10, saved["posterior"], hidden=tuple(saved["hidden"]))
@@ -565,7 +565,7 @@ def _baseline_model(path: str) -> tuple[Any, dict[str, Any]]:
 def torch_app() -> Any:
     """The obvious server a user would write: Flask, a torch loop of S sampled forward passes.
 
-    gunicorn factory (``export.bench:torch_app()``); reads the model file named
+    gunicorn factory (``demur.export.bench:torch_app()``); reads the model file named
     by ``DEMUR_BENCH_TORCH_MODEL`` and S from ``DEMUR_BENCH_DRAWS`` when called
     (in each worker). Same request body as demur's predict route; answers mean
     probabilities, predicted label and mutual information per case.
@@ -696,7 +696,7 @@ def run_bench(*, quick: bool = False, checkpoint: Path | None = None, http: bool
         model, spec, trained = _load_model(checkpoint)
         plan = plan_from_model(model, spec["shape"])
         xs, _ = _digits()
-        from .layers import VariationalLinear, variational_layers
+        from demur.export.layers import VariationalLinear, variational_layers
 
         layers = variational_layers(model)
         if not all(isinstance(m, VariationalLinear) for m in layers):

@@ -1,11 +1,11 @@
 """``demur calibrate``: labelled held-out data -> a threshold with a stated guarantee.
 
-The bundle runs through exactly the serving path -- ``serve.engine.Engine`` ->
-``serve.summary.summarise`` -> ``serve.decision.score_values`` -- on the
-calibration split; the numerics of the choice live in ``serve.calibration``.
+The bundle runs through exactly the serving path -- ``demur.serve.adapters.engine.Engine`` ->
+``demur.serve.core.summary.summarise`` -> ``demur.serve.core.decision.score_values`` -- on the
+calibration split; the numerics of the choice live in ``demur.serve.offline.calibration``.
 Then the manifest's decision section gets the new threshold and the
 calibration record, ``drift_reference.score`` is refreshed with the
-calibration scores, and ``serve.bundle.write_manifest`` rewrites manifest and
+calibration scores, and ``demur.serve.core.bundle.write_manifest`` rewrites manifest and
 seal (unknown keys kept). If the target cannot be met, nothing in the bundle
 changes: the message says so with the best achievable figures and the
 command exits non-zero.
@@ -32,8 +32,8 @@ from typing import Any
 
 import numpy as np
 
-from serve.bundle import Bundle, load_bundle, write_manifest
-from serve.calibration import (
+from demur.serve.core.bundle import Bundle, load_bundle, write_manifest
+from demur.serve.offline.calibration import (
     calibration_record,
     classification_metrics,
     conformal_scale,
@@ -42,15 +42,15 @@ from serve.calibration import (
     select_for_abstain,
     select_for_accuracy,
 )
-from serve.decision import SCORE_TASKS, SCORE_UNITS, score_values
-from serve.drift import score_reference
-from serve.engine import Engine
-from serve.errors import CalibrationInfeasible, ConfigError
-from serve.report import ClassificationPlots, RegressionPlots, write_report
-from serve.summary import conformal_variance, summarise
+from demur.serve.core.decision import SCORE_TASKS, SCORE_UNITS, score_values
+from demur.serve.core.drift import score_reference
+from demur.serve.adapters.engine import Engine
+from demur.serve.errors import CalibrationInfeasible, ConfigError
+from demur.serve.offline.report import ClassificationPlots, RegressionPlots, write_report
+from demur.serve.core.summary import conformal_variance, summarise
 
-from .datasets import Dataset, load_dataset
-from .errors import DatasetError
+from demur.export.datasets import Dataset, load_dataset
+from demur.export.errors import DatasetError
 
 __all__ = ["BATCH_ROWS", "CalibrationOutcome", "FLOOR_QUANTILE", "calibrate", "register"]
 
@@ -299,7 +299,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                       help="regression: conformal interval coverage (default: the bundle's interval level)")
     p.add_argument("--score", choices=sorted(SCORE_TASKS), help="decision score (default: the bundle's)")
     p.add_argument("--method", choices=("fixed_sequence", "bonferroni"), default="fixed_sequence",
-                   help="multiple-testing rule for --target-accuracy (see serve/calibration.py)")
+                   help="multiple-testing rule for --target-accuracy (see serve/offline/calibration.py)")
     p.add_argument("--graph", default="auto", help="graph to run (default: what the server would choose)")
     p.add_argument("--engine-seed", type=int, default=0, help="sampler graph seed (reproducible runs)")
     p.add_argument("--report", metavar="DIR", help="write report.json, plots and index.html here")

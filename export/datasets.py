@@ -17,7 +17,7 @@ Split sizes are round(fraction * N) for val, cal and test; train takes the
 rest. Classification splits are stratified by label whenever every split can
 hold every class (otherwise a plain shuffled split). Inputs stay raw and flat
 (float64[N, F]); standardisation is learned from the train split by
-``export.training``.
+``demur.export.training``.
 """
 
 from __future__ import annotations
@@ -30,7 +30,7 @@ from typing import Literal
 
 import numpy as np
 
-from .errors import DatasetError, DatasetNotFound, EmptyDataset, NonNumericFeature, TargetColumnMissing
+from demur.export.errors import DatasetError, DatasetNotFound, EmptyDataset, NonNumericFeature, TargetColumnMissing
 
 __all__ = ["BUILTIN", "FRACTIONS", "MAX_CLASSES", "Dataset", "load_dataset", "split_indices"]
 

@@ -1,6 +1,6 @@
 """Every error the torch side raises on purpose.
 
-All of them descend from ``serve.errors.DemurError`` so the ``demur`` command
+All of them descend from ``demur.serve.errors.DemurError`` so the ``demur`` command
 prints their message instead of a traceback, and each is also the built-in it
 most resembles::
 
@@ -22,7 +22,7 @@ row or file at fault (``field`` carries the column or key).
 
 from __future__ import annotations
 
-from serve.errors import DemurError
+from demur.serve.errors import DemurError
 
 __all__ = [
     "CheckpointError",

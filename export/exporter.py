@@ -4,11 +4,11 @@
 one sampling graph (``stacked``: S pre-drawn weight sets; ``sampler``:
 fresh noise per call; ``flip``: fresh sign-flipped draws, see export/flip.py)
 plus the ``means`` graph, and writes the manifest
-through ``serve.bundle.write_bundle`` (the runtime owns the schema).
+through ``demur.serve.core.bundle.write_bundle`` (the runtime owns the schema).
 
 Two manifest sections are computed through the exact serving path
-(``serve.engine.Engine`` -> ``serve.summary.summarise`` ->
-``serve.decision.score_values``) on the checkpoint's validation split:
+(``demur.serve.adapters.engine.Engine`` -> ``demur.serve.core.summary.summarise`` ->
+``demur.serve.core.decision.score_values``) on the checkpoint's validation split:
 
 * ``decision.threshold``: an UNCALIBRATED default, the 90th percentile of the
   validation mutual information (so roughly 10% of in-distribution cases
@@ -17,7 +17,7 @@ Two manifest sections are computed through the exact serving path
   ``decision.calibration`` is ``null`` and ``decision.basis`` says how the
   default was chosen.
 * ``drift_reference.score``: the same validation scores, the reference the
-  drift monitor compares live scores with (``serve.drift.score_reference``).
+  drift monitor compares live scores with (``demur.serve.core.drift.score_reference``).
 
 A bundle is never half-written: everything goes into a temporary directory
 next to ``out`` that is renamed into place only once the finished bundle has
@@ -43,14 +43,14 @@ from typing import Any
 import numpy as np
 import onnx
 
-from serve.bundle import MANIFEST, Bundle, load_bundle, write_bundle
-from serve.decision import score_values
-from serve.drift import feature_reference, score_reference
-from serve.engine import Engine
-from serve.summary import summarise
+from demur.serve.core.bundle import MANIFEST, Bundle, load_bundle, write_bundle
+from demur.serve.core.decision import score_values
+from demur.serve.core.drift import feature_reference, score_reference
+from demur.serve.adapters.engine import Engine
+from demur.serve.core.summary import summarise
 
-from .errors import ExportError, GraphBuildError
-from .graphs import SEED_MODULUS, NetworkPlan, means_graph, plan_from_model, sampler_graph, stacked_graph
+from demur.export.errors import ExportError, GraphBuildError
+from demur.export.graphs import SEED_MODULUS, NetworkPlan, means_graph, plan_from_model, sampler_graph, stacked_graph
 
 __all__ = [
     "DEFAULT_DRAWS",
@@ -95,8 +95,8 @@ def export_bundle(
     draws / the sampler's recorded seed (``None``: a random one, recorded in
     the manifest). ``name``/``version`` default to the checkpoint's name and "1".
     """
-    from .datasets import load_dataset
-    from .training import load_checkpoint
+    from demur.export.datasets import load_dataset
+    from demur.export.training import load_checkpoint
 
     model, meta = load_checkpoint(checkpoint_dir)
     data = meta.get("data", {})
@@ -210,12 +210,12 @@ def _write_graphs(model: Any, plan: NetworkPlan, root: Path, kind: str, draws: i
     if kind == "stacked":
         import torch
 
-        from .layers import sample_network
+        from demur.export.layers import sample_network
 
         sets = sample_network(model, draws, torch.Generator().manual_seed(seed))
         graph = stacked_graph(plan, sets)
     elif kind == "flip":
-        from .flip import flip_graph  # fresh sign-flipped draws per call (export/flip.py)
+        from demur.export.flip import flip_graph  # fresh sign-flipped draws per call (export/flip.py)
 
         graph = flip_graph(plan, draws, seed)
     else:

@@ -94,7 +94,7 @@ Where the base comes from, the measured trade-off (64-256-256-10 radial MLP,
     its law is the posterior only averaged over the export-time draw, not per
     weight. Stored: (1 + M)x the parameter count.
 
-Noise inputs of the default graph (filled by ``serve/engine.py`` per call
+Noise inputs of the default graph (filled by ``serve/adapters/engine.py`` per call
 from numpy's generator; the law is the name's part before the first dot)::
 
     signs.flip  float32[S, 1, sum(in + out)]   uniform +-1: a_s, c_s per layer
@@ -104,7 +104,7 @@ from numpy's generator; the law is the name's part before the first dot)::
     uniforms    float32[sum(max(in, out)), M/2]  uniform on (0, 1]: chi radii
 
 The ``rank = 0`` and bank graphs draw in the graph instead: every random node
-carries a ``seed`` (``export.graphs.node_seed``), which the engine rewrites at
+carries a ``seed`` (``demur.export.graphs.node_seed``), which the engine rewrites at
 load time like the sampler's. Only networks of ``VariationalLinear`` / ReLU /
 Flatten are supported (conv layers would need per-channel signs inside
 grouped convolutions: use the sampler graph).
@@ -126,8 +126,8 @@ import numpy as np
 import onnx
 from onnx import TensorProto, helper, numpy_helper
 
-from .errors import GraphBuildError
-from .graphs import LayerParams, NetworkPlan, checked_model, node_seed
+from demur.export.errors import GraphBuildError
+from demur.export.graphs import LayerParams, NetworkPlan, checked_model, node_seed
 
 __all__ = ["DEFAULT_BANK", "DEFAULT_RANK", "flip_graph"]
 
@@ -141,7 +141,7 @@ SIGNS_FLIP = "signs.flip"
 SIGNS_BASE = "signs.base"
 NORMALS = "normals"
 UNIFORMS = "uniforms"
-# Graph inputs the engine fills per call; serve/engine.py reads the law from the name's part before
+# Graph inputs the engine fills per call; serve/adapters/engine.py reads the law from the name's part before
 # the first dot ("signs": uniform +-1, "normals": N(0, 1), "uniforms": uniform on (0, 1]).
 
 

@@ -9,7 +9,7 @@ graph draws its own noise inside ONNX (RandomNormal) including the radial
 normalisation. Writing the few ops we need directly is exact, small, and
 leaves one self-contained ``.onnx`` file per graph.
 
-Every graph follows the bundle contract (``serve/bundle.py``)::
+Every graph follows the bundle contract (``serve/core/bundle.py``)::
 
     input  "x":     float32[B, *input_shape]   already standardised
     output "draws": float32[S, B, K]           logits, or (mean, log-variance)
@@ -28,7 +28,7 @@ Kinds built here:
              node its own ``seed`` attribute, see ``node_seed``). gaussian:
              w = mu + sigma * eps; radial: w = mu + sigma * (eps / ||eps||) * r
              with ||.|| over the whole tensor per draw and r ~ N(0, 1) per draw,
-             as ``export.layers`` does. The drawn tensors then feed the same
+             as ``demur.export.layers`` does. The drawn tensors then feed the same
              ops as the stacked graph.
 ``means``    the network of the posterior means: the stacked graph with
              S = 1, output ``[1, B, K]``.
@@ -48,7 +48,7 @@ import numpy as np
 import onnx
 from onnx import TensorProto, helper, numpy_helper
 
-from .errors import GraphBuildError
+from demur.export.errors import GraphBuildError
 
 __all__ = [
     "IR_VERSION",
@@ -134,7 +134,7 @@ def plan_from_model(model: Any, input_shape: Sequence[int]) -> NetworkPlan:
     import torch  # the torch side only; builders below need numpy alone
     from torch import nn
 
-    from .layers import VariationalConv2d, VariationalLayer, VariationalLinear
+    from demur.export.layers import VariationalConv2d, VariationalLayer, VariationalLinear
 
     steps: list[LayerParams | Step] = []
     posteriors = set()
@@ -308,7 +308,7 @@ def _fold_stacked(layer: LayerParams, w: np.ndarray, b: np.ndarray) -> tuple[np.
 def stacked_graph(plan: NetworkPlan, draws: Sequence[Mapping[str, Any]], *, name: str = "stacked") -> onnx.ModelProto:
     """Graph of S pre-drawn weight sets: ``draws[i]`` = {"weight": [S, *w], "bias": [S, out]} per layer.
 
-    ``draws`` is what ``export.layers.sample_network`` returns (tensors or arrays).
+    ``draws`` is what ``demur.export.layers.sample_network`` returns (tensors or arrays).
     """
     _check_plan(plan)
     layers = plan.layers
@@ -341,7 +341,7 @@ def sampler_graph(plan: NetworkPlan, draws: int, seed: int, *, debug: bool = Fal
     """Graph that draws ``draws`` fresh weight sets on every call (RandomNormal in-graph).
 
     ``seed`` fills every RandomNormal node's seed attribute via ``node_seed``;
-    the serving engine rewrites them at load time (see ``serve/engine.py``).
+    the serving engine rewrites them at load time (see ``serve/adapters/engine.py``).
     ``debug=True`` adds outputs ``sample{i}.weight`` / ``sample{i}.bias`` (the
     drawn tensors, torch layout ``[S, *shape]``) and, for radial posteriors,
     ``direction{i}.weight`` / ``direction{i}.bias`` (eps / ||eps||), for tests.

@@ -56,7 +56,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from .errors import LayerConfigError
+from demur.export.errors import LayerConfigError
 
 __all__ = [
     "ARCHITECTURES",

@@ -12,7 +12,7 @@ and:
   much epistemic spread the trained posterior carries:
   ``init_spread`` = 0.02 (each weight's initial posterior standard deviation;
   for the radial posterior the layer turns it into sigma = 0.02 * sqrt(d) for
-  a d-element tensor, see ``export.layers``), ``rho_lr`` = 1e-3 (Adam step
+  a d-element tensor, see ``demur.export.layers``), ``rho_lr`` = 1e-3 (Adam step
   size of the ``*_rho`` parameters; the means keep ``lr`` = 3e-3) and
   ``kl_weight`` = ``KL_WEIGHT`` = 1 (the plain ELBO, as Farquhar et al. 2020
   train the radial posterior), ramped linearly from 0 over the first
@@ -93,11 +93,11 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from serve.drift import feature_reference
+from demur.serve.core.drift import feature_reference
 
-from .datasets import Dataset, load_dataset
-from .errors import CheckpointError, LayerConfigError, TrainingError
-from .layers import ARCHITECTURES, POSTERIORS, build_model, total_kl, variational_layers
+from demur.export.datasets import Dataset, load_dataset
+from demur.export.errors import CheckpointError, LayerConfigError, TrainingError
+from demur.export.layers import ARCHITECTURES, POSTERIORS, build_model, total_kl, variational_layers
 
 __all__ = [
     "CHECKPOINT_FORMAT",

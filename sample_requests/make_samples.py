@@ -2,7 +2,7 @@
 
 The scenario: handwritten postcode digits at a parcel-sorting depot, scikit-learn's
 bundled 8x8 digits (``load_digits``, values 0..16), rows taken from the fixed test
-split of ``export.datasets.load_dataset("digits")`` (seed 0), which no model trains on.
+split of ``demur.export.datasets.load_dataset("digits")`` (seed 0), which no model trains on.
 
 Which rows, chosen without any model (nearest class centroid of the train split):
 
@@ -31,7 +31,7 @@ import numpy as np
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent))
 
-from export.datasets import load_dataset  # noqa: E402  (torch-free)
+from demur.export.datasets import load_dataset  # noqa: E402  (torch-free)
 
 
 def _ints(row: np.ndarray) -> list[float | int]:

@@ -17,13 +17,13 @@ import sys
 from collections.abc import Callable, Sequence
 from importlib.metadata import entry_points
 
-from .errors import DemurError
+from demur.serve.errors import DemurError
 
 __all__ = ["build_parser", "main"]
 
 _BUILTIN = (
-    ("serve", "serve.server:register"),
-    ("status", "serve.snapshot:register"),
+    ("serve", "demur.serve.web.server:register"),
+    ("status", "demur.serve.offline.status:register"),
 )
 
 

@@ -20,7 +20,7 @@ from dataclasses import dataclass, fields
 from pathlib import Path
 from typing import Any, get_type_hints
 
-from .errors import ConfigError
+from demur.serve.errors import ConfigError
 
 __all__ = ["ENV_PREFIX", "FRONTS", "ServeConfig", "build_config"]
 
@@ -33,7 +33,7 @@ DEFAULT_MAX_BODY_BYTES = 8 * 1024 * 1024
 DEFAULT_LEASE_S = 300.0
 
 FRONTS = ("loop", "threads")
-"""HTTP fronts: ``loop`` answers predict on an event loop in batches (serve/front.py),
+"""HTTP fronts: ``loop`` answers predict on an event loop in batches (serve/web/front.py),
 ``threads`` runs every route in gunicorn's threaded worker."""
 
 
@@ -48,7 +48,7 @@ class ServeConfig:
     port: int = DEFAULT_PORT
     workers: int = 1
     threads: int = 8
-    front: str = "loop"  # loop: predict on an event loop (serve/front.py); threads: everything in Flask threads
+    front: str = "loop"  # loop: predict on an event loop (serve/web/front.py); threads: everything in Flask threads
     # graph
     graph: str = "auto"  # auto | stacked | sampler | flip | means
     ort_intra_threads: int = 1
@@ -64,7 +64,7 @@ class ServeConfig:
     request_timeout_s: float = 10.0
     # micro-batching
     batch_wait_ms: float = 0.0  # loop front: 0 batches what arrived in one loop pass (measured best, demur bench)
-    batch_max_rows: int = 0  # cases per merged graph call; 0: by graph kind (serve/batching.py, rows_cap)
+    batch_max_rows: int = 0  # cases per merged graph call; 0: by graph kind (serve/web/batching.py, rows_cap)
     queue_max_requests: int = 512
     # review
     data_dir: str = "demur-data"

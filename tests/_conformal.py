@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from serve.calibration import conformal_scale
+from demur.serve.offline.calibration import conformal_scale
 
 
 def split_coverages(y: np.ndarray, mean: np.ndarray, sd: np.ndarray, alpha: float, *,

@@ -102,8 +102,8 @@ def tiny_bundle_factory(tmp_path_factory: pytest.TempPathFactory) -> Callable[..
     """Build (once per argument set) a bundle of an untrained small network; see the module docstring."""
     import torch
 
-    from export.exporter import bundle_from_model
-    from export.layers import build_model
+    from demur.export.exporter import bundle_from_model
+    from demur.export.layers import build_model
 
     cache: dict[tuple[Any, ...], Any] = {}
     root = tmp_path_factory.mktemp("tiny-bundles")
@@ -167,8 +167,8 @@ def _checkpoint_cache(request: pytest.FixtureRequest) -> Path | None:
 def _trained_checkpoint(request: pytest.FixtureRequest, source: str, settings: dict[str, Any]) -> Path:
     """Train once, keyed by the settings AND the source of the training code, so any change
     to layers/training/datasets retrains instead of reusing a stale checkpoint."""
-    from export.datasets import load_dataset
-    from export.training import train
+    from demur.export.datasets import load_dataset
+    from demur.export.training import train
 
     root = Path(__file__).resolve().parents[1]
     key = hashlib.sha256(json.dumps({"source": source, **settings}, sort_keys=True, default=list).encode())
@@ -204,7 +204,7 @@ def _trained_checkpoint(request: pytest.FixtureRequest, source: str, settings: d
 @pytest.fixture(scope="session")
 def demo_dataset() -> Any:
     """The parcel-depot digits: scikit-learn's bundled 8x8 digits in four fixed splits."""
-    from export.datasets import load_dataset
+    from demur.export.datasets import load_dataset
 
     return load_dataset("digits")
 
@@ -218,7 +218,7 @@ def demo_checkpoint(request: pytest.FixtureRequest) -> Path:
 @pytest.fixture(scope="session")
 def demo_bundle(demo_checkpoint: Path, tmp_path_factory: pytest.TempPathFactory) -> Any:
     """The demo model as stacked draws (S = 32, seed 0)."""
-    from export.exporter import export_bundle
+    from demur.export.exporter import export_bundle
 
     out = tmp_path_factory.mktemp("demo") / "digits-stacked"
     return export_bundle(demo_checkpoint, out, kind="stacked", draws=32, seed=0, version="1")
@@ -227,7 +227,7 @@ def demo_bundle(demo_checkpoint: Path, tmp_path_factory: pytest.TempPathFactory)
 @pytest.fixture(scope="session")
 def demo_sampler_bundle(demo_checkpoint: Path, tmp_path_factory: pytest.TempPathFactory) -> Any:
     """The demo model as a sampler graph (S = 32 fresh draws per call, recorded seed 0)."""
-    from export.exporter import export_bundle
+    from demur.export.exporter import export_bundle
 
     out = tmp_path_factory.mktemp("demo") / "digits-sampler"
     return export_bundle(demo_checkpoint, out, kind="sampler", draws=32, seed=0, version="1")
@@ -236,7 +236,7 @@ def demo_sampler_bundle(demo_checkpoint: Path, tmp_path_factory: pytest.TempPath
 @pytest.fixture(scope="session")
 def diabetes_dataset() -> Any:
     """scikit-learn's bundled diabetes data (regression) in four fixed splits."""
-    from export.datasets import load_dataset
+    from demur.export.datasets import load_dataset
 
     return load_dataset("diabetes")
 
@@ -250,7 +250,7 @@ def diabetes_checkpoint(request: pytest.FixtureRequest) -> Path:
 @pytest.fixture(scope="session")
 def diabetes_bundle(diabetes_checkpoint: Path, tmp_path_factory: pytest.TempPathFactory) -> Any:
     """The diabetes regression model as stacked draws (S = 32, seed 0)."""
-    from export.exporter import export_bundle
+    from demur.export.exporter import export_bundle
 
     out = tmp_path_factory.mktemp("diabetes") / "diabetes-stacked"
     return export_bundle(diabetes_checkpoint, out, kind="stacked", draws=32, seed=0, version="1")

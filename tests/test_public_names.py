@@ -9,13 +9,14 @@ import pkgutil
 
 import pytest
 
-import export
-import serve
+import demur.export
+import demur.serve
 
 MODULES = sorted(
-    f"{pkg.__name__}.{info.name}"
-    for pkg in (serve, export)
-    for info in pkgutil.iter_modules(pkg.__path__)
+    info.name
+    for pkg in (demur.serve, demur.export)
+    for info in pkgutil.walk_packages(pkg.__path__, pkg.__name__ + ".")
+    if not info.ispkg
 )
 
 

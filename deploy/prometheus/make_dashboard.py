@@ -24,13 +24,13 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 
-from export.datasets import load_dataset  # noqa: E402
-from serve.app import create_app  # noqa: E402
-from serve.bundle import load_bundle  # noqa: E402
-from serve.config import ServeConfig  # noqa: E402
-from serve.engine import Engine  # noqa: E402
-from serve.metrics import Metrics  # noqa: E402
-from serve.snapshot import read_status  # noqa: E402
+from demur.export.datasets import load_dataset  # noqa: E402
+from demur.serve.web.app import create_app  # noqa: E402
+from demur.serve.core.bundle import load_bundle  # noqa: E402
+from demur.serve.config import ServeConfig  # noqa: E402
+from demur.serve.adapters.engine import Engine  # noqa: E402
+from demur.serve.adapters.metrics import Metrics  # noqa: E402
+from demur.serve.offline.status import read_status  # noqa: E402
 
 PSI_ALERT = 0.25
 MIN_WINDOW = 200

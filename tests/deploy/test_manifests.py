@@ -8,7 +8,7 @@ JSON Schemas below, written from that reference, from memory, validated with
 the ``jsonschema`` library); the Dockerfile reference for instruction syntax
 (FROM ... AS, USER, HEALTHCHECK, EXPOSE); gunicorn's settings list
 (``gunicorn.config.Config().settings``); the live Flask ``url_map`` of
-``serve.app.create_app`` for every route a probe or health check names.
+``demur.serve.web.app.create_app`` for every route a probe or health check names.
 """
 
 from __future__ import annotations
@@ -25,8 +25,8 @@ import jsonschema
 import pytest
 import yaml
 
-from serve.auth import TokenSet
-from serve.config import ServeConfig, build_config
+from demur.serve.web.auth import TokenSet
+from demur.serve.config import ServeConfig, build_config
 
 ROOT = Path(__file__).resolve().parents[2]
 DEPLOY = ROOT / "deploy"
@@ -135,7 +135,7 @@ def _container() -> dict[str, Any]:
 
 @pytest.fixture(scope="module")
 def app(tiny_bundle_factory: Any) -> Any:
-    from serve.app import create_app
+    from demur.serve.web.app import create_app
 
     return create_app(ServeConfig(bundle=str(tiny_bundle_factory().path)))
 
@@ -343,10 +343,10 @@ def test_containerfile_env_and_volumes() -> None:
 
 # -- gunicorn settings ------------------------------------------------------------------------
 def test_gunicorn_conf_matches_demur_serve(monkeypatch: pytest.MonkeyPatch) -> None:
-    """Both ways of starting the server give the same settings (serve.server.gunicorn_options)."""
+    """Both ways of starting the server give the same settings (demur.serve.web.server.gunicorn_options)."""
     from gunicorn.config import Config
 
-    from serve.server import gunicorn_options
+    from demur.serve.web.server import gunicorn_options
 
     for key in [k for k in list(__import__("os").environ) if k.startswith("DEMUR_")]:
         monkeypatch.delenv(key)
@@ -362,7 +362,7 @@ def test_gunicorn_conf_matches_demur_serve(monkeypatch: pytest.MonkeyPatch) -> N
         got = conf[key]
         assert (got == [value] if key == "bind" else got == value), key
     assert conf["workers"] == 2 and conf["threads"] == 4
-    assert conf["preload_app"] is False and conf["worker_class"] == "serve.front.FrontWorker"
+    assert conf["preload_app"] is False and conf["worker_class"] == "demur.serve.web.front.FrontWorker"
     assert conf["graceful_timeout"] > 0 and conf["timeout"] >= 30
     for hook in ("when_ready", "on_starting", "child_exit"):
         assert callable(conf[hook]) and hook in known

@@ -16,9 +16,9 @@ from typing import Any
 
 import pytest
 
-from export import bench
-from export.bench import BENCH_FORMAT, TARGETS, format_table, run_bench
-from serve.cli import build_parser
+from demur.export import bench
+from demur.export.bench import BENCH_FORMAT, TARGETS, format_table, run_bench
+from demur.serve.cli import build_parser
 
 TINY = {"draws": [4], "batches": [1, 2], "repeats": 1, "budget_s": 0.0, "rss": False,
         "http_s": 1, "worker_models": [("loop", 1, 2, 1, 1.0)]}

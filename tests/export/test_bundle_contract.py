@@ -6,7 +6,7 @@ For each bundle: the manifest's required sections; the graph files' SHA-256
 float32 ``[B, *shape]`` with a free batch axis, output ``draws`` float32
 ``[S, B, K]``) as onnxruntime reports it and as it runs for B = 1 and B = 5;
 and, where the torch model is at hand, ONNX against torch within 1e-4 (max abs
-difference; reference ``export.layers.forward_draws`` on the recorded draws,
+difference; reference ``demur.export.layers.forward_draws`` on the recorded draws,
 and the network of the posterior means).
 
 Add a new export kind or layer type to ``CASES`` (see DEVELOPERS.md).
@@ -22,8 +22,8 @@ import onnxruntime as ort
 import pytest
 import torch
 
-from serve.bundle import FORMAT_NAME, FORMAT_VERSION, GRAPH_KINDS, SCORES
-from serve.engine import Engine
+from demur.serve.core.bundle import FORMAT_NAME, FORMAT_VERSION, GRAPH_KINDS, SCORES
+from demur.serve.adapters.engine import Engine
 
 TOL = 1e-4
 
@@ -49,7 +49,7 @@ def exported(request, tiny_bundle_factory):
         task, kind, posterior, arch = what
         bundle = tiny_bundle_factory(task=task, kind=kind, posterior=posterior, arch=arch)
         return bundle, tiny_bundle_factory.models[bundle.path]
-    from export.training import load_checkpoint
+    from demur.export.training import load_checkpoint
 
     bundle = request.getfixturevalue(what)
     checkpoint = request.getfixturevalue("diabetes_checkpoint" if what.startswith("diabetes") else "demo_checkpoint")
@@ -124,7 +124,7 @@ def test_engine_runs_every_graph(exported) -> None:
 def test_onnx_matches_torch(exported) -> None:
     """Means graph vs the torch network of the means; stacked graph vs forward_draws on the
     draws sample_network makes from the recorded seed. Both within 1e-4."""
-    from export.layers import forward_draws, sample_network
+    from demur.export.layers import forward_draws, sample_network
 
     bundle, model = exported
     m = bundle.manifest

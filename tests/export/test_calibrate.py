@@ -1,7 +1,7 @@
 """``demur calibrate`` end to end: serving path, manifest rewrite, report, refusal.
 
 References: the bundle seal is SHA-256 of manifest.json (hashlib, FIPS 180-4); the
-threshold must equal serve.calibration's choice on scores recomputed through the
+threshold must equal demur.serve.offline.calibration's choice on scores recomputed through the
 serving engine (one implementation); split-conformal coverage (Lei et al. 2018)
 on sklearn's load_diabetes; the digits demo (sklearn's load_digits).
 """
@@ -15,15 +15,15 @@ import math
 import numpy as np
 import pytest
 
-import export.calibrate as calibrate_mod
-from export.calibrate import calibrate
-from serve.bundle import load_bundle, write_manifest
-from serve.calibration import select_for_abstain
-from serve.cli import main
-from serve.decision import rule_from, score_values
-from serve.engine import Engine
-from serve.errors import CalibrationInfeasible, ConfigError
-from serve.summary import conformal_variance, summarise
+import demur.export.calibrate as calibrate_mod
+from demur.export.calibrate import calibrate
+from demur.serve.core.bundle import load_bundle, write_manifest
+from demur.serve.offline.calibration import select_for_abstain
+from demur.serve.cli import main
+from demur.serve.core.decision import rule_from, score_values
+from demur.serve.adapters.engine import Engine
+from demur.serve.errors import CalibrationInfeasible, ConfigError
+from demur.serve.core.summary import conformal_variance, summarise
 from tests._conformal import split_coverages
 
 
@@ -57,7 +57,7 @@ def test_impossible_target_leaves_bundle_untouched(tiny_bundle_factory, copy_bun
 
 
 def test_target_abstain_rewrites_manifest_through_the_serving_path(tiny_bundle_factory, copy_bundle, tmp_path):
-    """The threshold equals serve.calibration.select_for_abstain on scores recomputed with the
+    """The threshold equals demur.serve.offline.calibration.select_for_abstain on scores recomputed with the
     serving Engine + summarise + score_values; unknown manifest keys survive; the seal is updated."""
     path = copy_bundle(tiny_bundle_factory())
     raw = json.loads((path / "manifest.json").read_text())
@@ -72,7 +72,7 @@ def test_target_abstain_rewrites_manifest_through_the_serving_path(tiny_bundle_f
     m = bundle.manifest
     assert m.raw["future_section"] == {"kept": True} and m.raw["decision"]["future_key"] == 7
 
-    from export.datasets import load_dataset
+    from demur.export.datasets import load_dataset
 
     ds = load_dataset("digits")
     engine = Engine(load_bundle(path), seed=0).load()
@@ -142,7 +142,7 @@ def test_demo_calibration_through_the_cli(demo_bundle, copy_bundle, tmp_path, ca
 @pytest.mark.slow
 def test_diabetes_conformal_calibration(diabetes_bundle, copy_bundle, tmp_path):
     """Split conformal on load_diabetes through the CLI path: the record holds q and the level, the
-    served interval becomes mean ± q * sd (serve/summary.py), test coverage is reported."""
+    served interval becomes mean ± q * sd (serve/core/summary.py), test coverage is reported."""
     path = copy_bundle(diabetes_bundle)
     out = calibrate(str(path), "diabetes", coverage=0.9, report=str(tmp_path / "rep"))
     m = load_bundle(path).manifest

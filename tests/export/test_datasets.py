@@ -13,9 +13,9 @@ import numpy as np
 import pytest
 from sklearn.datasets import load_diabetes, load_digits
 
-import export.datasets as datasets
-from export.datasets import FRACTIONS, load_dataset, split_indices
-from export.errors import (
+import demur.export.datasets as datasets
+from demur.export.datasets import FRACTIONS, load_dataset, split_indices
+from demur.export.errors import (
     DatasetError,
     DatasetNotFound,
     EmptyDataset,

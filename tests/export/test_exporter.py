@@ -1,7 +1,7 @@
 """export/exporter.py: checkpoint -> bundle.
 
 References:
-* torch: ``export.layers.forward_draws`` on the draws ``sample_network`` makes from
+* torch: ``demur.export.layers.forward_draws`` on the draws ``sample_network`` makes from
   the recorded seed, max abs diff <= 1e-4 (foundation issue tolerance).
 * The default threshold recomputed independently: per-draw softmax with
   scipy.special.softmax, mutual information = H[mean p] - mean_s H[p_s] with
@@ -18,15 +18,15 @@ import pytest
 import torch
 from scipy import special, stats
 
-import export.exporter as exporter
-from export.datasets import load_dataset
-from export.errors import ExportError
-from export.exporter import bundle_from_model, export_bundle
-from export.layers import forward_draws, sample_network
-from export.training import load_checkpoint, standardise_inputs, train
-from serve.bundle import load_bundle
-from serve.cli import main
-from serve.engine import Engine
+import demur.export.exporter as exporter
+from demur.export.datasets import load_dataset
+from demur.export.errors import ExportError
+from demur.export.exporter import bundle_from_model, export_bundle
+from demur.export.layers import forward_draws, sample_network
+from demur.export.training import load_checkpoint, standardise_inputs, train
+from demur.serve.core.bundle import load_bundle
+from demur.serve.cli import main
+from demur.serve.adapters.engine import Engine
 
 
 @pytest.fixture(scope="module")

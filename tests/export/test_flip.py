@@ -1,7 +1,7 @@
 """export/flip.py: fresh sign-flipped draws per call.
 
 References named beside each check:
-* torch's own ``F.linear`` through ``export.layers.forward_draws`` (the graph's
+* torch's own ``F.linear`` through ``demur.export.layers.forward_draws`` (the graph's
   two-matmul form must equal the plain forward pass of the weights it used);
 * Flipout (Wen et al., ICLR 2018, eq. 4) and the symmetry argument in the
   module docstring: each draw's weights follow the base's law exactly;
@@ -15,11 +15,11 @@ References named beside each check:
 * ``numpy.linalg.matrix_rank`` for the documented approximation (each call's
   base is a rank-M matrix);
 * predictive summaries compared with independent draws
-  (``serve.summary.summarise``) on bundled digits, tolerances stated there.
+  (``demur.serve.core.summary.summarise``) on bundled digits, tolerances stated there.
 
 The graphs' noise inputs are filled here by ``_feed`` (numpy's ``integers``,
 ``standard_normal``, ``random``), an implementation independent of the
-engine's (serve/engine.py, tested in tests/serve/test_engine.py).
+engine's (serve/adapters/engine.py, tested in tests/serve/test_engine.py).
 KS tests use fixed seeds; the significance level 0.001 is common practice.
 """
 
@@ -33,11 +33,11 @@ import pytest
 import torch
 from scipy import stats
 
-from export import flip
-from export.errors import GraphBuildError
-from export.flip import DEFAULT_RANK, flip_graph
-from export.graphs import NetworkPlan, plan_from_model, stacked_graph
-from export.layers import build_model, forward_draws, sample_network
+from demur.export import flip
+from demur.export.errors import GraphBuildError
+from demur.export.flip import DEFAULT_RANK, flip_graph
+from demur.export.graphs import NetworkPlan, plan_from_model, stacked_graph
+from demur.export.layers import build_model, forward_draws, sample_network
 
 ALPHA = 1e-3
 MODES = [{"rank": DEFAULT_RANK}, {"rank": 0}, {"bank": 3}]   # the default rank-M base, full-rank, stored bank
@@ -92,7 +92,7 @@ def _samples(session: ort.InferenceSession, x: np.ndarray, layers: int, rng: np.
 @pytest.mark.parametrize("posterior", ["gaussian", "radial"])
 @pytest.mark.parametrize("mode", MODES, ids=MODE_IDS)
 def test_output_equals_torch_forward_of_the_weights_each_draw_used(posterior: str, mode: dict[str, int]) -> None:
-    # reference: torch F.linear via export.layers.forward_draws, max abs diff <= 1e-4
+    # reference: torch F.linear via demur.export.layers.forward_draws, max abs diff <= 1e-4
     model = _model(posterior)
     plan = plan_from_model(model, [6])
     session = _session(flip_graph(plan, 5, seed=11, debug=True, **mode))
@@ -104,8 +104,8 @@ def test_output_equals_torch_forward_of_the_weights_each_draw_used(posterior: st
 
 
 def test_default_graph_declares_the_documented_noise_inputs_and_no_random_nodes() -> None:
-    # the contract with serve/engine.py (module docstring): names, laws, float32, fixed shapes
-    from serve.engine import _NOISE_LAWS
+    # the contract with serve/adapters/engine.py (module docstring): names, laws, float32, fixed shapes
+    from demur.serve.adapters.engine import _NOISE_LAWS
 
     S, M = 4, DEFAULT_RANK
     for posterior in ("gaussian", "radial"):
@@ -281,10 +281,10 @@ def test_predictive_summaries_agree_with_independent_draws_on_the_digits(demo_ch
     small-sample bias). Predicted labels agree on at least 97% of cases. The trained demo's
     posterior is narrow (test-set MI of a few 1e-6 nats), so this mostly checks the plumbing;
     the noisy-network test below checks the statistics."""
-    from serve.summary import summarise
+    from demur.serve.core.summary import summarise
 
-    from export.datasets import load_dataset
-    from export.training import load_checkpoint
+    from demur.export.datasets import load_dataset
+    from demur.export.training import load_checkpoint
 
     model, meta = load_checkpoint(demo_checkpoint)
     data = load_dataset("digits")
@@ -315,7 +315,7 @@ def test_predictive_summaries_agree_with_independent_draws_on_the_digits(demo_ch
 def test_summaries_agree_with_independent_draws_on_a_noisy_network(posterior: str, sigma: float) -> None:
     """An untrained 64-64-10 network with wide sigmas (MI ~0.02-0.2 nats) on 200 bundled digits
     (sklearn.datasets.load_digits), default rank-16 flip graph, 64 calls of 32 draws, against 2048
-    independent draws (torch, export.layers.sample_network + forward_draws). Tolerances:
+    independent draws (torch, demur.export.layers.sample_network + forward_draws). Tolerances:
     mean |delta p| < 0.01 (Monte Carlo error of 2048-draw means, a few 1e-3); mean MI of 32-draw
     sets within 15% (module docstring, measured on 64-256-256-10: gaussian -0.8 +- 0.6%, radial
     -3.8 +- 1.5%; here gaussian +0.4%, radial -7%; draws within one call share |eps|); the spread
@@ -323,7 +323,7 @@ def test_summaries_agree_with_independent_draws_on_a_noisy_network(posterior: st
     gaussian 2.7x, radial 0.9x; a layer-wide normal gain instead of the chi radii: gaussian 11x)."""
     from sklearn.datasets import load_digits
 
-    from serve.summary import summarise
+    from demur.serve.core.summary import summarise
 
     torch.manual_seed(0)
     model = build_model("mlp", [64], 10, posterior, hidden=(64,), init_sigma=sigma)

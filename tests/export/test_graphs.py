@@ -2,7 +2,7 @@
 sampling distributions they claim to draw from.
 
 References:
-* torch: ``export.layers.forward_draws`` (torch.nn.functional.linear / conv2d)
+* torch: ``demur.export.layers.forward_draws`` (torch.nn.functional.linear / conv2d)
   for the same weight draws; agreement within 1e-4 (max abs difference), the
   tolerance the foundation issue sets for float32 graphs.
 * Radial posterior: Farquhar, Osborne & Gal, AISTATS 2020, eq. 2:
@@ -23,10 +23,10 @@ import torch
 from scipy import stats
 from torch import nn
 
-import export.graphs as graphs
-from export.errors import GraphBuildError
-from export.graphs import means_graph, node_seed, plan_from_model, sampler_graph, stacked_graph
-from export.layers import VariationalLinear, build_model, forward_draws, sample_network
+import demur.export.graphs as graphs
+from demur.export.errors import GraphBuildError
+from demur.export.graphs import means_graph, node_seed, plan_from_model, sampler_graph, stacked_graph
+from demur.export.layers import VariationalLinear, build_model, forward_draws, sample_network
 
 TOL = 1e-4  # max abs difference, ONNX vs torch (foundation issue)
 Z_MAX = 5.0  # statistical tolerance: |z| <= 5 for every element (false alarm < 1e-4 over ~1e2 elements)
@@ -59,7 +59,7 @@ def _means_reference(model: nn.Sequential, x: torch.Tensor) -> np.ndarray:
 @pytest.mark.parametrize("posterior", ["radial", "gaussian"])
 @pytest.mark.parametrize(("arch", "shape", "k"), CASES)
 def test_stacked_graph_equals_torch_forward_draws(arch: str, shape: tuple[int, ...], k: int, posterior: str) -> None:
-    """Reference: export.layers.forward_draws on the same draws; max abs diff <= 1e-4."""
+    """Reference: demur.export.layers.forward_draws on the same draws; max abs diff <= 1e-4."""
     model = _model(arch, shape, k, posterior)
     draws = sample_network(model, 16, torch.Generator().manual_seed(3))
     x = torch.randn(7, *shape, generator=torch.Generator().manual_seed(4))

@@ -17,9 +17,9 @@ import torch.nn.functional as F
 from torch import nn
 from torch.distributions import Normal, kl_divergence
 
-import export.layers as layers
-from export.errors import LayerConfigError
-from export.layers import (
+import demur.export.layers as layers
+from demur.export.errors import LayerConfigError
+from demur.export.layers import (
     VariationalConv2d,
     VariationalLinear,
     build_model,

@@ -18,11 +18,11 @@ import torch
 from sklearn.datasets import load_diabetes
 from sklearn.metrics import accuracy_score, log_loss
 
-import export.training as training
-from export.datasets import load_dataset
-from export.errors import CheckpointError, LayerConfigError
-from export.layers import VariationalLinear, variational_layers
-from export.training import (
+import demur.export.training as training
+from demur.export.datasets import load_dataset
+from demur.export.errors import CheckpointError, LayerConfigError
+from demur.export.layers import VariationalLinear, variational_layers
+from demur.export.training import (
     CHECKPOINT_FORMAT,
     evaluate,
     expected_calibration_error,
@@ -30,7 +30,7 @@ from export.training import (
     standardise_inputs,
     train,
 )
-from serve.cli import main
+from demur.serve.cli import main
 
 
 def test_all_is_exact():

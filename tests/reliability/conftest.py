@@ -14,7 +14,7 @@ from typing import Any
 
 import pytest
 
-from serve.bundle import load_bundle, write_manifest
+from demur.serve.core.bundle import load_bundle, write_manifest
 
 from .harness import RECORDS, format_table
 

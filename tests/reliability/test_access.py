@@ -18,8 +18,8 @@ from typing import Any
 
 import requests
 
-from serve.app import create_app
-from serve.config import ServeConfig
+from demur.serve.web.app import create_app
+from demur.serve.config import ServeConfig
 
 from .conftest import TOKENS
 from .harness import Server, record
@@ -91,7 +91,7 @@ def test_every_protected_route_checks_its_token(tiny_bundle_factory: Any, tmp_pa
             r = call(method, path, f"Bearer {TOKENS[scope]}")  # the right scope gets past the check
             if r.status_code in (401, 403) or r.status_code >= 500:
                 problems.append(f"{method} {path} [right token]: {r.status_code} {r.text[:120]}")
-            if scope != "admin":  # admin implies every scope (serve/auth.py)
+            if scope != "admin":  # admin implies every scope (serve/web/auth.py)
                 r = call(method, path, f"Bearer {TOKENS['admin']}")
                 if r.status_code in (401, 403) or r.status_code >= 500:
                     problems.append(f"{method} {path} [admin token]: {r.status_code}")

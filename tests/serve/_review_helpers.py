@@ -19,7 +19,7 @@ from pathlib import Path
 
 import pytest
 
-from serve.review_store import NewItem, new_item
+from demur.serve.review.store import NewItem, new_item
 
 PG_URL = os.environ.get("DEMUR_TEST_POSTGRES", "postgresql://postgres@127.0.0.1:5432/test")
 """The real PostgreSQL the store tests run against (CI starts it; trust auth)."""

@@ -13,12 +13,12 @@ from typing import Any
 
 import pytest
 
-from serve.app import create_app
-from serve.config import ServeConfig
-from serve.engine import Engine
+from demur.serve.web.app import create_app
+from demur.serve.config import ServeConfig
+from demur.serve.adapters.engine import Engine
 
 ROOT_DIR = Path(__file__).resolve().parents[2]
-"""The repository root (sample_requests/, serve/openapi.json)."""
+"""The repository root (sample_requests/, serve/web/openapi.json)."""
 
 
 @pytest.fixture()

@@ -1,4 +1,4 @@
-"""serve/admin.py: roll-outs through the admin route and SIGHUP.
+"""serve/web/admin.py: roll-outs through the admin route and SIGHUP.
 
 References: RFC 6750 section 3.1 (401 for a missing/invalid bearer token, 403
 for insufficient scope); the bundle's own seal and SHA-256 digests
@@ -21,10 +21,10 @@ from typing import Any
 
 import pytest
 
-from serve import admin
-from serve.app import create_app
-from serve.bundle import load_bundle, write_manifest
-from serve.config import ServeConfig
+from demur.serve.web import admin
+from demur.serve.web.app import create_app
+from demur.serve.core.bundle import load_bundle, write_manifest
+from demur.serve.config import ServeConfig
 
 ADMIN = {"Authorization": "Bearer adm-token-1"}
 REVIEW = {"Authorization": "Bearer rev-token-1"}

@@ -1,11 +1,11 @@
-"""serve/app.py through Flask's test client: the documented schema, the decision rule,
+"""serve/web/app.py through Flask's test client: the documented schema, the decision rule,
 batch = singles, the seams (review, metrics, roll-out), errors, and the digits demo.
 
-References: the response schema is serve/openapi.json, checked with jsonschema's
+References: the response schema is serve/web/openapi.json, checked with jsonschema's
 Draft 2020-12 validator (the JSON Schema dialect of OpenAPI 3.1); the BALD
 decomposition (Houlsby et al. 2011, eq. 1) for the uncertainty fields, recomputed
 with scipy.stats.entropy; the data set is scikit-learn's bundled digits
-(sklearn.datasets.load_digits) through export.datasets' fixed test split.
+(sklearn.datasets.load_digits) through demur.export.datasets' fixed test split.
 """
 
 from __future__ import annotations
@@ -18,12 +18,12 @@ import pytest
 from jsonschema import Draft202012Validator
 from scipy.stats import entropy
 
-from serve import app as app_module
-from serve import render
-from serve.app import EXTENSION, OPENAPI_PATH, create_app
-from serve.config import ServeConfig
-from serve.engine import Engine
-from serve.errors import GraphRunError
+from demur.serve.web import app as app_module
+from demur.serve.core import render
+from demur.serve.web.app import EXTENSION, OPENAPI_PATH, create_app
+from demur.serve.config import ServeConfig
+from demur.serve.adapters.engine import Engine
+from demur.serve.errors import GraphRunError
 
 DOC = json.loads(OPENAPI_PATH.read_text())
 
@@ -309,7 +309,7 @@ def test_unexpected_errors_are_500_without_traceback(app: Any, caplog: Any) -> N
 
 @pytest.mark.slow
 def test_digits_demo_uncertainty_tracks_errors_and_noise(demo_client: Any, demo_dataset: Any) -> None:
-    """On scikit-learn's bundled digits (export.datasets' fixed test split): mean MI of the cases
+    """On scikit-learn's bundled digits (demur.export.datasets' fixed test split): mean MI of the cases
     the model gets wrong is higher than of those it gets right, and mean MI rises when the
     inputs are corrupted with noise. Expected behaviour of the BALD score (Houlsby et al. 2011);
     not a published figure, the numbers are printed for the report."""

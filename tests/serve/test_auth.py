@@ -1,4 +1,4 @@
-"""Bearer tokens and scopes (serve/auth.py).
+"""Bearer tokens and scopes (serve/web/auth.py).
 
 References: RFC 6750 (the OAuth 2.0 Bearer Token Usage): the ``Authorization:
 Bearer <token>`` form, 401 with a ``WWW-Authenticate: Bearer`` challenge for a
@@ -17,10 +17,10 @@ from typing import Any
 import pytest
 from flask import Flask, g
 
-from serve import auth
-from serve.auth import Principal, TokenSet, install_auth, require
-from serve.config import ServeConfig
-from serve.errors import ConfigError, DemurError, Forbidden, Unauthorized
+from demur.serve.web import auth
+from demur.serve.web.auth import Principal, TokenSet, install_auth, require
+from demur.serve.config import ServeConfig
+from demur.serve.errors import ConfigError, DemurError, Forbidden, Unauthorized
 
 
 def test_all_is_exact() -> None:

@@ -1,4 +1,4 @@
-"""serve/batching.py: gathering concurrent requests into one graph call.
+"""serve/web/batching.py: gathering concurrent requests into one graph call.
 
 References: the stacked-draws graph is a fixed function of its input, and a
 matrix product treats each row of the batch independently (definition of the
@@ -16,11 +16,11 @@ from typing import Any
 import numpy as np
 import pytest
 
-from serve import batching
-from serve.batching import MicroBatcher, batching_runner
-from serve.config import ServeConfig
-from serve.engine import Engine
-from serve.errors import GraphRunError, Overloaded
+from demur.serve.web import batching
+from demur.serve.web.batching import MicroBatcher, batching_runner
+from demur.serve.config import ServeConfig
+from demur.serve.adapters.engine import Engine
+from demur.serve.errors import GraphRunError, Overloaded
 
 TIMEOUT = 10.0  # bound on every wait in this module (s)
 

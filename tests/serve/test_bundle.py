@@ -1,4 +1,4 @@
-"""serve/bundle.py: a damaged, incomplete or future bundle is refused with a named error,
+"""serve/core/bundle.py: a damaged, incomplete or future bundle is refused with a named error,
 and nothing is loaded half-way.
 
 Reference for the digests: hashlib.sha256 of the file bytes (FIPS 180-4), the
@@ -13,10 +13,10 @@ from pathlib import Path
 
 import pytest
 
-import serve.bundle as bundle_mod
-from serve.bundle import FORMAT_VERSION, load_bundle, sha256_file, write_manifest
-from serve.engine import Engine
-from serve.errors import (
+import demur.serve.core.bundle as bundle_mod
+from demur.serve.core.bundle import FORMAT_VERSION, load_bundle, sha256_file, write_manifest
+from demur.serve.adapters.engine import Engine
+from demur.serve.errors import (
     BundleError,
     BundleNotFound,
     ChecksumMismatch,
@@ -108,7 +108,7 @@ def test_the_seal_and_digests_are_sha256_of_the_bytes(tiny_bundle_factory) -> No
 
 
 def test_unknown_keys_survive_a_rewrite(tiny_bundle_factory, copy_bundle) -> None:
-    """Compatibility policy (serve/bundle.py): unknown sections are written back verbatim."""
+    """Compatibility policy (serve/core/bundle.py): unknown sections are written back verbatim."""
     path = copy_bundle(tiny_bundle_factory())
     raw = _raw(path)
     raw["future_section"] = {"kept": [1, 2, 3]}

@@ -1,4 +1,4 @@
-"""serve/calibration.py against references outside demur.
+"""serve/offline/calibration.py against references outside demur.
 
 References named beside each check: scipy.stats.beta / binomtest (Clopper-Pearson),
 sklearn.metrics.brier_score_loss / log_loss, a hand-worked ECE example (Guo et al.
@@ -21,8 +21,8 @@ from sklearn.datasets import load_diabetes
 from sklearn.linear_model import BayesianRidge
 from sklearn.metrics import brier_score_loss, log_loss
 
-import serve.calibration as cal
-from serve.calibration import (
+import demur.serve.offline.calibration as cal
+from demur.serve.offline.calibration import (
     accuracy_at_referral,
     aurc,
     brier_score,
@@ -37,8 +37,8 @@ from serve.calibration import (
     select_for_abstain,
     select_for_accuracy,
 )
-from serve.errors import CalibrationInfeasible, ConfigError
-from serve.summary import regression_summary
+from demur.serve.errors import CalibrationInfeasible, ConfigError
+from demur.serve.core.summary import regression_summary
 from tests._conformal import split_coverages
 
 
@@ -259,9 +259,9 @@ def test_fingerprint_and_record():
 
 def _digits_pool(bundle, dataset):
     """Scores of the digits held-out pool (cal + test splits) through the serving path, once."""
-    from serve.decision import score_values
-    from serve.engine import Engine
-    from serve.summary import summarise
+    from demur.serve.core.decision import score_values
+    from demur.serve.adapters.engine import Engine
+    from demur.serve.core.summary import summarise
 
     engine = Engine(bundle, graph="stacked").load()
     x = np.concatenate([dataset.x_cal, dataset.x_test])
@@ -315,9 +315,9 @@ def test_guarantee_holds_on_digits_splits(demo_bundle, demo_dataset):
 def test_referral_raises_accepted_accuracy_on_digits(demo_bundle, demo_dataset):
     """Referral works (issue 4): on the digits test split, accuracy on accepted cases with 10%
     referred (highest mutual information) is higher than with none referred."""
-    from serve.decision import score_values
-    from serve.engine import Engine
-    from serve.summary import summarise
+    from demur.serve.core.decision import score_values
+    from demur.serve.adapters.engine import Engine
+    from demur.serve.core.summary import summarise
 
     engine = Engine(demo_bundle, graph="stacked").load()
     s = summarise("classification", engine.run(demo_dataset.x_test), 0.9, {})
@@ -342,8 +342,8 @@ def test_conformal_coverage_and_out_of_range_width_on_diabetes_bundle(diabetes_b
     out of range, with the aleatoric floor that calibration records, is checked in
     tests/export/test_calibrate.py; the width claim at numerics level with sklearn's BayesianRidge
     in test_conformal_coverage_on_diabetes_numerics_level."""
-    from serve.engine import Engine
-    from serve.summary import summarise
+    from demur.serve.adapters.engine import Engine
+    from demur.serve.core.summary import summarise
 
     m = diabetes_bundle.manifest
     engine = Engine(diabetes_bundle, graph="stacked").load()

@@ -1,4 +1,4 @@
-"""serve/decision.py: the rule "abstain iff score > threshold" and where the rule comes from.
+"""serve/core/decision.py: the rule "abstain iff score > threshold" and where the rule comes from.
 
 References: the scores are the summary's own fields (checked against scipy in
 test_summary.py); here the decision must agree with a direct numpy comparison
@@ -16,12 +16,12 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-import serve.decision as decision_mod
-from serve.bundle import SCORES, Decision
-from serve.config import ServeConfig
-from serve.decision import DecisionRule, decide, rule_from, score_values
-from serve.errors import ConfigError
-from serve.summary import classification_summary, regression_summary
+import demur.serve.core.decision as decision_mod
+from demur.serve.core.bundle import SCORES, Decision
+from demur.serve.config import ServeConfig
+from demur.serve.core.decision import DecisionRule, decide, rule_from, score_values
+from demur.serve.errors import ConfigError
+from demur.serve.core.summary import classification_summary, regression_summary
 
 
 def test_all_is_exact():

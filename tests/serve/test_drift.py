@@ -1,4 +1,4 @@
-"""serve/drift.py: the drift reference, PSI and the two-sample KS statistic.
+"""serve/core/drift.py: the drift reference, PSI and the two-sample KS statistic.
 
 References named beside each check: a hand-computed PSI worked example (the
 arithmetic is in the test), ``scipy.stats.ks_2samp`` for KS, scikit-learn's
@@ -16,9 +16,9 @@ import scipy.stats
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-import serve.drift as drift
-from serve.drift import DriftMonitor, bin_fractions, feature_reference, ks_statistic, psi, score_reference
-from serve.errors import ConfigError
+import demur.serve.core.drift as drift
+from demur.serve.core.drift import DriftMonitor, bin_fractions, feature_reference, ks_statistic, psi, score_reference
+from demur.serve.errors import ConfigError
 
 
 def test_all_is_exact() -> None:

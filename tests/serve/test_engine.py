@@ -1,10 +1,10 @@
-"""serve/engine.py: loading, standardisation at the edge, graph choice, sampler seeding,
+"""serve/adapters/engine.py: loading, standardisation at the edge, graph choice, sampler seeding,
 the noise fed to graphs that declare it, and the one place onnxruntime errors become
 GraphRunError.
 
 References: onnxruntime's own InferenceSession run directly on the graph file
 (the bundle contract: input "x" already standardised, output "draws"); the
-manifest's standardisation x_std = (x - center) / scale (serve/bundle.py);
+manifest's standardisation x_std = (x - center) / scale (serve/core/bundle.py);
 scipy.stats (binomtest, kstest against norm and uniform) for the noise laws.
 """
 
@@ -18,10 +18,10 @@ import numpy as np
 import onnxruntime as ort
 import pytest
 
-import serve.engine as engine_mod
-from serve.bundle import load_bundle, write_manifest
-from serve.engine import Engine, reseed_graph
-from serve.errors import ChecksumMismatch, ConfigError, GraphRunError, InvalidInput, NotLoaded
+import demur.serve.adapters.engine as engine_mod
+from demur.serve.core.bundle import load_bundle, write_manifest
+from demur.serve.adapters.engine import Engine, reseed_graph
+from demur.serve.errors import ChecksumMismatch, ConfigError, GraphRunError, InvalidInput, NotLoaded
 
 
 def _raw_cases(bundle, n: int = 5, seed: int = 0) -> np.ndarray:
@@ -115,8 +115,8 @@ def test_two_engines_without_a_seed_draw_different_streams(tiny_bundle_factory) 
 
 def test_reseed_rule_matches_the_exporter() -> None:
     """serve/ cannot import export/, so the seed rule lives twice; this keeps them in step."""
-    from export.graphs import node_seed, plan_from_model, sampler_graph
-    from export.layers import build_model
+    from demur.export.graphs import node_seed, plan_from_model, sampler_graph
+    from demur.export.layers import build_model
 
     plan = plan_from_model(build_model("mlp", (4,), 2, "radial", hidden=(3,)), (4,))
     exported = sampler_graph(plan, 2, seed=12345)
@@ -177,8 +177,8 @@ def test_flip_bundles_with_in_graph_noise_still_run(tiny_bundle_factory, copy_bu
     reseeded at load, fresh per call, repeatable under a seed."""
     import onnx
 
-    from export.flip import flip_graph
-    from export.graphs import plan_from_model
+    from demur.export.flip import flip_graph
+    from demur.export.graphs import plan_from_model
 
     source = tiny_bundle_factory(kind="flip")
     path = copy_bundle(source)
@@ -199,7 +199,7 @@ def test_a_graph_input_the_engine_cannot_fill_is_refused_at_load(tiny_bundle_fac
     import onnx
     from onnx import TensorProto, helper
 
-    from serve.errors import UnsupportedFormat
+    from demur.serve.errors import UnsupportedFormat
 
     path = copy_bundle(tiny_bundle_factory())
     model = onnx.load(str(path / "stacked.onnx"))
@@ -255,7 +255,7 @@ def test_flip_engine_runs_concurrently_with_distinct_draws(tiny_bundle_factory) 
 # -- errors ------------------------------------------------------------------------------
 @pytest.mark.parametrize("exc_name", ["Fail", "InvalidArgument", "RuntimeException", "InvalidGraph", "EPFail"])
 def test_each_onnxruntime_error_maps_to_graph_run_error(exc_name: str) -> None:
-    """The one mapping (serve.engine._guard): every onnxruntime exception class -> GraphRunError."""
+    """The one mapping (demur.serve.adapters.engine._guard): every onnxruntime exception class -> GraphRunError."""
     cls = getattr(ort.capi.onnxruntime_pybind11_state, exc_name)
 
     def boom():

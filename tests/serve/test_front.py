@@ -1,4 +1,4 @@
-"""serve/front.py: the event-loop HTTP front of ``demur serve``, over real sockets on 127.0.0.1.
+"""serve/web/front.py: the event-loop HTTP front of ``demur serve``, over real sockets on 127.0.0.1.
 
 References: RFC 9112 (HTTP/1.1 message syntax: pipelining answered in order,
 ``Expect: 100-continue``, chunked bodies, ``Connection: close``); RFC 9110 for

@@ -1,4 +1,4 @@
-"""serve/limits.py: bounded admission (back-pressure) and security headers.
+"""serve/web/limits.py: bounded admission (back-pressure) and security headers.
 
 References: RFC 9110 section 15.6.4 (503 Service Unavailable) and section
 10.2.3 (Retry-After, delay in seconds); the security headers are common
@@ -13,11 +13,11 @@ from typing import Any
 
 import pytest
 
-from serve import limits
-from serve.app import create_app
-from serve.config import ServeConfig
-from serve.errors import Overloaded
-from serve.limits import SECURITY_HEADERS, AdmissionGate, gate_for
+from demur.serve.web import limits
+from demur.serve.web.app import create_app
+from demur.serve.config import ServeConfig
+from demur.serve.errors import Overloaded
+from demur.serve.web.limits import SECURITY_HEADERS, AdmissionGate, gate_for
 
 CASE = [[float(v % 17) for v in range(64)]]
 

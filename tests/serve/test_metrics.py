@@ -1,4 +1,4 @@
-"""serve/metrics.py: the Prometheus metrics, through the app and through a real 2-worker server.
+"""serve/adapters/metrics.py: the Prometheus metrics, through the app and through a real 2-worker server.
 
 References: the exposition is parsed with prometheus_client's own parser
 (``prometheus_client.parser.text_string_to_metric_families``); naming follows
@@ -32,12 +32,12 @@ import scipy.stats
 from prometheus_client import CollectorRegistry, Histogram
 from prometheus_client.parser import text_string_to_metric_families
 
-import serve.metrics as metrics_mod
-from serve.app import create_app
-from serve.config import ServeConfig
-from serve.engine import Engine
-from serve.errors import ReviewStoreUnavailable
-from serve.metrics import SCORE_BUCKETS, Metrics
+import demur.serve.adapters.metrics as metrics_mod
+from demur.serve.web.app import create_app
+from demur.serve.config import ServeConfig
+from demur.serve.adapters.engine import Engine
+from demur.serve.errors import ReviewStoreUnavailable
+from demur.serve.adapters.metrics import SCORE_BUCKETS, Metrics
 from tests._processes import supervised
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -295,7 +295,7 @@ def demur_server(bundle_path: Path, *, workers: int, threads: int, log: Path, en
                  extra: tuple[str, ...] = (), timeout_s: float = 90.0) -> Iterator[str]:
     """``demur serve`` in a subprocess on 127.0.0.1; yields the base URL once every worker is ready."""
     port = free_port()
-    cmd = [sys.executable, "-m", "serve.cli", "serve", str(bundle_path), "--host", "127.0.0.1", "--port", str(port),
+    cmd = [sys.executable, "-m", "demur.serve.cli", "serve", str(bundle_path), "--host", "127.0.0.1", "--port", str(port),
            "--workers", str(workers), "--threads", str(threads), *extra]
     full_env = {k: v for k, v in os.environ.items() if not k.startswith("DEMUR_") and k != "PROMETHEUS_MULTIPROC_DIR"}
     full_env.update(env or {})

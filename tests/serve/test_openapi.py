@@ -1,10 +1,10 @@
-"""serve/openapi.json: a valid OpenAPI 3.1 document that matches the live routes.
+"""serve/web/openapi.json: a valid OpenAPI 3.1 document that matches the live routes.
 
 References: the OpenAPI Specification 3.1.0 (paths, operations, components; its
 schemas are JSON Schema 2020-12, checked with jsonschema's Draft202012Validator.check_schema).
 
 Rule for everyone adding routes: every route the app serves must be listed in
-serve/openapi.json with its methods; a path served only when a component is
+serve/web/openapi.json with its methods; a path served only when a component is
 configured carries ``"x-demur-component": "<name>"`` on its path item.
 """
 
@@ -16,7 +16,7 @@ from typing import Any
 
 from jsonschema import Draft202012Validator
 
-from serve.app import OPENAPI_PATH
+from demur.serve.web.app import OPENAPI_PATH
 
 DOC = json.loads(OPENAPI_PATH.read_text())
 HTTP_METHODS = {"get", "put", "post", "delete", "options", "head", "patch", "trace"}
@@ -61,7 +61,7 @@ def test_refs_resolve() -> None:
 def test_live_routes_match_the_document(app: Any) -> None:
     live = _live_routes(app)
     documented = _documented()
-    assert live - documented == set(), f"routes served but not in serve/openapi.json: {sorted(live - documented)}"
+    assert live - documented == set(), f"routes served but not in serve/web/openapi.json: {sorted(live - documented)}"
     core = {(p, m) for p, m in documented if "x-demur-component" not in DOC["paths"][p]}
     assert core - live == set(), f"documented core routes the app does not serve: {sorted(core - live)}"
 

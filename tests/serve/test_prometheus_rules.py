@@ -5,7 +5,7 @@ PromQL validity) and ``promtool test rules`` on the synthetic series in
 deploy/prometheus/tests/demur-alerts.test.yml, where every alert is shown
 firing on one instance and not firing on others (Debian's ``prometheus``
 package; CI installs it through deploy/system-deps.sh). The metric names the
-rules use are checked against a live exposition of serve/metrics.py.
+rules use are checked against a live exposition of serve/adapters/metrics.py.
 """
 
 from __future__ import annotations
@@ -76,13 +76,13 @@ def test_every_alert_is_tested_firing_and_not_firing() -> None:
 
 
 def test_rules_name_only_metrics_the_server_exports(tiny_bundle_factory: Any) -> None:
-    # every demur_* name in an alert expression must exist in serve/metrics.py's exposition
+    # every demur_* name in an alert expression must exist in serve/adapters/metrics.py's exposition
     from prometheus_client import CollectorRegistry
 
-    from serve.app import create_app
-    from serve.config import ServeConfig
-    from serve.engine import Engine
-    from serve.metrics import Metrics
+    from demur.serve.web.app import create_app
+    from demur.serve.config import ServeConfig
+    from demur.serve.adapters.engine import Engine
+    from demur.serve.adapters.metrics import Metrics
 
     bundle = tiny_bundle_factory(task="classification", kind="stacked", draws=8)
     config = ServeConfig(bundle=str(bundle.path), seed=0)

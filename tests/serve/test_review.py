@@ -1,4 +1,4 @@
-"""The review router (serve/review.py): who goes to review, what happens when the store is down,
+"""The review router (serve/review/router.py): who goes to review, what happens when the store is down,
 and the accuracy estimate from decided items.
 
 References: the exact binomial interval of Clopper & Pearson (1934), in its beta-quantile form
@@ -18,11 +18,11 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from serve import review as review_module
-from serve.errors import ReviewStoreUnavailable
-from serve.review import ReviewRouter, accuracy_estimate, audit_draw
-from serve.review_store import NewItem, SqliteStore
-from serve.spool import Spool
+from demur.serve.review import router as review_module
+from demur.serve.errors import ReviewStoreUnavailable
+from demur.serve.review.router import ReviewRouter, accuracy_estimate, audit_draw
+from demur.serve.review.store import NewItem, SqliteStore
+from demur.serve.review.spool import Spool
 from tests.serve._review_helpers import MODEL
 
 
@@ -196,7 +196,7 @@ def test_router_accuracy_from_decided_items(parts: tuple[SwitchStore, Spool]) ->
 
 
 def test_from_config_uses_sqlite_under_data_dir(tmp_path: Path) -> None:
-    from serve.config import ServeConfig
+    from demur.serve.config import ServeConfig
 
     router = ReviewRouter.from_config(ServeConfig(data_dir=str(tmp_path / "d"), audit_fraction=0.02))
     try:

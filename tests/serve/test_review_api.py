@@ -1,4 +1,4 @@
-"""The reviewer API and page through the Flask test client (serve/review_api.py).
+"""The reviewer API and page through the Flask test client (serve/web/review_api.py).
 
 The loop: predict -> abstain (threshold -1: mutual information is >= 0, so every
 case abstains) -> claim -> decide -> export. Access follows RFC 6750 (401 with a
@@ -18,8 +18,8 @@ from typing import Any
 
 import pytest
 
-from serve import review_api
-from serve.review import ReviewRouter
+from demur.serve.web import review_api
+from demur.serve.review.router import ReviewRouter
 
 TOKENS = {"review_tokens": "desk-token-1,desk-token-2", "admin_tokens": "ops-token",
           "predict_tokens": "sorter-token"}

@@ -1,6 +1,6 @@
 """The review store: one suite, run against SQLite and the real PostgreSQL.
 
-References: the queue semantics are ours (serve/review_store.py docstring);
+References: the queue semantics are ours (serve/review/store.py docstring);
 atomic claiming relies on documented database behaviour: PostgreSQL's
 ``SELECT ... FOR UPDATE SKIP LOCKED`` (PostgreSQL manual, "The Locking
 Clause") and SQLite's ``BEGIN IMMEDIATE`` (SQLite docs, "Transactions":
@@ -20,9 +20,9 @@ import psycopg
 import psycopg_pool
 import pytest
 
-from serve import review_store
-from serve.errors import ConfigError, Conflict, NotFound, ReviewStoreUnavailable
-from serve.review_store import (
+from demur.serve.review import store as review_store
+from demur.serve.errors import ConfigError, Conflict, NotFound, ReviewStoreUnavailable
+from demur.serve.review.store import (
     SCHEMA_VERSION,
     PostgresStore,
     ReviewStore,

@@ -1,6 +1,6 @@
-"""serve/server.py: ``demur serve`` as a real gunicorn server on 127.0.0.1 (bounded waits).
+"""serve/web/server.py: ``demur serve`` as a real gunicorn server on 127.0.0.1 (bounded waits).
 
-References: the response schemas in serve/openapi.json (jsonschema Draft 2020-12, the
+References: the response schemas in serve/web/openapi.json (jsonschema Draft 2020-12, the
 dialect of OpenAPI 3.1); RFC 9110 for the statuses; gunicorn's documented signal
 handling (SIGTERM: graceful shutdown) for the stop.
 """
@@ -24,9 +24,9 @@ import numpy as np
 import pytest
 from jsonschema import Draft202012Validator
 
-from serve.app import OPENAPI_PATH
-from serve.cli import build_parser
-from serve.server import ACCESS_LOG_FORMAT, gunicorn_options
+from demur.serve.web.app import OPENAPI_PATH
+from demur.serve.cli import build_parser
+from demur.serve.web.server import ACCESS_LOG_FORMAT, gunicorn_options
 
 ROOT = Path(__file__).resolve().parents[2]
 DOC = json.loads(OPENAPI_PATH.read_text())
@@ -75,7 +75,7 @@ class Server:
 def _start(bundle_path: Path, tmp_path: Path, *extra: str, env: dict[str, str] | None = None) -> Server:
     port = _free_port()
     log = tmp_path / "server.log"
-    cmd = [sys.executable, "-m", "serve.cli", "serve", str(bundle_path), "--host", "127.0.0.1",
+    cmd = [sys.executable, "-m", "demur.serve.cli", "serve", str(bundle_path), "--host", "127.0.0.1",
            "--port", str(port), "--data-dir", str(tmp_path / "data"), *extra]
     with open(log, "wb") as out:
         proc = subprocess.Popen(cmd, cwd=ROOT, stdout=out, stderr=subprocess.STDOUT,
@@ -117,11 +117,11 @@ def test_cli_flags_reach_the_config() -> None:
 
 
 def test_gunicorn_options() -> None:
-    from serve.config import ServeConfig
+    from demur.serve.config import ServeConfig
 
     opts = gunicorn_options(ServeConfig(bundle="b", port=8601, workers=3, threads=4))
     assert opts["bind"] == "127.0.0.1:8601" and opts["workers"] == 3 and opts["threads"] == 4
-    assert opts["worker_class"] == "serve.front.FrontWorker" and opts["preload_app"] is False  # app after fork
+    assert opts["worker_class"] == "demur.serve.web.front.FrontWorker" and opts["preload_app"] is False  # app after fork
     threaded = gunicorn_options(ServeConfig(bundle="b", front="threads"))
     assert threaded["worker_class"] == "gthread"
     assert "%(U)s" in ACCESS_LOG_FORMAT and "%(q)s" not in ACCESS_LOG_FORMAT and "%(r)s" not in ACCESS_LOG_FORMAT

@@ -1,6 +1,6 @@
-"""serve/snapshot.py: ``demur status`` reads a server's /metrics and prints the monitoring state.
+"""serve/offline/status.py: ``demur status`` reads a server's /metrics and prints the monitoring state.
 
-References: the exposition comes from serve/metrics.py and is parsed by
+References: the exposition comes from serve/adapters/metrics.py and is parsed by
 prometheus_client's parser; the PSI reading is common practice (< 0.1
 stable, 0.1-0.25 moderate, > 0.25 major; a rule of thumb); the queue depths and
 abstentions are the ones the test itself put in.
@@ -16,12 +16,12 @@ import numpy as np
 import pytest
 from prometheus_client import CollectorRegistry
 
-import serve.snapshot as snapshot
-from serve.app import create_app
-from serve.cli import main
-from serve.config import ServeConfig
-from serve.engine import Engine
-from serve.metrics import Metrics
+import demur.serve.offline.status as snapshot
+from demur.serve.web.app import create_app
+from demur.serve.cli import main
+from demur.serve.config import ServeConfig
+from demur.serve.adapters.engine import Engine
+from demur.serve.adapters.metrics import Metrics
 
 
 def test_all_is_exact() -> None:

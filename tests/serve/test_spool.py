@@ -1,4 +1,4 @@
-"""The local spool and its replayer (serve/spool.py): nothing spooled is lost, nothing lands twice.
+"""The local spool and its replayer (serve/review/spool.py): nothing spooled is lost, nothing lands twice.
 
 Reference for durability: SQLite docs, "PRAGMA synchronous" (FULL: a commit is
 synced before it returns) and "Write-Ahead Logging". Exactly-once comes from
@@ -15,10 +15,10 @@ from typing import Any
 
 import pytest
 
-from serve import spool as spool_module
-from serve.errors import ReviewStoreUnavailable
-from serve.review_store import NewItem, SqliteStore
-from serve.spool import Replayer, Spool, SpoolError
+from demur.serve.review import spool as spool_module
+from demur.serve.errors import ReviewStoreUnavailable
+from demur.serve.review.store import NewItem, SqliteStore
+from demur.serve.review.spool import Replayer, Spool, SpoolError
 from tests.serve._review_helpers import item
 
 

@@ -1,4 +1,4 @@
-"""serve/summary.py against references outside demur.
+"""serve/core/summary.py against references outside demur.
 
 References: scipy.special.softmax + scipy.stats.entropy (entropies), the BALD
 decomposition of Houlsby et al. (2011) eq. (1) (MI = H[mean p] - mean H[p_s]),
@@ -20,9 +20,9 @@ from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 from scipy import integrate, special, stats
 
-import serve.summary as summary_mod
-from serve.errors import ConfigError, InvalidInput
-from serve.summary import (
+import demur.serve.core.summary as summary_mod
+from demur.serve.errors import ConfigError, InvalidInput
+from demur.serve.core.summary import (
     ClassificationSummary,
     RegressionSummary,
     classification_summary,

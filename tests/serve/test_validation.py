@@ -1,4 +1,4 @@
-"""serve/validation.py: every malformed request is a 4xx naming its field; valid forms agree.
+"""serve/core/validation.py: every malformed request is a 4xx naming its field; valid forms agree.
 
 References: RFC 8259 (JSON: NaN and Infinity are not JSON numbers; true/false
 are not numbers), RFC 9110 sections 15.5.1 (400), 15.5.14 (413) and 15.5.16
@@ -17,10 +17,10 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from serve import validation
-from serve.bundle import InputSpec
-from serve.errors import InvalidInput, PayloadTooLarge
-from serve.validation import PredictRequest, parse_json, validate_predict
+from demur.serve.core import validation
+from demur.serve.core.bundle import InputSpec
+from demur.serve.errors import InvalidInput, PayloadTooLarge
+from demur.serve.core.validation import PredictRequest, parse_json, validate_predict
 
 NAMES = tuple(f"px_r{r}c{c}" for r in range(8) for c in range(8))
 F32_MAX = float(np.finfo(np.float32).max)  # IEEE 754 binary32 largest finite value
@@ -43,7 +43,7 @@ def _error(body: Any, spec: InputSpec = FLAT, max_cases: int = 16) -> InvalidInp
 
 def test_all_is_exact() -> None:
     public = {n for n in vars(validation) if not n.startswith("_") and n not in ("annotations",)}
-    defined = {n for n in public if getattr(getattr(validation, n), "__module__", "") == "serve.validation"
+    defined = {n for n in public if getattr(getattr(validation, n), "__module__", "") == "demur.serve.core.validation"
                or n.isupper()}
     assert set(validation.__all__) == defined
 

@@ -10,7 +10,7 @@ when the candidate has passed every check:
    a bundle is JSON + ONNX);
 3. the engine opens its sessions and runs a smoke prediction (the manifest's
    centre values as one case) through summary and decision; the draws must
-   have shape [S, 1, K] and be finite (``Runtime.prepare`` in serve/app.py);
+   have shape [S, 1, K] and be finite (``Runtime.prepare`` in serve/web/app.py);
 4. the engine holder's ``Live`` record is replaced in one assignment. A request
    that already took the old engine finishes on it; the next one takes the new.
 
@@ -18,7 +18,7 @@ A bad candidate raises a named ``BundleError`` (422; ``SmokeFailed`` when it
 loads but cannot predict) or ``InvalidInput`` (400)
 and the serving engine is untouched. Two roll-outs at once: ``Conflict`` (409).
 
-Routes (admin scope, ``serve.auth``)::
+Routes (admin scope, ``demur.serve.web.auth``)::
 
     GET  /v1/admin/model     the bundle serving in this process and its path
     POST /v1/admin/model     {"bundle": "<dir under bundles_dir>"} -> roll out
@@ -45,9 +45,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from .bundle import load_bundle
-from .config import ServeConfig
-from .errors import BundleError, Conflict, DemurError, InvalidInput, SmokeFailed
+from demur.serve.core.bundle import load_bundle
+from demur.serve.config import ServeConfig
+from demur.serve.errors import BundleError, Conflict, DemurError, InvalidInput, SmokeFailed
 
 __all__ = [
     "ADMIN_EXTENSION",
@@ -304,14 +304,14 @@ def forward_reload_signal(arbiter: Any) -> None:
 
 def install_admin(app: Any, config: ServeConfig, *, bundle_path: str | None = None) -> AdminState:
     """Register the admin routes and the roll-out state on a Flask app built by
-    ``serve.app.create_app`` (whose ``Runtime`` does the loading and swapping).
+    ``demur.serve.web.app.create_app`` (whose ``Runtime`` does the loading and swapping).
 
     Idempotent: a second call on the same app only updates the config and
     the path serving now."""
     from flask import Blueprint, jsonify, request
 
-    from .auth import require
-    from .validation import parse_json
+    from demur.serve.web.auth import require
+    from demur.serve.core.validation import parse_json
 
     existing = app.extensions.get(ADMIN_EXTENSION)
     if existing is not None:  # already installed (create_app does it): refresh the settings only
@@ -346,7 +346,7 @@ def install_admin(app: Any, config: ServeConfig, *, bundle_path: str | None = No
     @require("admin")
     def admin_roll_out() -> Any:
         if not request.is_json:
-            from .errors import UnsupportedMediaType
+            from demur.serve.errors import UnsupportedMediaType
 
             raise UnsupportedMediaType(
                 f"body must be application/json; got '{request.mimetype or 'none'}'", field="Content-Type")

@@ -43,8 +43,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, TypeVar
 
-from .config import ServeConfig
-from .errors import ConfigError, Forbidden, Unauthorized
+from demur.serve.config import ServeConfig
+from demur.serve.errors import ConfigError, Forbidden, Unauthorized
 
 __all__ = [
     "AUTH_EXTENSION",

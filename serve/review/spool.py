@@ -33,8 +33,8 @@ from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import Any
 
-from .errors import ReviewStoreUnavailable
-from .review_store import NewItem, ReviewStore
+from demur.serve.errors import ReviewStoreUnavailable
+from demur.serve.review.store import NewItem, ReviewStore
 
 __all__ = ["Replayer", "Spool", "SpoolError"]
 

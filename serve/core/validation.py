@@ -36,8 +36,8 @@ from typing import Any
 import numpy as np
 import orjson
 
-from .bundle import InputSpec
-from .errors import InvalidInput, PayloadTooLarge
+from demur.serve.core.bundle import InputSpec
+from demur.serve.errors import InvalidInput, PayloadTooLarge
 
 __all__ = ["BODY_KEYS", "MAX_CASE_ID_CHARS", "PredictRequest", "parse_json", "validate_predict"]
 

@@ -37,7 +37,7 @@ Times are UNIX seconds (float, UTC) from the store's ``clock``; ids sort by
 creation time (48-bit milliseconds then 80 random bits, hex), so the queue is
 served oldest first.
 
-Errors: each backend converts its driver's exceptions into ``serve.errors``
+Errors: each backend converts its driver's exceptions into ``demur.serve.errors``
 in exactly one place (``_sqlite_errors`` / ``_postgres_errors``):
 unreachable, locked or broken -> ``ReviewStoreUnavailable``; a uniqueness
 violation that slipped through -> ``Conflict``.
@@ -67,7 +67,7 @@ from pathlib import Path
 from typing import Any, Protocol, runtime_checkable
 from urllib.parse import parse_qsl, urlencode, urlsplit, urlunsplit
 
-from .errors import ConfigError, Conflict, NotFound, ReviewStoreUnavailable
+from demur.serve.errors import ConfigError, Conflict, NotFound, ReviewStoreUnavailable
 
 __all__ = [
     "KINDS",

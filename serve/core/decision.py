@@ -1,13 +1,13 @@
 """The accept/abstain rule: one score, one threshold, abstain iff score > threshold.
 
-Scores (names from ``serve.bundle.SCORES``; larger always means "less sure"):
+Scores (names from ``demur.serve.core.bundle.SCORES``; larger always means "less sure"):
 
 ==================== ============== ==================================================
 name                 tasks          meaning
 ==================== ============== ==================================================
 mutual_information   both           epistemic part of the uncertainty, nats (default;
                                     for regression the moment-matched bound, see
-                                    serve/summary.py)
+                                    serve/core/summary.py)
 predictive_entropy   both           total uncertainty, nats (regression: differential
                                     entropy bound, target units)
 one_minus_max_prob   classification 1 - largest mean class probability
@@ -35,9 +35,9 @@ from typing import Any
 
 import numpy as np
 
-from .bundle import SCORES
-from .errors import ConfigError
-from .summary import Summary
+from demur.serve.core.bundle import SCORES
+from demur.serve.errors import ConfigError
+from demur.serve.core.summary import Summary
 
 __all__ = ["SCORE_TASKS", "SCORE_UNITS", "DecisionRule", "Decisions", "decide", "rule_from", "score_values"]
 
@@ -115,7 +115,7 @@ def decide(summary: Summary, rule: DecisionRule) -> Decisions:
 def rule_from(manifest: Any, config: Any = None) -> DecisionRule:
     """The rule in force: the bundle's decision section, overridden by ``config``.
 
-    ``manifest`` is a ``serve.bundle.Manifest``; ``config`` a ``ServeConfig`` (or
+    ``manifest`` is a ``demur.serve.core.bundle.Manifest``; ``config`` a ``ServeConfig`` (or
     anything with ``score`` and ``threshold``; ``""``/``None`` mean "not set").
     A configured score different from the bundle's needs a configured
     threshold too: the bundle's threshold is on another score's scale.

@@ -62,12 +62,12 @@ Threshold choice -- three ways
    with locally weighted residuals (Lei, G'Sell, Rinaldo, Tibshirani &
    Wasserman 2018, JASA, Section 5.2): R_i = |y_i - mean_i| / sd_i with sd the
    model's predictive standard deviation sqrt(epistemic + max(aleatoric,
-   floor)) (``serve.summary.conformal_variance``; the aleatoric floor, chosen
+   floor)) (``demur.serve.core.summary.conformal_variance``; the aleatoric floor, chosen
    on the validation split, keeps the interval from shrinking where the
    variance head extrapolates downwards); q = the ceil((n+1)(1-alpha))-th
    smallest R_i. Any scale fixed before the calibration split is seen keeps
    the guarantee: the served interval mean ± q * sd has marginal coverage
-   >= 1 - alpha. serve/summary.py applies it (manifest ``target.conformal_q``
+   >= 1 - alpha. serve/core/summary.py applies it (manifest ``target.conformal_q``
    at ``target.conformal_level``, ``target.aleatoric_floor``).
 
 Held-out metrics
@@ -94,7 +94,7 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
-from .errors import CalibrationInfeasible, ConfigError
+from demur.serve.errors import CalibrationInfeasible, ConfigError
 
 __all__ = [
     "ECE_BINS",

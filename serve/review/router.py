@@ -49,10 +49,10 @@ from typing import Any
 
 import numpy as np
 
-from .config import ServeConfig
-from .errors import ReviewStoreUnavailable
-from .review_store import NewItem, ReviewStore, new_item, open_store
-from .spool import Replayer, Spool, SpoolError
+from demur.serve.config import ServeConfig
+from demur.serve.errors import ReviewStoreUnavailable
+from demur.serve.review.store import NewItem, ReviewStore, new_item, open_store
+from demur.serve.review.spool import Replayer, Spool, SpoolError
 
 __all__ = ["SPOOL_FILE", "STORE_RETRY_MAX_S", "ReviewRouter", "accuracy_estimate", "audit_draw"]
 
@@ -150,7 +150,7 @@ class ReviewRouter:
     def init_app(self, app: Any) -> None:
         """Register the reviewer API and page; wire failures to the app's metrics;
         add the review summary to ``GET /v1/model``; start replaying a non-empty spool."""
-        from .review_api import install_review_api
+        from demur.serve.web.review_api import install_review_api
 
         self._runtime = app.extensions.get("demur")
         install_review_api(app, self)

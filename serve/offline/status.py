@@ -85,7 +85,7 @@ def psi_reading(value: float) -> str:
 
 
 def read_status(text: str, top: int = 5) -> dict[str, Any]:
-    """The monitoring state in an exposition ``text`` (see serve/metrics.py for the names).
+    """The monitoring state in an exposition ``text`` (see serve/adapters/metrics.py for the names).
 
     Returns {"model", "cases", "abstain_ratio", "abstain_window_cases",
     "calibrated_abstain_ratio", "threshold", "psi_max", "top_features" [{"feature",

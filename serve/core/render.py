@@ -18,7 +18,7 @@ Result of one case (``POST /v1/predict``)::
     uncertainty   {mutual_information, predictive_entropy, expected_entropy, unit: "nats"}
                   regression: mutual_information is the moment-matched upper
                   bound on I(y; weights) and predictive_entropy the entropy of
-                  the moment-matched Gaussian (see serve/summary.py); plus
+                  the moment-matched Gaussian (see serve/core/summary.py); plus
                   variance {epistemic, aleatoric, total} in target units squared
     score         {name, value}
     threshold     the threshold compared with score.value
@@ -31,8 +31,8 @@ from typing import Any
 
 import numpy as np
 
-from .decision import DecisionRule, Decisions
-from .summary import ClassificationSummary, RegressionSummary, Summary
+from demur.serve.core.decision import DecisionRule, Decisions
+from demur.serve.core.summary import ClassificationSummary, RegressionSummary, Summary
 
 __all__ = ["model_ref", "results"]
 

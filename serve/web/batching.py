@@ -45,8 +45,8 @@ from typing import Any
 
 import numpy as np
 
-from .config import ServeConfig
-from .errors import Overloaded
+from demur.serve.config import ServeConfig
+from demur.serve.errors import Overloaded
 
 __all__ = ["DEFAULT_ROWS", "ROWS_BY_KIND", "BatchStats", "MicroBatcher", "batching_runner", "rows_cap"]
 

@@ -25,7 +25,7 @@ calibration time); ``ks_statistic`` equals ``scipy.stats.ks_2samp``'s
 statistic and is numpy only, so the runtime needs no scipy.
 
 ``DriftMonitor`` keeps the recent window as ring buffers, one per server
-process (see serve/metrics.py for how several workers' windows are shown).
+process (see serve/adapters/metrics.py for how several workers' windows are shown).
 """
 
 from __future__ import annotations
@@ -37,7 +37,7 @@ from typing import Any
 
 import numpy as np
 
-from .errors import ConfigError
+from demur.serve.errors import ConfigError
 
 __all__ = [
     "KS_ALPHA",

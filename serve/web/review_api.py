@@ -1,7 +1,7 @@
 """The reviewer's routes: the API under ``/v1/reviews`` and the page at ``/review``.
 
 Every ``/v1/reviews`` route needs a bearer token with the ``review`` scope
-(``admin`` implies it; see serve/auth.py). The reviewer is the token's
+(``admin`` implies it; see serve/web/auth.py). The reviewer is the token's
 fingerprint, so a claim belongs to a token, and only that token (or an admin)
 can decide or release it.
 
@@ -34,10 +34,10 @@ from typing import Any
 import orjson
 from flask import Blueprint, Response, g, request
 
-from .auth import require
-from .errors import InvalidInput, NotFound
-from .review_store import KINDS, MAX_EXCLUDE, MAX_NOTE_CHARS, STATUSES, ReviewItem
-from .validation import parse_json
+from demur.serve.web.auth import require
+from demur.serve.errors import InvalidInput, NotFound
+from demur.serve.review.store import KINDS, MAX_EXCLUDE, MAX_NOTE_CHARS, STATUSES, ReviewItem
+from demur.serve.core.validation import parse_json
 
 __all__ = ["PAGE_HEADERS", "install_review_api", "make_blueprint"]
 

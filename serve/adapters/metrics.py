@@ -36,7 +36,7 @@ The abstention window is count-based: the last ``config.abstain_window``
 decisions (default 1000), so ``demur_abstain_ratio`` gives an instant view
 while ``rate(demur_cases_total[...])`` gives the time-based one.
 The drift window is the last ``config.drift_window`` cases (default 500);
-see serve/drift.py. PSI needs a full-ish window to mean anything (an empty
+see serve/core/drift.py. PSI needs a full-ish window to mean anything (an empty
 bin in a small window costs about 0.7 on its own), so alerts also require
 ``demur_drift_window_cases`` to be large enough.
 
@@ -90,9 +90,9 @@ from prometheus_client import values as _prom_values
 from prometheus_client.core import GaugeMetricFamily, InfoMetricFamily, Metric
 from prometheus_client.multiprocess import MultiProcessCollector, mark_process_dead
 
-from .config import ServeConfig
-from .drift import DriftMonitor
-from .errors import DemurError
+from demur.serve.config import ServeConfig
+from demur.serve.core.drift import DriftMonitor
+from demur.serve.errors import DemurError
 
 __all__ = [
     "BATCH_BUCKETS",
@@ -240,7 +240,7 @@ class Metrics:
 
     # ------------------------------------------------------------------ binding
     def bind_model(self, bundle: Any, rule: Any) -> None:
-        """Serve ``bundle`` (a ``serve.bundle.Bundle``) with decision ``rule``; resets the drift window."""
+        """Serve ``bundle`` (a ``demur.serve.core.bundle.Bundle``) with decision ``rule``; resets the drift window."""
         m = bundle.manifest
         with self._lock:
             self._model = {"name": m.model_name, "version": m.model_version, "checksum": bundle.checksum}
@@ -282,7 +282,7 @@ class Metrics:
         """Record one answered predict batch (vectorised over its B cases); the app calls it.
 
         ``x_raw``: float[B, ...] inputs before standardisation (flattened per case);
-        ``summary``: a ``serve.summary`` summary; ``decisions``: ``serve.decision.Decisions``;
+        ``summary``: a ``demur.serve.core.summary`` summary; ``decisions``: ``demur.serve.core.decision.Decisions``;
         ``graph_seconds`` / ``total_seconds``: wall time of the graph run and of the whole batch.
         """
         abstain = np.asarray(decisions.abstain, dtype=bool).ravel()

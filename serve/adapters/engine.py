@@ -57,8 +57,8 @@ from typing import Any, TypeVar
 import numpy as np
 import onnxruntime as ort
 
-from .bundle import Bundle, Manifest
-from .errors import ChecksumMismatch, ConfigError, GraphRunError, InvalidInput, NotLoaded, UnsupportedFormat
+from demur.serve.core.bundle import Bundle, Manifest
+from demur.serve.errors import ChecksumMismatch, ConfigError, GraphRunError, InvalidInput, NotLoaded, UnsupportedFormat
 
 __all__ = ["GRAPH_CHOICES", "Engine", "reseed_graph"]
 
@@ -67,7 +67,7 @@ GRAPH_CHOICES = ("auto", "stacked", "sampler", "means", "flip")
 
 _RANDOM_OPS = ("RandomNormal", "RandomNormalLike", "RandomUniform", "RandomUniformLike", "Multinomial")
 _SEED_MODULUS = 1 << 24  # the seed attribute is float32: integers below 2**24 are exact
-_SEED_STRIDE = 7919      # same rule as export.graphs.node_seed (kept in step by a test)
+_SEED_STRIDE = 7919      # same rule as demur.export.graphs.node_seed (kept in step by a test)
 _SAMPLING_KINDS = ("sampler", "flip")  # graphs with random nodes, reseeded at load
 
 _NOISE_LAWS = ("signs", "normals", "uniforms")  # graph inputs besides x that the engine fills, by name prefix
@@ -98,7 +98,7 @@ def reseed_graph(data: bytes, seed: int) -> tuple[bytes, int]:
     """Rewrite the seed of every random node of a serialised ONNX model; return (bytes, nodes changed).
 
     Node ``i`` (in graph order) gets ``(seed + 7919 * i) mod 2**24``, the rule
-    ``export.graphs.node_seed`` uses at export, so distinct nodes keep distinct
+    ``demur.export.graphs.node_seed`` uses at export, so distinct nodes keep distinct
     streams. Needs the ``onnx`` package (only for graphs that sample).
     """
     import onnx  # only sampler graphs need it; stacked bundles run without

@@ -12,11 +12,11 @@ same Flask app as before, run in a thread pool, so there is one definition
 of every other route.
 
 What a predict request meets, in order (the Flask route checks the same):
-``Authorization`` (serve/auth.py) -> ``Content-Type: application/json`` ->
+``Authorization`` (serve/web/auth.py) -> ``Content-Type: application/json`` ->
 body size -> JSON -> the admission bound (at most ``queue_max_requests``
 waiting, else 503 + ``Retry-After``) -> the next batch, which starts after at
 most ``batch_wait_ms`` or as soon as ``batch_max_rows`` cases are waiting
-(by default a cap per graph kind, ``serve.batching.rows_cap``).
+(by default a cap per graph kind, ``demur.serve.web.batching.rows_cap``).
 Errors have the app's one shape ``{"error": {"code", "message", "field"}}``;
 malformed HTTP gets a 400 in that shape and the connection is closed.
 
@@ -28,14 +28,14 @@ path without query, status, bytes, ms).
 
 Process model: gunicorn's master supervises these workers like any other
 (heartbeat, SIGTERM drains in-flight requests within ``graceful_timeout``,
-SIGHUP reloads the bundle via serve/admin.py). The app, and with it the
+SIGHUP reloads the bundle via serve/web/admin.py). The app, and with it the
 onnxruntime sessions and the random stream, is built in the worker after
 the fork. The graph runs on the loop thread: the process is CPU-bound
 anyway, one worker per core keeps the cores busy (deploy/README.md, "Sizing").
 
 Example (``demur serve`` uses this worker unless ``front = "threads"``)::
 
-    gunicorn -k serve.front.FrontWorker 'serve.server:app_from_environment()'
+    gunicorn -k demur.serve.web.front.FrontWorker 'demur.serve.web.server:app_from_environment()'
 """
 
 from __future__ import annotations
@@ -59,11 +59,11 @@ import httptools
 import orjson
 from gunicorn.workers import base
 
-from .auth import AUTH_EXTENSION, CHALLENGE
-from .batching import rows_cap
-from .errors import DemurError, Overloaded, PayloadTooLarge, UnsupportedMediaType
-from .limits import SECURITY_HEADERS
-from .validation import parse_json
+from demur.serve.web.auth import AUTH_EXTENSION, CHALLENGE
+from demur.serve.web.batching import rows_cap
+from demur.serve.errors import DemurError, Overloaded, PayloadTooLarge, UnsupportedMediaType
+from demur.serve.web.limits import SECURITY_HEADERS
+from demur.serve.core.validation import parse_json
 
 __all__ = ["PREDICT_PATH", "FrontWorker"]
 

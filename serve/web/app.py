@@ -56,15 +56,15 @@ import orjson
 from flask import Flask, Response, g, request
 from werkzeug.exceptions import HTTPException
 
-from . import render
-from .admin import install_admin
-from .auth import authenticate, install_auth
-from .batching import batching_runner
-from .bundle import load_bundle
-from .config import ServeConfig
-from .decision import DecisionRule, decide, rule_from
-from .engine import Engine
-from .errors import (
+from demur.serve.core import render
+from demur.serve.web.admin import install_admin
+from demur.serve.web.auth import authenticate, install_auth
+from demur.serve.web.batching import batching_runner
+from demur.serve.core.bundle import load_bundle
+from demur.serve.config import ServeConfig
+from demur.serve.core.decision import DecisionRule, decide, rule_from
+from demur.serve.adapters.engine import Engine
+from demur.serve.errors import (
     BundleError,
     DemurError,
     InvalidInput,
@@ -72,10 +72,10 @@ from .errors import (
     PayloadTooLarge,
     UnsupportedMediaType,
 )
-from .limits import install_limits
-from .metrics import Metrics
-from .summary import summarise
-from .validation import PredictRequest, parse_json, validate_predict
+from demur.serve.web.limits import install_limits
+from demur.serve.adapters.metrics import Metrics
+from demur.serve.core.summary import summarise
+from demur.serve.core.validation import PredictRequest, parse_json, validate_predict
 
 __all__ = ["CAUTION", "EXTENSION", "OPENAPI_PATH", "EngineHolder", "Live", "Runtime", "create_app", "json_response"]
 
@@ -186,7 +186,7 @@ class Runtime:
         self.metrics = metrics if metrics is not None else _NoMetrics()
         self.registry = registry
         self.runner: Callable[[Any, np.ndarray], np.ndarray] = _default_runner
-        if config.batch_wait_ms > 0:  # concurrent requests share one graph call (serve/batching.py)
+        if config.batch_wait_ms > 0:  # concurrent requests share one graph call (serve/web/batching.py)
             self.runner = batching_runner(config)
         self.model_extras: list[Callable[[], dict[str, Any]]] = []
         self.started_at = time.time()
@@ -250,7 +250,7 @@ class Runtime:
 
     # -- answering ---------------------------------------------------------------
     def predict(self, body: Any) -> dict[str, Any]:
-        """A parsed predict body -> the response dict (see serve/render.py); raises ``DemurError``."""
+        """A parsed predict body -> the response dict (see serve/core/render.py); raises ``DemurError``."""
         _, (answer,) = self.answer([body])
         if isinstance(answer, DemurError):
             raise answer
@@ -262,7 +262,7 @@ class Runtime:
         answered and, per body in order, its response dict or the ``DemurError`` it earned.
 
         Why together: the graph call, the summaries, the decision, the review write and the
-        metrics each cost a fixed overhead per call; the HTTP front (serve/front.py) hands
+        metrics each cost a fixed overhead per call; the HTTP front (serve/web/front.py) hands
         over every request that arrived in one pass of its event loop. A body that fails
         validation gets its own error and does not touch the others. ``runner`` overrides
         ``self.runner`` (the front batches itself and calls the engine directly).
@@ -398,12 +398,13 @@ def create_app(
         app = create_app(build_config(flags={"bundle": "build/digits-radial"}))
         app.test_client().post("/v1/predict", json={"cases": [[0] * 64]})
     """
-    app = Flask("demur", static_folder=None)  # no implicit /static route serving files from the cwd
+    # no implicit /static route; root_path given because ``demur`` is a namespace package
+    app = Flask("demur", static_folder=None, root_path=str(Path(__file__).parent))
     app.config["MAX_CONTENT_LENGTH"] = config.max_body_bytes
     if metrics is None:  # the app owns its metrics, in its own registry (a fresh one unless given)
         metrics = Metrics(config, registry=registry)
     if review is None:  # the review queue named by config (SQLite under data_dir by default)
-        from .review import ReviewRouter
+        from demur.serve.review.router import ReviewRouter
 
         review = ReviewRouter.from_config(config)
     runtime = Runtime(config, review=review, metrics=metrics, registry=registry)

@@ -10,11 +10,11 @@ decision rule, so a bad bundle or setting stops ``demur serve`` with a clear
 message before any worker starts.
 
 Settings: defaults, then ``--config FILE`` (TOML), then ``DEMUR_*``
-environment variables, then flags (``serve.config.build_config``).
+environment variables, then flags (``demur.serve.config.build_config``).
 
 Signals: SIGTERM stops gracefully (workers finish in-flight requests within
 ``graceful_timeout``), SIGINT / Ctrl-C stops at once, SIGHUP reloads the
-bundle in every worker (serve/admin.py) instead of gunicorn's own reload.
+bundle in every worker (serve/web/admin.py) instead of gunicorn's own reload.
 The access log goes to stdout with the path only: no query string, no
 headers, so a token can never land in it.
 
@@ -31,9 +31,9 @@ import os
 import sys
 from typing import Any
 
-from .bundle import load_bundle
-from .config import FRONTS, ServeConfig, build_config
-from .decision import rule_from
+from demur.serve.core.bundle import load_bundle
+from demur.serve.config import FRONTS, ServeConfig, build_config
+from demur.serve.core.decision import rule_from
 
 __all__ = ["ACCESS_LOG_FORMAT", "app_from_environment", "build_app", "gunicorn_options", "register", "serve"]
 
@@ -101,7 +101,7 @@ def gunicorn_options(config: ServeConfig) -> dict[str, Any]:
         "bind": f"{config.host}:{config.port}",
         "workers": config.workers,
         "threads": config.threads,
-        "worker_class": "serve.front.FrontWorker" if config.front == "loop" else "gthread",
+        "worker_class": "demur.serve.web.front.FrontWorker" if config.front == "loop" else "gthread",
         "preload_app": False,
         "timeout": max(30, int(config.request_timeout_s * 3)),
         "graceful_timeout": GRACEFUL_TIMEOUT_S,
@@ -123,10 +123,10 @@ def build_app(config: ServeConfig, *, master_pid: int | None = None) -> Any:
     metrics, admin routes); here the worker only picks the bundle a restarted
     worker must load after a roll-out and installs the SIGHUP reload.
     """
-    from .app import create_app
+    from demur.serve.web.app import create_app
 
     bundle_path = config.bundle
-    admin = _optional("serve.admin")
+    admin = _optional("demur.serve.web.admin")
     if admin is not None:
         bundle_path = admin.startup_bundle(config, master_pid)
     app = create_app(config.replace(bundle=bundle_path))
@@ -163,7 +163,7 @@ def serve(config: ServeConfig) -> int:
     url = f"http://{config.host}:{config.port}"
     options = gunicorn_options(config)
     metrics_dir = config.metrics_multiprocess_dir
-    if config.workers > 1 and not metrics_dir:  # workers must share metrics (serve/metrics.py)
+    if config.workers > 1 and not metrics_dir:  # workers must share metrics (serve/adapters/metrics.py)
         import tempfile
 
         metrics_dir = tempfile.mkdtemp(prefix="demur-metrics-")
@@ -171,13 +171,13 @@ def serve(config: ServeConfig) -> int:
 
     def on_starting(server: Any) -> None:
         if metrics_dir:
-            metrics_mod = _optional("serve.metrics")
+            metrics_mod = _optional("demur.serve.adapters.metrics")
             if metrics_mod is not None:
                 metrics_mod.clear_multiprocess_dir(metrics_dir)
                 metrics_mod.enable_multiprocess(metrics_dir)
 
     def when_ready(server: Any) -> None:
-        admin = _optional("serve.admin")
+        admin = _optional("demur.serve.web.admin")
         if admin is not None:
             admin.forward_reload_signal(server)
         print(f"demur: serving {manifest.model_name} {manifest.model_version} ({bundle.checksum[:12]}) "
@@ -189,7 +189,7 @@ def serve(config: ServeConfig) -> int:
 
     def child_exit(server: Any, worker: Any) -> None:
         if metrics_dir:
-            metrics_mod = _optional("serve.metrics")
+            metrics_mod = _optional("demur.serve.adapters.metrics")
             if metrics_mod is not None:
                 metrics_mod.worker_exit(worker.pid, metrics_dir)
 

@@ -39,7 +39,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
 
-from .errors import BundleNotFound, ChecksumMismatch, ManifestInvalid, UnsupportedFormat
+from demur.serve.errors import BundleNotFound, ChecksumMismatch, ManifestInvalid, UnsupportedFormat
 
 __all__ = [
     "FORMAT_NAME",
@@ -69,7 +69,7 @@ the graph per call; means: the deterministic graph of the posterior means
 fed by the engine (export/flip.py)."""
 
 SCORES = ("mutual_information", "predictive_entropy", "one_minus_max_prob", "interval_width", "epistemic_std")
-"""Decision scores a bundle may name (see serve/decision.py for their meaning)."""
+"""Decision scores a bundle may name (see serve/core/decision.py for their meaning)."""
 
 Task = Literal["classification", "regression"]
 

@@ -9,7 +9,7 @@ with ``Overloaded`` (HTTP 503 with ``Retry-After``), so a client or a load
 balancer can go elsewhere instead of watching latency explode.
 
 ``install_limits(app, config)`` wires it into a Flask app built by
-``serve.app.create_app``: the gate around the predict view, the body-size cap,
+``demur.serve.web.app.create_app``: the gate around the predict view, the body-size cap,
 debug off and security headers on every response.
 
 Example::
@@ -28,8 +28,8 @@ from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from typing import Any
 
-from .config import ServeConfig
-from .errors import Overloaded
+from demur.serve.config import ServeConfig
+from demur.serve.errors import Overloaded
 
 __all__ = ["SECURITY_HEADERS", "AdmissionGate", "gate_for", "install_limits"]
 
@@ -112,7 +112,7 @@ def gate_for(config: ServeConfig, cpus: int | None = None) -> AdmissionGate:
     """The gate a worker process gets from its settings.
 
     With micro-batching on (``batch_wait_ms > 0``) the batcher bounds the
-    queue in front of the graph itself (serve/batching.py) and needs the
+    queue in front of the graph itself (serve/web/batching.py) and needs the
     requests to arrive together, so the gate admits every thread and only
     guards against more. Without it the gate is the bound: slots are the
     cores one worker can use (cores shared among ``workers``, at least 1,

@@ -85,7 +85,7 @@ from typing import Any
 import numpy as np
 from scipy.special import ndtr, ndtri
 
-from .errors import ConfigError, InvalidInput
+from demur.serve.errors import ConfigError, InvalidInput
 
 __all__ = [
     "UNIT",

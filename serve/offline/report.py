@@ -29,7 +29,7 @@ from typing import Any
 
 import numpy as np
 
-from .calibration import ECE_BINS, reliability_bins, risk_coverage
+from demur.serve.offline.calibration import ECE_BINS, reliability_bins, risk_coverage
 
 __all__ = ["CAUTION", "ClassificationPlots", "RegressionPlots", "write_report"]
 

@@ -1,0 +1,98 @@
+"""The import contract of the layout (DEVELOPERS.md, "Layout"), checked by parsing imports.
+
+* ``demur.serve`` never imports torch or ``demur.export`` (the runtime image has no torch);
+* the pure core (``demur.serve.core``) imports no framework or server: no flask, werkzeug,
+  onnxruntime, onnx, psycopg, gunicorn, prometheus_client, matplotlib;
+* only the offline tools (``demur.serve.offline``) may import matplotlib, which lives in the
+  ``offline`` extra, not the runtime;
+* after install, the generic names ``serve`` and ``export`` are not importable: everything
+  is under ``demur``; and importing every runtime module in a fresh interpreter loads no torch.
+"""
+
+from __future__ import annotations
+
+import ast
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+SERVE = ROOT / "serve"
+
+FRAMEWORKS = {"flask", "werkzeug", "onnxruntime", "onnx", "psycopg", "psycopg_pool", "gunicorn",
+              "prometheus_client", "matplotlib", "httptools", "torch"}
+
+
+def _module_name(path: Path) -> str:
+    rel = path.relative_to(ROOT).with_suffix("")
+    parts = list(rel.parts)
+    if parts[-1] == "__init__":
+        parts = parts[:-1]
+    return "demur." + ".".join(parts)
+
+
+def _imports(path: Path) -> set[str]:
+    """Every module name an import statement in ``path`` names (function bodies included)."""
+    tree = ast.parse(path.read_text(), filename=str(path))
+    found: set[str] = set()
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Import):
+            found.update(alias.name for alias in node.names)
+        elif isinstance(node, ast.ImportFrom):
+            assert node.level == 0, f"{path}: use absolute imports (from demur.serve... import)"
+            found.add(node.module or "")
+    return found
+
+
+def _serve_files() -> list[Path]:
+    return sorted(SERVE.rglob("*.py"))
+
+
+def _top(name: str) -> str:
+    return name.split(".")[0]
+
+
+@pytest.mark.parametrize("path", _serve_files(), ids=lambda p: str(p.relative_to(ROOT)))
+def test_serve_never_imports_torch_or_export(path: Path) -> None:
+    bad = sorted(n for n in _imports(path)
+                 if _top(n) in {"torch", "export", "serve"} or n.startswith("demur.export"))
+    assert not bad, f"{path.relative_to(ROOT)} imports {bad}"
+
+
+@pytest.mark.parametrize("path", sorted((SERVE / "core").rglob("*.py")), ids=lambda p: p.name)
+def test_core_imports_no_framework(path: Path) -> None:
+    bad = sorted(n for n in _imports(path) if _top(n) in FRAMEWORKS)
+    assert not bad, f"serve/core/{path.name} imports {bad}: the core is plain numpy/stdlib"
+    outside = sorted(n for n in _imports(path)
+                     if n.startswith("demur.serve.") and not n.startswith(("demur.serve.core", "demur.serve.errors",
+                                                                            "demur.serve.config")))
+    assert not outside, f"serve/core/{path.name} imports adapters {outside}"
+
+
+@pytest.mark.parametrize("path", _serve_files(), ids=lambda p: str(p.relative_to(ROOT)))
+def test_matplotlib_only_offline(path: Path) -> None:
+    if (SERVE / "offline") in path.parents:
+        return
+    assert "matplotlib" not in {_top(n) for n in _imports(path)}, path
+
+
+def test_generic_names_are_not_importable_and_runtime_loads_no_torch(tmp_path: Path) -> None:
+    """Run outside the checkout (the checkout itself is on sys.path when cwd is the root)."""
+    names = [_module_name(p) for p in _serve_files()]
+    code = (
+        "import importlib, importlib.util, json, sys\n"
+        f"for name in {names!r}:\n"
+        "    importlib.import_module(name)\n"
+        "bad = sorted(m for m in sys.modules if m.split('.')[0] in ('torch', 'matplotlib') "
+        "or m.startswith('demur.export'))\n"
+        "generic = [n for n in ('serve', 'export') if importlib.util.find_spec(n) is not None]\n"
+        "print(json.dumps({'bad': bad, 'generic': generic}))\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    got = json.loads(out.stdout.strip().splitlines()[-1])
+    assert got["generic"] == [], f"generic top-level names importable: {got['generic']}"
+    assert got["bad"] == [], f"importing the runtime loaded {got['bad'][:5]}"
