@@ -8,12 +8,10 @@ the server agree. Settings come from ``$DEMUR_CONFIG`` (a TOML file of
 ServeConfig fields, optional) and ``DEMUR_*`` environment variables.
 
 Sizing for a 2-core host (deploy/README.md, "Sizing"): 2 worker processes of
-demur's loop worker (``demur.serve.web.front.FrontWorker``: predict answered in batches
-on an event loop), one onnxruntime thread per session; 4 threads per worker
+demur's loop worker (``demur.serve.web.loop.worker.FrontWorker``: predict answered in
+batches on an event loop), one onnxruntime thread per session; 4 threads per worker
 run the other routes (review API, metrics, admin). One process per core
-keeps both cores busy. Unset ``DEMUR_WORKERS``/``DEMUR_THREADS`` default to
-that here (the cores gunicorn sees, and 4); ``DEMUR_FRONT=threads`` selects
-gunicorn's threaded worker for every route instead.
+keeps both cores busy: the same defaults as ``demur serve`` (workers 0 = one per core).
 
 Timeouts: a worker silent for ``timeout`` seconds is killed and replaced
 (3x the per-request timeout, at least 30 s); SIGTERM lets in-flight
@@ -30,8 +28,6 @@ from demur.serve.config import build_config
 from demur.serve.web.server import gunicorn_options
 
 _env = dict(os.environ)
-_env.setdefault("DEMUR_WORKERS", str(min(os.cpu_count() or 1, 2)))
-_env.setdefault("DEMUR_THREADS", "4")
 _config = build_config(_env.get("DEMUR_CONFIG") or None, _env)
 _options = gunicorn_options(_config)
 

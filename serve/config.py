@@ -13,6 +13,7 @@ Example::
 from __future__ import annotations
 
 import dataclasses
+import ipaddress
 import os
 import tomllib
 from collections.abc import Mapping
@@ -22,7 +23,7 @@ from typing import Any, get_type_hints
 
 from demur.serve.errors import ConfigError
 
-__all__ = ["ENV_PREFIX", "FRONTS", "ServeConfig", "build_config"]
+__all__ = ["ENV_PREFIX", "ServeConfig", "build_config", "worker_count"]
 
 ENV_PREFIX = "DEMUR_"
 
@@ -32,9 +33,12 @@ DEFAULT_MAX_CASES = 1024
 DEFAULT_MAX_BODY_BYTES = 8 * 1024 * 1024
 DEFAULT_LEASE_S = 300.0
 
-FRONTS = ("loop", "threads")
-"""HTTP fronts: ``loop`` answers predict on an event loop in batches (serve/web/front.py),
-``threads`` runs every route in gunicorn's threaded worker."""
+
+
+def worker_count(config: ServeConfig, cpus: int | None = None) -> int:
+    """Worker processes to start: ``config.workers``, or one per core when it is 0 (the
+    measured best on 2 cores: deploy/README.md, "Sizing")."""
+    return config.workers or max(1, cpus or os.cpu_count() or 1)
 
 
 @dataclass(frozen=True)
@@ -46,9 +50,9 @@ class ServeConfig:
     bundles_dir: str = ""  # admin roll-outs may load only bundles under here; "" = the bundle's parent
     host: str = DEFAULT_HOST
     port: int = DEFAULT_PORT
-    workers: int = 1
-    threads: int = 8
-    front: str = "loop"  # loop: predict on an event loop (serve/web/front.py); threads: everything in Flask threads
+    workers: int = 0  # 0: one worker process per core
+    threads: int = 4  # per worker, for the routes other than predict (serve/web/loop/bridge.py)
+    trusted_proxies: str = ""  # comma-separated proxy addresses whose X-Forwarded-For is believed
     # graph
     graph: str = "auto"  # auto | stacked | sampler | flip | means
     ort_intra_threads: int = 1
@@ -63,8 +67,8 @@ class ServeConfig:
     max_body_bytes: int = DEFAULT_MAX_BODY_BYTES
     request_timeout_s: float = 10.0
     # micro-batching
-    batch_wait_ms: float = 0.0  # loop front: 0 batches what arrived in one loop pass (measured best, demur bench)
-    batch_max_rows: int = 0  # cases per merged graph call; 0: by graph kind (serve/web/batching.py, rows_cap)
+    batch_wait_ms: float = 0.0  # 0 batches what arrived in one loop pass (measured best, demur bench)
+    batch_max_rows: int = 0  # cases per merged graph call; 0: by graph kind (serve/web/loop/batcher.py)
     queue_max_requests: int = 512
     # review
     data_dir: str = "demur-data"
@@ -165,15 +169,22 @@ def build_config(
 def _check(cfg: ServeConfig) -> None:
     if not 0 < cfg.port < 65536:
         raise ConfigError(f"port must be in 1..65535; got {cfg.port}", field="port")
-    for name in ("workers", "threads", "ort_intra_threads", "ort_inter_threads", "max_cases",
+    if cfg.workers < 0:
+        raise ConfigError(f"workers must be >= 0 (0: one per core); got {cfg.workers}", field="workers")
+    for name in ("threads", "ort_intra_threads", "ort_inter_threads", "max_cases",
                  "max_body_bytes", "queue_max_requests", "drift_window", "abstain_window"):
         if getattr(cfg, name) < 1:
             raise ConfigError(f"{name} must be at least 1; got {getattr(cfg, name)}", field=name)
     if cfg.batch_max_rows < 0:
         raise ConfigError(f"batch_max_rows must be >= 0 (0: chosen by graph kind); got {cfg.batch_max_rows}",
                           field="batch_max_rows")
-    if cfg.front not in FRONTS:
-        raise ConfigError(f"front must be one of {', '.join(FRONTS)}; got '{cfg.front}'", field="front")
+    try:
+        for item in cfg.trusted_proxies.split(","):
+            if item.strip():
+                ipaddress.ip_address(item.strip())
+    except ValueError:
+        raise ConfigError(f"trusted_proxies must be comma-separated IP addresses; got {cfg.trusted_proxies!r}",
+                          field="trusted_proxies") from None
     if cfg.graph not in ("auto", "stacked", "sampler", "flip", "means"):
         raise ConfigError(f"graph must be auto, stacked, sampler, flip or means; got '{cfg.graph}'", field="graph")
     if not 0.0 <= cfg.audit_fraction <= 1.0:

@@ -96,3 +96,15 @@ def test_generic_names_are_not_importable_and_runtime_loads_no_torch(tmp_path: P
     got = json.loads(out.stdout.strip().splitlines()[-1])
     assert got["generic"] == [], f"generic top-level names importable: {got['generic']}"
     assert got["bad"] == [], f"importing the runtime loaded {got['bad'][:5]}"
+
+
+def test_gunicorn_master_never_loads_onnxruntime(tmp_path: Path) -> None:
+    """gunicorn's master imports the worker class and the server module before forking; a
+    forked child whose parent had loaded onnxruntime aborts at exit (std::thread::join on a
+    thread that did not survive the fork, seen here). So neither may pull onnxruntime in."""
+    code = ("import json, sys\n"
+            "import demur.serve.web.loop.worker, demur.serve.web.server, demur.serve.cli\n"
+            "print(json.dumps(sorted(m for m in sys.modules if m.split('.')[0] in ('onnxruntime', 'torch'))))\n")
+    out = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    assert json.loads(out.stdout.strip().splitlines()[-1]) == []

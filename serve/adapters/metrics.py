@@ -215,6 +215,9 @@ class Metrics:
         self.enqueue_failures = Counter(f"{p}_review_enqueue_failures",
                                         "Abstained cases the review queue did not accept at once (spooled or lost).",
                                         registry=reg)
+        self._connections_refused = Counter(f"{p}_http_connections_refused",
+                                            "Connections the loop front refused (worker_connections reached).",
+                                            registry=reg)
         # per-process windows, published for the multiprocess merge
         self.abstain_window_cases = Gauge(f"{p}_abstain_window_cases",
                                           "Decisions in the recent abstention window (summed over workers).",
@@ -264,7 +267,7 @@ class Metrics:
     def _bind_from_runtime(self, rule: Any = None) -> None:
         """Bind to the app's live model (after ``init_app``); no-op before one is live."""
         runtime = self._runtime
-        live = getattr(getattr(runtime, "engines", None), "_live", None) if runtime is not None else None
+        live = runtime.slot.current if runtime is not None else None
         if live is not None:
             self.bind_model(live.engine.bundle, rule if rule is not None else live.rule)
 
@@ -332,6 +335,10 @@ class Metrics:
         if child is None:
             child = self._children[key] = metric.labels(*values)
         return child
+
+    def observe_connection_refused(self) -> None:
+        """A connection the loop front refused (worker_connections reached)."""
+        self._connections_refused.inc()
 
     def review_enqueue_failed(self, n: int = 1) -> None:
         """Count abstained cases that the review queue did not accept at once."""

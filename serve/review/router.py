@@ -169,6 +169,11 @@ class ReviewRouter:
         except SpoolError as exc:
             log.error("review spool cannot be read at start: %s", exc)
 
+    def enqueue(self, answered: Any) -> list[dict[str, Any] | None]:
+        """The pipeline's review hook (serve/core/pipeline.py, ``ReviewHook``)."""
+        return self.route(answered.results, answered.request, answered.summary, answered.decisions,
+                          answered.live.model)
+
     def route(self, results: list[dict[str, Any]], cases: Any, summary: Any, decisions: Any,
               model: dict[str, str]) -> list[dict[str, Any] | None]:
         """One annotation per result: ``{"review_id": id}`` for a queued abstention,
@@ -271,7 +276,7 @@ class ReviewRouter:
 
             live = g.get("demur_live") if has_request_context() else None
             if live is None and self._runtime is not None:
-                live = self._runtime.engines.live
+                live = self._runtime.slot.live
             if live is not None and live.model.get("checksum") == model.get("checksum"):
                 manifest = live.manifest
         except Exception:

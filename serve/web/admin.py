@@ -138,7 +138,9 @@ def confine(config: ServeConfig, requested: Any) -> Path:
 
 
 def _runtime(app: Any) -> Any:
-    return app.extensions["demur"]
+    from demur.serve.web.app import runtime_of  # app.py imports this module
+
+    return runtime_of(app)
 
 
 def prepare_live(app: Any, path: str | os.PathLike[str]) -> Any:
@@ -164,8 +166,7 @@ def prepare_live(app: Any, path: str | os.PathLike[str]) -> Any:
 
 def _serving(app: Any) -> Any:
     """The ``Live`` serving now, or ``None`` before the first model is installed."""
-    holder = _runtime(app).engines
-    return holder.live if holder.ready else None
+    return _runtime(app).slot.current
 
 
 def roll_out(app: Any, path: str | os.PathLike[str], *, propagate: bool = True) -> Rollout:
@@ -197,7 +198,7 @@ def _roll_out_locked(app: Any, state: AdminState, path: str, propagate: bool) ->
     current = dict(candidate.model)
     changed = old is None or current["checksum"] != previous.get("checksum") or path != state.bundle_path
     if changed:
-        _runtime(app).engines.swap(candidate)
+        _runtime(app).slot.swap(candidate)
         state.bundle_path = path
         state.rollouts += 1
         state.loaded_at = _now()

@@ -53,8 +53,8 @@ __all__ = [
     "Principal",
     "TokenSet",
     "authenticate",
-    "install_auth",
     "require",
+    "tokens_of",
 ]
 
 SCOPES = ("predict", "review", "admin")
@@ -186,42 +186,16 @@ class TokenSet:
         return principal
 
 
-def install_auth(app: Any, config: ServeConfig, tokens: TokenSet | None = None) -> TokenSet:
-    """Attach the tokens to a Flask app and add ``WWW-Authenticate`` to every 401.
-
-    The app's single error handler builds the JSON body; the header is added
-    here, after the fact, so it is present whichever view raised.
-    """
-    tokens = tokens if tokens is not None else TokenSet.from_config(config)
-    app.extensions[AUTH_EXTENSION] = tokens
-
-    @app.after_request
-    def _challenge(response: Any) -> Any:
-        if response.status_code == 401 and "WWW-Authenticate" not in response.headers:
-            response.headers["WWW-Authenticate"] = CHALLENGE
-        return response
-
-    return tokens
-
-
-def _tokens_of(app: Any) -> TokenSet:
-    tokens = app.extensions.get(AUTH_EXTENSION)
-    if tokens is None:
-        runtime = app.extensions.get("demur")
-        config = getattr(runtime, "config", None) or ServeConfig()
-        # An app built without install_auth: too late to register hooks now (it is
-        # serving), so only the tokens are attached; the review blueprint adds
-        # WWW-Authenticate to its own 401s either way.
-        tokens = TokenSet.from_config(config)
-        app.extensions[AUTH_EXTENSION] = tokens
-    return tokens
+def tokens_of(app: Any) -> TokenSet:
+    """The ``TokenSet`` an app built by ``create_app`` checks requests against."""
+    return app.extensions[AUTH_EXTENSION]
 
 
 def authenticate(scope: str) -> Principal:
     """Check the current Flask request for ``scope``; return and record the principal."""
     from flask import current_app, g, request
 
-    principal = _tokens_of(current_app).check(request.headers.get("Authorization"), scope)
+    principal = tokens_of(current_app).check(request.headers.get("Authorization"), scope)
     g.demur_principal = principal
     return principal
 

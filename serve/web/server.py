@@ -1,7 +1,8 @@
 """``demur serve BUNDLE``: the app behind gunicorn, the production WSGI server.
 
-Process model: one gunicorn master and ``--workers`` worker processes, each
-with ``--threads`` threads (gthread worker class). The app is built in each
+Process model: one gunicorn master and ``--workers`` worker processes (default: one per
+core) of demur's loop front (serve/web/loop/worker.py), each with ``--threads`` threads for
+the routes other than predict. The app is built in each
 worker **after the fork** (gunicorn's lazy app loading: ``preload_app`` is
 off), so every worker opens its own onnxruntime sessions and draws its own
 sampler seed; sessions created in the master would repeat the same draws in
@@ -32,7 +33,7 @@ import sys
 from typing import Any
 
 from demur.serve.core.bundle import load_bundle
-from demur.serve.config import FRONTS, ServeConfig, build_config
+from demur.serve.config import ServeConfig, build_config, worker_count
 from demur.serve.core.decision import rule_from
 
 __all__ = ["ACCESS_LOG_FORMAT", "app_from_environment", "build_app", "gunicorn_options", "register", "serve"]
@@ -56,10 +57,9 @@ def register(subparsers: Any) -> None:
     p.add_argument("bundle", help="bundle directory (manifest.json, manifest.sha256, *.onnx)")
     p.add_argument("--host", help="address to listen on (default 127.0.0.1)")
     p.add_argument("--port", type=int, help="port (default 8600)")
-    p.add_argument("--workers", type=int, help="worker processes (default 1)")
-    p.add_argument("--threads", type=int, help="threads per worker (default 8)")
-    p.add_argument("--front", choices=FRONTS,
-                   help="loop (default): predict answered in batches on an event loop; threads: all routes in threads")
+    p.add_argument("--workers", type=int, help="worker processes (default 0: one per core)")
+    p.add_argument("--threads", type=int, help="threads per worker for the routes other than predict (default 4)")
+    p.add_argument("--trusted-proxies", help="comma-separated proxy addresses whose X-Forwarded-For is believed")
     p.add_argument("--single", action="store_true", help="one worker process (same as --workers 1)")
     p.add_argument("--score", help="decision score, overriding the bundle's (needs --threshold)")
     p.add_argument("--threshold", type=float, help="abstain when the score is above this")
@@ -75,7 +75,7 @@ def register(subparsers: Any) -> None:
     p.set_defaults(func=_main)
 
 
-_FLAG_FIELDS = ("host", "port", "workers", "threads", "front", "score", "threshold", "interval_level", "graph",
+_FLAG_FIELDS = ("host", "port", "workers", "threads", "trusted_proxies", "score", "threshold", "interval_level", "graph",
                 "ort_intra_threads", "max_cases", "max_body_bytes", "seed", "data_dir", "review_store")
 
 
@@ -99,9 +99,9 @@ def gunicorn_options(config: ServeConfig) -> dict[str, Any]:
     """gunicorn settings from the config (see deploy/ for the sizing notes)."""
     return {
         "bind": f"{config.host}:{config.port}",
-        "workers": config.workers,
+        "workers": worker_count(config),
         "threads": config.threads,
-        "worker_class": "demur.serve.web.front.FrontWorker" if config.front == "loop" else "gthread",
+        "worker_class": "demur.serve.web.loop.worker.FrontWorker",
         "preload_app": False,
         "timeout": max(30, int(config.request_timeout_s * 3)),
         "graceful_timeout": GRACEFUL_TIMEOUT_S,
@@ -112,7 +112,9 @@ def gunicorn_options(config: ServeConfig) -> dict[str, Any]:
         "loglevel": "info",
         "proc_name": "demur",
         "limit_request_line": 8190,
-        "forwarded_allow_ips": "127.0.0.1",
+        # gunicorn's own forwarder-header rewriting is off: the front believes
+        # X-Forwarded-For only from ``trusted_proxies`` (serve/web/loop/worker.py).
+        "forwarded_allow_ips": "",
     }
 
 
@@ -161,6 +163,7 @@ def serve(config: ServeConfig) -> int:
     bundle = _precheck(config)
     manifest = bundle.manifest
     url = f"http://{config.host}:{config.port}"
+    config = config.replace(workers=worker_count(config))
     options = gunicorn_options(config)
     metrics_dir = config.metrics_multiprocess_dir
     if config.workers > 1 and not metrics_dir:  # workers must share metrics (serve/adapters/metrics.py)
@@ -181,7 +184,8 @@ def serve(config: ServeConfig) -> int:
         if admin is not None:
             admin.forward_reload_signal(server)
         print(f"demur: serving {manifest.model_name} {manifest.model_version} ({bundle.checksum[:12]}) "
-              f"at {url} with {config.workers} worker(s) x {config.threads} thread(s); "
+              f"at {url} with {config.workers} worker(s) (one per core unless --workers is given; "
+              f"{os.cpu_count()} cores seen) x {config.threads} thread(s); "
               f"workers load the model now, {url}/readyz says when each is ready", flush=True)
 
     def post_worker_init(worker: Any) -> None:

@@ -362,7 +362,7 @@ def test_gunicorn_conf_matches_demur_serve(monkeypatch: pytest.MonkeyPatch) -> N
         got = conf[key]
         assert (got == [value] if key == "bind" else got == value), key
     assert conf["workers"] == 2 and conf["threads"] == 4
-    assert conf["preload_app"] is False and conf["worker_class"] == "demur.serve.web.front.FrontWorker"
+    assert conf["preload_app"] is False and conf["worker_class"] == "demur.serve.web.loop.worker.FrontWorker"
     assert conf["graceful_timeout"] > 0 and conf["timeout"] >= 30
     for hook in ("when_ready", "on_starting", "child_exit"):
         assert callable(conf[hook]) and hook in known

@@ -18,14 +18,10 @@ import pytest
 from flask import Flask, g
 
 from demur.serve.web import auth
-from demur.serve.web.auth import Principal, TokenSet, install_auth, require
+from demur.serve.web.predict_http import refusal
+from demur.serve.web.auth import AUTH_EXTENSION, Principal, TokenSet, require
 from demur.serve.config import ServeConfig
 from demur.serve.errors import ConfigError, DemurError, Forbidden, Unauthorized
-
-
-def test_all_is_exact() -> None:
-    assert sorted(auth.__all__) == sorted(["AUTH_EXTENSION", "CHALLENGE", "SCOPES", "Principal", "TokenSet", "authenticate",
-                                          "install_auth", "require"])
 
 
 def test_tokens_from_config_fields_and_file(tmp_path: Path) -> None:
@@ -123,11 +119,13 @@ def test_unknown_scope_is_a_programming_error() -> None:
 @pytest.fixture()
 def flask_app() -> Flask:
     app = Flask("auth-test")
-    install_auth(app, ServeConfig(review_tokens="desk-token", admin_tokens="ops-token"))
+    app.extensions[AUTH_EXTENSION] = TokenSet.from_config(ServeConfig(review_tokens="desk-token",
+                                                                       admin_tokens="ops-token"))
 
     @app.errorhandler(DemurError)
     def _err(exc: DemurError) -> Any:
-        return exc.to_payload(), exc.status
+        status, headers, data = refusal(exc)  # the app's one error path (serve/web/predict_http.py)
+        return data, status, [*headers, ("Content-Type", "application/json")]
 
     @app.get("/desk")
     @require("review")

@@ -1,4 +1,4 @@
-"""serve/web/front.py: the event-loop HTTP front of ``demur serve``, over real sockets on 127.0.0.1.
+"""serve/web/loop/: the event-loop HTTP front of ``demur serve``, over real sockets on 127.0.0.1.
 
 References: RFC 9112 (HTTP/1.1 message syntax: pipelining answered in order,
 ``Expect: 100-continue``, chunked bodies, ``Connection: close``); RFC 9110 for
@@ -319,3 +319,61 @@ def test_arbitrary_bodies_never_get_a_5xx(live: Server, body: bytes, ctype: byte
     if status >= 400:
         error = json.loads(answer)["error"]
         assert error["field"] and error["message"]
+
+
+# -- HTTP semantics found wanting by a hostile client (RFC 9110 / RFC 9112) ---------------------
+
+
+def test_http10_keep_alive_is_said_aloud(live: Server) -> None:
+    """RFC 9112 appendix C.2.2 (and 9.3): an HTTP/1.0 connection persists only when the answer
+    carries ``Connection: keep-alive``; without it a client such as ``ab -k`` waits out the idle
+    timeout on every request. Three requests on one connection, each answered at once."""
+    with _connect(live) as sock:
+        reader = _Reader(sock)
+        for _ in range(3):
+            sock.sendall(b"GET /healthz HTTP/1.0\r\nConnection: keep-alive\r\n\r\n")
+            status, headers, _ = reader.response()
+            assert status == 200 and headers["connection"].lower() == "keep-alive"
+        sock.sendall(b"GET /healthz HTTP/1.0\r\n\r\n")  # no keep-alive asked: closed after the answer
+        status, headers, _ = reader.response()
+        assert status == 200 and headers["connection"].lower() == "close" and reader.closed()
+
+
+def test_upgrade_is_ignored_and_answered_once(live: Server) -> None:
+    """RFC 9110 section 7.8: a server may ignore Upgrade. The upgrade request gets one answer and
+    the pipelined request after it gets its own (before: a 200, then a stray 400)."""
+    body = json.dumps({"cases": _rows(1)}).encode()
+    with _connect(live) as sock:
+        reader = _Reader(sock)
+        sock.sendall(b"GET /healthz HTTP/1.1\r\nHost: x\r\nConnection: Upgrade, HTTP2-Settings\r\n"
+                     b"Upgrade: h2c\r\nHTTP2-Settings: AAMAAABkAARAAAAAAAIAAAAA\r\n\r\n" + _post("/v1/predict", body))
+        first, second = reader.response(), reader.response()
+    assert first[0] == 200 and b"alive" in first[2]
+    assert second[0] == 200 and json.loads(second[2])["results"]
+
+
+def test_100_continue_only_for_http11_and_in_order(live: Server) -> None:
+    """RFC 9110 section 10.1.1: a server ignores 100-continue from an HTTP/1.0 client, and an
+    interim answer must not overtake the final answer of an earlier pipelined request."""
+    body = json.dumps({"cases": _rows(1)}).encode()
+    with _connect(live) as sock:
+        reader = _Reader(sock)
+        sock.sendall(f"POST /v1/predict HTTP/1.0\r\nContent-Type: application/json\r\nContent-Length: {len(body)}"
+                     f"\r\nExpect: 100-continue\r\nConnection: keep-alive\r\n\r\n".encode() + body)
+        status, _, _ = reader.response()
+        assert status == 200  # the final answer, no 100 ahead of it
+    with _connect(live) as sock:
+        reader = _Reader(sock)
+        sock.sendall(_post("/v1/predict", body) + _post("/v1/predict", body, extra="Expect: 100-continue\r\n"))
+        statuses = [reader.response()[0] for _ in range(3)]
+    assert statuses == [200, 100, 200]
+
+
+def test_refusals_are_counted_with_the_client(live: Server) -> None:
+    """A request refused while parsing still counts in the request metric (route "other")."""
+    before = _metric(live, "demur_http_requests_total")
+    with _connect(live) as sock:
+        sock.sendall(b"GARBAGE / HTTP/1.1\r\n\r\n")
+        status, _, body = _Reader(sock).response()
+    assert status == 400 and json.loads(body)["error"]["field"] == "request"
+    assert _metric(live, "demur_http_requests_total") >= before + 1

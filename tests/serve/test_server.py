@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import signal
 import socket
 import subprocess
@@ -72,6 +73,13 @@ class Server:
         return int(self.proc.returncode)
 
 
+def _all_workers_ready(text: str) -> bool:
+    """Every worker the start line announced has printed its ready line (a worker stopped
+    while still loading its sessions would muddy the shutdown checks)."""
+    match = re.search(r"with (\d+) worker\(s\)", text)
+    return match is not None and text.count(" ready at ") >= int(match.group(1))
+
+
 def _start(bundle_path: Path, tmp_path: Path, *extra: str, env: dict[str, str] | None = None) -> Server:
     port = _free_port()
     log = tmp_path / "server.log"
@@ -86,7 +94,7 @@ def _start(bundle_path: Path, tmp_path: Path, *extra: str, env: dict[str, str] |
         if proc.poll() is not None:
             raise AssertionError(f"demur serve exited with {proc.returncode}:\n{log.read_text()}")
         try:
-            if _call(server.url + "/readyz")[0] == 200:
+            if _call(server.url + "/readyz")[0] == 200 and _all_workers_ready(log.read_text()):
                 return server
         except (urllib.error.URLError, ConnectionError, OSError):
             pass
@@ -121,9 +129,9 @@ def test_gunicorn_options() -> None:
 
     opts = gunicorn_options(ServeConfig(bundle="b", port=8601, workers=3, threads=4))
     assert opts["bind"] == "127.0.0.1:8601" and opts["workers"] == 3 and opts["threads"] == 4
-    assert opts["worker_class"] == "demur.serve.web.front.FrontWorker" and opts["preload_app"] is False  # app after fork
-    threaded = gunicorn_options(ServeConfig(bundle="b", front="threads"))
-    assert threaded["worker_class"] == "gthread"
+    assert opts["worker_class"] == "demur.serve.web.loop.worker.FrontWorker" and opts["preload_app"] is False  # app after fork
+    assert gunicorn_options(ServeConfig(bundle="b"))["workers"] == (os.cpu_count() or 1)  # 0: one per core
+    assert gunicorn_options(ServeConfig(bundle="b"))["forwarded_allow_ips"] == ""  # no header rewriting
     assert "%(U)s" in ACCESS_LOG_FORMAT and "%(q)s" not in ACCESS_LOG_FORMAT and "%(r)s" not in ACCESS_LOG_FORMAT
 
 

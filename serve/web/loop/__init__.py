@@ -1,0 +1,1 @@
+"""The loop front (the one production HTTP front): connection, batcher, bridge, worker."""
