@@ -19,7 +19,7 @@ import tomllib
 from collections.abc import Mapping
 from dataclasses import dataclass, fields
 from pathlib import Path
-from typing import Any, get_type_hints
+from typing import Any, get_args, get_type_hints
 
 from demur.serve.errors import ConfigError
 
@@ -97,28 +97,35 @@ class ServeConfig:
 
 
 def _coerce(name: str, hint: Any, value: Any, source: str) -> Any:
-    text = hint.__name__ if isinstance(hint, type) else str(hint)  # int -> "int", not "<class 'int'>"
-    try:
-        if value is None:
+    """``value`` (from TOML, an environment string or a flag) as the field's type.
+    ``T | None`` fields take None, or an empty string from the environment, as "not set"."""
+    args = [a for a in get_args(hint) if a is not type(None)]
+    optional = len(args) < len(get_args(hint))
+    kind = args[0] if args else hint
+    if value is None or (optional and isinstance(value, str) and value.strip() == ""):
+        if optional:
             return None
-        if "bool" in text and not isinstance(value, bool):
+        raise ConfigError(f"setting '{name}' from {source} needs a value", field=name)
+    try:
+        if kind is bool:
+            if isinstance(value, bool):
+                return value
             low = str(value).strip().lower()
             if low in ("1", "true", "yes", "on"):
                 return True
             if low in ("0", "false", "no", "off"):
                 return False
             raise ValueError(value)
-        if text.startswith("int") or text == "int | None":
-            if isinstance(value, str) and value.strip() == "" and "None" in text:
-                return None
+        if kind in (int, float) and isinstance(value, bool):
+            raise ValueError(value)  # TOML true is not a number
+        if kind is int:
             return int(value)
-        if text.startswith("float") or text == "float | None":
-            if isinstance(value, str) and value.strip() == "" and "None" in text:
-                return None
+        if kind is float:
             return float(value)
         return str(value)
     except (TypeError, ValueError):
-        raise ConfigError(f"setting '{name}' from {source} must be {text}; got {value!r}", field=name) from None
+        raise ConfigError(f"setting '{name}' from {source} must be {getattr(kind, '__name__', kind)}; "
+                          f"got {value!r}", field=name) from None
 
 
 def build_config(

@@ -36,6 +36,7 @@ from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
+from scipy.stats import kstwobign
 
 from demur.serve.errors import ConfigError
 
@@ -79,11 +80,14 @@ def bin_fractions(values: np.ndarray, cuts: np.ndarray | list[float]) -> np.ndar
     return counts / total if total > 0 else counts
 
 
-def psi(expected: np.ndarray, actual: np.ndarray, floor: float = PSI_FLOOR) -> float:
-    """Population Stability Index between two vectors of bin fractions (nats)."""
+def psi(expected: np.ndarray, actual: np.ndarray, floor: float = PSI_FLOOR) -> Any:
+    """Population Stability Index between bin fractions (nats), over the last axis:
+    vectors give a float, ``[F, bins]`` arrays one value per feature. Fractions below
+    ``floor`` count as ``floor`` (an empty bin would make the index infinite)."""
     p = np.maximum(np.asarray(actual, dtype=np.float64), floor)
     q = np.maximum(np.asarray(expected, dtype=np.float64), floor)
-    return float(np.sum((p - q) * np.log(p / q)))
+    out = np.sum((p - q) * np.log(p / q), axis=-1)
+    return float(out) if out.ndim == 0 else out
 
 
 def score_reference(name: str, values: np.ndarray, keep: int = 2000) -> dict[str, Any]:
@@ -215,10 +219,7 @@ class DriftMonitor:
             n = self._filled
         if n == 0 or self.n_features == 0:
             return np.zeros(self.n_features)
-        p = np.maximum(counts / n, floor)
-        q = np.maximum(self._expected, floor)
-        # padded bins have p = q = floor and add exactly 0
-        return np.sum((p - q) * np.log(p / q), axis=1)
+        return psi(self._expected, counts / n, floor)  # padded bins have p = q = floor: they add 0
 
     def score_ks(self) -> float:
         """KS statistic of recent decision scores against the reference scores (``nan`` if either is empty)."""
@@ -229,17 +230,12 @@ class DriftMonitor:
     def score_ks_critical(self, alpha: float = KS_ALPHA) -> float:
         """Large-sample critical value of the two-sample KS statistic at level ``alpha``.
 
-        c(alpha) * sqrt((n + m) / (n * m)) with c(alpha) = sqrt(-ln(alpha / 2) / 2), n the
-        window's cases and m the reference scores (the asymptotic Kolmogorov
-        distribution; formula from memory). Ties in the scores make the test
-        conservative. ``nan`` when either side is empty.
+        c(alpha) * sqrt((n + m) / (n * m)), c(alpha) the upper-alpha quantile of the
+        Kolmogorov distribution (``scipy.stats.kstwobign.isf``), n the window's cases and m
+        the reference scores. Ties in the scores make the test conservative. ``nan`` when
+        either side is empty.
         """
         n, m = self._filled, self._score_ref.size
         if n == 0 or m == 0:
             return float("nan")
-        return float(math.sqrt(-math.log(alpha / 2.0) / 2.0) * math.sqrt((n + m) / (n * m)))
-
-    def recent_scores(self) -> np.ndarray:
-        """The scores in the window (oldest first is not guaranteed): float[n]."""
-        with self._lock:
-            return self._scores[: self._filled].copy()
+        return float(kstwobign.isf(alpha) * math.sqrt((n + m) / (n * m)))

@@ -132,6 +132,10 @@ def test_ks_critical_value_matches_the_limiting_kolmogorov_distribution(n: int, 
     mon.observe(np.zeros((n, 0)), rng.random(n))
     want = scipy.stats.kstwobign.isf(drift.KS_ALPHA) * math.sqrt((n + m) / (n * m))
     assert mon.score_ks_critical() == pytest.approx(want, rel=1e-6)
+    # and the first term of the Kolmogorov series, c = sqrt(-ln(alpha / 2) / 2) (Smirnov 1948),
+    # which the tail 2 exp(-2 c^2) makes exact to ~1e-7 at alpha = 0.001
+    assert mon.score_ks_critical() == pytest.approx(
+        math.sqrt(-math.log(drift.KS_ALPHA / 2) / 2) * math.sqrt((n + m) / (n * m)), rel=1e-4)
 
 
 def test_ks_empty_sample_is_nan() -> None:
