@@ -15,8 +15,9 @@ import math
 import numpy as np
 import pytest
 
-import demur.export.calibrate as calibrate_mod
-from demur.export.calibrate import calibrate
+import importlib
+
+from demur.export.calibrate import calibrate, calibrate_file
 from demur.serve.core.bundle import load_bundle, write_manifest
 from demur.serve.offline.calibration import select_for_abstain
 from demur.serve.cli import main
@@ -35,9 +36,12 @@ def _tree(path):
     return {p.name: p.read_bytes() for p in sorted(path.iterdir()) if p.is_file()}
 
 
+calibrate_mod = importlib.import_module("demur.export.calibrate")  # the package attribute is the function
+
+
 def test_all_is_exact():
     assert sorted(calibrate_mod.__all__) == sorted(["BATCH_ROWS", "CalibrationOutcome", "FLOOR_QUANTILE", "calibrate",
-                                                   "register"])
+                                                   "calibrate_file", "register"])
 
 
 def test_impossible_target_leaves_bundle_untouched(tiny_bundle_factory, copy_bundle, capsys, tmp_path):
@@ -66,7 +70,7 @@ def test_target_abstain_rewrites_manifest_through_the_serving_path(tiny_bundle_f
     write_manifest(path, raw)
     seal = _sha(path)
 
-    out = calibrate(str(path), "digits", target_abstain=0.05, report=str(tmp_path / "rep"))
+    out = calibrate_file(str(path), "digits", target_abstain=0.05, report=str(tmp_path / "rep"))
     bundle = load_bundle(path)
     assert out.checksum == bundle.checksum != seal
     m = bundle.manifest
@@ -94,12 +98,12 @@ def test_target_abstain_rewrites_manifest_through_the_serving_path(tiny_bundle_f
 def test_contradictory_options_are_config_errors(tiny_bundle_factory, copy_bundle):
     path = copy_bundle(tiny_bundle_factory())
     with pytest.raises(ConfigError, match="exactly one"):
-        calibrate(str(path), "digits")
+        calibrate_file(str(path), "digits")
     with pytest.raises(ConfigError, match="not defined for classification"):
-        calibrate(str(path), "digits", target_abstain=0.1, score="interval_width")
+        calibrate_file(str(path), "digits", target_abstain=0.1, score="interval_width")
     reg = copy_bundle(tiny_bundle_factory(task="regression"))
     with pytest.raises(ConfigError, match="for classifiers"):
-        calibrate(str(reg), "diabetes", target_accuracy=0.9)
+        calibrate_file(str(reg), "diabetes", target_accuracy=0.9)
 
 
 @pytest.mark.slow
@@ -144,7 +148,7 @@ def test_diabetes_conformal_calibration(diabetes_bundle, copy_bundle, tmp_path):
     """Split conformal on load_diabetes through the CLI path: the record holds q and the level, the
     served interval becomes mean ± q * sd (serve/core/summary.py), test coverage is reported."""
     path = copy_bundle(diabetes_bundle)
-    out = calibrate(str(path), "diabetes", coverage=0.9, report=str(tmp_path / "rep"))
+    out = calibrate_file(str(path), "diabetes", coverage=0.9, report=str(tmp_path / "rep"))
     m = load_bundle(path).manifest
     q = m.target["conformal_q"]
     assert m.target["conformal_level"] == 0.9 and q > 0 and math.isfinite(q)
@@ -177,7 +181,7 @@ def test_diabetes_interval_is_wider_out_of_range_and_still_covers(diabetes_bundl
     and the mean coverage of the other half must be >= 1 - alpha - 0.02 (the mean of 300 split
     coverages has standard error about 0.003, plus the 1/(n+1) granularity; common practice)."""
     path = copy_bundle(diabetes_bundle)
-    calibrate(str(path), "diabetes", coverage=0.9)
+    calibrate_file(str(path), "diabetes", coverage=0.9)
     bundle = load_bundle(path)
     m = bundle.manifest
     floor = m.target["aleatoric_floor"]
@@ -219,5 +223,5 @@ def test_infeasible_is_a_calibration_error(tiny_bundle_factory, copy_bundle):
     path = copy_bundle(tiny_bundle_factory())
     seal = _sha(path)
     with pytest.raises(CalibrationInfeasible):
-        calibrate(str(path), "digits", target_accuracy=0.9, max_abstain=0.5)
+        calibrate_file(str(path), "digits", target_accuracy=0.9, max_abstain=0.5)
     assert _sha(path) == seal and np.isfinite(load_bundle(path).manifest.decision.threshold)
