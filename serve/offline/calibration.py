@@ -88,6 +88,7 @@ mean interval width, RMSE, MAE.
 from __future__ import annotations
 
 import datetime as _dt
+import functools
 import hashlib
 import math
 from dataclasses import dataclass, field
@@ -344,6 +345,7 @@ def _zero_error_cases(target_accuracy: float, level: float) -> int:
     return math.ceil(math.log(level) / math.log(target_accuracy) - 1e-9)
 
 
+@functools.lru_cache(maxsize=256)
 def minimum_rows(target_accuracy: float, delta: float, *, max_abstain: float = DEFAULT_MAX_ABSTAIN,
                  method: str = "fixed_sequence", max_candidates: int = MAX_CANDIDATES) -> int:
     """Fewest calibration rows n with which the target can be certified at all (every
