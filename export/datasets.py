@@ -10,7 +10,7 @@ Every source is cut the same way, once, with a fixed seed::
 
     train 0.55   fits the weights
     val   0.05   reported during training (early warning, not for tuning the test)
-    cal   0.20   held out for calibrating the abstention threshold (later issue)
+    cal   0.20   the bundled sets' calibration cases (a user's own file calibrates whole)
     test  0.20   the reported accuracy / ECE
 
 Split sizes are round(fraction * N) for val, cal and test; train takes the

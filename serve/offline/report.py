@@ -363,7 +363,7 @@ def _html(report: Mapping[str, Any], images: list[tuple[str, str]]) -> str:
         lines = decision_lines(rec)
         parts.append(f"<h2>The decision</h2><p class='decision'>{html.escape(lines[0][0].upper() + lines[0][1:])}."
                      "</p>")
-        parts += [f"<p>{html.escape(line[0].upper() + line[1:])}.</p>" for line in lines[1:]]
+        parts += [f"<p>{html.escape(line[0].upper() + line[1:].rstrip('.'))}.</p>" for line in lines[1:]]
         ach = rec.get("achieved", {})
         rows = [("score", rec.get("score")), ("threshold (abstain when score is above)", rec.get("threshold")),
                 ("method", rec.get("method")), ("reference", rec.get("reference")),

@@ -153,8 +153,12 @@ def test_diabetes_conformal_calibration(diabetes_bundle, copy_bundle, tmp_path):
     q = m.target["conformal_q"]
     assert m.target["conformal_level"] == 0.9 and q > 0 and math.isfinite(q)
     assert out.record["conformal"]["q"] == q
+    before = out.record["conformal"]["model_coverage_before"]
     print(f"\n[diabetes] q = {q:.4f}; calibration coverage {out.record['conformal']['coverage_cal']:.3f}; "
-          f"test coverage {out.record['test']['coverage']:.3f}; abstain {out.record['test']['abstain_rate']:.3f}")
+          f"test coverage {out.record['test']['coverage']:.3f} (model's own interval before conformal: "
+          f"{before:.3f}); abstain {out.record['test']['abstain_rate']:.3f}")
+    assert out.record["test"]["coverage_before"] == before and 0.0 <= before <= 1.0
+    assert "before the correction the model" in (tmp_path / "rep" / "index.html").read_text()
     # one test split of 88 cases: binomial standard error about 0.03, so allow 3 SE below 0.9
     assert out.record["test"]["coverage"] >= 0.9 - 3 * math.sqrt(0.09 / 88)
     for name in ("report.json", "coverage.png", "residuals.png", "score_hist.png", "index.html"):
