@@ -1,40 +1,62 @@
-"""``demur calibrate``: labelled held-out data -> a threshold with a stated guarantee.
+"""``demur calibrate``: a user's labelled held-out cases -> a threshold with a stated guarantee.
 
-The bundle runs through exactly the serving path -- ``demur.serve.adapters.engine.Engine`` ->
-``demur.serve.core.summary.summarise`` -> ``demur.serve.core.decision.score_values`` -- on the
-calibration split; the numerics of the choice live in ``demur.serve.offline.calibration``.
-Then the manifest's decision section gets the new threshold and the
-calibration record, ``drift_reference.score`` is refreshed with the
-calibration scores, and ``demur.serve.core.bundle.write_manifest`` rewrites manifest and
-seal (unknown keys kept). If the target cannot be met, nothing in the bundle
-changes: the message says so with the best achievable figures and the
-command exits non-zero.
+The calibration set is the user's: every row of ``--data FILE`` (CSV, columns
+matched to the bundle's feature names in any order) is a calibration case. The
+independent check is ``--test FILE2``, or ``--holdout F`` (a seeded share of the
+file set aside and said so). The bundled scikit-learn sets (``digits``,
+``diabetes``) keep their documented split (export/datasets.py): calibration on
+the cal split, the check on the test split. From Python::
+
+    from demur.export import calibrate
+    record = calibrate("build/model", x_holdout, y_holdout, target_accuracy=0.98,
+                       confidence=0.9, max_abstain=0.3, test=(x_check, y_check))
+
+Before anything is computed: the header must name exactly the bundle's features
+(plus the target and ``--ignore`` columns); rows the bundle's training-row
+fingerprint recognises (``demur.serve.core.fingerprint``) are refused, or with
+``--drop-training-rows`` dropped with a warning saying how many; a set too
+small for the target even with no error is refused with the number needed.
+
+Then the rows run through exactly the serving path (``Engine`` -> ``summarise``
+-> ``score_values``), ``demur.serve.offline.calibration`` chooses the threshold,
+and the manifest gets the new records (``_manifest_records``: threshold,
+calibration record, score drift reference; the one place they are assembled) and
+a new seal. If the target cannot be met, nothing in the bundle changes and the
+command exits non-zero with the best achievable figures.
 
 Examples (the parcel depot's postcode digits)::
 
-    demur calibrate build/digits --data digits --target-accuracy 0.99 --confidence 0.9 \\
-        --max-abstain 0.3 --report build/report
-    demur calibrate build/digits --data digits --target-abstain 0.05
-    demur calibrate build/diabetes --data diabetes --coverage 0.9
-    demur calibrate build/model --data cases.csv --target label --target-accuracy 0.95
-
-The held-out split must be the one training held out: for the training
-source, the split seed recorded in the bundle (``extensions.training.data``)
-is used, so calibration cases were never seen in training.
+    demur calibrate build/demo/bundle --data build/demo/holdout-cal.csv --test build/demo/holdout-test.csv \\
+        --target-accuracy 0.98 --confidence 0.9 --max-abstain 0.3 --report build/demo/report
+    demur calibrate BUNDLE --data keyed-postcodes.csv --target digit --holdout 0.5 --target-abstain 0.05
+    demur calibrate BUNDLE --data diabetes --coverage 0.9
 """
 
 from __future__ import annotations
 
 import argparse
 import copy
-from dataclasses import dataclass
+import sys
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from demur.serve.adapters.engine import Engine
 from demur.serve.core.bundle import Bundle, load_bundle, write_manifest
+from demur.serve.core.decision import SCORE_TASKS, SCORE_UNITS, score_values
+from demur.serve.core.drift import score_reference
+from demur.serve.core.fingerprint import training_overlap
+from demur.serve.core.summary import conformal_variance, summarise
+from demur.serve.errors import CalibrationInfeasible, ConfigError
 from demur.serve.offline.calibration import (
+    DEFAULT_MAX_ABSTAIN,
+    ThresholdChoice,
+    batch_spread,
     calibration_record,
+    check_feasible,
     classification_metrics,
     conformal_scale,
     fingerprint,
@@ -42,17 +64,12 @@ from demur.serve.offline.calibration import (
     select_for_abstain,
     select_for_accuracy,
 )
-from demur.serve.core.decision import SCORE_TASKS, SCORE_UNITS, score_values
-from demur.serve.core.drift import score_reference
-from demur.serve.adapters.engine import Engine
-from demur.serve.errors import CalibrationInfeasible, ConfigError
-from demur.serve.offline.report import ClassificationPlots, RegressionPlots, write_report
-from demur.serve.core.summary import conformal_variance, summarise
+from demur.serve.offline.report import ClassificationPlots, RegressionPlots, decision_lines, write_report
 
-from demur.export.datasets import Dataset, load_dataset
+from demur.export.datasets import BUILTIN, column_order, load_dataset, read_labelled
 from demur.export.errors import DatasetError
 
-__all__ = ["BATCH_ROWS", "CalibrationOutcome", "FLOOR_QUANTILE", "calibrate", "register"]
+__all__ = ["BATCH_ROWS", "CalibrationOutcome", "FLOOR_QUANTILE", "calibrate", "calibrate_file", "register"]
 
 BATCH_ROWS = 256
 """Rows per graph run, bounding memory to about S * 256 * K floats."""
@@ -62,26 +79,249 @@ DEFAULT_REGRESSION_ABSTAIN = 0.05
 
 FLOOR_QUANTILE = 0.5
 """Regression: the aleatoric floor is this quantile (the median) of the per-case aleatoric
-variance on the VALIDATION split's inputs. Why the median and not the minimum: measured on
+variance over label-free inputs: the VALIDATION split for the bundled sets, the calibration
+inputs (labels unused) for a user's file. Why the median and not the minimum: measured on
 load_diabetes (hidden [32], 40 epochs, S = 32), a minimum or 1% floor left the interval
 NARROWER on inputs 3 training sd past the maximum (198 vs 200 target units) because the
 model's epistemic spread there is about the size of the in-range noise; the median made it
-wider (243 vs 203; unfloored 183 vs 200) for a 2% wider in-range interval. Still narrower:
-inputs scaled 3x about the training mean, many of them inside the range on most features
-(183 vs 203). Why the validation split: the floor
-must not depend on the calibration cases, so the conformal score stays a fixed function
-and the split-conformal guarantee is exact (Lei et al. 2018, section 2.2)."""
+wider (243 vs 203; unfloored 183 vs 200) for a 2% wider in-range interval. Why label-free:
+the conformal score must not depend on the calibration labels. On the validation split it is
+fixed before the calibration set and split conformal is exact (Lei et al. 2018, section 2.2);
+from the calibration inputs it is a symmetric function of them that ignores the new case, a
+small departure from exact exchangeability, said so in the record."""
 
 
 @dataclass(frozen=True)
 class CalibrationOutcome:
-    """What ``calibrate`` did: the calibration ``record`` now in the manifest, the new
-    ``checksum`` (seal), the report.json path (or None) and every ``figure`` reported."""
+    """What ``calibrate_file`` did: the calibration ``record`` now in the manifest, the new
+    ``checksum`` (seal), the report.json path (or None), every ``figure`` reported and the
+    ``notes`` (warnings) printed beside them."""
 
     record: dict[str, Any]
     checksum: str
     report: str | None
     figures: dict[str, Any]
+    notes: tuple[str, ...] = ()
+
+
+@dataclass
+class _Cases:
+    """Labelled cases in bundle order: x float64[N, F], y class indices or values, lines for messages."""
+
+    x: np.ndarray
+    y: np.ndarray
+    source: str
+    lines: np.ndarray | None = None
+    rows: int = 0
+    dropped: int = 0
+    notes: list[str] = field(default_factory=list)
+
+
+# -- the Python API -----------------------------------------------------------------
+
+
+def calibrate(bundle: str | Path | Bundle, X: Any, y: Any, *, target_accuracy: float | None = None,
+              confidence: float = 0.9, max_abstain: float = DEFAULT_MAX_ABSTAIN,
+              target_abstain: float | None = None, coverage: float | None = None,
+              test: tuple[Any, Any] | None = None, drop_training_rows: bool = False,
+              batch: int | None = None, score: str | None = None, method: str = "fixed_sequence",
+              graph: str = "auto", engine_seed: int | None = 0, report: str | Path | None = None) -> dict[str, Any]:
+    """Calibrate ``bundle`` on every row of ``X`` (raw inputs float[N, F] in the bundle's
+    feature order, float[N, *shape], or a table with ``.columns`` matched by name) with
+    labels ``y`` (class names as text, or class indices 0..K-1; regression: values).
+
+    Exactly one goal: ``target_accuracy`` (classifiers; with ``confidence`` and
+    ``max_abstain``), ``target_abstain`` (expected share abstained), or for a regression
+    bundle ``coverage`` (conformal interval level) and optionally ``target_abstain``.
+    ``test``: an independent (X, y) for the check. ``batch``: the future batch size the
+    spread is computed for (default n). Returns the calibration record written to the
+    manifest; raises ``CalibrationInfeasible`` (bundle untouched) or ``ConfigError`` /
+    ``DatasetError`` naming the argument or column at fault.
+    """
+    b = bundle if isinstance(bundle, Bundle) else load_bundle(bundle)
+    _check_goal(b.manifest.task, target_accuracy, target_abstain, coverage)
+    cal = _from_arrays(b, X, y, "arrays", "X")
+    check = _from_arrays(b, test[0], test[1], "test arrays", "test") if test is not None else None
+    return _calibrate(b, cal, check, None, target_accuracy=target_accuracy, confidence=confidence,
+                      max_abstain=max_abstain, target_abstain=target_abstain, coverage=coverage,
+                      drop_training_rows=drop_training_rows, batch=batch, score=score, method=method,
+                      graph=graph, engine_seed=engine_seed, report=report, split=None).record
+
+
+def calibrate_file(bundle: str | Path, data: str, *, target: str | None = None, test: str | None = None,
+                   holdout: float | None = None, seed: int | None = None, ignore: Sequence[str] = (),
+                   **options: Any) -> CalibrationOutcome:
+    """``demur calibrate``: ``data`` is a CSV path (every row calibrates) or a bundled set
+    (its documented cal split; the test split is the check). ``test``: a CSV for the check;
+    ``holdout``: instead, set aside this share of ``data`` (seeded by ``seed``, default 0).
+    ``options`` are ``calibrate``'s keyword arguments."""
+    b = load_bundle(bundle)
+    m = b.manifest
+    _check_goal(m.task, options.get("target_accuracy"), options.get("target_abstain"), options.get("coverage"))
+    trained = (m.raw.get("extensions", {}).get("training", {}) or {}).get("data", {}) or {}
+    target = target or trained.get("target")
+    floor_x, split = None, None
+    if str(data) in BUILTIN:
+        if holdout is not None:
+            raise ConfigError(f"--holdout is for your own file; '{data}' keeps its documented split", field="holdout")
+        same = str(trained.get("source", data)) == str(data)
+        split_seed = int(seed if seed is not None else (trained.get("seed", 0) if same else 0))
+        ds = load_dataset(data, None, seed=split_seed, task=m.task)
+        if m.task == "classification" and tuple(ds.labels) != tuple(m.labels):
+            raise DatasetError(f"data '{data}' has labels {list(ds.labels)}; bundle {b.path} has {list(m.labels)}",
+                               field="data")
+        if ds.n_features != m.inputs.size:
+            raise DatasetError(f"data '{data}' has {ds.n_features} features; bundle {b.path} expects "
+                               f"{m.inputs.size}", field="data")
+        column_order(list(ds.feature_names), list(m.inputs.names), where=f"'{data}'")
+        cal = _Cases(ds.x_cal, ds.y_cal, f"{data} (cal split, seed {split_seed})", rows=len(ds.y_cal))
+        check = _Cases(ds.x_test, ds.y_test, f"{data} (test split, seed {split_seed})", rows=len(ds.y_test))
+        floor_x = ds.x_val
+        split = {"kind": "documented split", "seed": split_seed}
+    else:
+        if target is None:
+            raise ConfigError("a CSV needs --target COLUMN (the label column); the bundle records none",
+                              field="target")
+        cal = _from_file(b, data, target, ignore)
+        check = _from_file(b, test, target, ignore) if test is not None else None
+        if holdout is not None:
+            if check is not None:
+                raise ConfigError("give --test FILE or --holdout F, not both", field="holdout")
+            cal, check, split = _hold_out(cal, holdout, 0 if seed is None else int(seed))
+    if test is not None and str(data) in BUILTIN:
+        check = _from_file(b, test, target or "", ignore)
+    return _calibrate(b, cal, check, floor_x, split=split, **options)
+
+
+# -- reading and checking cases -----------------------------------------------------
+
+
+def _labels_to_index(bundle: Bundle, y: Any, source: str, lines: np.ndarray | None, what: str) -> np.ndarray:
+    m = bundle.manifest
+    arr = np.asarray(y)
+    if m.task == "regression":
+        try:
+            out = arr.astype(np.float64).ravel()
+        except ValueError as exc:
+            raise DatasetError(f"{what} must be numbers for a regression bundle; {exc}", field=what) from None
+        bad = np.flatnonzero(~np.isfinite(out))
+        if len(bad):
+            where = f"line {lines[bad[0]]}" if lines is not None else f"row {bad[0]}"
+            raise DatasetError(f"{what} must be finite; {source} {where} has {out[bad[0]]}", field=what)
+        return out
+    labels = [str(v) for v in m.labels]
+    if lines is None and (arr.dtype.kind in "iu" or (arr.dtype.kind == "f" and np.all(arr == np.round(arr)))):
+        idx = arr.astype(np.int64).ravel()
+        bad = np.flatnonzero((idx < 0) | (idx >= len(labels)))
+        if len(bad):
+            raise DatasetError(f"{what} holds class indices, which must be in 0..{len(labels) - 1}; row {bad[0]} "
+                               f"has {idx[bad[0]]}", field=what)
+        return idx
+    index = {lab: i for i, lab in enumerate(labels)}
+    out = np.empty(arr.size, dtype=np.int64)
+    for i, cell in enumerate(arr.ravel().tolist()):
+        key = _label_key(str(cell).strip(), index)
+        if key is None:
+            where = f"line {lines[i]}" if lines is not None else f"row {i}"
+            raise DatasetError(f"{what}: {source} {where} has label {str(cell)[:40]!r}; the bundle's labels are "
+                               f"{labels[:20]}", field=what)
+        out[i] = index[key]
+    return out
+
+
+def _label_key(cell: str, index: dict[str, int]) -> str | None:
+    if cell in index:
+        return cell
+    try:  # "3.0" in a file for label "3"
+        v = float(cell)
+    except ValueError:
+        return None
+    text = str(int(v)) if v.is_integer() else repr(v)
+    return text if text in index else None
+
+
+def _from_arrays(bundle: Bundle, X: Any, y: Any, source: str, what: str) -> _Cases:
+    names = list(bundle.manifest.inputs.names)
+    if hasattr(X, "columns"):  # a table: match by name, as for a file
+        cols = column_order([str(c) for c in X.columns], names, where=f"{what} (columns)")
+        X = np.asarray(X.to_numpy() if hasattr(X, "to_numpy") else X, dtype=np.float64)[:, cols]
+    x = np.asarray(X, dtype=np.float64)
+    size = bundle.manifest.inputs.size
+    if x.ndim < 2 or int(np.prod(x.shape[1:])) != size:
+        raise DatasetError(f"{what} must be float[N, {size}] (or [N, *{list(bundle.manifest.inputs.shape)}]); "
+                           f"got shape {list(x.shape)}", field=what)
+    x = x.reshape(len(x), size)
+    if not np.all(np.isfinite(x)):
+        r = int(np.flatnonzero(~np.all(np.isfinite(x), axis=1))[0])
+        raise DatasetError(f"{what} must hold finite numbers; row {r} does not", field=what)
+    yy = _labels_to_index(bundle, y, source, None, "y" if what == "X" else f"{what} labels")
+    if len(yy) != len(x):
+        raise DatasetError(f"{what} has {len(x)} rows but its labels have {len(yy)}", field="y")
+    return _Cases(x, yy, source, rows=len(x))
+
+
+def _from_file(bundle: Bundle, path: str, target: str, ignore: Sequence[str]) -> _Cases:
+    if not Path(path).is_file():
+        from demur.export.errors import DatasetNotFound
+
+        raise DatasetNotFound(f"data must be one of {list(BUILTIN)} or an existing CSV file; got {path!r}",
+                              field="data")
+    rows = read_labelled(path, list(bundle.manifest.inputs.names), target, ignore=ignore)
+    y = _labels_to_index(bundle, np.asarray(rows.y, dtype=object), path, rows.lines, target)
+    return _Cases(rows.x, y, path, lines=rows.lines, rows=len(rows.x))
+
+
+def _hold_out(cal: _Cases, share: float, seed: int) -> tuple[_Cases, _Cases, dict[str, Any]]:
+    if not 0.0 < share < 1.0:
+        raise ConfigError(f"--holdout must be a share in (0, 1); got {share}", field="holdout")
+    n_test = int(round(share * len(cal.y)))
+    if n_test < 1 or n_test >= len(cal.y):
+        raise ConfigError(f"--holdout {share} of {len(cal.y)} rows leaves an empty part", field="holdout")
+    perm = np.random.default_rng(seed).permutation(len(cal.y))
+    t, c = np.sort(perm[:n_test]), np.sort(perm[n_test:])
+
+    def part(rows: np.ndarray, name: str) -> _Cases:
+        lines = cal.lines[rows] if cal.lines is not None else None
+        return _Cases(cal.x[rows], cal.y[rows], f"{cal.source} ({name})", lines=lines, rows=len(rows))
+
+    split = {"kind": "holdout", "share": share, "seed": seed, "rule": "numpy.random.default_rng(seed).permutation; "
+             f"the first {n_test} rows of the permutation are the check"}
+    return part(c, "calibration part"), part(t, f"holdout {share:g}, seed {seed}"), split
+
+
+def _screen_training_rows(bundle: Bundle, cases: _Cases, drop: bool, what: str) -> None:
+    """Refuse (or drop, with a note) rows the bundle's training-row fingerprint recognises."""
+    record = bundle.manifest.raw.get("extensions", {}).get("training_rows")
+    if record is None:
+        cases.notes.append(f"warning: bundle {bundle.path} records no training-row fingerprint, so {what} could "
+                           "not be checked for rows the model was trained on")
+        return
+    try:
+        overlap = training_overlap(record, cases.x)
+    except ValueError as exc:
+        raise DatasetError(f"cannot check {what} against the training rows: {exc}", field="data") from None
+    if not overlap.count:
+        return
+    where = (f"lines {', '.join(str(v) for v in cases.lines[overlap.seen][:8])}" if cases.lines is not None
+             else f"rows {', '.join(str(v) for v in np.flatnonzero(overlap.seen)[:8])}")
+    said = (f"{overlap.count} of the {len(cases.y)} rows of {what} ({cases.source}) were used to train this model "
+            f"({where}{' ...' if overlap.count > 8 else ''})")
+    if overlap.checkable < len(cases.y):
+        said += f"; about {overlap.estimated:.0f} in all (the fingerprint keeps a subsample of the training rows)"
+    if not drop:
+        raise DatasetError(f"{said}. A model is right more often on rows it has fitted, so a threshold calibrated on "
+                           "them certifies an accuracy new cases will not see. Calibrate on rows held out from "
+                           "training, or pass --drop-training-rows to leave them out", field="data")
+    keep = ~overlap.seen
+    cases.x, cases.y = cases.x[keep], cases.y[keep]
+    cases.lines = cases.lines[keep] if cases.lines is not None else None
+    cases.dropped = overlap.count
+    cases.notes.append(f"warning: {said}; they were left out, {len(cases.y)} rows remain")
+    if len(cases.y) < 2:
+        raise DatasetError(f"{what}: no rows remain once the training rows are left out", field="data")
+
+
+# -- the calibration itself -------------------------------------------------------
 
 
 def _run(engine: Engine, x: np.ndarray) -> np.ndarray:
@@ -89,83 +329,70 @@ def _run(engine: Engine, x: np.ndarray) -> np.ndarray:
     return np.concatenate(parts, axis=1)
 
 
-def _dataset_for(bundle: Bundle, data: str, target: str | None, seed: int | None) -> Dataset:
-    m = bundle.manifest
-    trained = m.raw.get("extensions", {}).get("training", {}).get("data", {}) or {}
-    if seed is None:
-        seed = int(trained.get("seed", 0)) if str(trained.get("source", data)) == str(data) else 0
-    if target is None and str(trained.get("source", "")) == str(data):
-        target = trained.get("target")
-    ds = load_dataset(data, target, seed=seed, task=m.task)
-    if ds.x_cal.shape[1] != m.inputs.size:
-        raise DatasetError(
-            f"data '{data}' has {ds.x_cal.shape[1]} features; bundle {bundle.path} expects {m.inputs.size}",
-            field="data",
-        )
-    if m.task == "classification" and tuple(ds.labels) != tuple(m.labels):
-        raise DatasetError(
-            f"data '{data}' has labels {list(ds.labels)}; bundle {bundle.path} has {list(m.labels)}", field="data"
-        )
-    return ds
-
-
-def calibrate(
-    bundle_path: str,
-    data: str,
-    *,
-    target: str | None = None,
-    seed: int | None = None,
-    target_accuracy: float | None = None,
-    confidence: float = 0.9,
-    max_abstain: float = 0.3,
-    target_abstain: float | None = None,
-    coverage: float | None = None,
-    score: str | None = None,
-    method: str = "fixed_sequence",
-    graph: str = "auto",
-    engine_seed: int | None = 0,
-    report: str | None = None,
-) -> CalibrationOutcome:
-    """Choose the threshold on the calibration split, rewrite the manifest, write the report.
-
-    Raises ``CalibrationInfeasible`` (bundle untouched; the report, if asked for, still
-    written with the best figures) or ``ConfigError`` for contradictory options.
-    """
-    bundle = load_bundle(bundle_path)
-    m = bundle.manifest
-    score = score or m.decision.score
-    if score not in SCORE_TASKS or m.task not in SCORE_TASKS[score]:
-        fits = ", ".join(n for n, t in SCORE_TASKS.items() if m.task in t)
-        raise ConfigError(f"--score {score} is not defined for {m.task}; use one of: {fits}", field="score")
-    if m.task == "classification":
+def _check_goal(task: str, target_accuracy: float | None, target_abstain: float | None,
+                coverage: float | None) -> None:
+    if task == "classification":
         if (target_accuracy is None) == (target_abstain is None):
             raise ConfigError("give exactly one of --target-accuracy or --target-abstain", field="target_accuracy")
         if coverage is not None:
             raise ConfigError("--coverage is for regression bundles; this one is a classifier", field="coverage")
-    else:
-        if target_accuracy is not None:
-            raise ConfigError("--target-accuracy is for classifiers; use --coverage (and --target-abstain) "
-                              "for a regression bundle", field="target_accuracy")
-        coverage = m.interval_level if coverage is None else coverage
-        target_abstain = DEFAULT_REGRESSION_ABSTAIN if target_abstain is None else target_abstain
+    elif target_accuracy is not None:
+        raise ConfigError("--target-accuracy is for classifiers; use --coverage (and --target-abstain) "
+                          "for a regression bundle", field="target_accuracy")
 
-    ds = _dataset_for(bundle, data, target, seed)
-    engine = Engine(bundle, graph=graph, seed=engine_seed).load()
-    draws_cal, draws_test = _run(engine, ds.x_cal), _run(engine, ds.x_test)
-    data_info = {"source": ds.source, "target": ds.target, "seed": ds.seed, "split": "cal",
-                 "n": int(len(ds.y_cal)), "sha256": fingerprint(ds.x_cal, ds.y_cal)}
-    model = {"name": m.model_name, "version": m.model_version, "checksum_before": bundle.checksum,
+
+def _calibrate(b: Bundle, cal: _Cases, check: _Cases | None, floor_x: np.ndarray | None, *,
+               target_accuracy: float | None = None, confidence: float = 0.9,
+               max_abstain: float = DEFAULT_MAX_ABSTAIN, target_abstain: float | None = None,
+               coverage: float | None = None, drop_training_rows: bool = False, batch: int | None = None,
+               score: str | None = None, method: str = "fixed_sequence", graph: str = "auto",
+               engine_seed: int | None = 0, report: str | Path | None = None,
+               split: dict[str, Any] | None = None) -> CalibrationOutcome:
+    m = b.manifest
+    score = score or m.decision.score
+    if score not in SCORE_TASKS or m.task not in SCORE_TASKS[score]:
+        fits = ", ".join(n for n, t in SCORE_TASKS.items() if m.task in t)
+        raise ConfigError(f"--score {score} is not defined for {m.task}; use one of: {fits}", field="score")
+    _check_goal(m.task, target_accuracy, target_abstain, coverage)
+    if not 0.0 < confidence < 1.0:
+        raise ConfigError(f"--confidence must be in (0, 1); got {confidence}", field="confidence")
+    _screen_training_rows(b, cal, drop_training_rows, "the calibration data")
+    if check is not None:
+        _screen_training_rows(b, check, drop_training_rows, "the test data")
+    if target_accuracy is not None:  # up front: too few rows even with no error
+        check_feasible(len(cal.y), target_accuracy, 1.0 - confidence, max_abstain=max_abstain, method=method)
+    notes = cal.notes + (check.notes if check is not None else [])
+    if check is None:
+        notes.append("note: no independent check (--test FILE or --holdout F): the report shows the calibration "
+                     "cases only")
+
+    engine = Engine(b, graph=graph, seed=engine_seed).load()
+    d_cal = _run(engine, cal.x)
+    d_test = _run(engine, check.x) if check is not None else None
+    data_info: dict[str, Any] = {
+        "source": cal.source, "rows": cal.rows, "n": int(len(cal.y)), "training_rows_dropped": cal.dropped,
+        "columns": "matched by name", "sha256": fingerprint(cal.x, cal.y), "split": split,
+        "test": None if check is None else {"source": check.source, "n": int(len(check.y)),
+                                            "training_rows_dropped": check.dropped},
+    }
+    model = {"name": m.model_name, "version": m.model_version, "checksum_before": b.checksum,
              "task": m.task, "graph": engine.kind, "draws": engine.draws}
-    unit = SCORE_UNITS[score]
     figures: dict[str, Any] = {"model": model, "data": data_info}
+    unit = SCORE_UNITS[score]
     raw = copy.deepcopy(m.raw)
+    batch = int(batch) if batch is not None else len(cal.y)
 
     if m.task == "classification":
-        s_cal = summarise("classification", draws_cal, m.interval_level, m.target)
-        s_test = summarise("classification", draws_test, m.interval_level, m.target)
-        sc_cal, sc_test = score_values(s_cal, score), score_values(s_test, score)
-        ok_cal, ok_test = s_cal.prediction == ds.y_cal, s_test.prediction == ds.y_test
-        figures["calibration_split"] = classification_metrics(s_cal.mean_probs, ds.y_cal, sc_cal)
+        s_cal = summarise("classification", d_cal, m.interval_level, m.target)
+        sc_cal, ok_cal = score_values(s_cal, score), s_cal.prediction == cal.y
+        figures["calibration_split"] = classification_metrics(s_cal.mean_probs, cal.y, sc_cal)
+        # the plots show the check when there is one, else the calibration cases (said in the report)
+        if check is not None:
+            s_v = summarise("classification", d_test, m.interval_level, m.target)
+            y_v, sc_v = check.y, score_values(s_v, score)
+        else:
+            s_v, y_v, sc_v = s_cal, cal.y, sc_cal
+        ok_v = s_v.prediction == y_v
         try:
             if target_accuracy is not None:
                 choice = select_for_accuracy(sc_cal, ok_cal, target_accuracy, 1.0 - confidence,
@@ -173,105 +400,132 @@ def calibrate(
             else:
                 choice = select_for_abstain(sc_cal, float(target_abstain), ok_cal)
         except CalibrationInfeasible as exc:
-            figures.update(status="infeasible", message=exc.message,
-                           test=classification_metrics(s_test.mean_probs, ds.y_test, sc_test))
+            figures.update(status="infeasible", message=exc.message, notes=notes,
+                           test=classification_metrics(s_v.mean_probs, y_v, sc_v) if check is not None else None)
             if report:
                 write_report(report, figures, ClassificationPlots(
-                    sc_test, ok_test, s_test.mean_probs, ds.y_test, None, score, unit,
-                    target_accuracy=target_accuracy))
+                    sc_v, ok_v, s_v.mean_probs, y_v, None, score, unit, target_accuracy=target_accuracy,
+                    split="test" if check is not None else "calibration"))
             raise
-        test = classification_metrics(s_test.mean_probs, ds.y_test, sc_test, choice.threshold)
         record = calibration_record(choice, score=score, data=data_info)
-        record["test"] = test["at_threshold"]
+        test = classification_metrics(s_v.mean_probs, y_v, sc_v, choice.threshold) if check is not None else None
+        record["test"] = test["at_threshold"] if test else None
+        if choice.accuracy_bound is not None:
+            record["batch"] = {
+                "at_calibration_estimate": batch_spread(choice.accuracy or 0.0, 1 - choice.abstain_rate, batch,
+                                                        target_accuracy or 0.0),
+                "at_certified_floor": batch_spread(choice.accuracy_bound, 1 - choice.abstain_rate, batch,
+                                                   target_accuracy or 0.0),
+            }
         plots: ClassificationPlots | RegressionPlots = ClassificationPlots(
-            sc_test, ok_test, s_test.mean_probs, ds.y_test, choice.threshold, score, unit,
-            calibration_point=(choice.abstain_rate, choice.accuracy or 0.0), target_accuracy=target_accuracy)
+            sc_v, ok_v, s_v.mean_probs, y_v, choice.threshold, score, unit,
+            calibration_point=(choice.abstain_rate, choice.accuracy or 0.0), target_accuracy=target_accuracy,
+            split="test" if check is not None else "calibration")
     else:
-        base_target = {k: v for k, v in m.target.items()
-                       if not str(k).startswith("conformal_") and k != "aleatoric_floor"}
-        raw_val = summarise("regression", _run(engine, ds.x_val), m.interval_level, base_target)
-        floor = float(np.quantile(raw_val.aleatoric_var, FLOOR_QUANTILE))
-        raw_cal = summarise("regression", draws_cal, m.interval_level, base_target)
-        sd_cal = np.sqrt(conformal_variance(raw_cal.epistemic_var, raw_cal.aleatoric_var, floor))
-        q = conformal_scale(ds.y_cal, raw_cal.mean, sd_cal, 1.0 - float(coverage))
-        new_target = {**base_target, "conformal_q": q, "conformal_level": float(coverage),
-                      "aleatoric_floor": floor}
-        # the served interval is at the bundle's level; calibrate that level unless told otherwise
-        level = float(coverage)
-        s_cal = summarise("regression", draws_cal, level, new_target)
-        s_test = summarise("regression", draws_test, level, new_target)
-        sc_cal, sc_test = score_values(s_cal, score), score_values(s_test, score)
-        inside_cal = (ds.y_cal >= s_cal.lower) & (ds.y_cal <= s_cal.upper)
-        figures["calibration_split"] = regression_metrics(ds.y_cal, s_cal.mean, s_cal.lower, s_cal.upper)
-        choice = select_for_abstain(sc_cal, float(target_abstain))
-        conformal = {"method": "split-conformal, locally weighted (Lei et al. 2018)", "level": level, "q": q,
-                     "coverage_cal": float(inside_cal.mean()),
-                     "residual": "|y - mean| / sqrt(epistemic_var + max(aleatoric_var, aleatoric_floor))",
-                     "aleatoric_floor": floor,
-                     "aleatoric_floor_rule": f"quantile {FLOOR_QUANTILE:g} of the per-case aleatoric variance "
-                                             f"on the validation split ({len(ds.y_val)} cases), target units squared"}
-        record = calibration_record(choice, score=score, data=data_info, conformal=conformal)
-        test = regression_metrics(ds.y_test, s_test.mean, s_test.lower, s_test.upper, sc_test, choice.threshold)
-        record["test"] = test["at_threshold"] | {"coverage": test["coverage"]}
+        coverage = m.interval_level if coverage is None else float(coverage)
+        choice, record, test, plots, new_target, sc_cal = _regression(
+            b, engine, cal, check, floor_x, d_cal, d_test, coverage,
+            DEFAULT_REGRESSION_ABSTAIN if target_abstain is None else float(target_abstain), score, unit, data_info)
+        figures["calibration_split"] = record.pop("_calibration_metrics")
         raw["target"] = new_target
-        raw["interval_level"] = level
-        sd_test = np.sqrt(conformal_variance(s_test.epistemic_var, s_test.aleatoric_var, floor))
-        plots = RegressionPlots(ds.y_test, s_test.mean, sd_test, s_test.lower, s_test.upper,
-                                np.abs(ds.y_cal - raw_cal.mean) / sd_cal, level,
-                                sc_test, choice.threshold, score, unit)
+        raw["interval_level"] = coverage
 
-    dec = raw.setdefault("decision", {})
-    dec["score"] = score
-    dec["threshold"] = choice.threshold
-    dec["calibration"] = record
-    dec["basis"] = f"calibrated by demur calibrate ({choice.method}) on {len(sc_cal)} held-out cases"
-    drift = raw.get("drift_reference")
-    raw["drift_reference"] = dict(drift) if isinstance(drift, dict) else {}
-    raw["drift_reference"]["score"] = score_reference(score, sc_cal)
-    checksum = write_manifest(bundle.path, raw)
-    load_bundle(bundle.path)  # the rewritten bundle must verify
-
+    record["notes"] = list(notes)
+    checksum = _write(b, raw, _manifest_records(raw, score, choice, record, sc_cal))
     model["checksum"] = checksum
-    figures.update(status="calibrated", calibration=record, test=test,
-                   curve=list(choice.curve))
+    figures.update(status="calibrated", calibration=record, test=test, curve=list(choice.curve), notes=notes)
     report_path = str(write_report(report, figures, plots)) if report else None
-    return CalibrationOutcome(record=record, checksum=checksum, report=report_path, figures=figures)
+    return CalibrationOutcome(record=record, checksum=checksum, report=report_path, figures=figures,
+                              notes=tuple(notes))
 
 
-def _summary_line(out: CalibrationOutcome) -> str:
-    rec = out.record
-    ach = rec["achieved"]
-    parts = [f"threshold {rec['score']} <= {rec['threshold']:.6g} ({rec['method']})",
-             f"calibration: {ach['accepted']}/{rec['n']} accepted, abstain {ach['abstain_rate']:.1%}"]
-    if ach.get("accuracy") is not None:
-        parts.append(f"accuracy {ach['accuracy']:.4f}")
-    if rec.get("bound"):
-        parts.append(f"certified accuracy >= {rec['bound']['accuracy_lower']:.4f} "
-                     f"with confidence {rec['confidence']:.3g}")
-    if rec.get("conformal"):
-        parts.append(f"conformal q {rec['conformal']['q']:.4g} at level {rec['conformal']['level']:.3g}")
-    t = rec.get("test", {})
-    if t:
-        tail = f"test: abstain {t['abstain_rate']:.1%}"
-        if t.get("accuracy_accepted") is not None:
-            tail += f", accepted accuracy {t['accuracy_accepted']:.4f}"
-        if t.get("coverage") is not None:
-            tail += f", coverage {t['coverage']:.3f}"
-        parts.append(tail)
-    return "; ".join(parts)
+def _regression(b: Bundle, engine: Engine, cal: _Cases, check: _Cases | None, floor_x: np.ndarray | None,
+                d_cal: np.ndarray, d_test: np.ndarray | None, level: float, target_abstain: float,
+                score: str, unit: str, data_info: dict[str, Any]) -> tuple[Any, ...]:
+    """Split conformal with the aleatoric floor; returns (choice, record, test, plots, new target, scores)."""
+    m = b.manifest
+    base = {k: v for k, v in m.target.items() if not str(k).startswith("conformal_") and k != "aleatoric_floor"}
+    floor_from = "the validation split" if floor_x is not None else "the calibration inputs (labels unused)"
+    fx = floor_x if floor_x is not None else cal.x
+    floor = float(np.quantile(summarise("regression", _run(engine, fx), level, base).aleatoric_var, FLOOR_QUANTILE))
+    raw_cal = summarise("regression", d_cal, level, base)
+    sd_cal = np.sqrt(conformal_variance(raw_cal.epistemic_var, raw_cal.aleatoric_var, floor))
+    q = conformal_scale(cal.y, raw_cal.mean, sd_cal, 1.0 - level)
+    new_target = {**base, "conformal_q": q, "conformal_level": level, "aleatoric_floor": floor}
+    s_cal = summarise("regression", d_cal, level, new_target)
+    sc_cal = score_values(s_cal, score)
+    choice = select_for_abstain(sc_cal, target_abstain)
+    v_cases, d_v = (check, d_test) if check is not None else (cal, d_cal)
+    raw_v = summarise("regression", d_v, level, base)  # the model's own interval, before conformal
+    s_v = summarise("regression", d_v, level, new_target)
+    before = float(np.mean((v_cases.y >= raw_v.lower) & (v_cases.y <= raw_v.upper)))
+    conformal = {"method": "split-conformal, locally weighted (Lei et al. 2018)", "level": level, "q": q,
+                 "coverage_cal": float(np.mean((cal.y >= s_cal.lower) & (cal.y <= s_cal.upper))),
+                 "model_coverage_before": before,
+                 "model_coverage_before_on": "test" if check is not None else "calibration",
+                 "residual": "|y - mean| / sqrt(epistemic_var + max(aleatoric_var, aleatoric_floor))",
+                 "aleatoric_floor": floor,
+                 "aleatoric_floor_rule": f"quantile {FLOOR_QUANTILE:g} of the per-case aleatoric variance on "
+                                         f"{floor_from} ({len(fx)} cases), target units squared"}
+    record = calibration_record(choice, score=score, data=data_info, conformal=conformal)
+    test = None
+    if check is not None:
+        test = regression_metrics(check.y, s_v.mean, s_v.lower, s_v.upper, score_values(s_v, score),
+                                  choice.threshold)
+        record["test"] = test["at_threshold"] | {"coverage": test["coverage"], "coverage_before": before}
+    else:
+        record["test"] = None
+    record["_calibration_metrics"] = regression_metrics(cal.y, s_cal.mean, s_cal.lower, s_cal.upper)
+    sd_v = np.sqrt(conformal_variance(s_v.epistemic_var, s_v.aleatoric_var, floor))
+    plots = RegressionPlots(v_cases.y, s_v.mean, sd_v, s_v.lower, s_v.upper,
+                            np.abs(cal.y - raw_cal.mean) / sd_cal, level, score_values(s_v, score),
+                            choice.threshold, score, unit, split="test" if check is not None else "calibration",
+                            raw_lower=raw_v.lower, raw_upper=raw_v.upper)
+    return choice, record, test, plots, new_target, sc_cal
+
+
+def _manifest_records(raw: dict[str, Any], score: str, choice: ThresholdChoice, record: dict[str, Any],
+                      scores: np.ndarray) -> dict[str, Any]:
+    """Every manifest record ``demur calibrate`` writes, assembled in this one place.
+
+    Returns the updated sections (``decision``, ``drift_reference``); a later check
+    whose threshold calibration also sets (e.g. a support check) adds its section here.
+    """
+    dec = dict(raw.get("decision") or {})
+    dec.update(score=score, threshold=choice.threshold, calibration=record,
+               basis=f"calibrated by demur calibrate ({choice.method}) on {len(scores)} held-out cases")
+    drift = raw.get("drift_reference")
+    drift = dict(drift) if isinstance(drift, dict) else {}
+    drift["score"] = score_reference(score, scores)
+    return {"decision": dec, "drift_reference": drift}
+
+
+def _write(b: Bundle, raw: dict[str, Any], sections: dict[str, Any]) -> str:
+    raw.update(sections)
+    checksum = write_manifest(b.path, raw)
+    load_bundle(b.path)  # the rewritten bundle must verify
+    return checksum
+
+
+# -- the command line ---------------------------------------------------------------
 
 
 def _main(args: argparse.Namespace) -> int:
-    out = calibrate(
-        args.bundle, args.data, target=args.target, seed=args.seed, target_accuracy=args.target_accuracy,
-        confidence=args.confidence, max_abstain=args.max_abstain, target_abstain=args.target_abstain,
-        coverage=args.coverage, score=args.score, method=args.method, graph=args.graph,
-        engine_seed=args.engine_seed, report=args.report,
+    out = calibrate_file(
+        args.bundle, args.data, target=args.target, test=args.test, holdout=args.holdout, seed=args.seed,
+        ignore=tuple(args.ignore or ()), target_accuracy=args.target_accuracy, confidence=args.confidence,
+        max_abstain=args.max_abstain, target_abstain=args.target_abstain, coverage=args.coverage,
+        drop_training_rows=args.drop_training_rows, batch=args.batch, score=args.score, method=args.method,
+        graph=args.graph, engine_seed=args.engine_seed, report=args.report,
     )
-    print(f"demur calibrate: {_summary_line(out)}")
+    for note in out.notes:
+        print(note, file=sys.stderr)
+    print(f"demur calibrate: {out.record['n']} calibration cases from {out.record['data']['source']}")
+    for line in decision_lines(out.record):
+        print(f"  {line}")
     print(f"bundle {args.bundle}: new checksum {out.checksum[:12]}")
     if out.report:
-        print(f"report: {out.report}")
+        print(f"report: {Path(out.report).parent / 'index.html'}")
     return 0
 
 
@@ -279,24 +533,33 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     """Add ``demur calibrate`` (see the module docstring)."""
     p = subparsers.add_parser(
         "calibrate",
-        help="choose the abstention threshold on labelled held-out data, with a guarantee",
+        help="choose the abstention threshold on your labelled held-out data, with a guarantee",
         description=__doc__.split("\n\n")[1] if __doc__ else None,
     )
     p.add_argument("bundle", metavar="BUNDLE", help="bundle directory (rewritten in place on success)")
-    p.add_argument("--data", required=True, help="'digits', 'diabetes' or a CSV file; its held-out split is used")
-    p.add_argument("--target", metavar="COLUMN", help="label column of a CSV")
-    p.add_argument("--seed", type=int, help="split seed (default: the one training used)")
+    p.add_argument("--data", required=True, metavar="FILE",
+                   help="labelled CSV (every row calibrates; columns by name), or 'digits' / 'diabetes'")
+    p.add_argument("--target", metavar="COLUMN", help="label column of the CSV (default: the one training used)")
+    p.add_argument("--ignore", action="append", metavar="COLUMN", help="a CSV column to skip (repeatable)")
+    check = p.add_mutually_exclusive_group()
+    check.add_argument("--test", metavar="FILE2", help="labelled CSV for the independent check")
+    check.add_argument("--holdout", type=float, metavar="F", help="set aside this share of --data for the check")
+    p.add_argument("--seed", type=int, help="seed of --holdout (default 0), or of a bundled set's split")
+    p.add_argument("--drop-training-rows", action="store_true",
+                   help="leave out rows the model was trained on (with a warning) instead of refusing the file")
     goal = p.add_argument_group("what to guarantee")
     goal.add_argument("--target-accuracy", type=float, metavar="A",
-                      help="accepted cases must be at least A correct (classifiers)")
+                      help="accepted cases at least A correct in the population (classifiers)")
     goal.add_argument("--confidence", type=float, default=0.9, metavar="C",
-                      help="with probability C over the calibration data (delta = 1 - C; default 0.9)")
-    goal.add_argument("--max-abstain", type=float, default=0.3, metavar="F",
-                      help="abstain on at most this share of cases (default 0.3)")
+                      help="with probability C over the calibration draw (delta = 1 - C; default 0.9)")
+    goal.add_argument("--max-abstain", type=float, default=DEFAULT_MAX_ABSTAIN, metavar="F",
+                      help="abstain on at most this share of cases; the most conservative threshold tested "
+                           f"(default {DEFAULT_MAX_ABSTAIN})")
     goal.add_argument("--target-abstain", type=float, metavar="R",
                       help="send this share of cases to people (expected rate <= R)")
     goal.add_argument("--coverage", type=float, metavar="L",
                       help="regression: conformal interval coverage (default: the bundle's interval level)")
+    goal.add_argument("--batch", type=int, metavar="N", help="batch size the spread is computed for (default n)")
     p.add_argument("--score", choices=sorted(SCORE_TASKS), help="decision score (default: the bundle's)")
     p.add_argument("--method", choices=("fixed_sequence", "bonferroni"), default="fixed_sequence",
                    help="multiple-testing rule for --target-accuracy (see serve/offline/calibration.py)")

@@ -10,7 +10,7 @@ Every source is cut the same way, once, with a fixed seed::
 
     train 0.55   fits the weights
     val   0.05   reported during training (early warning, not for tuning the test)
-    cal   0.20   held out for calibrating the abstention threshold (later issue)
+    cal   0.20   the bundled sets' calibration cases (a user's own file calibrates whole)
     test  0.20   the reported accuracy / ECE
 
 Split sizes are round(fraction * N) for val, cal and test; train takes the
@@ -26,13 +26,25 @@ import csv
 import math
 from dataclasses import dataclass
 from pathlib import Path
+from collections.abc import Sequence
 from typing import Literal
 
 import numpy as np
 
 from demur.export.errors import DatasetError, DatasetNotFound, EmptyDataset, NonNumericFeature, TargetColumnMissing
 
-__all__ = ["BUILTIN", "FRACTIONS", "MAX_CLASSES", "Dataset", "load_dataset", "split_indices"]
+__all__ = [
+    "BUILTIN",
+    "FRACTIONS",
+    "MAX_CLASSES",
+    "Dataset",
+    "LabelledRows",
+    "column_order",
+    "load_dataset",
+    "read_labelled",
+    "split_indices",
+    "write_labelled",
+]
 
 FRACTIONS = {"train": 0.55, "val": 0.05, "cal": 0.20, "test": 0.20}
 """Share of rows in each split (train takes what rounding leaves)."""
@@ -194,24 +206,11 @@ def _csv(path: Path, target: str | None, seed: int, task: Task | None) -> Datase
         raise TargetColumnMissing(f"a CSV needs a target column (--target); none given for {path}", field="target")
     if task is not None and task not in ("classification", "regression"):
         raise DatasetError(f"task must be 'classification' or 'regression'; got {task!r}", field="task")
-    with path.open(newline="", encoding="utf-8-sig") as fh:
-        reader = csv.reader(fh)
-        rows = [(reader.line_num, row) for row in reader if any(cell.strip() for cell in row)]
-    if not rows:
-        raise EmptyDataset(f"{path} is empty: expected a header row and data rows", field="data")
-    header = [h.strip() for h in rows[0][1]]
-    body = rows[1:]
-    if not body:
-        raise EmptyDataset(f"{path} has a header but no data rows", field="data")
+    header, body = _read_rows(path)
     if target not in header:
         raise TargetColumnMissing(
             f"target column {target!r} is not in {path}; columns are {header}", field=target
         )
-    for line, row in body:
-        if len(row) != len(header):
-            raise DatasetError(
-                f"{path} line {line} has {len(row)} cells; the header has {len(header)}", field="data"
-            )
     t = header.index(target)
     feat_cols = [j for j in range(len(header)) if j != t]
     if not feat_cols:
@@ -253,6 +252,27 @@ def _csv(path: Path, target: str | None, seed: int, task: Task | None) -> Datase
     return _make(path.stem, task, labels, names, x, y, seed, source=str(path), target=target)
 
 
+def _read_rows(path: Path) -> tuple[list[str], list[tuple[int, list[str]]]]:
+    """The header (cells stripped) and the non-blank data rows with their line numbers."""
+    if not path.is_file():
+        raise DatasetNotFound(f"no such file: {str(path)!r}", field="data")
+    with path.open(newline="", encoding="utf-8-sig") as fh:
+        reader = csv.reader(fh)
+        rows = [(reader.line_num, row) for row in reader if any(cell.strip() for cell in row)]
+    if not rows:
+        raise EmptyDataset(f"{path} is empty: expected a header row and data rows", field="data")
+    header = [h.strip() for h in rows[0][1]]
+    body = rows[1:]
+    if not body:
+        raise EmptyDataset(f"{path} has a header but no data rows", field="data")
+    for line, row in body:
+        if len(row) != len(header):
+            raise DatasetError(
+                f"{path} line {line} has {len(row)} cells; the header has {len(header)}", field="data"
+            )
+    return header, body
+
+
 def _maybe_float(cell: str) -> float | None:
     try:
         v = float(cell)
@@ -281,3 +301,102 @@ def _all_numbers(values: list[str]) -> np.ndarray | None:
 
 def _num_label(v: float) -> str:
     return str(int(v)) if float(v).is_integer() else repr(float(v))
+
+
+# -- a user's labelled file, read by column name -------------------------------------
+
+
+@dataclass(frozen=True)
+class LabelledRows:
+    """Labelled cases in a bundle's feature order.
+
+    ``x``: float64[N, F] raw inputs, columns in the order of ``names`` (the
+    bundle's feature names); ``y``: the target column's cells as text (the
+    caller maps them to labels or numbers); ``lines``: the file line of each
+    row (1 = header), for messages; ``source``: the path read.
+    """
+
+    x: np.ndarray
+    y: list[str]
+    lines: np.ndarray
+    source: str
+    target: str
+
+
+def column_order(header: Sequence[str], names: Sequence[str], *, target: str | None = None,
+                 ignore: Sequence[str] = (), where: str = "the file") -> list[int]:
+    """Position in ``header`` of each of ``names`` (any order), or ``DatasetError``.
+
+    Every problem is named at once, before any cell is read: columns the bundle
+    needs but the header lacks, columns the header has that are neither a
+    feature, the target nor in ``ignore`` (with the closest feature name, for
+    typos), and columns that appear twice.
+    """
+    import difflib
+
+    counts: dict[str, int] = {}
+    for h in header:
+        counts[h] = counts.get(h, 0) + 1
+    known = set(names) | set(ignore) | ({target} if target else set())
+    duplicated = sorted(h for h, c in counts.items() if c > 1)
+    missing = [n for n in names if n not in counts]
+    unknown = [h for h in dict.fromkeys(header) if h not in known]
+    if target is not None and target not in counts:
+        missing.append(f"{target} (the target)")
+    if duplicated or missing or unknown:
+        parts = []
+        if missing:
+            parts.append(f"missing column(s) {_listed(missing)}")
+        if unknown:
+            hints = {u: difflib.get_close_matches(u, list(names), n=1) for u in unknown}
+            shown = [f"{u!r} (did you mean {h[0]!r}?)" if h else repr(u) for u, h in hints.items()]
+            parts.append(f"unknown column(s) {', '.join(shown[:8])}{' ...' if len(shown) > 8 else ''}")
+        if duplicated:
+            parts.append(f"duplicated column(s) {_listed(duplicated)}")
+        first = (missing or unknown or duplicated)[0].split(" (the target)")[0]
+        raise DatasetError(
+            f"the header of {where} does not match the bundle's {len(names)} feature names: {'; '.join(parts)}. "
+            "Columns are matched by name, in any order; rename them to the bundle's names "
+            "(GET /v1/model lists them), or pass unrelated columns as ignored",
+            field=first,
+        )
+    return [header.index(n) for n in names]
+
+
+def _listed(items: Sequence[str], most: int = 8) -> str:
+    shown = ", ".join(repr(i) for i in items[:most])
+    return shown + (f" and {len(items) - most} more" if len(items) > most else "")
+
+
+def read_labelled(path: str | Path, names: Sequence[str], target: str, *,
+                  ignore: Sequence[str] = ()) -> LabelledRows:
+    """Read a labelled CSV whose columns are the bundle's feature ``names`` (any order),
+    the ``target`` column and any ``ignore``d ones; every row is kept.
+
+    The header is checked first (``column_order``); then every feature cell must be a
+    finite number (``NonNumericFeature`` names the column and line).
+    """
+    path = Path(path)
+    header, body = _read_rows(path)
+    cols = column_order(header, names, target=target, ignore=ignore, where=str(path))
+    t = header.index(target)
+    x = np.empty((len(body), len(cols)), dtype=np.float64)
+    for i, (line, row) in enumerate(body):
+        for k, j in enumerate(cols):
+            x[i, k] = _number(row[j], header[j], line, path)
+    return LabelledRows(x=x, y=[row[t].strip() for _, row in body],
+                        lines=np.array([line for line, _ in body], dtype=np.int64), source=str(path), target=target)
+
+
+def write_labelled(path: str | Path, x: np.ndarray, y: Sequence[object], names: Sequence[str], target: str) -> Path:
+    """Write cases as a CSV with a header of feature ``names`` and the ``target`` column
+    (numbers with repr precision, so ``read_labelled`` gives back the same float64)."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    x = np.asarray(x, dtype=np.float64).reshape(len(x), -1)
+    with path.open("w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh)
+        w.writerow([*names, target])
+        for row, label in zip(x, y):
+            w.writerow([*(repr(float(v)) for v in row), label])
+    return path

@@ -46,6 +46,7 @@ import onnx
 from demur.serve.core.bundle import MANIFEST, Bundle, load_bundle, write_bundle
 from demur.serve.core.decision import score_values
 from demur.serve.core.drift import feature_reference, score_reference
+from demur.serve.core.fingerprint import training_fingerprint
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.summary import summarise
 
@@ -119,7 +120,8 @@ def export_bundle(
         arch=str(arch.get("kind", "")),
         drift_features=meta.get("drift_features"),
         reference_x=dataset.x_val,
-        extensions={"training": {"metrics": meta.get("metrics", {}), "data": data}},
+        extensions={"training": {"metrics": meta.get("metrics", {}), "data": data},
+                    "training_rows": training_fingerprint(dataset.x_train)},  # leakage check in calibrate
     )
 
 

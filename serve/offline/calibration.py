@@ -5,50 +5,52 @@ path's own summaries and scores, computed by the caller (``demur calibrate``).
 
 Threshold choice -- three ways
 ------------------------------
-1. Target accuracy on accepted cases, with confidence 1 - delta
-   (``select_for_accuracy``). The candidates are the calibration scores'
-   order statistics s_(k) at up to ``MAX_CANDIDATES`` evenly spaced ranks k
-   whose calibration coverage is at least 1 - max_abstain. Candidate k accepts
-   the cases with score < s_(k); the threshold written to the bundle is the
-   float just below s_(k), so the served rule "abstain iff score > threshold"
-   accepts exactly those cases. For each candidate the accepted-case error
-   rate gets the one-sided Clopper-Pearson upper bound (Clopper & Pearson
-   1934), ``beta.ppf(1 - level, e + 1, a - e)`` for e errors in a accepted.
-   Why this is valid for a data-chosen threshold: given s_(k), the k - 1
-   cases below it are i.i.d. draws of the score distribution truncated at
-   s_(k) (a standard order-statistic fact), so their error count is exactly
-   Binomial(k - 1, R(s_(k))), R(t) = P(error | score < t).
+1. Target accuracy A on accepted cases, with confidence 1 - delta
+   (``select_for_accuracy``). What it guarantees, exactly: with probability at
+   least 1 - delta over the draw of the n calibration cases, the error rate of
+   accepted cases in the population they were drawn from is at most 1 - A. It
+   does not say that every batch of future cases will show accuracy >= A: a
+   batch of N cases scatters around the population figure, and
+   ``batch_spread`` computes by how much (binomial sums, no approximation).
 
-   Two multiple-testing rules are offered:
+   The grid (``candidate_ranks``) is fixed from n and the abstention budget
+   ``max_abstain`` alone, before the target, the confidence or any label is
+   looked at: up to ``MAX_CANDIDATES`` evenly spaced ranks k from the rank that
+   accepts ceil((1 - max_abstain) n) cases (the most conservative threshold the
+   budget allows) to n. Candidate k is the calibration scores' order statistic
+   s_(k) and accepts the cases scored below it; the threshold written to the
+   bundle is the float just below s_(k), so the served rule "abstain iff score >
+   threshold" accepts exactly those cases. Each candidate's accepted-case error
+   rate gets the one-sided Clopper-Pearson upper bound (Clopper & Pearson 1934),
+   ``scipy.stats.beta.ppf(1 - level, e + 1, a - e)`` for e errors among a
+   accepted. Why a bound at a data-chosen threshold is exact: given s_(k), the
+   k - 1 cases below it are i.i.d. draws of the score law truncated at s_(k) (an
+   order-statistic fact), so their error count is Binomial(k - 1, R(s_(k))),
+   R(t) = P(error | score < t).
 
-   ``"fixed_sequence"`` (default): Learn then Test, fixed-sequence testing
-       (Angelopoulos, Bates, Candès, Jordan & Lei 2021, Section on fixed-
-       sequence testing). Candidates are tested in a pre-set order of
-       increasing coverage, each at the full level delta; testing stops at the
-       first candidate whose bound misses the target, and the largest certified
-       one is kept. The sequence starts at the larger of the lowest allowed
-       coverage (1 - max_abstain) and the fewest accepted cases at which
-       ``SEQUENCE_TOLERANCE`` errors could still be certified (a function of n,
-       target and delta only, so the order is fixed before the data are seen):
-       started lower, one early confidently-wrong case ends the sequence. Chosen as the
-       default because it pays no multiplicity price: on the digits demo
-       (359 calibration cases) a 0.99 target is reachable with it and is not
-       with a Bonferroni split over 50 candidates (it would need >= 619
-       error-free accepted cases). The caveat, stated plainly: the family-
-       wise proof of fixed-sequence testing is for thresholds fixed before
-       the data; ours are order statistics of the calibration scores, so the
-       guarantee is exact per candidate and approximate for the sequence.
-       tests/serve/test_calibration.py measures the violation rate over
-       hundreds of random calibration/test splits.
-   ``"bonferroni"``: selective classification with guaranteed risk
-       (Geifman & El-Yaniv, NeurIPS 2017) with a union bound over the m
-       candidates: every candidate is bounded at level delta / m. Fully
-       rigorous for order-statistic thresholds (the union bound needs only
-       each candidate's own validity) but needs more calibration data.
+   ``"fixed_sequence"`` (default): Learn then Test with fixed-sequence testing
+       (Angelopoulos, Bates, Candes, Jordan & Lei 2021). The candidates are tested
+       in the grid's order, from the most conservative (fewest accepted) towards
+       accepting everything, each at the full level delta; testing stops at the
+       first failure and the last candidate passed is kept. No multiplicity price
+       is paid. Caveat, stated plainly: the fixed-sequence family-wise proof is for
+       thresholds fixed in advance; ours sit at fixed RANKS, so each bound is exact
+       but the sequence's control is measured, not proved: tests/serve/
+       test_calibration.py resamples calibration sets from a pool and counts how
+       often the pool's accepted accuracy falls below A (population design).
+   ``"bonferroni"``: every candidate bounded at level delta / m, the largest
+       certified one kept (selective classification with guaranteed risk, Geifman
+       & El-Yaniv 2017, with a union bound over the m grid points). Fully rigorous
+       (the union bound needs only each candidate's own validity), hungrier for data.
 
-   The abstention budget ``max_abstain`` limits the search to calibration
-   coverage >= 1 - max_abstain. If no candidate is certified,
-   ``CalibrationInfeasible`` says so with the best figures achievable.
+   Monotone by construction: the grid and its order do not depend on A or delta,
+   and each candidate's test passes for every A' < A and every delta' > delta if
+   it passes for (A, delta); so if A is certified, every A' < A is (and every
+   lower confidence), and the threshold chosen never shrinks as A or the
+   confidence falls. Too few rows for the target even with no error
+   (``minimum_rows``) is refused before any score is computed
+   (``check_feasible``); otherwise, if no candidate is certified,
+   ``CalibrationInfeasible`` gives the best figures achievable.
 
 2. Target abstention rate r (``select_for_abstain``): the threshold is the
    ceil((n + 1)(1 - r))-th smallest calibration score. By exchangeability a new
@@ -86,6 +88,7 @@ mean interval width, RMSE, MAE.
 from __future__ import annotations
 
 import datetime as _dt
+import functools
 import hashlib
 import math
 from dataclasses import dataclass, field
@@ -97,6 +100,7 @@ from scipy import stats
 from demur.serve.errors import CalibrationInfeasible, ConfigError
 
 __all__ = [
+    "DEFAULT_MAX_ABSTAIN",
     "ECE_BINS",
     "MAX_CANDIDATES",
     "REFERRAL_RATES",
@@ -106,11 +110,15 @@ __all__ = [
     "brier_score",
     "calibration_record",
     "classification_metrics",
-    "clopper_pearson",
+    "batch_spread",
+    "candidate_ranks",
+    "check_feasible",
     "conformal_scale",
     "error_upper_bound",
     "expected_calibration_error",
     "fingerprint",
+    "guarantee_text",
+    "minimum_rows",
     "negative_log_likelihood",
     "regression_metrics",
     "reliability_bins",
@@ -130,23 +138,11 @@ MAX_CANDIDATES = 50
 
 METHODS = ("fixed_sequence", "bonferroni")
 
-SEQUENCE_TOLERANCE = 2
-"""Errors the first candidate of the fixed sequence may hold and still pass (see ``_sequence_start``)."""
+DEFAULT_MAX_ABSTAIN = 0.3
+"""Abstention budget when none is given: at most 30% of cases to people (our choice)."""
 
 
 # --------------------------------------------------------------------------- bounds
-
-
-def clopper_pearson(k: int, n: int, confidence: float = 0.95) -> tuple[float, float]:
-    """Two-sided exact (Clopper-Pearson 1934) interval for a binomial proportion k/n.
-
-    Equals ``scipy.stats.binomtest(k, n).proportion_ci(confidence, method="exact")``.
-    """
-    _check_counts(k, n)
-    a = 1.0 - confidence
-    lo = 0.0 if k == 0 else float(stats.beta.ppf(a / 2, k, n - k + 1))
-    hi = 1.0 if k == n else float(stats.beta.ppf(1 - a / 2, k + 1, n - k))
-    return lo, hi
 
 
 def error_upper_bound(errors: int | np.ndarray, n: int | np.ndarray, delta: float) -> np.ndarray:
@@ -161,11 +157,6 @@ def error_upper_bound(errors: int | np.ndarray, n: int | np.ndarray, delta: floa
         ee, mm = np.broadcast_to(e, b.shape)[ok], np.broadcast_to(m, b.shape)[ok]
         b[ok] = stats.beta.ppf(1.0 - delta, ee + 1.0, mm - ee)
     return b
-
-
-def _check_counts(k: int, n: int) -> None:
-    if n < 1 or not 0 <= k <= n:
-        raise ValueError(f"need 0 <= k <= n and n >= 1; got k={k}, n={n}")
 
 
 # --------------------------------------------------------------------------- metrics
@@ -333,74 +324,117 @@ def _check_fraction(name: str, value: float, *, closed: bool = False) -> float:
     return v
 
 
+def candidate_ranks(n: int, max_abstain: float, max_candidates: int = MAX_CANDIDATES) -> np.ndarray:
+    """The fixed grid: 1-based ranks k of the candidate thresholds s_(k), increasing.
+
+    A function of n, ``max_abstain`` and ``max_candidates`` only -- never of the
+    target, the confidence, the scores' values or the labels -- so the grid and the
+    test order are set before anything is looked at. Rank k accepts the k - 1
+    cases scored below s_(k); the first rank accepts ceil((1 - max_abstain) n)
+    cases (the most conservative threshold the budget allows), the last n - 1.
+    """
+    a_lo = max(1, math.ceil((1.0 - max_abstain) * n - 1e-9))
+    k_lo = min(n, a_lo + 1)
+    count = min(max_candidates, n - k_lo + 1)
+    return np.unique(np.linspace(k_lo, n, count).round().astype(np.int64))
+
+
+def _zero_error_cases(target_accuracy: float, level: float) -> int:
+    """Fewest error-free accepted cases whose Clopper-Pearson bound reaches the target:
+    1 - level**(1/a) <= 1 - target  <=>  a >= ln(level) / ln(target)."""
+    return math.ceil(math.log(level) / math.log(target_accuracy) - 1e-9)
+
+
+@functools.lru_cache(maxsize=256)
+def minimum_rows(target_accuracy: float, delta: float, *, max_abstain: float = DEFAULT_MAX_ABSTAIN,
+                 method: str = "fixed_sequence", max_candidates: int = MAX_CANDIDATES) -> int:
+    """Fewest calibration rows n with which the target can be certified at all (every
+    accepted case correct). Fixed sequence: the FIRST candidate must pass, so it needs
+    ceil((1 - max_abstain) n) >= a0(delta); Bonferroni: the LARGEST candidate (n - 1
+    accepted) needs a0(delta / m). Checked before the model runs (``check_feasible``)."""
+    def enough(n: int) -> bool:
+        ranks = candidate_ranks(n, max_abstain, max_candidates)
+        if method == "bonferroni":
+            return int(ranks[-1]) - 1 >= _zero_error_cases(target_accuracy, delta / len(ranks))
+        return int(ranks[0]) - 1 >= _zero_error_cases(target_accuracy, delta)
+
+    hi = 2
+    while not enough(hi):
+        hi *= 2
+        if hi > 2**40:
+            raise CalibrationInfeasible(f"max_abstain {max_abstain} leaves no candidate with enough cases",
+                                        field="max_abstain")
+    lo = max(2, hi // 2)
+    while lo < hi:  # smallest n that is enough (enough() is monotone in n for these grids)
+        mid = (lo + hi) // 2
+        lo, hi = (lo, mid) if enough(mid) else (mid + 1, hi)
+    return lo
+
+
+def check_feasible(n: int, target_accuracy: float, delta: float, *, max_abstain: float = DEFAULT_MAX_ABSTAIN,
+                   method: str = "fixed_sequence") -> None:
+    """Refuse, before any score is computed, a calibration set too small for the target."""
+    _check_method(method)
+    target_accuracy = _check_fraction("target_accuracy", target_accuracy)
+    delta = _check_fraction("delta", delta)
+    max_abstain = _check_fraction("max_abstain", max_abstain, closed=True)
+    need = minimum_rows(target_accuracy, delta, max_abstain=max_abstain, method=method)
+    if n < need:
+        where = (f"the first threshold tested accepts {math.ceil((1 - max_abstain) * need - 1e-9)} of {need} "
+                 f"cases (1 - max_abstain = {1 - max_abstain:.0%})" if method == "fixed_sequence"
+                 else "every case accepted")
+        raise CalibrationInfeasible(
+            f"accepted-case accuracy {target_accuracy:.4g} with confidence {1 - delta:.4g} ({method}, "
+            f"max_abstain {max_abstain:g}) needs at least {need} calibration rows even if every accepted case "
+            f"is correct ({where}); got {n}. Calibrate on more labelled rows, or lower the target or the "
+            "confidence" + (", or lower --max-abstain (the sequence starts at the most conservative allowed "
+                              "threshold)" if method == "fixed_sequence" and max_abstain > 0.3 else ""),
+            field="data",
+        )
+
+
+def _check_method(method: str) -> None:
+    if method not in METHODS:
+        raise ConfigError(f"method must be one of {', '.join(METHODS)}; got '{method}'", field="method")
+
+
 def select_for_accuracy(
     scores: np.ndarray,
     correct: np.ndarray,
     target_accuracy: float,
     delta: float,
     *,
-    max_abstain: float = 1.0,
+    max_abstain: float = DEFAULT_MAX_ABSTAIN,
     method: str = "fixed_sequence",
     max_candidates: int = MAX_CANDIDATES,
 ) -> ThresholdChoice:
-    """The largest threshold whose accepted-case accuracy is >= ``target_accuracy`` with
-    confidence 1 - ``delta`` (see the module docstring), abstaining on at most
-    ``max_abstain`` of the calibration cases. ``scores``: float[n]; ``correct``: bool[n].
-    Raises ``CalibrationInfeasible`` (with the best achievable figures) if none is certified.
+    """The largest certified threshold on the fixed grid (see the module docstring):
+    with probability >= 1 - ``delta`` over the calibration draw, accepted cases are at
+    least ``target_accuracy`` correct in the population. ``scores``: float[n];
+    ``correct``: bool[n]. Raises ``CalibrationInfeasible`` (best figures) if none is.
     """
-    target_accuracy = _check_fraction("target_accuracy", target_accuracy)
-    delta = _check_fraction("delta", delta)
-    max_abstain = _check_fraction("max_abstain", max_abstain, closed=True)
-    if method not in METHODS:
-        raise ConfigError(f"method must be one of {', '.join(METHODS)}; got '{method}'", field="method")
     s = np.asarray(scores, dtype=np.float64).ravel()
     c = np.asarray(correct, dtype=bool).ravel()
     n = len(s)
     if n < 2 or len(c) != n or not np.all(np.isfinite(s)):
         raise ConfigError(f"need >= 2 finite scores with one correctness flag each; got {n} scores, "
                           f"{len(c)} flags", field="scores")
+    check_feasible(n, target_accuracy, delta, max_abstain=max_abstain, method=method)
     srt = np.sort(s)
-    # Fewest accepted cases that could be certified at all (zero errors):
-    # 1 - level**(1/a) <= 1 - target  <=>  a >= ln(level) / ln(target). Smaller
-    # candidates can never pass whatever the labels, so the (label-free) grid skips them.
-    worst_level = delta / max_candidates if method == "bonferroni" else delta
-    a_min = math.ceil(math.log(worst_level) / math.log(target_accuracy) - 1e-9)
-    if a_min > n - 1:
-        raise CalibrationInfeasible(
-            f"accepted-case accuracy {target_accuracy:.4g} with confidence {1 - delta:.4g} needs at least "
-            f"{a_min} error-free accepted calibration cases ({method}); got {n} cases in all. "
-            "Lower the target or the confidence, or calibrate on more labelled cases",
-            field="target_accuracy",
-        )
-    if method == "fixed_sequence":
-        a_min = _sequence_start(n, 1.0 - target_accuracy, delta, a_min)
-    # rank k (1-based) accepts about k - 1 cases; allowed: k - 1 >= (1 - max_abstain) n
-    k_min = min(n, max(2, a_min + 1, math.ceil((1.0 - max_abstain) * n - 1e-9) + 1))
-    ranks = np.unique(np.linspace(k_min, n, min(max_candidates, n - k_min + 1)).round().astype(np.int64))
+    ranks = candidate_ranks(n, max_abstain, max_candidates)
     cand = srt[ranks - 1]
-    accepted = np.searchsorted(srt, cand, side="left")  # number of scores < candidate
-    allowed = accepted >= (1.0 - max_abstain) * n - 1e-9  # ties can shrink an accepted set
-    cand, accepted = cand[allowed], accepted[allowed]
-    if len(cand) == 0:
-        raise CalibrationInfeasible(
-            f"every candidate threshold abstains on more than {max_abstain:.1%} of the {n} calibration "
-            "cases (many tied scores?); raise --max-abstain", field="max_abstain")
-    err_sorted = np.concatenate([[0], np.cumsum(~c[np.argsort(s, kind="stable")])])
-    # errors among cases with score < candidate (ties: all cases of smaller score)
-    errors = err_sorted[accepted]
+    accepted = np.searchsorted(srt, cand, side="left")  # scores < candidate (ties can shrink it)
+    errors = np.concatenate([[0], np.cumsum(~c[np.argsort(s, kind="stable")])])[accepted]
     m = len(cand)
     level = delta / m if method == "bonferroni" else delta
-    bound = error_upper_bound(errors, accepted, level)
-    acc_lower = 1.0 - bound
+    acc_lower = 1.0 - error_upper_bound(errors, accepted, level)
     ok = acc_lower >= target_accuracy
     if method == "fixed_sequence":
         fails = np.flatnonzero(~ok)
         tested = int(fails[0]) + 1 if len(fails) else m
-        certified = np.zeros(m, dtype=bool)
-        certified[: tested - (1 if len(fails) else 0)] = True
+        certified = np.arange(m) < (tested - 1 if len(fails) else m)
     else:
-        tested = m
-        certified = ok
+        tested, certified = m, ok
     thresholds = np.nextafter(cand, -np.inf)
     curve = [
         {"threshold": float(thresholds[j]), "coverage": float(accepted[j] / n),
@@ -409,49 +443,68 @@ def select_for_accuracy(
          "certified": bool(certified[j])}
         for j in range(m)
     ]
-    target = {"accuracy": target_accuracy, "max_abstain": max_abstain}
     if not certified.any():
         j = int(np.argmax(acc_lower[:tested]))
-        how = ("testing stopped at the first candidate" if method == "fixed_sequence"
-               else f"each of {m} candidates at level delta/{m}")
+        how = (f"testing stops at the first failure; the first threshold accepts {accepted[0]} cases"
+               if method == "fixed_sequence" else f"each of {m} candidates at level delta/{m}")
         raise CalibrationInfeasible(
             f"no threshold reaches accepted-case accuracy {target_accuracy:.4g} with confidence "
             f"{1 - delta:.4g} while abstaining on at most {max_abstain:.1%} of cases ({method}, {how}). "
             f"Best achievable: accuracy >= {acc_lower[j]:.4f} certified, at {1 - accepted[j] / n:.1%} "
             f"abstention ({accepted[j]} of {n} accepted, {int(errors[j])} wrong, observed accuracy "
-            f"{(1 - errors[j] / max(accepted[j], 1)):.4f}). Lower the target, the confidence or raise "
-            f"--max-abstain, or calibrate on more labelled cases",
+            f"{(1 - errors[j] / max(accepted[j], 1)):.4f}). Lower the target or the confidence, or "
+            "calibrate on more labelled cases",
             field="target_accuracy",
         )
     j = int(np.flatnonzero(certified)[-1])
     return ThresholdChoice(
         method=method, threshold=float(thresholds[j]), n=n, accepted=int(accepted[j]), errors=int(errors[j]),
         abstain_rate=float(1.0 - accepted[j] / n), accuracy=float(1.0 - errors[j] / accepted[j]),
-        accuracy_bound=float(acc_lower[j]), delta=delta, target=target, candidates=m, tested=tested, curve=curve,
+        accuracy_bound=float(acc_lower[j]), delta=delta,
+        target={"accuracy": float(target_accuracy), "max_abstain": float(max_abstain)},
+        candidates=m, tested=tested, curve=curve,
     )
 
 
-def _sequence_start(n: int, alpha: float, delta: float, a_zero: int) -> int:
-    """Where the fixed sequence starts: the fewest accepted cases at which up to
-    ``SEQUENCE_TOLERANCE`` errors (else fewer) could still be certified.
+def batch_spread(accuracy: float, coverage: float, batch: int, target: float) -> dict[str, float]:
+    """What one batch of ``batch`` future cases shows, if the population accepts a share
+    ``coverage`` and is right on ``accuracy`` of what it accepts.
 
-    Depends only on n, the target and delta -- never on the data -- so the order
-    stays pre-set. Starting where a single early confident error cannot end the
-    sequence matters: a bound on few cases fails on one error, and the sequence
-    stops at its first failure.
+    The batch accepts A ~ Binomial(batch, coverage) cases, of which C | A ~ Binomial(A,
+    accuracy) are right; the batch's accepted-case accuracy is C / A (batches with A = 0
+    left out). Returns ``below`` = P(C / A < target) and the 5%, 50% and 95% points of
+    C / A. Exact sums of scipy.stats.binom masses over the A and C within 12 standard
+    deviations of their means (the rest has mass < 1e-30).
     """
-    for e in range(SEQUENCE_TOLERANCE, 0, -1):
-        lo, hi = e + 1, n - 1
-        if hi < lo or float(error_upper_bound(e, hi, delta)) > alpha:
-            continue
-        while lo < hi:  # smallest a with bound(e, a) <= alpha (the bound falls as a grows)
-            mid = (lo + hi) // 2
-            if float(error_upper_bound(e, mid, delta)) <= alpha:
-                hi = mid
-            else:
-                lo = mid + 1
-        return lo
-    return a_zero
+    if batch < 1:
+        raise ConfigError(f"batch must be a positive number of cases; got {batch}", field="batch")
+    p, cov = min(max(float(accuracy), 0.0), 1.0), min(max(float(coverage), 0.0), 1.0)
+    sd = math.sqrt(batch * cov * (1 - cov))
+    a = np.arange(max(1, math.floor(batch * cov - 12 * sd - 1)), min(batch, math.ceil(batch * cov + 12 * sd + 1)) + 1)
+    pa = stats.binom.pmf(a, batch, cov)
+    pa = pa / pa.sum() if pa.sum() > 0 else pa
+    below = float(np.sum(pa * stats.binom.cdf(np.ceil(target * a - 1e-9) - 1, a, p)))
+    # quantiles of C / A: the mixture over a of Binomial(a, p) / a, on a grid of values
+    sd_c = math.sqrt(a.max() * p * (1 - p))
+    off = np.arange(-math.ceil(12 * sd_c) - 1, math.ceil(12 * sd_c) + 2)
+    k = np.clip(np.round(a[:, None] * p) + off[None, :], 0, a[:, None])
+    mass = pa[:, None] * stats.binom.pmf(k, a[:, None], p)
+    mass = np.where(np.diff(np.c_[np.full(len(a), -1.0), k], axis=1) > 0, mass, 0.0)  # clipped repeats
+    val, w = (k / a[:, None]).ravel(), mass.ravel()
+    order = np.argsort(val, kind="stable")
+    cum = np.cumsum(w[order]) / w.sum()
+    q = {f"q{int(100 * t):02d}": float(val[order][min(np.searchsorted(cum, t), len(cum) - 1)])
+         for t in (0.05, 0.5, 0.95)}
+    return {"batch": int(batch), "accuracy": p, "coverage": cov, "target": float(target), "below": below, **q}
+
+
+def guarantee_text(target_accuracy: float, delta: float) -> str:
+    """The guarantee, stated exactly as the procedure proves it (CLI, report, README)."""
+    return (f"With probability at least {1 - delta:.3g} over the draw of the calibration cases, the error rate "
+            f"of accepted cases in the population the calibration cases were drawn from is at most "
+            f"{1 - target_accuracy:.4g} (accepted-case accuracy at least {target_accuracy:.4g}). It is a "
+            "statement about that population, not about any one batch or case, and not about inputs unlike "
+            "the calibration cases.")
 
 
 def _finite_sample_rank(n: int, level: float, what: str) -> int:
@@ -537,6 +590,8 @@ def calibration_record(choice: ThresholdChoice, *, score: str, data: dict[str, A
         "data": dict(data),
         "date": (now or _dt.datetime.now(_dt.timezone.utc)).isoformat(timespec="seconds"),
     }
+    if choice.accuracy_bound is not None and choice.delta is not None:
+        rec["guarantee"] = guarantee_text(choice.target["accuracy"], choice.delta)
     if conformal is not None:
         rec["conformal"] = dict(conformal)
     return rec

@@ -29,20 +29,21 @@ from typing import Any
 
 import numpy as np
 
+from demur.serve.core.decision import SCORE_UNITS
 from demur.serve.offline.calibration import ECE_BINS, reliability_bins, risk_coverage
 
-__all__ = ["CAUTION", "ClassificationPlots", "RegressionPlots", "write_report"]
+__all__ = ["CAUTION", "ClassificationPlots", "RegressionPlots", "decision_lines", "write_report"]
 
 CAUTION = (
     "demur supports, and never replaces, qualified human judgement. Accepted predictions can still "
-    "be wrong; the guarantee is a statement about many cases like the calibration data, not about "
-    "any single case, and it does not hold for inputs unlike that data."
+    "be wrong; the guarantee is a statement about the population the calibration cases came from, "
+    "not about any single case or batch, and it does not hold for inputs unlike that data."
 )
 
 
 @dataclass(frozen=True)
 class ClassificationPlots:
-    """Arrays behind the classification plots (test split unless said otherwise).
+    """Arrays behind the classification plots (the check's cases, or the calibration cases: ``split``).
 
     ``scores``: float[N] decision score; ``correct``: bool[N]; ``probs``: float[N, K]
     mean class probabilities; ``y``: int[N]; ``threshold``: the chosen threshold
@@ -58,6 +59,7 @@ class ClassificationPlots:
     score_unit: str = "nats"
     calibration_point: tuple[float, float] | None = None  # (abstain rate, accuracy) on calibration
     target_accuracy: float | None = None
+    split: str = "test"  # which cases the arrays are: "test" (the check) or "calibration"
 
 
 @dataclass(frozen=True)
@@ -81,6 +83,9 @@ class RegressionPlots:
     score_name: str
     score_unit: str = ""
     extra: dict[str, Any] = field(default_factory=dict)
+    split: str = "test"
+    raw_lower: np.ndarray | None = None  # the model's own interval before conformal, target units
+    raw_upper: np.ndarray | None = None
 
 
 def _plt() -> Any:
@@ -99,12 +104,12 @@ def _axis_label(name: str, unit: str) -> str:
 def _referral_plot(plt: Any, p: ClassificationPlots, path: Path) -> None:
     rc = risk_coverage(p.scores, p.correct)
     fig, ax = plt.subplots(figsize=(6.4, 4.4))
-    ax.plot(100 * (1 - rc["coverage"]), 100 * (1 - rc["risk"]), lw=1.8, label="test split")
+    ax.plot(100 * (1 - rc["coverage"]), 100 * (1 - rc["risk"]), lw=1.8, label=f"{p.split} cases")
     if p.threshold is not None:
         accepted = p.scores <= p.threshold
         if accepted.any():
             ax.plot(100 * (1 - accepted.mean()), 100 * p.correct[accepted].mean(), "o", ms=9,
-                    label=f"chosen threshold {p.threshold:.4g} (test)")
+                    label=f"chosen threshold {p.threshold:.4g} ({p.split})")
     if p.calibration_point is not None:
         ax.plot(100 * p.calibration_point[0], 100 * p.calibration_point[1], "s", ms=8, mfc="none",
                 label="chosen threshold (calibration)")
@@ -178,7 +183,7 @@ def _coverage_plot(plt: Any, p: RegressionPlots, path: Path) -> None:
     ax.axvline(100 * p.level, color="black", lw=0.8, ls=":")
     ax.set_xlabel("nominal interval level (%)")
     ax.set_ylabel("test cases inside the interval (%)")
-    ax.set_title("Interval coverage versus level (test split)")
+    ax.set_title(f"Interval coverage versus level ({p.split} cases)")
     ax.legend(fontsize=8)
     fig.tight_layout()
     fig.savefig(path, dpi=110)
@@ -196,7 +201,7 @@ def _residual_plot(plt: Any, p: RegressionPlots, path: Path) -> None:
     ax.axhline(0, color="grey", lw=0.8)
     ax.set_xlabel("predicted mean (target units)")
     ax.set_ylabel("residual y - mean (target units)")
-    ax.set_title("Residuals and the served interval (test split)")
+    ax.set_title(f"Residuals and the served interval ({p.split} cases)")
     ax.legend(fontsize=8)
     fig.tight_layout()
     fig.savefig(path, dpi=110)
@@ -230,7 +235,7 @@ def write_report(folder: str | Path, figures: Mapping[str, Any],
             _reliability_plot(plt, plots, out / "reliability.png")
             _score_hist(plt, plots.scores, [("correct", plots.correct), ("wrong", ~plots.correct)],
                         plots.threshold, plots.score_name, plots.score_unit, out / "score_hist.png",
-                        "Decision score: correct versus wrong predictions (test split)")
+                        f"Decision score: correct versus wrong predictions ({plots.split} cases)")
             images = [
                 ("referral.png", "Accuracy on accepted cases as more cases are referred to people. "
                                  "The marker is the operating point of the chosen threshold."),
@@ -243,9 +248,10 @@ def write_report(folder: str | Path, figures: Mapping[str, Any],
             inside = (plots.y >= plots.lower) & (plots.y <= plots.upper)
             _score_hist(plt, plots.scores, [("inside interval", inside), ("outside interval", ~inside)],
                         plots.threshold, plots.score_name, plots.score_unit, out / "score_hist.png",
-                        "Decision score: cases inside versus outside the interval (test split)")
+                        f"Decision score: cases inside versus outside the interval ({plots.split} cases)")
             images = [
-                ("coverage.png", "Share of test cases inside the interval at each nominal level."),
+                ("coverage.png", "Share of cases inside the interval at each nominal level: the model's own "
+                                 "(moment-matched) interval against the conformal one."),
                 ("residuals.png", "Test residuals with the served interval around the predicted mean."),
                 ("score_hist.png", "The decision score for cases inside and outside the served interval."),
             ]
@@ -257,25 +263,160 @@ def write_report(folder: str | Path, figures: Mapping[str, Any],
     return path
 
 
+# --------------------------------------------------------------------------- words and tables
+
+
+def _pct(v: float) -> str:
+    return f"{100 * v:.1f}%"
+
+
+def _chance(p: float) -> str:
+    return "<0.1%" if p < 0.001 else f"{100 * p:.1f}%"
+
+
+def decision_lines(record: Mapping[str, Any]) -> list[str]:
+    """The calibration record in sentences: the decision, the guarantee, what a batch
+    will show, the intervals, the check. Printed by ``demur calibrate`` and the report."""
+    ach, score = record["achieved"], str(record["score"]).replace("_", " ")
+    unit = f" {SCORE_UNITS[record['score']]}" if SCORE_UNITS.get(record["score"]) else ""
+    bound = record.get("bound")
+    first = (f"abstain when {score} > {record['threshold']:.4g}{unit}: {_pct(ach['abstain_rate'])} of the "
+             f"{record['n']} calibration cases go to a person")
+    if bound:
+        first += (f"; accepted cases are at least {_pct(bound['accuracy_lower'])} correct with "
+                  f"{record['confidence']:.0%} confidence ({record['method']})")
+    lines = [first]
+    if record.get("guarantee"):
+        lines.append(f"guarantee: {record['guarantee']}")
+    spread = record.get("batch")
+    if spread:
+        est, low = spread["at_calibration_estimate"], spread["at_certified_floor"]
+        lines.append(
+            f"on a batch of {est['batch']} future cases about {est['coverage'] * est['batch']:.0f} are accepted; "
+            f"if the population's accepted accuracy is the calibration estimate {est['accuracy']:.4f}, the batch "
+            f"shows {est['q05']:.4f} to {est['q95']:.4f} (5-95%) and falls below {est['target']:g} with "
+            f"probability {_chance(est['below'])}; if it is at the certified floor {low['accuracy']:.4f}, with "
+            f"probability {_chance(low['below'])}")
+    conformal = record.get("conformal")
+    if conformal:
+        lines.append(f"intervals: conformal scale q = {conformal['q']:.4g} for {conformal['level']:.0%} coverage; "
+                     f"before the correction the model's own {conformal['level']:.0%} interval covered "
+                     f"{_pct(conformal['model_coverage_before'])} of the {conformal['model_coverage_before_on']} "
+                     "cases")
+    t = record.get("test")
+    if t:
+        n_test = (record.get("data", {}).get("test") or {}).get("n", t.get("accepted"))
+        tail = f"independent check ({n_test} cases): abstain {_pct(t['abstain_rate'])}"
+        if t.get("accuracy_accepted") is not None:
+            tail += f", accepted accuracy {t['accuracy_accepted']:.4f}"
+        if t.get("coverage") is not None:
+            tail += f", interval coverage {t['coverage']:.3f}"
+        lines.append(tail)
+    return lines
+
+
+def _fmt(v: Any) -> str:
+    if isinstance(v, bool) or v is None:
+        return "-" if v is None else ("yes" if v else "no")
+    if isinstance(v, (int, np.integer)):
+        return str(int(v))
+    if isinstance(v, (float, np.floating)):
+        return "-" if not math.isfinite(float(v)) else f"{float(v):.4g}"
+    return str(v)
+
+
+def _table(rows: list[tuple[str, Any]], head: tuple[str, str] = ("figure", "value")) -> str:
+    body = "".join(f"<tr><th scope='row'>{html.escape(k)}</th><td>{html.escape(_fmt(v))}</td></tr>" for k, v in rows)
+    return (f"<table><thead><tr><th>{html.escape(head[0])}</th><th>{html.escape(head[1])}</th></tr></thead>"
+            f"<tbody>{body}</tbody></table>")
+
+
+_METRIC_NAMES = {
+    "n": "cases", "accuracy": "accuracy (all cases)", "nll": "negative log-likelihood (nats)",
+    "brier": "Brier score", "ece": "expected calibration error (15 bins)", "aurc": "area under risk-coverage",
+    "coverage": "interval coverage", "mean_interval_width": "mean interval width (target units)",
+    "rmse": "RMSE (target units)", "mae": "MAE (target units)",
+}
+
+
+def _metrics_table(metrics: Mapping[str, Any]) -> str:
+    rows = [(label, metrics[k]) for k, label in _METRIC_NAMES.items() if k in metrics]
+    at = metrics.get("at_threshold") or {}
+    rows += [(f"at the threshold: {k.replace('_', ' ')}", v) for k, v in at.items() if k != "threshold"]
+    out = _table(rows)
+    referral = metrics.get("accuracy_at_referral")
+    if referral:
+        out += _table([(f"{100 * float(r):.0f}% referred", v) for r, v in referral.items()],
+                      ("cases referred to a person (highest score first)", "accuracy on the rest"))
+    return out
+
+
 def _html(report: Mapping[str, Any], images: list[tuple[str, str]]) -> str:
     title = f"demur calibration report: {report.get('model', {}).get('name', 'model')}"
-    rows = []
-    for section in ("calibration", "test", "calibration_split"):
-        if section in report and isinstance(report[section], Mapping):
-            rows.append(f"<h2>{html.escape(section.replace('_', ' '))}</h2><pre>"
-                        f"{html.escape(json.dumps(_json_safe(report[section]), indent=2))}</pre>")
+    parts = [f"<h1>{html.escape(title)}</h1>",
+             f"<p class='caution'><strong>Caution.</strong> {html.escape(CAUTION)}</p>"]
+    rec = report.get("calibration")
     if report.get("status") == "infeasible":
-        rows.insert(0, f"<p class='bad'><strong>No threshold was written.</strong> "
-                       f"{html.escape(str(report.get('message', '')))}</p>")
-    figs = "".join(
-        f"<figure><img src='{html.escape(f)}' alt='{html.escape(c)}'><figcaption>{html.escape(c)}"
-        f"</figcaption></figure>" for f, c in images
-    )
+        parts.append(f"<p class='bad'><strong>No threshold was written; the bundle is unchanged.</strong> "
+                     f"{html.escape(str(report.get('message', '')))}</p>")
+    elif isinstance(rec, Mapping):
+        lines = decision_lines(rec)
+        parts.append(f"<h2>The decision</h2><p class='decision'>{html.escape(lines[0][0].upper() + lines[0][1:])}."
+                     "</p>")
+        parts += [f"<p>{html.escape(line[0].upper() + line[1:].rstrip('.'))}.</p>" for line in lines[1:]]
+        ach = rec.get("achieved", {})
+        rows = [("score", rec.get("score")), ("threshold (abstain when score is above)", rec.get("threshold")),
+                ("method", rec.get("method")), ("reference", rec.get("reference")),
+                ("target", ", ".join(f"{k} {_fmt(v)}" for k, v in (rec.get("target") or {}).items())),
+                ("confidence", rec.get("confidence")), ("calibration cases used (n)", rec.get("n")),
+                ("rows in the file", (rec.get("data") or {}).get("rows")),
+                ("training rows left out", (rec.get("data") or {}).get("training_rows_dropped")),
+                ("accepted", ach.get("accepted")), ("abstain rate", ach.get("abstain_rate")),
+                ("observed accepted accuracy", ach.get("accuracy"))]
+        if rec.get("bound"):
+            rows += [("certified accepted accuracy (lower bound)", rec["bound"]["accuracy_lower"]),
+                     ("candidate thresholds / tested", f"{rec['bound']['candidates']} / {rec['bound']['tested']}")]
+        parts.append("<h2>Calibration</h2>" + _table(rows))
+        if rec.get("batch"):
+            rows = []
+            for key, label in (("at_calibration_estimate", "at the calibration estimate"),
+                               ("at_certified_floor", "at the certified floor")):
+                b = rec["batch"][key]
+                rows += [(f"{label}: population accepted accuracy", b["accuracy"]),
+                         (f"{label}: batch accuracy, 5% / 50% / 95%",
+                          f"{b['q05']:.4f} / {b['q50']:.4f} / {b['q95']:.4f}"),
+                         (f"{label}: chance a batch falls below {b['target']:g}", _chance(b["below"]))]
+            size = rec["batch"]["at_calibration_estimate"]["batch"]
+            parts.append(f"<h2>What a batch of {size} future cases shows</h2><p>Accepted-case accuracy on one batch "
+                         "scatters around the population figure (exact binomial sums; the batch accepts a "
+                         "Binomial(N, coverage) number of cases).</p>" + _table(rows))
+        if rec.get("conformal"):
+            c = rec["conformal"]
+            rows = [("level", c["level"]), ("conformal scale q", c["q"]),
+                    (f"model's own interval coverage ({c['model_coverage_before_on']} cases, before)",
+                     c["model_coverage_before"]),
+                    ("conformal interval coverage (calibration)", c["coverage_cal"]),
+                    ("aleatoric floor (target units squared)", c["aleatoric_floor"]),
+                    ("floor rule", c["aleatoric_floor_rule"])]
+            if isinstance(report.get("test"), Mapping) and "coverage" in report["test"]:
+                rows.insert(3, ("conformal interval coverage (check)", report["test"]["coverage"]))
+            parts.append("<h2>Intervals</h2><p>Split conformal (Lei et al. 2018) corrects the model's interval to "
+                         "the stated coverage; the first row shows why the correction matters.</p>" + _table(rows))
+    for note in report.get("notes") or []:
+        parts.append(f"<p class='note'>{html.escape(str(note))}</p>")
+    for section, label in (("test", "Independent check"), ("calibration_split", "Calibration cases")):
+        if isinstance(report.get(section), Mapping):
+            parts.append(f"<h2>{label}</h2>{_metrics_table(report[section])}")
+    parts += [f"<figure><img src='{html.escape(f)}' alt='{html.escape(c)}'><figcaption>{html.escape(c)}"
+              "</figcaption></figure>" for f, c in images]
+    parts.append("<p>Every figure is also in <a href='report.json'>report.json</a>, for programs.</p>")
     return (
         "<!doctype html><html lang='en'><head><meta charset='utf-8'>"
         f"<title>{html.escape(title)}</title><style>body{{font-family:sans-serif;max-width:60em;margin:2em auto;"
-        "padding:0 1em}} img{{max-width:100%}} .caution{{border:2px solid #b60;padding:.8em;background:#fff7e6}}"
-        " .bad{{color:#a00}} pre{{background:#f4f4f4;padding:.6em;overflow:auto}}</style></head><body>"
-        f"<h1>{html.escape(title)}</h1><p class='caution'><strong>Caution.</strong> {html.escape(CAUTION)}</p>"
-        f"{''.join(rows)}{figs}</body></html>\n"
+        "padding:0 1em;line-height:1.4}} img{{max-width:100%}} "
+        ".caution{{border:2px solid #b60;padding:.8em;background:#fff7e6}} .bad{{color:#a00}} "
+        ".decision{{font-size:1.15em;font-weight:bold}} .note{{color:#555}} "
+        "table{{border-collapse:collapse;margin:.6em 0 1.2em}} th,td{{border:1px solid #ccc;padding:.3em .6em;"
+        "text-align:left}} thead th{{background:#eee}}</style></head><body>"
+        f"{''.join(parts)}</body></html>\n"
     )

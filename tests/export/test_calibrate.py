@@ -15,8 +15,9 @@ import math
 import numpy as np
 import pytest
 
-import demur.export.calibrate as calibrate_mod
-from demur.export.calibrate import calibrate
+import importlib
+
+from demur.export.calibrate import calibrate, calibrate_file
 from demur.serve.core.bundle import load_bundle, write_manifest
 from demur.serve.offline.calibration import select_for_abstain
 from demur.serve.cli import main
@@ -35,9 +36,12 @@ def _tree(path):
     return {p.name: p.read_bytes() for p in sorted(path.iterdir()) if p.is_file()}
 
 
+calibrate_mod = importlib.import_module("demur.export.calibrate")  # the package attribute is the function
+
+
 def test_all_is_exact():
     assert sorted(calibrate_mod.__all__) == sorted(["BATCH_ROWS", "CalibrationOutcome", "FLOOR_QUANTILE", "calibrate",
-                                                   "register"])
+                                                   "calibrate_file", "register"])
 
 
 def test_impossible_target_leaves_bundle_untouched(tiny_bundle_factory, copy_bundle, capsys, tmp_path):
@@ -66,7 +70,7 @@ def test_target_abstain_rewrites_manifest_through_the_serving_path(tiny_bundle_f
     write_manifest(path, raw)
     seal = _sha(path)
 
-    out = calibrate(str(path), "digits", target_abstain=0.05, report=str(tmp_path / "rep"))
+    out = calibrate_file(str(path), "digits", target_abstain=0.05, report=str(tmp_path / "rep"))
     bundle = load_bundle(path)
     assert out.checksum == bundle.checksum != seal
     m = bundle.manifest
@@ -94,12 +98,12 @@ def test_target_abstain_rewrites_manifest_through_the_serving_path(tiny_bundle_f
 def test_contradictory_options_are_config_errors(tiny_bundle_factory, copy_bundle):
     path = copy_bundle(tiny_bundle_factory())
     with pytest.raises(ConfigError, match="exactly one"):
-        calibrate(str(path), "digits")
+        calibrate_file(str(path), "digits")
     with pytest.raises(ConfigError, match="not defined for classification"):
-        calibrate(str(path), "digits", target_abstain=0.1, score="interval_width")
+        calibrate_file(str(path), "digits", target_abstain=0.1, score="interval_width")
     reg = copy_bundle(tiny_bundle_factory(task="regression"))
     with pytest.raises(ConfigError, match="for classifiers"):
-        calibrate(str(reg), "diabetes", target_accuracy=0.9)
+        calibrate_file(str(reg), "diabetes", target_accuracy=0.9)
 
 
 @pytest.mark.slow
@@ -144,13 +148,17 @@ def test_diabetes_conformal_calibration(diabetes_bundle, copy_bundle, tmp_path):
     """Split conformal on load_diabetes through the CLI path: the record holds q and the level, the
     served interval becomes mean ± q * sd (serve/core/summary.py), test coverage is reported."""
     path = copy_bundle(diabetes_bundle)
-    out = calibrate(str(path), "diabetes", coverage=0.9, report=str(tmp_path / "rep"))
+    out = calibrate_file(str(path), "diabetes", coverage=0.9, report=str(tmp_path / "rep"))
     m = load_bundle(path).manifest
     q = m.target["conformal_q"]
     assert m.target["conformal_level"] == 0.9 and q > 0 and math.isfinite(q)
     assert out.record["conformal"]["q"] == q
+    before = out.record["conformal"]["model_coverage_before"]
     print(f"\n[diabetes] q = {q:.4f}; calibration coverage {out.record['conformal']['coverage_cal']:.3f}; "
-          f"test coverage {out.record['test']['coverage']:.3f}; abstain {out.record['test']['abstain_rate']:.3f}")
+          f"test coverage {out.record['test']['coverage']:.3f} (model's own interval before conformal: "
+          f"{before:.3f}); abstain {out.record['test']['abstain_rate']:.3f}")
+    assert out.record["test"]["coverage_before"] == before and 0.0 <= before <= 1.0
+    assert "before the correction the model" in (tmp_path / "rep" / "index.html").read_text()
     # one test split of 88 cases: binomial standard error about 0.03, so allow 3 SE below 0.9
     assert out.record["test"]["coverage"] >= 0.9 - 3 * math.sqrt(0.09 / 88)
     for name in ("report.json", "coverage.png", "residuals.png", "score_hist.png", "index.html"):
@@ -177,7 +185,7 @@ def test_diabetes_interval_is_wider_out_of_range_and_still_covers(diabetes_bundl
     and the mean coverage of the other half must be >= 1 - alpha - 0.02 (the mean of 300 split
     coverages has standard error about 0.003, plus the 1/(n+1) granularity; common practice)."""
     path = copy_bundle(diabetes_bundle)
-    calibrate(str(path), "diabetes", coverage=0.9)
+    calibrate_file(str(path), "diabetes", coverage=0.9)
     bundle = load_bundle(path)
     m = bundle.manifest
     floor = m.target["aleatoric_floor"]
@@ -219,5 +227,139 @@ def test_infeasible_is_a_calibration_error(tiny_bundle_factory, copy_bundle):
     path = copy_bundle(tiny_bundle_factory())
     seal = _sha(path)
     with pytest.raises(CalibrationInfeasible):
-        calibrate(str(path), "digits", target_accuracy=0.9, max_abstain=0.5)
+        calibrate_file(str(path), "digits", target_accuracy=0.9, max_abstain=0.5)
     assert _sha(path) == seal and np.isfinite(load_bundle(path).manifest.decision.threshold)
+
+
+# -- the user's own file: every row, columns by name, training rows, the array API ----------
+
+
+def _holdout_csv(tmp_path, name="holdout.csv", rows=None, order=None, rename=None):
+    """The digits cal split (sklearn's load_digits, documented split) as a user's labelled CSV."""
+    from demur.export.datasets import load_dataset, write_labelled
+
+    ds = load_dataset("digits")
+    x, y = ds.x_cal, ds.y_cal
+    if rows is not None:
+        x, y = x[rows], y[rows]
+    names = list(ds.feature_names)
+    cols = list(range(len(names))) if order is None else list(order)
+    header = [names[j] for j in cols]
+    if rename:
+        header = [rename.get(h, h) for h in header]
+    return write_labelled(tmp_path / name, x[:, cols], [str(v) for v in y], header, "digit"), ds
+
+
+def _with_fingerprint(path, x_train):
+    from demur.serve.core.fingerprint import training_fingerprint
+
+    raw = json.loads((path / "manifest.json").read_text())
+    raw["extensions"]["training_rows"] = training_fingerprint(x_train)
+    write_manifest(path, raw)
+
+
+def test_whole_file_calibrates_and_shuffled_columns_give_the_same_threshold(tiny_bundle_factory, copy_bundle,
+                                                                           tmp_path):
+    """Every row of the user's file is a calibration case (n reported = rows in the file), and columns
+    are matched by name: the file with its 64 columns in a random order gives the same threshold."""
+    ordered, ds = _holdout_csv(tmp_path)
+    perm = np.random.default_rng(0).permutation(64)
+    shuffled, _ = _holdout_csv(tmp_path, "shuffled.csv", order=perm)
+    a, b = copy_bundle(tiny_bundle_factory()), copy_bundle(tiny_bundle_factory())
+    out_a = calibrate_file(str(a), str(ordered), target="digit", target_abstain=0.1)
+    out_b = calibrate_file(str(b), str(shuffled), target="digit", target_abstain=0.1)
+    assert out_a.record["n"] == out_a.record["data"]["rows"] == len(ds.y_cal) == 359
+    assert out_a.record["threshold"] == out_b.record["threshold"]
+    assert load_bundle(a).manifest.decision.threshold == out_a.record["threshold"]
+    assert any("no training-row fingerprint" in n for n in out_a.notes)
+
+
+def test_renamed_missing_or_doubled_column_is_refused_naming_it(tiny_bundle_factory, copy_bundle, tmp_path):
+    """A header typo is refused before anything is computed, naming the column; the bundle is untouched."""
+    from demur.export.errors import DatasetError
+
+    path = copy_bundle(tiny_bundle_factory())
+    before = _tree(path)
+    typo, _ = _holdout_csv(tmp_path, "typo.csv", rename={"px_r3c4": "px_r3c4x"})
+    with pytest.raises(DatasetError) as info:
+        calibrate_file(str(path), str(typo), target="digit", target_abstain=0.1)
+    msg = info.value.message
+    assert "missing column(s) 'px_r3c4'" in msg and "unknown column(s) 'px_r3c4x' (did you mean 'px_r3c4'?)" in msg
+    assert info.value.field == "px_r3c4"
+    doubled, _ = _holdout_csv(tmp_path, "doubled.csv", order=[0, *range(1, 64), 5])
+    with pytest.raises(DatasetError, match="duplicated column.*'px_r0c5'"):
+        calibrate_file(str(path), str(doubled), target="digit", target_abstain=0.1)
+    assert _tree(path) == before
+
+
+def test_training_rows_are_detected_and_refused_or_dropped(tiny_bundle_factory, copy_bundle, tmp_path):
+    """Rows the bundle's fingerprint records (SHA-256 of float32 rows, serve/core/fingerprint.py) are
+    refused with their count; with drop_training_rows they are left out and the count is reported."""
+    from demur.export.datasets import load_dataset, write_labelled
+    from demur.export.errors import DatasetError
+
+    ds = load_dataset("digits")
+    path = copy_bundle(tiny_bundle_factory())
+    _with_fingerprint(path, ds.x_train)
+    x = np.concatenate([ds.x_cal, ds.x_train[:40]])
+    y = np.concatenate([ds.y_cal, ds.y_train[:40]])
+    leaky = write_labelled(tmp_path / "leaky.csv", x, [str(v) for v in y], ds.feature_names, "digit")
+    seal = _sha(path)
+    with pytest.raises(DatasetError, match=r"40 of the 399 rows of the calibration data .* were used to train"):
+        calibrate_file(str(path), str(leaky), target="digit", target_abstain=0.1)
+    assert _sha(path) == seal
+    out = calibrate_file(str(path), str(leaky), target="digit", target_abstain=0.1, drop_training_rows=True)
+    assert out.record["n"] == 359 and out.record["data"]["rows"] == 399
+    assert out.record["data"]["training_rows_dropped"] == 40
+    assert any("40 of the 399 rows" in n and "left out" in n for n in out.notes)
+
+
+def test_array_api_returns_the_record_and_checks_with_test_arrays(tiny_bundle_factory, copy_bundle, tmp_path):
+    """demur.export.calibrate(bundle, X, y, ...): arrays in the bundle's feature order, labels as
+    indices or names; the record it returns is the one in the manifest; a holdout in the CLI is seeded."""
+    import demur.export
+    from demur.export.datasets import load_dataset
+
+    ds = load_dataset("digits")
+    path = copy_bundle(tiny_bundle_factory())
+    rec = demur.export.calibrate(str(path), ds.x_cal, ds.y_cal, target_abstain=0.1,
+                                 test=(ds.x_test, [str(v) for v in ds.y_test]), report=str(tmp_path / "rep"))
+    assert rec == load_bundle(path).manifest.decision.calibration
+    assert rec["n"] == 359 and rec["data"]["test"]["n"] == 359 and rec["test"]["abstain_rate"] >= 0
+    page = (tmp_path / "rep" / "index.html").read_text()
+    assert "Abstain when mutual information &gt;" in page and "<table>" in page and "never replaces" in page
+    assert "<pre>" not in page  # tables, not JSON dumps
+    with pytest.raises(Exception, match=r"must be float\[N, 64\]"):
+        demur.export.calibrate(str(path), ds.x_cal[:, :63], ds.y_cal, target_abstain=0.1)
+    csv_path, _ = _holdout_csv(tmp_path)
+    code = main(["calibrate", str(path), "--data", str(csv_path), "--target", "digit", "--holdout", "0.5",
+                 "--target-abstain", "0.1"])
+    assert code == 0
+    rec = load_bundle(path).manifest.decision.calibration
+    assert rec["n"] == 179 and rec["data"]["test"]["n"] == 180 and rec["data"]["split"]["seed"] == 0
+
+
+@pytest.mark.slow
+def test_demo_file_path_at_the_demo_target(demo_bundle, demo_dataset, copy_bundle, tmp_path, capsys):
+    """The demo's path: the held-out cal split written as a CSV with feature names, the test split as
+    the check; 0.98 with confidence 0.9 is certified on the demo model, the output states the
+    guarantee and the batch spread, and the exported bundle's fingerprint finds no training row."""
+    from demur.export.datasets import write_labelled
+
+    ds = demo_dataset
+    cal = write_labelled(tmp_path / "cal.csv", ds.x_cal, [str(v) for v in ds.y_cal], ds.feature_names, "digit")
+    test = write_labelled(tmp_path / "test.csv", ds.x_test, [str(v) for v in ds.y_test], ds.feature_names, "digit")
+    path = copy_bundle(demo_bundle)
+    code = main(["calibrate", str(path), "--data", str(cal), "--test", str(test), "--target-accuracy", "0.98",
+                 "--confidence", "0.9", "--max-abstain", "0.3", "--report", str(tmp_path / "rep")])
+    printed = capsys.readouterr()
+    print(f"\n[demo file path]\n{printed.out}{printed.err}")
+    assert code == 0, printed.err
+    assert "population the calibration cases were drawn from is at most 0.02" in printed.out
+    assert "on a batch of 359 future cases" in printed.out and "fingerprint" not in printed.err
+    rec = load_bundle(path).manifest.decision.calibration
+    assert rec["bound"]["accuracy_lower"] >= 0.98 and rec["n"] == 359 and rec["data"]["training_rows_dropped"] == 0
+    train_csv = write_labelled(tmp_path / "train.csv", ds.x_train[:50], [str(v) for v in ds.y_train[:50]],
+                               ds.feature_names, "digit")
+    assert main(["calibrate", str(path), "--data", str(train_csv), "--target-abstain", "0.1"]) != 0
+    assert "50 of the 50 rows" in capsys.readouterr().err
