@@ -48,6 +48,7 @@ from demur.serve.adapters.engine import Engine
 from demur.serve.errors import CalibrationInfeasible, ConfigError
 from demur.serve.offline.report import ClassificationPlots, RegressionPlots, write_report
 from demur.serve.core.summary import conformal_variance, summarise
+from demur.serve.core.support import recalibrated
 
 from demur.export.datasets import Dataset, load_dataset
 from demur.export.errors import DatasetError
@@ -228,6 +229,8 @@ def calibrate(
     drift = raw.get("drift_reference")
     raw["drift_reference"] = dict(drift) if isinstance(drift, dict) else {}
     raw["drift_reference"]["score"] = score_reference(score, sc_cal)
+    if raw.get("support"):  # the support check's false-alarm rate, re-set on the calibration split
+        raw["support"] = recalibrated(raw["support"], m.inputs, ds.x_cal)
     checksum = write_manifest(bundle.path, raw)
     load_bundle(bundle.path)  # the rewritten bundle must verify
 

@@ -75,6 +75,7 @@ from demur.serve.errors import (
 from demur.serve.web.limits import install_limits
 from demur.serve.adapters.metrics import Metrics
 from demur.serve.core.summary import summarise
+from demur.serve.core.support import support_from_manifest
 from demur.serve.core.validation import PredictRequest, parse_json, validate_predict
 
 __all__ = ["CAUTION", "EXTENSION", "OPENAPI_PATH", "EngineHolder", "Live", "Runtime", "create_app", "json_response"]
@@ -97,6 +98,7 @@ class Live:
     level: float
     model: dict[str, str]
     loaded_at: float
+    support: Any = None  # demur.serve.core.support.SupportCheck, None for a bundle without one
 
     @property
     def manifest(self) -> Any:
@@ -216,7 +218,8 @@ class Runtime:
         rule = rule_from(manifest, self.config)
         level = float(self.config.interval_level or manifest.interval_level)
         model = render.model_ref(manifest.model_name, manifest.model_version, engine.checksum)
-        live = Live(engine=engine, rule=rule, level=level, model=model, loaded_at=time.time())
+        live = Live(engine=engine, rule=rule, level=level, model=model, loaded_at=time.time(),
+                    support=support_from_manifest(manifest))
         self._smoke(live)
         return live
 
@@ -232,7 +235,7 @@ class Runtime:
                 f"smoke prediction failed: expected finite draws of shape [S, 1, {k}]; got shape "
                 f"{list(draws.shape)}", field="bundle")
         summary = summarise(live.manifest.task, draws, live.level, live.manifest.target)
-        decide(summary, live.rule)
+        decide(summary, live.rule, support=live.support, x_raw=x)
 
     def install(self, engine: Any) -> Live | None:
         """Prepare ``engine`` and make it live; return the model it replaced."""
@@ -286,7 +289,7 @@ class Runtime:
         draws = (runner or self.runner)(live.engine, req.x)
         t2 = time.perf_counter()
         summary = summarise(manifest.task, draws, live.level, manifest.target)
-        decisions = decide(summary, live.rule)
+        decisions = decide(summary, live.rule, support=live.support, x_raw=req.x)
         results = render.results(summary, decisions, live.rule, manifest.labels, req.case_ids)
         self._annotate(results, req, summary, decisions, live)
         rule = {"score": live.rule.score, "threshold": live.rule.threshold, "source": live.rule.source}
@@ -341,6 +344,10 @@ class Runtime:
             "decision_rule": {"score": live.rule.score, "threshold": live.rule.threshold,
                               "source": live.rule.source},
             "calibration": calibration,
+            "support": live.support.describe() if live.support is not None else {
+                "checked": False, "reason": "this bundle has no support record (exported before the support "
+                                            "check existed): cases are not tested against the training data; "
+                                            "re-export it"},
             "limits": {"max_cases": self.config.max_cases, "max_body_bytes": self.config.max_body_bytes},
             "caution": CAUTION,
         }
