@@ -47,7 +47,7 @@ from demur.serve.offline.calibration import (
 )
 from demur.serve.offline.report import CAUTION, _json_safe, _plt
 
-__all__ = ["FAR_SHIFTS", "SCORE_NAMES", "auroc", "referral_table", "scores_of", "shift_row", "shifted_inputs",
+__all__ = ["FAR_SHIFTS", "NOISE_SD", "SCORE_NAMES", "auroc", "referral_table", "scores_of", "shift_row", "shifted_inputs",
            "write_evaluation"]
 
 SCORE_NAMES = ("mutual_information", "predictive_entropy", "one_minus_max_prob")
