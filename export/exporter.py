@@ -49,6 +49,7 @@ from demur.serve.core.drift import feature_reference, score_reference
 from demur.serve.core.fingerprint import training_fingerprint
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.summary import summarise
+from demur.serve.core.support import support_record
 
 from demur.export.errors import ExportError, GraphBuildError
 from demur.export.graphs import SEED_MODULUS, NetworkPlan, means_graph, plan_from_model, sampler_graph, stacked_graph
@@ -120,6 +121,7 @@ def export_bundle(
         arch=str(arch.get("kind", "")),
         drift_features=meta.get("drift_features"),
         reference_x=dataset.x_val,
+        training_x=dataset.x_train,
         extensions={"training": {"metrics": meta.get("metrics", {}), "data": data},
                     "training_rows": training_fingerprint(dataset.x_train)},  # leakage check in calibrate
     )
@@ -143,13 +145,16 @@ def bundle_from_model(
     arch: str = "",
     drift_features: Mapping[str, Any] | None = None,
     extensions: Mapping[str, Any] | None = None,
+    training_x: np.ndarray | None = None,
 ) -> Bundle:
     """Write a bundle for an in-memory variational ``nn.Sequential`` (``export_bundle`` and test fixtures).
 
     ``inputs`` is the bundle's input spec (names, shape, center, scale, low,
     high); ``reference_x``: raw held-out inputs float[N, F] for the default
     threshold and the score reference; ``drift_features`` defaults to the
-    feature reference of ``reference_x``.
+    feature reference of ``reference_x``; ``training_x``: the raw training inputs, for the
+    support check (``demur.serve.core.support``; its threshold is set on ``reference_x``).
+    Without them the bundle carries no support check.
     """
     if kind not in EXPORT_KINDS:
         raise ExportError(f"kind must be one of {', '.join(EXPORT_KINDS)}; got '{kind}'", field="kind")
@@ -192,7 +197,8 @@ def bundle_from_model(
             "features": dict(drift_features) if drift_features else feature_reference(reference_x),
             "score": score_reference(DEFAULT_SCORE, scores),
         }
-        write_bundle(tmp, decision=decision, drift_reference=drift, **fields)
+        support = None if training_x is None else support_record(training_x, reference_x, dict(inputs))
+        write_bundle(tmp, decision=decision, drift_reference=drift, support=support, **fields)
         load_bundle(tmp)  # verify the finished directory before it becomes visible
         _swap_into_place(tmp, out)
     except BaseException:

@@ -50,6 +50,7 @@ from demur.serve.core.decision import SCORE_TASKS, SCORE_UNITS, score_values
 from demur.serve.core.drift import score_reference
 from demur.serve.core.fingerprint import training_overlap
 from demur.serve.core.summary import conformal_variance, summarise
+from demur.serve.core.support import recalibrated
 from demur.serve.errors import CalibrationInfeasible, ConfigError
 from demur.serve.offline.calibration import (
     DEFAULT_MAX_ABSTAIN,
@@ -431,7 +432,7 @@ def _calibrate(b: Bundle, cal: _Cases, check: _Cases | None, floor_x: np.ndarray
         raw["interval_level"] = coverage
 
     record["notes"] = list(notes)
-    checksum = _write(b, raw, _manifest_records(raw, score, choice, record, sc_cal))
+    checksum = _write(b, raw, _manifest_records(raw, score, choice, record, sc_cal, cal.x, m.inputs))
     model["checksum"] = checksum
     figures.update(status="calibrated", calibration=record, test=test, curve=list(choice.curve), notes=notes)
     report_path = str(write_report(report, figures, plots)) if report else None
@@ -485,11 +486,11 @@ def _regression(b: Bundle, engine: Engine, cal: _Cases, check: _Cases | None, fl
 
 
 def _manifest_records(raw: dict[str, Any], score: str, choice: ThresholdChoice, record: dict[str, Any],
-                      scores: np.ndarray) -> dict[str, Any]:
+                      scores: np.ndarray, x_cal: np.ndarray, inputs: Any) -> dict[str, Any]:
     """Every manifest record ``demur calibrate`` writes, assembled in this one place.
 
-    Returns the updated sections (``decision``, ``drift_reference``); a later check
-    whose threshold calibration also sets (e.g. a support check) adds its section here.
+    Returns the updated sections (``decision``, ``drift_reference``, and ``support``: the
+    support check's threshold re-set on the calibration rows, serve/core/support.py).
     """
     dec = dict(raw.get("decision") or {})
     dec.update(score=score, threshold=choice.threshold, calibration=record,
@@ -497,7 +498,10 @@ def _manifest_records(raw: dict[str, Any], score: str, choice: ThresholdChoice, 
     drift = raw.get("drift_reference")
     drift = dict(drift) if isinstance(drift, dict) else {}
     drift["score"] = score_reference(score, scores)
-    return {"decision": dec, "drift_reference": drift}
+    sections: dict[str, Any] = {"decision": dec, "drift_reference": drift}
+    if raw.get("support"):
+        sections["support"] = recalibrated(raw["support"], inputs, x_cal)
+    return sections
 
 
 def _write(b: Bundle, raw: dict[str, Any], sections: dict[str, Any]) -> str:

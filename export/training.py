@@ -53,9 +53,11 @@ and:
   256), so a second thread mostly waits: on this 2-core machine 60 epochs
   took 13 s wall / 9 s CPU with 1 thread but 56 s / 53 s with 2 when other
   work shared the cores (same accuracy either way). ``--threads 2`` is there.
-* **Inputs standardised** with the train split's mean and std (std floored:
-  features with std < 1e-6, such as the always-blank digit corners, get
-  scale 1). The statistics go into the checkpoint and the bundle.
+* **Inputs standardised** with the train split's mean and std, the std
+  floored by ``demur.serve.core.support.standardisation`` (images: 0.3 x the
+  pooled pixel std; named features: 5% of the feature's range; constant
+  features: 1), so a near-constant training pixel cannot turn a small change
+  into a huge z-score. The statistics go into the checkpoint and the bundle.
 * **Classification**: cross-entropy on logits. **Regression**:
   heteroscedastic Gaussian with two outputs, mean and log-variance, both in
   standardised target units (y_std = (y - target.center) / target.scale).
@@ -94,6 +96,7 @@ import torch.nn.functional as F
 from torch import nn
 
 from demur.serve.core.drift import feature_reference
+from demur.serve.core.support import standardisation
 
 from demur.export.datasets import Dataset, load_dataset
 from demur.export.errors import CheckpointError, LayerConfigError, TrainingError
@@ -128,7 +131,7 @@ KL_WARMUP = 0.3
 """Fraction of all training steps over which the KL weight ramps from 0 to ``KL_WEIGHT``."""
 
 SCALE_FLOOR = 1e-6
-"""Input features whose train std is below this get scale 1 (constant features)."""
+"""A regression target whose train std is below this gets scale 1e-6 (inputs: see ``standardisation``)."""
 
 EVAL_DRAWS = 32
 """Weight draws used for the reported metrics."""
@@ -172,9 +175,7 @@ class TrainResult:
 # -- inputs -------------------------------------------------------------------
 def _input_spec(ds: Dataset, arch: str) -> dict[str, Any]:
     x = ds.x_train
-    center = x.mean(axis=0)
-    std = x.std(axis=0)
-    scale = np.where(std < SCALE_FLOOR, 1.0, std)
+    center, scale = standardisation(x, shared_units=ds.image_shape is not None)
     shape = list(ds.image_shape) if arch == "conv" and ds.image_shape is not None else [ds.n_features]
     spec: dict[str, Any] = {
         "names": list(ds.feature_names),

@@ -12,6 +12,8 @@ demur_http_requests_total           counter    requests by route, method and sta
 demur_http_request_duration_seconds histogram  wall time per request, by route
 demur_http_errors_total             counter    error answers by error code
 demur_cases_total                   counter    cases decided, by decision (accept/abstain)
+demur_abstentions_total             counter    abstentions by reason: ``score`` (uncertainty above the
+                                               threshold) or ``outside_training_data`` (support check)
 demur_graph_run_duration_seconds    histogram  onnxruntime time per batch
 demur_predict_duration_seconds      histogram  predict path time per batch (graph + summary + decision)
 demur_batch_cases                   histogram  cases per predict batch
@@ -197,6 +199,9 @@ class Metrics:
                                          ["route"], buckets=LATENCY_BUCKETS_S, registry=reg)
         self.cases = Counter(f"{p}_cases", "Cases decided, by decision (accept or abstain).", ["decision"],
                              registry=reg)
+        self.abstentions = Counter(f"{p}_abstentions",
+                                   "Abstentions by reason: score (above the threshold) or outside_training_data "
+                                   "(the support check, serve/core/support.py).", ["reason"], registry=reg)
         self.graph_seconds = Histogram(f"{p}_graph_run_duration_seconds",
                                        "onnxruntime time per predict batch (seconds).",
                                        buckets=LATENCY_BUCKETS_S, registry=reg)
@@ -296,6 +301,12 @@ class Metrics:
         n_abstain = int(abstain.sum())
         if n_abstain:
             self._child(self.cases, "abstain").inc(n_abstain)
+            outside = getattr(decisions, "outside", None)
+            n_outside = int(np.count_nonzero(outside)) if outside is not None else 0
+            if n_outside:
+                self._child(self.abstentions, "outside_training_data").inc(n_outside)
+            if n_abstain - n_outside:
+                self._child(self.abstentions, "score").inc(n_abstain - n_outside)
         if b - n_abstain:
             self._child(self.cases, "accept").inc(b - n_abstain)
         self.graph_seconds.observe(float(graph_seconds))

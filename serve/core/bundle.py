@@ -387,10 +387,12 @@ def write_bundle(
     drift_reference: dict[str, Any] | None = None,
     target: dict[str, float] | None = None,
     extensions: dict[str, Any] | None = None,
+    support: dict[str, Any] | None = None,
 ) -> Bundle:
     """Write manifest + seal for graph files already placed in ``root``; return the loaded bundle.
 
     ``graphs`` maps kind -> {"file", "draws", optional "seed"}; digests are filled in here.
+    ``support``: the support-check record (``demur.serve.core.support.support_record``).
     """
     root = Path(root)
     raw: dict[str, Any] = {
@@ -412,5 +414,7 @@ def write_bundle(
         "drift_reference": drift_reference or {},
         "extensions": extensions or {},
     }
+    if support:
+        raw["support"] = support
     write_manifest(root, raw)
     return load_bundle(root)

@@ -15,6 +15,12 @@ interval_width       regression     width of the served interval, target units
 epistemic_std        regression     std of the draw means, target units
 ==================== ============== ==================================================
 
+Before a case may be accepted it must also be inside the training data
+(``demur.serve.core.support``): a case outside abstains whatever its score,
+with its own reason (``outside_training_data: ...``), and
+``Decisions.outside`` marks it (the metrics count it under its own label).
+Bundles without a support record are decided on the score alone.
+
 The threshold comes from the bundle's decision section (set by ``demur
 calibrate``) unless the server configuration overrides it; every decision
 carries which score, threshold and source were used and a one-line reason.
@@ -38,6 +44,7 @@ import numpy as np
 from demur.serve.core.bundle import SCORES
 from demur.serve.errors import ConfigError
 from demur.serve.core.summary import Summary
+from demur.serve.core.support import SupportCheck
 
 __all__ = ["SCORE_TASKS", "SCORE_UNITS", "DecisionRule", "Decisions", "decide", "rule_from", "score_values"]
 
@@ -78,11 +85,20 @@ class DecisionRule:
 
 @dataclass(frozen=True)
 class Decisions:
-    """One decision per case: the score value, the abstain flag, a readable reason."""
+    """One decision per case: the score value, the abstain flag, a readable reason, and
+    whether the case failed the support check (``outside``: bool[B], all False when unchecked)."""
 
     score: np.ndarray  # float64[B]
     abstain: np.ndarray  # bool[B]
     reason: list[str]
+    outside: np.ndarray | None = None
+
+    @property
+    def cause(self) -> list[str]:
+        """Per case the bounded reason code: "outside_training_data", "score" (abstained on the
+        score) or "" (accepted)."""
+        outside = self.outside if self.outside is not None else np.zeros(len(self.abstain), dtype=bool)
+        return np.where(outside, "outside_training_data", np.where(self.abstain, "score", "")).tolist()
 
 
 def _check_fits(task: str, name: str) -> None:
@@ -99,8 +115,11 @@ def score_values(summary: Summary, name: str) -> np.ndarray:
     return np.asarray(getattr(summary, name), dtype=np.float64)
 
 
-def decide(summary: Summary, rule: DecisionRule) -> Decisions:
-    """Apply ``rule`` to every case of ``summary``."""
+def decide(summary: Summary, rule: DecisionRule, *, support: SupportCheck | None = None,
+           x_raw: np.ndarray | None = None) -> Decisions:
+    """Apply ``rule`` to every case of ``summary``; with ``support`` (and the raw inputs
+    ``x_raw``: float[B, *shape], before standardisation) a case outside the training data
+    abstains too, its reason first."""
     score = score_values(summary, rule.score)
     abstain = score > rule.threshold
     unit = SCORE_UNITS[rule.score]
@@ -109,7 +128,13 @@ def decide(summary: Summary, rule: DecisionRule) -> Decisions:
         f"{rule.score} {v:.4g}{unit} {'>' if a else '<='} threshold {rule.threshold:.4g}"
         for v, a in zip(score.tolist(), abstain.tolist())
     ]
-    return Decisions(score=score, abstain=abstain, reason=reason)
+    if support is None:
+        return Decisions(score=score, abstain=abstain, reason=reason)
+    if x_raw is None or len(x_raw) != len(score):
+        raise ValueError("decide with a support check needs the raw inputs of every case (x_raw)")
+    checked = support.check(x_raw)
+    reason = [f"{why}; {r}" if why else r for why, r in zip(checked.reason, reason)]
+    return Decisions(score=score, abstain=abstain | checked.outside, reason=reason, outside=checked.outside)
 
 
 def rule_from(manifest: Any, config: Any = None) -> DecisionRule:

@@ -36,6 +36,7 @@ from demur.serve.config import ServeConfig
 from demur.serve.core import render
 from demur.serve.core.decision import DecisionRule, Decisions, decide, rule_from
 from demur.serve.core.summary import Summary, summarise
+from demur.serve.core.support import support_from_manifest
 from demur.serve.core.validation import PredictRequest, validate_predict
 from demur.serve.errors import BundleError, DemurError, GraphRunError, NotLoaded
 
@@ -65,6 +66,7 @@ class Live:
     level: float
     model: dict[str, str]
     loaded_at: float
+    support: Any = None  # demur.serve.core.support.SupportCheck, None for a bundle without one
 
     @property
     def manifest(self) -> Any:
@@ -209,7 +211,8 @@ class Runtime:
         rule = rule_from(manifest, self.config)
         level = float(self.config.interval_level or manifest.interval_level)
         model = render.model_ref(manifest.model_name, manifest.model_version, engine.checksum)
-        live = Live(engine=engine, rule=rule, level=level, model=model, loaded_at=time.time())
+        live = Live(engine=engine, rule=rule, level=level, model=model, loaded_at=time.time(),
+                    support=support_from_manifest(manifest))
         self._smoke(live)
         return live
 
@@ -224,7 +227,8 @@ class Runtime:
             raise BundleError(
                 f"smoke prediction failed: expected finite draws of shape [S, 1, {k}]; got shape "
                 f"{list(draws.shape)}", field="bundle")
-        decide(summarise(live.manifest.task, draws, live.level, live.manifest.target), live.rule)
+        decide(summarise(live.manifest.task, draws, live.level, live.manifest.target), live.rule,
+               support=live.support, x_raw=x)
 
     def install(self, engine: Any) -> Live | None:
         """Prepare ``engine`` and make it live; return the model it replaced."""
@@ -272,7 +276,7 @@ class Runtime:
         if draws.ndim != 3 or draws.shape[1] != req.size:
             raise GraphRunError(f"the graph returned draws of shape {list(draws.shape)} for {req.size} cases")
         summary = summarise(manifest.task, draws, live.level, manifest.target)
-        decisions = decide(summary, live.rule)
+        decisions = decide(summary, live.rule, support=live.support, x_raw=req.x)
         results = render.results(summary, decisions, live.rule, manifest.labels, req.case_ids)
         self._annotate(Answered(live, req, summary, decisions, results, caller))
         rule = {"score": live.rule.score, "threshold": live.rule.threshold, "source": live.rule.source}
@@ -323,6 +327,10 @@ class Runtime:
             "decision_rule": {"score": live.rule.score, "threshold": live.rule.threshold,
                               "source": live.rule.source},
             "calibration": m.decision.calibration,
+            "support": live.support.describe() if live.support is not None else {
+                "checked": False, "reason": "this bundle has no support record (exported before the support "
+                                            "check existed): cases are not tested against the training data; "
+                                            "re-export it"},
             "limits": {"max_cases": self.config.max_cases, "max_body_bytes": self.config.max_body_bytes},
             "caution": CAUTION,
         }

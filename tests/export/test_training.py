@@ -79,14 +79,16 @@ def test_regression_metrics_match_scipy_norm():
 
 
 def test_standardisation_floors_constant_features():
-    # digits: the corner pixel px_r0c0 is 0 in every image, so its std is 0 -> scale 1
+    # digits: the corner pixel px_r0c0 is 0 in every image; images share one unit, so every
+    # scale is floored at 0.3 x the pooled pixel std (demur.serve.core.support.standardisation)
     ds = load_dataset("digits")
     spec = training._input_spec(ds, "mlp")
-    assert spec["scale"][0] == 1.0 and spec["center"][0] == 0.0
+    floor = 0.3 * ds.x_train.std()
+    assert spec["scale"][0] == pytest.approx(floor) and spec["center"][0] == 0.0
     np.testing.assert_allclose(spec["center"], ds.x_train.mean(0))
     z = standardise_inputs(spec, ds.x_train)
     assert z.dtype == np.float32 and z.shape == (989, 64)
-    varying = ds.x_train.std(0) > training.SCALE_FLOOR
+    varying = ds.x_train.std(0) > floor
     np.testing.assert_allclose(z[:, varying].std(0), 1.0, atol=1e-5)
     conv = training._input_spec(ds, "conv")
     assert conv["shape"] == [1, 8, 8] and standardise_inputs(conv, ds.x_test[:3]).shape == (3, 1, 8, 8)

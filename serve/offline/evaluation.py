@@ -1,0 +1,232 @@
+"""``demur evaluate``'s numerics and page: is the abstention flag worth having, on the user's data?
+
+Pure numpy + scipy for the tables (the caller, ``demur.export.evaluate``, runs the models);
+matplotlib only inside ``write_evaluation`` for the plots.
+
+Tables
+------
+referral  accuracy on the cases kept when the r% most uncertain are referred to people,
+          r = 0, 5, 10, 20, 30, 50, cases ranked by mutual information, predictive
+          entropy, 1 - max probability, and at random (its expected accuracy is the
+          overall accuracy at every r); the layout of Filos et al. 2019, "A Systematic
+          Comparison of Bayesian Deep Learning Robustness in Diabetic Retinopathy
+          Tasks". Plus AURC per ranking (Geifman et al. 2019), accuracy, ECE (15 bins,
+          Guo et al. 2017), NLL and Brier, all from ``demur.serve.offline.calibration``
+          (one copy of each).
+shift     for built-in shifts of the held-out inputs (``shifted_inputs``), the AUROC of
+          each score at telling shifted cases from clean ones (``auroc``: the
+          Mann-Whitney statistic, ties counted half; 0.5 = no better than chance), and the
+          share of shifted cases the served rule accepts (score threshold and the support
+          check, ``demur.serve.core.support``).
+holdout   a class left out of training: the AUROC of each score at telling its test cases
+          from the seen classes', and the share of them accepted.
+
+The page (``write_evaluation``) writes ``evaluation.json``, ``referral.png``,
+``shift.png`` and ``index.html`` with the tables as tables and the caution that the tool
+supports, never replaces, qualified human judgement.
+"""
+
+from __future__ import annotations
+
+import html
+import json
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from scipy import stats
+
+from demur.serve.offline.calibration import (
+    REFERRAL_RATES,
+    accuracy_at_referral,
+    aurc,
+    brier_score,
+    expected_calibration_error,
+    negative_log_likelihood,
+)
+from demur.serve.offline.report import CAUTION, _json_safe, _plt
+
+__all__ = ["FAR_SHIFTS", "NOISE_SD", "SCORE_NAMES", "auroc", "referral_table", "scores_of", "shift_row", "shifted_inputs",
+           "write_evaluation"]
+
+SCORE_NAMES = ("mutual_information", "predictive_entropy", "one_minus_max_prob")
+"""The rankings compared (larger = less sure)."""
+
+FAR_SHIFTS = ("scale_x3", "inversion", "rotation", "uniform_noise", "blank", "saturated")
+"""Shifts far from any training input: the served rule should accept (almost) none of them."""
+
+NOISE_SD = 0.25
+"""Gaussian-noise shift: sd as a share of each feature's training range (our choice)."""
+
+
+def scores_of(probs: np.ndarray, mutual_information: np.ndarray | None = None) -> dict[str, np.ndarray]:
+    """The three rankings from mean probabilities float[N, K] (and MI, nats; a deterministic
+    network has none: its MI is 0 and is left out). Entropies in nats."""
+    p = np.asarray(probs, dtype=np.float64)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        pe = -np.sum(np.where(p > 0, p * np.log(p), 0.0), axis=1)
+    out = {"predictive_entropy": pe, "one_minus_max_prob": 1.0 - p.max(axis=1)}
+    if mutual_information is not None:
+        out = {"mutual_information": np.asarray(mutual_information, dtype=np.float64), **out}
+    return out
+
+
+def auroc(positive: np.ndarray, negative: np.ndarray) -> float:
+    """P(score of a positive > score of a negative) + 0.5 P(tie): the area under the ROC curve
+    (Mann-Whitney U / (n_pos n_neg)); +inf scores are fine. Equals
+    ``sklearn.metrics.roc_auc_score`` with positives labelled 1."""
+    pos = np.asarray(positive, dtype=np.float64).ravel()
+    neg = np.asarray(negative, dtype=np.float64).ravel()
+    if not len(pos) or not len(neg):
+        return float("nan")
+    ranks = stats.rankdata(np.concatenate([pos, neg]))
+    u = ranks[: len(pos)].sum() - len(pos) * (len(pos) + 1) / 2.0
+    return float(u / (len(pos) * len(neg)))
+
+
+def referral_table(probs: np.ndarray, y: np.ndarray, scores: Mapping[str, np.ndarray]) -> dict[str, Any]:
+    """Accuracy kept at each referral rate per ranking (plus "random"), AURC per ranking, and the
+    held-out accuracy, ECE, NLL and Brier of ``probs`` float[N, K] against labels ``y`` int[N]."""
+    p = np.asarray(probs, dtype=np.float64)
+    t = np.asarray(y).astype(np.int64)
+    correct = p.argmax(axis=1) == t
+    acc = float(correct.mean())
+    rows = {name: {"accuracy_at_referral": accuracy_at_referral(s, correct), "aurc": aurc(s, correct)}
+            for name, s in scores.items()}
+    rows["random"] = {"accuracy_at_referral": {f"{r:.2f}": acc for r in REFERRAL_RATES},
+                      "aurc": 1.0 - acc}
+    return {"n": int(len(t)), "accuracy": acc, "ece": expected_calibration_error(p, t),
+            "nll": negative_log_likelihood(p, t), "brier": brier_score(p, t), "rankings": rows}
+
+
+def shifted_inputs(x: np.ndarray, *, low: np.ndarray, high: np.ndarray, center: np.ndarray,
+                   image_shape: tuple[int, ...] | None, seed: int = 0) -> dict[str, np.ndarray]:
+    """Built-in shifts of raw held-out inputs ``x`` float[N, F] (same shape back, raw units).
+
+    gaussian_noise (sd ``NOISE_SD`` x the feature's range; images clipped to the pixel range),
+    scale_x3, inversion (images: lowest + highest pixel value - x; named features: the sign
+    flipped about the training mean), permuted_features (one fixed random column order),
+    uniform_noise (each feature uniform over its training range); images only: rotation
+    (90 degrees), blank (every pixel at the lowest value), saturated (at the highest).
+    """
+    x = np.asarray(x, dtype=np.float64).reshape(len(x), -1)
+    low, high = np.asarray(low, dtype=np.float64), np.asarray(high, dtype=np.float64)
+    rng = np.random.default_rng(seed)
+    noisy = x + rng.normal(size=x.shape) * NOISE_SD * (high - low)
+    lo, hi = float(low.min()), float(high.max())
+    out = {
+        "gaussian_noise": np.clip(noisy, lo, hi) if image_shape else noisy,
+        "scale_x3": 3.0 * x,
+        "inversion": (lo + hi - x) if image_shape else 2.0 * np.asarray(center, dtype=np.float64) - x,
+        "permuted_features": x[:, rng.permutation(x.shape[1])],
+        "uniform_noise": rng.uniform(low, high, size=x.shape),
+    }
+    if image_shape:
+        img = x.reshape(len(x), *image_shape)
+        if img.shape[-1] == img.shape[-2]:
+            out["rotation"] = np.rot90(img, 1, axes=(-2, -1)).reshape(len(x), -1)
+        out["blank"] = np.full_like(x, lo)
+        out["saturated"] = np.full_like(x, hi)
+    return out
+
+
+def shift_row(clean: Mapping[str, np.ndarray], shifted: Mapping[str, np.ndarray],
+              accepted: np.ndarray) -> dict[str, Any]:
+    """One shift's row: AUROC of each score (shifted = positive, clean = negative) and the share
+    of shifted cases accepted (``accepted``: bool[N] of the served rule on the shifted cases)."""
+    return {"auroc": {name: auroc(shifted[name], clean[name]) for name in clean if name in shifted},
+            "accepted": float(np.mean(accepted)) if len(accepted) else float("nan")}
+
+
+# --------------------------------------------------------------------------- the page
+
+
+def _referral_plot(plt: Any, figures: Mapping[str, Any], path: Path) -> None:
+    fig, ax = plt.subplots(figsize=(6.4, 4.2))
+    rates = [float(r) for r in REFERRAL_RATES]
+    for model, body in figures["models"].items():
+        for name, row in body["referral"]["rankings"].items():
+            if name == "random" and model != next(iter(figures["models"])):
+                continue
+            acc = [row["accuracy_at_referral"][f"{r:.2f}"] for r in rates]
+            ax.plot([100 * r for r in rates], acc, marker="o", ms=3,
+                    label=f"{model}: {name}" if name != "random" else "random referral")
+    ax.set_xlabel("cases referred to people (%)")
+    ax.set_ylabel("accuracy of the cases kept")
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=7)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+
+
+def _shift_plot(plt: Any, figures: Mapping[str, Any], path: Path) -> None:
+    models = list(figures["models"])
+    shifts = list(next(iter(figures["models"].values()))["shift"])
+    fig, ax = plt.subplots(figsize=(7.2, 3.8))
+    width = 0.8 / max(len(models), 1)
+    for i, model in enumerate(models):
+        acc = [figures["models"][model]["shift"][s]["accepted"] for s in shifts]
+        ax.bar(np.arange(len(shifts)) + i * width, acc, width, label=model)
+    ax.set_xticks(np.arange(len(shifts)) + 0.4 - width / 2, shifts, rotation=30, ha="right", fontsize=8)
+    ax.set_ylabel("share accepted by the served rule")
+    ax.set_ylim(0, 1)
+    ax.legend(fontsize=7)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+
+
+def _fmt(v: Any) -> str:
+    return "" if v is None else f"{v:.4f}" if isinstance(v, float) else html.escape(str(v))
+
+
+def _table(head: list[str], rows: list[list[Any]]) -> str:
+    h = "".join(f"<th>{html.escape(c)}</th>" for c in head)
+    body = "".join("<tr>" + "".join(f"<td>{_fmt(c)}</td>" for c in r) + "</tr>" for r in rows)
+    return f"<table><thead><tr>{h}</tr></thead><tbody>{body}</tbody></table>"
+
+
+def _html(figures: Mapping[str, Any], images: list[str]) -> str:
+    parts = [f"<h1>demur evaluate: {html.escape(str(figures.get('title', '')))}</h1>",
+             f"<p class='caution'><strong>Caution.</strong> {html.escape(CAUTION)}</p>"]
+    rates = [f"{r:.2f}" for r in REFERRAL_RATES]
+    for model, body in figures["models"].items():
+        ref = body["referral"]
+        parts.append(f"<h2>{html.escape(model)}</h2><p>{ref['n']} held-out cases: accuracy {ref['accuracy']:.4f}, "
+                     f"ECE {ref['ece']:.4f} (15 bins), NLL {ref['nll']:.4f} nats, Brier {ref['brier']:.4f}</p>")
+        rows = [[name, *[row["accuracy_at_referral"][r] for r in rates], row["aurc"]]
+                for name, row in ref["rankings"].items()]
+        parts.append(_table(["ranking", *[f"{float(r):.0%} referred" for r in rates], "AURC"], rows))
+        names = [n for n in SCORE_NAMES if n in ref["rankings"]]
+        rows = [[s, *[row["auroc"].get(n) for n in names], row["accepted"]] for s, row in body["shift"].items()]
+        parts.append("<h3>Shifted inputs</h3>" + _table(["shift", *[f"AUROC {n}" for n in names], "accepted"], rows))
+        if body.get("holdout"):
+            h = body["holdout"]
+            parts.append(f"<h3>Unseen class {html.escape(str(h['label']))}</h3>" + _table(
+                ["score", "AUROC unseen vs seen"], [[n, v] for n, v in h["auroc"].items()]
+            ) + f"<p>accepted: {h['accepted']:.4f} of {h['n']} unseen cases</p>")
+    parts += [f"<img src='{i}' alt='{i}'>" for i in images]
+    style = ("body{font-family:sans-serif;max-width:60em;margin:2em auto}table{border-collapse:collapse}"
+             "td,th{border:1px solid #999;padding:.2em .5em;text-align:right}.caution{background:#fff4d6;"
+             "padding:.6em}")
+    return (f"<!doctype html><html><head><meta charset='utf-8'><title>demur evaluate</title><style>{style}"
+            f"</style></head><body>{''.join(parts)}</body></html>\n")
+
+
+def write_evaluation(folder: str | Path, figures: Mapping[str, Any]) -> Path:
+    """Write evaluation.json, the plots and index.html into ``folder``; return the JSON's path.
+
+    ``figures``: {"title", "models": {model name: {"referral": referral_table(...),
+    "shift": {shift: shift_row(...)}, optional "holdout"}}, ...}.
+    """
+    root = Path(folder)
+    root.mkdir(parents=True, exist_ok=True)
+    path = root / "evaluation.json"
+    path.write_text(json.dumps(_json_safe(figures), indent=2) + "\n")
+    plt = _plt()
+    _referral_plot(plt, figures, root / "referral.png")
+    _shift_plot(plt, figures, root / "shift.png")
+    (root / "index.html").write_text(_html(figures, ["referral.png", "shift.png"]), encoding="utf-8")
+    return path
