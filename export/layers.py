@@ -50,7 +50,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from typing import Literal
+from typing import Any, Literal
 
 import torch
 import torch.nn.functional as F
@@ -175,8 +175,14 @@ class VariationalLayer(nn.Module):
         b = self.bias_mu + self.bias_sigma * self._noise(S, self.bias_mu.shape, generator)
         return {"weight": w, "bias": b}
 
+    _draw_mode: Any = None
+    """Set by ``demur.export.draws.DrawNetwork`` on its private copy: how S draws run at once."""
+
     def forward(self, x: torch.Tensor) -> torch.Tensor:
-        """One fresh draw shared by the batch (training, reparameterised)."""
+        """One fresh draw shared by the batch (training, reparameterised); in a
+        ``DrawNetwork``, S draws over a draw-carrying batch [S*B, ...]."""
+        if self._draw_mode is not None:
+            return self._draw_mode.run(self, x)
         d = self.draw(1)
         return self.forward_with(x, d["weight"][0], d["bias"][0])
 
