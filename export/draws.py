@@ -253,7 +253,7 @@ class DrawNetwork(nn.Module):
         self.members = nn.ModuleList(copy.deepcopy(m).eval() for m in members)
         self.layers = [lay for m in self.members for lay in m.modules() if isinstance(lay, VariationalLayer)]
         self.family = self._family()
-        self.S = len(self.members) if self.ensemble else (1 if kind == "means" else int(draws))
+        self.S = 1 if kind == "means" else len(self.members) if self.ensemble else int(draws)
         if self.S < 1:
             raise GraphBuildError(f"draws must be a positive integer; got {draws}", field="draws")
         self.dropouts: list[DropoutDraws] = []
@@ -384,11 +384,17 @@ def _dropout_slots(model: nn.Module) -> list[tuple[nn.Module, str, nn.Module]]:
 def _dropout_input_shapes(model: nn.Module, input_shape: tuple[int, ...]) -> dict[nn.Module, tuple[int, ...]]:
     """Each dropout's input shape per case, recorded by one eval pass on two zero cases."""
     shapes: dict[nn.Module, tuple[int, ...]] = {}
-    hooks = [m.register_forward_pre_hook(lambda mod, args: shapes.setdefault(mod, tuple(args[0].shape[1:])))
-             for m in model.modules() if isinstance(m, _DROPOUTS)]
+
+    def record(mod: nn.Module, args: tuple[Any, ...]) -> None:  # a pre-hook's return value would replace args
+        shapes.setdefault(mod, tuple(args[0].shape[1:]))
+
+    hooks = [m.register_forward_pre_hook(record) for m in model.modules() if isinstance(m, _DROPOUTS)]
     try:
         with torch.no_grad():
             model(torch.zeros((2, *input_shape)))
+    except Exception as exc:  # whatever the user's forward raises on the declared shape
+        raise GraphBuildError(f"the model does not accept inputs of shape [B, {', '.join(map(str, input_shape))}] "
+                              f"(inputs.shape): {type(exc).__name__}: {exc}", field="inputs.shape") from exc
     finally:
         for h in hooks:
             h.remove()

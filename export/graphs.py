@@ -111,12 +111,17 @@ def _culprit(net: DrawNetwork, x: torch.Tensor, exc: Exception) -> GraphBuildErr
     message = f"{type(exc).__name__}: {str(exc).strip().splitlines()[0] if str(exc).strip() else ''}"
     seen: list[tuple[str, nn.Module, tuple[Any, ...]]] = []
     hooks = []
+
+    def record(name: str) -> Any:
+        def hook(mod: nn.Module, args: tuple[Any, ...]) -> None:  # returning a value would replace args
+            if all(isinstance(a, torch.Tensor) for a in args):
+                seen.append((name, mod, args))
+        return hook
+
     for member in net.members:
         for mod_name, mod in member.named_modules():
             if not list(mod.children()) and mod_name:
-                hooks.append(mod.register_forward_pre_hook(
-                    lambda m, args, n=mod_name: seen.append((n, m, args)) if all(
-                        isinstance(a, torch.Tensor) for a in args) else None))
+                hooks.append(mod.register_forward_pre_hook(record(mod_name)))
     try:
         with torch.no_grad():
             net(x, *(torch.ones(s.shape) for s in net.noise))
