@@ -66,6 +66,8 @@ __all__ = [
     "DRAW_KINDS",
     "FAMILIES",
     "DrawNetwork",
+    "DropoutDraws",
+    "Feed",
     "NoiseInput",
     "apply_draws",
     "draw_noise",
@@ -126,13 +128,19 @@ def apply_draws(layer: VariationalLayer, x: torch.Tensor, weight: torch.Tensor, 
                      groups=S)
         return y.unflatten(1, (S, layer.out_channels)).transpose(0, 1).flatten(0, 1)
     if isinstance(layer, VariationalLinear):
-        xs = x.unflatten(0, (S, -1))                                         # [S, B, ..., in]
-        ones = [1] * (xs.dim() - 3)
-        wt = weight.transpose(1, 2).reshape(S, *ones, layer.in_features, layer.out_features)
-        y = torch.matmul(xs, wt) + bias.reshape(S, 1, *ones, layer.out_features)
-        return y.flatten(0, 1)
+        return _linear_draws(layer, x, weight.transpose(1, 2), bias, S)
     raise GraphBuildError(f"{type(layer).__name__} is a variational layer demur cannot export (only "
                           "VariationalLinear and VariationalConv2d)", field="model")
+
+
+def _linear_draws(layer: VariationalLinear, x: torch.Tensor, weight_t: torch.Tensor, bias: torch.Tensor,
+                  S: int) -> torch.Tensor:
+    """x [S*B, ..., in]; weight_t [S, in, out] (transposed); bias [S, out] -> [S*B, ..., out]."""
+    xs = x.unflatten(0, (S, -1))                                             # [S, B, ..., in]
+    ones = [1] * (xs.dim() - 3)
+    wt = weight_t.reshape(S, *ones, layer.in_features, layer.out_features)
+    y = torch.matmul(xs, wt) + bias.reshape(S, 1, *ones, layer.out_features)
+    return y.flatten(0, 1)
 
 
 class _Mode:
@@ -156,9 +164,16 @@ class _Fixed(_Mode):
     def __init__(self, weight: torch.Tensor, bias: torch.Tensor) -> None:
         self.w, self.b = weight.detach().float(), bias.detach().float()
         self.S = int(self.w.shape[0])
+        # stored in the layout the matmul reads, so the graph holds no per-call transpose of S weight sets
+        self.w_t = self.w.transpose(1, 2).contiguous() if self.w.dim() == 3 else None
 
     def weights(self, layer: VariationalLayer) -> tuple[torch.Tensor, torch.Tensor]:
         return self.w, self.b
+
+    def run(self, layer: VariationalLayer, x: torch.Tensor) -> torch.Tensor:
+        if isinstance(layer, VariationalLinear) and self.w_t is not None:
+            return _linear_draws(layer, x, self.w_t, self.b, self.S)
+        return apply_draws(layer, x, self.w, self.b, self.S)
 
 
 class _Fresh(_Mode):
