@@ -1,12 +1,19 @@
-"""demur's torch side: variational layers, training, and the bundle exporter.
+"""demur's torch side: variational layers, training, the bundle exporter, calibration and evaluation.
 
 May import ``serve``'s bundle schema; ``serve`` never imports this package.
 
-Public calls:
-    demur.export.calibrate(bundle, X, y, *, target_accuracy=..., confidence=..., max_abstain=...)
-        choose the abstention threshold on your own labelled held-out arrays (export/holdout.py)
+Public calls, for your own model and your own data::
+
+    from demur.export import export_model, input_spec, calibrate, evaluate
+
+    spec = input_spec(X_train)                                  # standardisation, range, drift reference
+    export_model(model, "build/bundle", inputs=spec, labels=labels, reference=X_val)
+    calibrate("build/bundle", X_holdout, y_holdout, target_accuracy=0.98, confidence=0.9)
+    evaluate("build/bundle", X_test, y_test, out="build/evaluation")
 """
 
+from demur.export.appraisal import evaluate
+from demur.export.exporter import Inputs, export_model, input_spec
 from demur.export.holdout import calibrate
 
-__all__ = ["calibrate"]
+__all__ = ["Inputs", "calibrate", "evaluate", "export_model", "input_spec"]

@@ -8,9 +8,9 @@ What one run measures (``--quick`` shrinks repeats and durations and keeps
 only S = 32; the JSON has the same shape):
 
 * engine level, B in {1, 64}, S in {8, 32, 128}, one onnxruntime thread:
-  the means graph (deterministic, S = 1), stacked draws, the in-graph
-  sampler, the flip graph with a fresh base per call (``export/flip.py``) and
-  with a bank of 2 stored bases; against a torch loop of S sampled forward
+  the means graph (deterministic, S = 1), stacked draws, the sampler
+  (fresh normals fed per call), the flip graph with a fresh base per call
+  (``export/flip.py``); against a torch loop of S sampled forward
   passes (the obvious code) and torch with S pre-sampled weight sets batched;
 * the summaries (``demur.serve.core.summary.summarise`` + ``demur.serve.core.decision.decide``) at
   B = 64, S = 32, as a share of the engine time;
@@ -53,27 +53,38 @@ import tempfile
 import time
 import urllib.request
 from collections.abc import Callable, Iterator
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
-import onnx
-
 from demur.serve.core.bundle import Bundle, write_bundle
 from demur.serve.core.decision import DecisionRule, decide
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.summary import summarise
 
 from demur.export.errors import ExportError
-from demur.export.flip import flip_graph
-from demur.export.graphs import NetworkPlan, means_graph, plan_from_model, sampler_graph, stacked_graph
+from demur.export.draws import DrawNetwork
+from demur.export.graphs import export_graph
 
 __all__ = ["BENCH_FORMAT", "TARGETS", "format_table", "register", "run_bench", "torch_app"]
 
 BENCH_FORMAT = "demur-bench/1"
 WRK = "/usr/bin/wrk"
 CLIENTS = 32
-BANK = 2  # stored bases of the bank variant: mu + 2 bases = 3x the parameters (target <= 4x)
+
+
+@dataclass(frozen=True)
+class _Plan:
+    """What the bench reports about the model: its posterior family and variational parameter count."""
+
+    posterior: str
+    parameter_count: int
+
+
+def _plan(model: Any, spec: dict[str, Any]) -> _Plan:
+    net = DrawNetwork(model, "means", 1, seed=0, input_shape=spec["shape"])
+    return _Plan(net.family, net.parameter_count())
 TARGETS = {
     "flip_over_stacked_latency": 2.0,       # flip at S=32, B=1 within 2x of stacked
     "flip_memory_over_params": 4.0,         # flip graph file <= 4x the parameter bytes
@@ -147,13 +158,12 @@ def _load_model(checkpoint: Path | None) -> tuple[Any, dict[str, Any], bool]:
     return build_model("mlp", [64], 10, "radial", hidden=(256, 256), init_sigma=0.05), spec, False
 
 
-def _write(root: Path, plan: NetworkPlan, spec: dict[str, Any], graphs: dict[str, tuple[onnx.ModelProto, int]]
-           ) -> Bundle:
+def _write(root: Path, plan: _Plan, spec: dict[str, Any], nets: dict[str, DrawNetwork]) -> Bundle:
     root.mkdir(parents=True, exist_ok=True)
     entries = {}
-    for kind, (proto, draws) in graphs.items():
-        onnx.save_model(proto, str(root / f"{kind}.onnx"), save_as_external_data=False)
-        entries[kind] = {"file": f"{kind}.onnx", "draws": draws, "seed": 0}
+    for kind, net in nets.items():
+        export_graph(net, root / f"{kind}.onnx", name=kind)
+        entries[kind] = {"file": f"{kind}.onnx", "draws": net.S, "seed": 0}
     return write_bundle(
         root, model_name="bench", model_version="0", task="classification", labels=[str(i) for i in range(10)],
         inputs=spec, posterior={"family": plan.posterior, "params": plan.parameter_count},
@@ -161,26 +171,19 @@ def _write(root: Path, plan: NetworkPlan, spec: dict[str, Any], graphs: dict[str
     )
 
 
-def _bundles(model: Any, plan: NetworkPlan, spec: dict[str, Any], draws: list[int], root: Path
+def _bundles(model: Any, plan: _Plan, spec: dict[str, Any], draws: list[int], root: Path
              ) -> dict[int, dict[str, Bundle]]:
-    """Per S: one bundle with stacked, sampler, flip (fresh base) and means; one with the flip bank."""
-    import torch
-
-    from demur.export.layers import sample_network
-
+    """Per S: one bundle with stacked, sampler, flip and means graphs (export/draws.py, export/graphs.py)."""
     out = {}
     for S in draws:
-        stacked = stacked_graph(plan, sample_network(model, S, torch.Generator().manual_seed(S)))
-        main = _write(root / f"S{S}", plan, spec, {
-            "stacked": (stacked, S), "sampler": (sampler_graph(plan, S, 1), S),
-            "flip": (flip_graph(plan, S, 2), S), "means": (means_graph(plan), 1)})
-        bank = _write(root / f"S{S}-bank", plan, spec, {"flip": (flip_graph(plan, S, 3, bank=BANK), S)})
-        out[S] = {"main": main, "bank": bank}
+        nets = {kind: DrawNetwork(model, kind, S, seed=S, input_shape=spec["shape"])
+                for kind in ("stacked", "sampler", "flip", "means")}
+        out[S] = {"main": _write(root / f"S{S}", plan, spec, nets)}
     return out
 
 
 # -- engine level -------------------------------------------------------------------
-_MODES = ("means", "stacked", "sampler", "flip", f"flip_bank{BANK}", "torch_loop", "torch_batched")
+_MODES = ("means", "stacked", "sampler", "flip", "torch_loop", "torch_batched")
 
 
 def _torch_runners(model: Any, S: int, spec: dict[str, Any]) -> dict[str, Callable[[np.ndarray], Any]]:
@@ -222,7 +225,6 @@ def _engine_section(model: Any, spec: dict[str, Any], bundles: dict[int, dict[st
         runners: dict[str, Callable[[np.ndarray], Any]] = {}
         for kind in ("means", "stacked", "sampler", "flip"):
             runners[kind] = Engine(pair["main"], graph=kind, intra_threads=1, inter_threads=1).load().run
-        runners[f"flip_bank{BANK}"] = Engine(pair["bank"], graph="flip", intra_threads=1).load().run
         runners.update(_torch_runners(model, S, spec))
         for B in cfg["batches"]:
             x = xs[:B]
@@ -324,14 +326,13 @@ def _rss(code: str, *argv: str) -> dict[str, int]:
     return json.loads(out.stdout.strip().splitlines()[-1])
 
 
-def _memory_section(plan: NetworkPlan, bundles: dict[int, dict[str, Bundle]], model_file: Path,
+def _memory_section(plan: _Plan, bundles: dict[int, dict[str, Bundle]], model_file: Path,
                     cfg: dict[str, Any]) -> list[dict[str, Any]]:
     param_bytes = 4 * plan.parameter_count
     rows = []
     for S, pair in bundles.items():
         for mode, bundle, kind in (("means", pair["main"], "means"), ("stacked", pair["main"], "stacked"),
-                                   ("sampler", pair["main"], "sampler"), ("flip", pair["main"], "flip"),
-                                   (f"flip_bank{BANK}", pair["bank"], "flip")):
+                                   ("sampler", pair["main"], "sampler"), ("flip", pair["main"], "flip")):
             size = bundle.graph_path(kind).stat().st_size
             rss = _rss(_RSS_DEMUR, str(bundle.path), kind) if cfg["rss"] and (S == 32 or mode != "means") else None
             rows.append({"mode": mode, "draws": 1 if mode == "means" else S, "file_bytes": size,
@@ -610,7 +611,7 @@ def _ratios_and_targets(result: dict[str, Any]) -> None:
     lat = {(r["mode"], r["draws"], r["batch"]): r["latency_ms"]["median"] for r in eng}
     for (mode, S, B), v in lat.items():
         if mode in ("torch_loop", "torch_batched"):
-            for demur_mode in ("stacked", "flip", f"flip_bank{BANK}"):
+            for demur_mode in ("stacked", "flip"):
                 if (demur_mode, S, B) in lat:
                     ratios[f"{mode}_over_{demur_mode}_S{S}_B{B}"] = v / lat[(demur_mode, S, B)]
         if mode.startswith("flip") and ("stacked", S, B) in lat:
@@ -625,7 +626,7 @@ def _ratios_and_targets(result: dict[str, Any]) -> None:
     def target(name: str, goal: str, value: float | None, reached: bool | None) -> None:
         targets.append({"name": name, "target": goal, "value": value, "reached": reached})
 
-    for mode in ("flip", f"flip_bank{BANK}"):
+    for mode in ("flip",):
         v = ratios.get(f"{mode}_over_stacked_S32_B1")
         target(f"{mode} latency / stacked, S=32 B=1", "<= 2.0", v, None if v is None else v <= 2.0)
         m = _find(mem, mode=mode, draws=32)
@@ -694,7 +695,7 @@ def run_bench(*, quick: bool = False, checkpoint: Path | None = None, http: bool
     root.mkdir(parents=True, exist_ok=True)
     try:
         model, spec, trained = _load_model(checkpoint)
-        plan = plan_from_model(model, spec["shape"])
+        plan = _plan(model, spec)
         xs, _ = _digits()
         from demur.export.layers import VariationalLinear, variational_layers
 
@@ -715,8 +716,7 @@ def run_bench(*, quick: bool = False, checkpoint: Path | None = None, http: bool
                         "python": platform.python_version(), "platform": platform.platform(),
                         "onnxruntime": __import__("onnxruntime").__version__, "torch": torch.__version__},
             "model": {"arch": "-".join(str(d) for d in [64, *[m.out_features for m in layers]]),
-                      "posterior": plan.posterior, "parameters": plan.parameter_count, "trained": trained,
-                      "flip_bank": BANK},
+                      "posterior": plan.posterior, "parameters": plan.parameter_count, "trained": trained},
             "settings": {k: v for k, v in cfg.items() if k != "worker_models"}
                         | {"worker_models": [list(w) for w in cfg["worker_models"]]},
         }

@@ -1,47 +1,55 @@
-"""Checkpoint -> bundle, and ``demur export``.
+"""Any torch module -> bundle (``export_model``), checkpoint -> bundle, and ``demur export``.
 
-``export_bundle`` rebuilds the trained network from its checkpoint, builds
-one sampling graph (``stacked``: S pre-drawn weight sets; ``sampler``:
-fresh noise per call; ``flip``: fresh sign-flipped draws, see export/flip.py)
-plus the ``means`` graph, and writes the manifest
-through ``demur.serve.core.bundle.write_bundle`` (the runtime owns the schema).
+``export_model`` is the public way in (README, "Your own model")::
+
+    from demur.export import export_model, input_spec
+    spec = input_spec(X_train, names=feature_names)          # standardisation, range, drift reference
+    bundle = export_model(model, "build/parcels", inputs=spec, labels=["0", ..., "9"],
+                          kind="sampler", reference=X_held_out)
+
+``model`` is any ``torch.nn.Module`` whose variational layers are demur's
+(``VariationalLinear``/``VariationalConv2d``) and whose other layers torch can
+export to ONNX; or a module with ``nn.Dropout`` and no variational layers (MC
+dropout); or a list of modules (a deep ensemble, one draw per member). How
+the draws run is export/draws.py; how they become ONNX is export/graphs.py.
+
+Never a silent mis-export. Before a bundle is sealed: the model must accept
+``[B, *inputs.shape]``; its output width must equal the number of labels
+(classification) or 2 (regression: mean, log-variance); and every graph,
+run in onnxruntime on the standardised reference inputs, must equal the
+torch module run once per draw with the same draws (same fed noise, same
+stored weights or masks; the means graph against the posterior means) to
+within ``PARITY_TOLERANCE`` relative, else ``GraphBuildError`` names the
+largest difference.
 
 Two manifest sections are computed through the exact serving path
-(``demur.serve.adapters.engine.Engine`` -> ``demur.serve.core.summary.summarise`` ->
-``demur.serve.core.decision.score_values``) on the checkpoint's validation split:
+(``Engine`` -> ``summarise`` -> ``score_values``) on the reference inputs:
 
 * ``decision.threshold``: an UNCALIBRATED default, the 90th percentile of the
-  validation mutual information (so roughly 10% of in-distribution cases
-  would abstain; a rule of thumb, not a guarantee). ``demur calibrate``
-  replaces it with a threshold that carries a guarantee; until then
-  ``decision.calibration`` is ``null`` and ``decision.basis`` says how the
-  default was chosen.
-* ``drift_reference.score``: the same validation scores, the reference the
-  drift monitor compares live scores with (``demur.serve.core.drift.score_reference``).
+  reference mutual information (a rule of thumb, not a guarantee);
+  ``demur calibrate`` replaces it; until then ``decision.calibration`` is
+  ``null`` and ``decision.basis`` says how the default was chosen.
+* ``drift_reference.score``: the same reference scores.
 
 A bundle is never half-written: everything goes into a temporary directory
 next to ``out`` that is renamed into place only once the finished bundle has
 loaded and verified. An existing bundle at ``out`` is replaced; any other
 non-empty directory there is refused.
-
-Example::
-
-    bundle = export_bundle("runs/digits", "build/digits-stacked", kind="stacked", draws=32)
-    bundle.manifest.graphs["stacked"].draws    # 32
 """
 
 from __future__ import annotations
 
 import argparse
+import importlib
 import secrets
 import shutil
 import tempfile
 from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
-import onnx
 
 from demur.serve.core.bundle import MANIFEST, Bundle, load_bundle, write_bundle
 from demur.serve.core.decision import score_values
@@ -49,36 +57,359 @@ from demur.serve.core.drift import feature_reference, score_reference
 from demur.serve.core.fingerprint import training_fingerprint
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.summary import summarise
-from demur.serve.core.support import support_record
+from demur.serve.core.support import standardisation, support_record
 
 from demur.export.errors import ExportError, GraphBuildError
-from demur.export.graphs import SEED_MODULUS, NetworkPlan, means_graph, plan_from_model, sampler_graph, stacked_graph
 
 __all__ = [
     "DEFAULT_DRAWS",
     "DEFAULT_SCORE",
     "EXPORT_KINDS",
     "INTERVAL_LEVEL",
+    "PARITY_TOLERANCE",
+    "SUPPORT_SAMPLE",
+    "TrainingRows",
     "THRESHOLD_QUANTILE",
-    "bundle_from_model",
+    "Inputs",
     "export_bundle",
+    "export_model",
+    "input_spec",
     "register",
 ]
 
 EXPORT_KINDS = ("stacked", "sampler", "flip")
-"""Sampling graphs ``export_bundle`` can write (the means graph always comes along)."""
+"""Sampling graphs ``export_model`` can write (the means graph always comes along)."""
 
 DEFAULT_DRAWS = 32
-"""S, weight draws per request (stacked sets, or fresh draws per sampler call)."""
+"""S, weight draws per request (stacked sets, or fresh draws per sampler/flip call)."""
 
 DEFAULT_SCORE = "mutual_information"
 """The decision score written into new bundles (BALD mutual information, nats)."""
 
 THRESHOLD_QUANTILE = 0.9
-"""Quantile of validation scores used as the uncalibrated default threshold (rule of thumb)."""
+"""Quantile of reference scores used as the uncalibrated default threshold (rule of thumb)."""
 
 INTERVAL_LEVEL = 0.9
 """Central probability of served intervals."""
+
+PARITY_TOLERANCE = 1e-4
+"""Largest allowed |onnx - torch| / max(|torch|, 1) over every draw, case and output."""
+
+SUPPORT_SAMPLE = 20_000
+"""Training rows kept for the support check (it stores its own smaller sample in the manifest)."""
+"""Input features whose training std is below this get scale 1 (constant features)."""
+
+PARITY_ROWS = 256
+"""Reference rows the parity check runs (the first ones)."""
+
+
+@dataclass(frozen=True)
+class TrainingRows:
+    """What the bundle keeps of the training rows: their fingerprint (hashes only, for
+    calibrate's leakage check, serve/core/fingerprint.py) and a sample of at most
+    ``SUPPORT_SAMPLE`` raw rows the support check measures distances to (serve/core/support.py)."""
+
+    fingerprint: dict[str, Any]
+    sample: np.ndarray = field(repr=False)
+
+
+def _training_rows(x_train: Any, seed: int = 0) -> TrainingRows:
+    x = np.asarray(x_train, dtype=np.float64)
+    x = x.reshape(len(x), -1)
+    keep = x if len(x) <= SUPPORT_SAMPLE else x[np.random.default_rng(seed).choice(len(x), SUPPORT_SAMPLE,
+                                                                                   replace=False)]
+    return TrainingRows(fingerprint=training_fingerprint(x), sample=keep)
+
+
+@dataclass(frozen=True)
+class Inputs:
+    """What ``input_spec`` returns: the manifest's ``inputs`` section, the training rows'
+    per-feature drift reference (``demur.serve.core.drift.feature_reference``) and what the
+    bundle keeps of the training rows (``TrainingRows``; None: no support or leakage check)."""
+
+    spec: dict[str, Any]
+    drift_features: dict[str, Any] | None = field(default=None, repr=False)
+    training: TrainingRows | None = field(default=None, repr=False)
+
+    @property
+    def shape(self) -> tuple[int, ...]:
+        return tuple(int(d) for d in self.spec["shape"])
+
+    def standardise(self, x: Any) -> np.ndarray:
+        """Raw rows float[N, F] -> float32[N, *shape], (x - center) / scale: what the graphs see,
+        so train on this."""
+        x = np.asarray(x, dtype=np.float64).reshape(len(x), -1)
+        z = (x - np.asarray(self.spec["center"])) / np.asarray(self.spec["scale"])
+        return z.astype(np.float32).reshape(len(x), *self.shape)
+
+
+def input_spec(x_train: Any, names: Sequence[str] | None = None, shape: Sequence[int] | None = None, *,
+               kind: str | None = None) -> Inputs:
+    """The input spec of a model trained on ``x_train`` float[N, F] (or [N, *shape]).
+
+    Standardisation: center = the training mean, scale = the training std with a floor
+    (``demur.serve.core.support.standardisation``: a near-constant feature cannot turn a
+    small change into a huge z-score); the served graphs see (x - center) / scale, so train
+    on ``Inputs.standardise(x)``. The training rows' fingerprint and a sample of them go
+    with the spec, for the support check and calibrate's leakage check.
+    low/high: the training range of each feature (shown to reviewers); the
+    drift reference: ``feature_reference(x_train)``. ``names`` default
+    ``x0..x{F-1}``; ``shape`` defaults to [F] (give [C, H, W] for a conv net);
+    ``kind`` "image" or "tabular" (default: image when ``shape`` has > 1 axis).
+    """
+    x = np.asarray(x_train, dtype=np.float64)
+    if x.ndim < 2 or x.shape[0] < 2:
+        raise ExportError(f"x_train must be [N, F] with N >= 2 rows; got shape {list(x.shape)}", field="x_train")
+    x = x.reshape(len(x), -1)
+    if not np.isfinite(x).all():
+        raise ExportError("x_train has NaN or infinite values; clean the training rows first", field="x_train")
+    n_features = x.shape[1]
+    dims = [n_features] if shape is None else [int(d) for d in shape]
+    if int(np.prod(dims)) != n_features or min(dims) < 1:
+        raise ExportError(f"shape {dims} must hold {n_features} features (the columns of x_train)", field="shape")
+    labels = [f"x{i}" for i in range(n_features)] if names is None else [str(v) for v in names]
+    if len(labels) != n_features:
+        raise ExportError(f"names must have {n_features} entries (the columns of x_train); got {len(labels)}",
+                          field="names")
+    kind = kind or ("image" if len(dims) > 1 else "tabular")
+    center, scale = standardisation(x, shared_units=kind == "image")
+    spec = {
+        "names": labels,
+        "shape": dims,
+        "dtype": "float32",
+        "center": [float(v) for v in center],
+        "scale": [float(v) for v in scale],
+        "low": [float(v) for v in x.min(axis=0)],
+        "high": [float(v) for v in x.max(axis=0)],
+        "kind": kind,
+    }
+    return Inputs(spec=spec, drift_features=feature_reference(x), training=_training_rows(x))
+
+
+def export_model(
+    model: Any,
+    out: str | Path,
+    *,
+    inputs: Inputs | Mapping[str, Any],
+    labels: Sequence[str] | None = None,
+    task: str = "classification",
+    kind: str = "stacked",
+    draws: int = DEFAULT_DRAWS,
+    reference: Any = None,
+    name: str | None = None,
+    version: str = "1",
+    seed: int | None = None,
+    target: Mapping[str, float] | None = None,
+    extensions: Mapping[str, Any] | None = None,
+) -> Bundle:
+    """Write a verified bundle for ``model`` at ``out``; see the module docstring for what is checked.
+
+    ``inputs``: ``input_spec(...)`` (or a manifest ``inputs`` dict). ``labels``:
+    class names, default "0".."K-1" (classification); the target's name
+    (regression, default "y"). ``task``: "classification" (logits [B, K]) or
+    "regression" (mean and log-variance [B, 2] in standardised target units,
+    ``target`` = {"center", "scale"} of the target). ``kind``: the sampling
+    graph, one of ``EXPORT_KINDS`` (a deep ensemble is always "stacked").
+    ``draws``: S (an ensemble: one per member). ``reference``: held-out raw
+    inputs float[N, F] for the parity check, the default threshold and the
+    score reference (None: 64 cases uniform over the training range, a
+    placeholder until ``demur calibrate``). ``seed``: the stacked draws and
+    the recorded seed of fresh-draw graphs (None: a random one, recorded).
+    ``extensions``: extra manifest sections kept verbatim.
+    """
+    from demur.export.graphs import SEED_MODULUS
+
+    if kind not in EXPORT_KINDS:
+        raise ExportError(f"kind must be one of {', '.join(EXPORT_KINDS)}; got '{kind}'", field="kind")
+    if not isinstance(draws, int) or isinstance(draws, bool) or draws < 1:
+        raise ExportError(f"draws must be a positive integer; got {draws!r}", field="draws")
+    if task not in ("classification", "regression"):
+        raise ExportError(f"task must be 'classification' or 'regression'; got '{task}'", field="task")
+    if isinstance(model, (list, tuple)) and kind != "stacked":
+        raise ExportError(f"a deep ensemble (a list of modules) has one fixed draw per member: export it with "
+                          f"kind='stacked'; got '{kind}'", field="kind")
+    seed = secrets.randbelow(SEED_MODULUS) if seed is None else int(seed) % SEED_MODULUS
+    spec_in = inputs if isinstance(inputs, Inputs) else Inputs(spec=dict(inputs))
+    spec = dict(spec_in.spec)
+    size = int(np.prod(spec["shape"]))
+    ref, placeholder = _reference_rows(reference, spec, size)
+    out = Path(out)
+    _check_target(out)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(dir=out.parent, prefix=f".{out.name}.partial-"))
+    try:
+        graphs, net = _write_checked_graphs(model, tmp, kind, draws, seed, spec, task, ref)
+        k_out = _output_width(net)
+        labels = _labels(labels, task, k_out)
+        fields: dict[str, Any] = {
+            "model_name": name or "model",
+            "model_version": str(version),
+            "task": task,
+            "labels": labels,
+            "inputs": spec,
+            "graphs": graphs,
+            "interval_level": INTERVAL_LEVEL,
+            "target": dict(target) if target else {"center": 0.0, "scale": 1.0},
+            **_manifest_extras(net, model, extensions, spec_in.training),
+        }
+        # First pass with a placeholder rule, so the serving engine can run the graphs.
+        draft = write_bundle(tmp, decision={"score": DEFAULT_SCORE, "threshold": 0.0}, **fields)
+        scores = _reference_scores(draft, ref)
+        threshold = float(np.quantile(scores, THRESHOLD_QUANTILE))
+        where = ("placeholder cases drawn uniformly over the training range (no reference given)" if placeholder
+                 else "reference")
+        decision = {
+            "score": DEFAULT_SCORE,
+            "threshold": threshold,
+            "calibration": None,
+            "basis": f"uncalibrated default: {THRESHOLD_QUANTILE:.0%} quantile of {len(scores)} {where} "
+                     f"{DEFAULT_SCORE} values; run 'demur calibrate' for a threshold with a guarantee",
+        }
+        drift = {
+            "features": spec_in.drift_features or feature_reference(ref),
+            "score": score_reference(DEFAULT_SCORE, scores),
+        }
+        # The support check's threshold needs held-out in-distribution rows: without a
+        # reference there is none to set it on, and the bundle says it carries no check.
+        support = (support_record(spec_in.training.sample, ref, spec)
+                   if spec_in.training is not None and not placeholder else None)
+        write_bundle(tmp, decision=decision, drift_reference=drift, support=support, **fields)
+        load_bundle(tmp)  # verify the finished directory before it becomes visible
+        _swap_into_place(tmp, out)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return load_bundle(out)
+
+
+def _manifest_extras(net: Any, model: Any, extensions: Mapping[str, Any] | None,
+                     training: TrainingRows | None) -> dict[str, Any]:
+    """The manifest sections that describe the model rather than the export: ``posterior`` and
+    ``extensions`` (with the training rows' fingerprint when known). The one place to add a
+    field computed at export."""
+    from demur.export.layers import variational_layers
+
+    posterior: dict[str, Any] = {"family": net.family, "params": net.parameter_count()}
+    members = list(model) if isinstance(model, (list, tuple)) else [model]
+    posterior["arch"] = type(members[0]).__name__
+    layers = [lay for m in members for lay in variational_layers(m)] if net.family != "ensemble" else []
+    if layers:
+        scales = sorted({float(lay.prior_scale) for lay in layers})
+        posterior["prior_scale"] = scales[0] if len(scales) == 1 else scales
+    if net.family == "ensemble":
+        posterior["members"] = len(members)
+    if net.family == "mc_dropout":
+        posterior["dropout"] = [float(d.p) for d in net.dropouts] or None
+    ext = dict(extensions or {})
+    if training is not None:
+        ext["training_rows"] = training.fingerprint  # calibrate's leakage check
+    return {"posterior": posterior, "extensions": ext}
+
+
+def _reference_rows(reference: Any, spec: Mapping[str, Any], size: int) -> tuple[np.ndarray, bool]:
+    """Raw reference rows float64[N, F]; a uniform placeholder over the training range if None."""
+    if reference is None:
+        rng = np.random.default_rng(0)
+        return rng.uniform(spec["low"], spec["high"], size=(64, size)), True
+    ref = np.asarray(reference, dtype=np.float64)
+    if ref.ndim < 2 or len(ref) < 1:
+        raise ExportError(f"reference must be [N, {size}] raw inputs; got shape {list(ref.shape)}",
+                          field="reference")
+    ref = ref.reshape(len(ref), -1)
+    if ref.shape[1] != size:
+        raise ExportError(f"reference must have {size} columns (prod of inputs.shape {list(spec['shape'])}); "
+                          f"got {ref.shape[1]}", field="reference")
+    if not np.isfinite(ref).all():
+        raise ExportError("reference has NaN or infinite values", field="reference")
+    return ref, False
+
+
+def _labels(labels: Sequence[str] | None, task: str, k_out: int) -> list[str]:
+    if task == "regression":
+        if k_out != 2:
+            raise GraphBuildError(f"a regression model must output 2 values per case (mean, log-variance); "
+                                  f"this one outputs {k_out}", field="model")
+        names = ["y"] if labels is None else [str(v) for v in labels]
+        if len(names) != 1:
+            raise ExportError(f"a regression model takes one label (the target's name); got {len(names)}",
+                              field="labels")
+        return names
+    names = [str(i) for i in range(k_out)] if labels is None else [str(v) for v in labels]
+    if len(names) != k_out:
+        raise ExportError(f"the model outputs {k_out} logits per case but {len(names)} labels were given; "
+                          "the output width must equal the number of labels", field="labels")
+    if len(set(names)) != len(names) or k_out < 2:
+        raise ExportError(f"labels must be at least 2 distinct names; got {names}", field="labels")
+    return names
+
+
+def _output_width(net: Any) -> int:
+    import torch
+
+    with torch.no_grad():
+        return int(net(torch.zeros((1, *net.input_shape)), *(torch.ones(s.shape) for s in net.noise)).shape[-1])
+
+
+def _write_checked_graphs(model: Any, root: Path, kind: str, draws: int, seed: int, spec: Mapping[str, Any],
+                          task: str, ref: np.ndarray) -> tuple[dict[str, Any], Any]:
+    """Export the sampling graph and the means graph, each checked against torch; return the
+    manifest's ``graphs`` section and the sampling ``DrawNetwork``."""
+    from demur.export.draws import DrawNetwork
+    from demur.export.graphs import export_graph
+
+    shape = tuple(int(d) for d in spec["shape"])
+    x_std = ((ref[:PARITY_ROWS] - np.asarray(spec["center"])) / np.asarray(spec["scale"]))
+    x_std = x_std.astype(np.float32).reshape(-1, *shape)
+    section: dict[str, Any] = {}
+    main_net = None
+    for graph in (kind, "means"):
+        net = DrawNetwork(model, graph, draws, seed=seed, input_shape=shape, task=task)
+        _check_accepts(net, shape)
+        path = root / f"{graph}.onnx"
+        export_graph(net, path, name=graph)
+        _check_parity(net, path, x_std, seed, graph)
+        section[graph] = {"file": path.name, "draws": net.S, **({"seed": seed} if graph != "means" else {})}
+        main_net = main_net or net
+    return section, main_net
+
+
+def _check_accepts(net: Any, shape: tuple[int, ...]) -> None:
+    import torch
+
+    try:
+        with torch.no_grad():
+            net(torch.zeros((2, *shape)), *(torch.ones(s.shape) for s in net.noise))
+    except GraphBuildError:
+        raise
+    except Exception as exc:  # whatever the user's forward raises on the declared shape
+        raise GraphBuildError(f"the model does not accept inputs of shape [B, {', '.join(map(str, shape))}] "
+                              f"(inputs.shape): {type(exc).__name__}: {exc}", field="inputs.shape") from exc
+
+
+def _check_parity(net: Any, path: Path, x_std: np.ndarray, seed: int, graph: str) -> None:
+    """onnxruntime on ``path`` vs ``reference_draws`` (torch, once per draw) with the same draws."""
+    import onnxruntime as ort
+    import torch
+
+    from demur.export.draws import draw_noise, reference_draws
+
+    noise = draw_noise(net.noise, np.random.default_rng(seed))
+    session = ort.InferenceSession(str(path), providers=["CPUExecutionProvider"])
+    got = session.run(["draws"], {"x": x_std, **noise})[0]
+    want = reference_draws(net, torch.from_numpy(x_std), noise).numpy()
+    if got.shape != want.shape:
+        raise GraphBuildError(f"the {graph} graph returns {list(got.shape)}; torch gives {list(want.shape)}",
+                              field="model")
+    rel = np.abs(got.astype(np.float64) - want) / np.maximum(np.abs(want), 1.0)
+    worst = np.unravel_index(int(np.argmax(rel)), rel.shape) if rel.size else (0, 0, 0)
+    if not np.isfinite(got).all() or (rel.size and rel[worst] > PARITY_TOLERANCE):
+        s, b, k = (int(i) for i in worst)
+        raise GraphBuildError(
+            f"the exported {graph} graph does not compute what the torch module computes: largest relative "
+            f"difference {rel[worst]:.3g} (> {PARITY_TOLERANCE:g}) at draw {s}, reference case {b}, output {k} "
+            f"(torch {want[s, b, k]:.6g}, ONNX {got[s, b, k]:.6g}); typical causes: a forward that branches on "
+            "values, layers that mix the cases of a batch (batch norm in training mode), or state changed "
+            "during forward", field="model")
 
 
 def export_bundle(
@@ -91,11 +422,9 @@ def export_bundle(
     name: str | None = None,
     version: str | None = None,
 ) -> Bundle:
-    """Turn the checkpoint in ``checkpoint_dir`` into a verified bundle at ``out``.
+    """Turn the ``demur train`` checkpoint in ``checkpoint_dir`` into a bundle (through ``export_model``).
 
-    ``kind``: "stacked" or "sampler"; ``draws``: S; ``seed``: the stacked
-    draws / the sampler's recorded seed (``None``: a random one, recorded in
-    the manifest). ``name``/``version`` default to the checkpoint's name and "1".
+    The validation split is the reference; ``name``/``version`` default to the checkpoint's name and "1".
     """
     from demur.export.datasets import load_dataset
     from demur.export.training import load_checkpoint
@@ -104,140 +433,19 @@ def export_bundle(
     data = meta.get("data", {})
     dataset = load_dataset(data.get("source", "digits"), data.get("target"), seed=int(data.get("seed", 0)),
                            task=meta["task"])
-    arch = meta.get("arch", {})
-    return bundle_from_model(
-        model,
-        out,
-        task=meta["task"],
-        labels=list(meta["labels"]),
-        inputs=meta["inputs"],
-        target=meta.get("target"),
-        kind=kind,
-        draws=draws,
-        seed=seed,
-        name=name or str(meta.get("name", Path(checkpoint_dir).name)),
-        version=version or "1",
-        prior_scale=float(arch.get("prior_scale", 1.0)),
-        arch=str(arch.get("kind", "")),
-        drift_features=meta.get("drift_features"),
-        reference_x=dataset.x_val,
-        training_x=dataset.x_train,
-        extensions={"training": {"metrics": meta.get("metrics", {}), "data": data},
-                    "training_rows": training_fingerprint(dataset.x_train)},  # leakage check in calibrate
+    return export_model(
+        model, out, inputs=Inputs(spec=meta["inputs"], drift_features=meta.get("drift_features"),
+                                  training=_training_rows(dataset.x_train)),
+        labels=list(meta["labels"]), task=meta["task"], target=meta.get("target"), kind=kind, draws=draws,
+        seed=seed, reference=dataset.x_val, name=name or str(meta.get("name", Path(checkpoint_dir).name)),
+        version=version or "1", extensions={"training": {"metrics": meta.get("metrics", {}), "data": data}},
     )
-
-
-def bundle_from_model(
-    model: Any,
-    out: str | Path,
-    *,
-    task: str,
-    labels: Sequence[str],
-    inputs: Mapping[str, Any],
-    reference_x: np.ndarray,
-    target: Mapping[str, float] | None = None,
-    kind: str = "stacked",
-    draws: int = DEFAULT_DRAWS,
-    seed: int | None = None,
-    name: str = "model",
-    version: str = "1",
-    prior_scale: float = 1.0,
-    arch: str = "",
-    drift_features: Mapping[str, Any] | None = None,
-    extensions: Mapping[str, Any] | None = None,
-    training_x: np.ndarray | None = None,
-) -> Bundle:
-    """Write a bundle for an in-memory variational ``nn.Sequential`` (``export_bundle`` and test fixtures).
-
-    ``inputs`` is the bundle's input spec (names, shape, center, scale, low,
-    high); ``reference_x``: raw held-out inputs float[N, F] for the default
-    threshold and the score reference; ``drift_features`` defaults to the
-    feature reference of ``reference_x``; ``training_x``: the raw training inputs, for the
-    support check (``demur.serve.core.support``; its threshold is set on ``reference_x``).
-    Without them the bundle carries no support check.
-    """
-    if kind not in EXPORT_KINDS:
-        raise ExportError(f"kind must be one of {', '.join(EXPORT_KINDS)}; got '{kind}'", field="kind")
-    if not isinstance(draws, int) or isinstance(draws, bool) or draws < 1:
-        raise ExportError(f"draws must be a positive integer; got {draws!r}", field="draws")
-    seed = secrets.randbelow(SEED_MODULUS) if seed is None else int(seed) % SEED_MODULUS
-    out = Path(out)
-    _check_target(out)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    plan = plan_from_model(model, inputs["shape"])
-    reference_x = np.asarray(reference_x, dtype=np.float64).reshape(len(reference_x), -1)
-    tmp = Path(tempfile.mkdtemp(dir=out.parent, prefix=f".{out.name}.partial-"))
-    try:
-        graphs = _write_graphs(model, plan, tmp, kind, draws, seed)
-        fields: dict[str, Any] = {
-            "model_name": name,
-            "model_version": str(version),
-            "task": task,
-            "labels": [str(v) for v in labels],
-            "inputs": dict(inputs),
-            "posterior": {"family": plan.posterior, "prior_scale": float(prior_scale),
-                          "params": plan.parameter_count, "arch": arch},
-            "graphs": graphs,
-            "interval_level": INTERVAL_LEVEL,
-            "target": dict(target) if target else {"center": 0.0, "scale": 1.0},
-            "extensions": dict(extensions or {}),
-        }
-        # First pass with a placeholder rule, so the serving engine can run the graphs.
-        draft = write_bundle(tmp, decision={"score": DEFAULT_SCORE, "threshold": 0.0}, **fields)
-        scores = _reference_scores(draft, reference_x)
-        threshold = float(np.quantile(scores, THRESHOLD_QUANTILE))
-        decision = {
-            "score": DEFAULT_SCORE,
-            "threshold": threshold,
-            "calibration": None,
-            "basis": f"uncalibrated default: {THRESHOLD_QUANTILE:.0%} quantile of {len(scores)} validation "
-                     f"{DEFAULT_SCORE} values; run 'demur calibrate' for a threshold with a guarantee",
-        }
-        drift = {
-            "features": dict(drift_features) if drift_features else feature_reference(reference_x),
-            "score": score_reference(DEFAULT_SCORE, scores),
-        }
-        support = None if training_x is None else support_record(training_x, reference_x, dict(inputs))
-        write_bundle(tmp, decision=decision, drift_reference=drift, support=support, **fields)
-        load_bundle(tmp)  # verify the finished directory before it becomes visible
-        _swap_into_place(tmp, out)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    return load_bundle(out)
 
 
 def _check_target(out: Path) -> None:
     if out.exists() and (not out.is_dir() or (any(out.iterdir()) and not (out / MANIFEST).is_file())):
         raise ExportError(f"{out} exists and is not a demur bundle; choose another --out or remove it",
                           field="out")
-
-
-def _write_graphs(model: Any, plan: NetworkPlan, root: Path, kind: str, draws: int, seed: int) -> dict[str, Any]:
-    """Write the sampling graph and the means graph; return the manifest's ``graphs`` section."""
-    if kind == "stacked":
-        import torch
-
-        from demur.export.layers import sample_network
-
-        sets = sample_network(model, draws, torch.Generator().manual_seed(seed))
-        graph = stacked_graph(plan, sets)
-    elif kind == "flip":
-        from demur.export.flip import flip_graph  # fresh sign-flipped draws per call (export/flip.py)
-
-        graph = flip_graph(plan, draws, seed)
-    else:
-        graph = sampler_graph(plan, draws, seed)
-    files = {kind: (graph, draws, seed), "means": (means_graph(plan), 1, None)}
-    section: dict[str, Any] = {}
-    for k, (proto, s, sd) in files.items():
-        path = root / f"{k}.onnx"
-        try:
-            onnx.save_model(proto, str(path), save_as_external_data=False)
-        except ValueError as exc:  # protobuf refuses models over 2 GB
-            raise GraphBuildError(f"could not write the {k} graph: {exc}", field="graph") from exc
-        section[k] = {"file": path.name, "draws": s, **({"seed": sd} if sd is not None else {})}
-    return section
 
 
 def _reference_scores(bundle: Bundle, x_raw: np.ndarray) -> np.ndarray:
@@ -274,32 +482,110 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     """Add ``demur export`` to the ``demur`` command."""
     p = subparsers.add_parser(
         "export",
-        help="turn a training checkpoint into a bundle (ONNX graphs + manifest)",
-        description="Export DIR/checkpoint.pt as a bundle: stacked weight draws (default) or an "
-                    "in-graph sampler, plus the deterministic means graph.",
+        help="turn a training checkpoint, or your own torch module, into a bundle (ONNX graphs + manifest)",
+        description="Export DIR/checkpoint.pt (from 'demur train'), or your own module: --factory "
+                    "pkg.module:function builds it, --weights loads its state_dict (torch.load with "
+                    "weights_only=True), --data gives the training rows (CSV, --target names the label column).",
     )
-    p.add_argument("checkpoint", type=Path, metavar="DIR", help="output directory of 'demur train'")
+    p.add_argument("checkpoint", type=Path, metavar="DIR", nargs="?", help="output directory of 'demur train'")
     p.add_argument("--out", required=True, type=Path, help="bundle directory to write")
     p.add_argument("--draws", type=int, default=DEFAULT_DRAWS, help=f"weight draws S (default {DEFAULT_DRAWS})")
     graph = p.add_mutually_exclusive_group()
     graph.add_argument("--sampler", action="store_true",
                        help="write the sampler graph (fresh draws per request) instead of stacked draws")
     graph.add_argument("--flip", action="store_true",
-                       help="write the flip graph (fresh sign-flipped draws per request at close to stacked "
-                            "cost; linear layers only)")
+                       help="write the flip graph (fresh sign-flipped draws per request at close to stacked cost)")
     p.add_argument("--seed", type=int, default=None, help="seed of the stacked draws / recorded sampler seed")
-    p.add_argument("--name", default=None, help="model name (default: the checkpoint's)")
+    p.add_argument("--name", default=None, help="model name (default: the checkpoint's, or the factory's)")
     p.add_argument("--version", default=None, help="model version (default: 1)")
+    own = p.add_argument_group("your own module")
+    own.add_argument("--factory", metavar="MODULE:FUNCTION",
+                     help="importable function returning the untrained torch module (a list: a deep ensemble)")
+    own.add_argument("--weights", type=Path, help="state_dict saved with torch.save (a list of them for an ensemble)")
+    own.add_argument("--data", type=Path, help="training rows (CSV with a header) for the input spec")
+    own.add_argument("--target", help="label column of --data / --reference (excluded from the inputs)")
+    own.add_argument("--reference", type=Path, help="held-out rows (CSV, same columns) for the parity check "
+                                                    "and the default threshold (default: --data)")
+    own.add_argument("--labels", help="comma-separated class names in output order (default: 0..K-1)")
+    own.add_argument("--shape", help="comma-separated input shape per case, e.g. 1,8,8 (default: [F])")
+    own.add_argument("--task", choices=("classification", "regression"), default="classification")
     p.set_defaults(func=_run)
 
 
 def _run(args: argparse.Namespace) -> int:
     kind = "flip" if args.flip else "sampler" if args.sampler else "stacked"
-    bundle = export_bundle(args.checkpoint, args.out, kind=kind, draws=args.draws, seed=args.seed,
-                           name=args.name, version=args.version)
+    if args.factory:
+        bundle = _export_factory(args, kind)
+    elif args.checkpoint is not None:
+        bundle = export_bundle(args.checkpoint, args.out, kind=kind, draws=args.draws, seed=args.seed,
+                               name=args.name, version=args.version)
+    else:
+        raise ExportError("give a checkpoint DIR from 'demur train', or --factory MODULE:FUNCTION with --weights "
+                          "and --data for your own module", field="checkpoint")
     m = bundle.manifest
     sizes = ", ".join(f"{k}.onnx {bundle.graph_path(k).stat().st_size / 1e6:.2f} MB" for k in m.graphs)
-    print(f"wrote {bundle.path}: {m.model_name} v{m.model_version}, {kind} graph with "
+    print(f"wrote {bundle.path}: {m.model_name} v{m.model_version} ({m.posterior['family']}), {kind} graph with "
           f"{m.graphs[kind].draws} draws ({sizes}); default threshold {m.decision.score} > "
           f"{m.decision.threshold:.4f} (uncalibrated); checksum {bundle.checksum[:12]}")
     return 0
+
+
+def _export_factory(args: argparse.Namespace, kind: str) -> Bundle:
+    """``demur export --factory pkg.mod:fn --weights W --data train.csv``: build, load, export."""
+    import torch
+
+    if args.weights is None or args.data is None:
+        raise ExportError("--factory needs --weights (the trained state_dict) and --data (the training rows)",
+                          field="weights" if args.weights is None else "data")
+    module_name, _, func_name = args.factory.partition(":")
+    try:
+        factory = getattr(importlib.import_module(module_name), func_name)
+    except (ImportError, AttributeError, ValueError) as exc:
+        raise ExportError(f"--factory must name an importable MODULE:FUNCTION; got {args.factory!r} ({exc})",
+                          field="factory") from exc
+    model = factory()
+    try:
+        state = torch.load(args.weights, map_location="cpu", weights_only=True)
+    except Exception as exc:  # torch raises UnpicklingError, RuntimeError, EOFError...
+        raise ExportError(f"{args.weights} is not a state_dict torch.load(weights_only=True) can read: {exc}",
+                          field="weights") from exc
+    members = model if isinstance(model, (list, tuple)) else [model]
+    states = state if isinstance(state, (list, tuple)) else [state]
+    if len(states) != len(members):
+        raise ExportError(f"the factory built {len(members)} module(s) but --weights holds {len(states)} "
+                          "state_dict(s)", field="weights")
+    for member, sd in zip(members, states):
+        try:
+            member.load_state_dict(sd)
+        except (RuntimeError, KeyError, TypeError) as exc:
+            raise ExportError(f"--weights do not fit the module the factory built: {exc}", field="weights") from exc
+        member.eval()
+    x_train, names = _csv_rows(args.data, args.target)
+    x_ref = _csv_rows(args.reference, args.target)[0] if args.reference else x_train
+    shape = [int(v) for v in args.shape.split(",")] if args.shape else None
+    labels = [v.strip() for v in args.labels.split(",")] if args.labels else None
+    return export_model(model, args.out, inputs=input_spec(x_train, names, shape), labels=labels, task=args.task,
+                        kind=kind, draws=args.draws, reference=x_ref, seed=args.seed,
+                        name=args.name or func_name, version=args.version or "1")
+
+
+def _csv_rows(path: Path, target: str | None) -> tuple[np.ndarray, list[str]]:
+    """Numeric feature columns of a CSV with a header (``target`` dropped): float64[N, F], names."""
+    import csv
+
+    try:
+        with open(path, newline="", encoding="utf-8") as fh:
+            rows = list(csv.reader(fh))
+    except OSError as exc:
+        raise ExportError(f"cannot read {path}: {exc}", field="data") from exc
+    if len(rows) < 2:
+        raise ExportError(f"{path} needs a header and at least one row; got {len(rows)} line(s)", field="data")
+    header = rows[0]
+    keep = [i for i, h in enumerate(header) if h != target]
+    if target is not None and len(keep) == len(header):
+        raise ExportError(f"--target {target!r} is not a column of {path}", field="target")
+    try:
+        x = np.array([[float(row[i]) for i in keep] for row in rows[1:]], dtype=np.float64)
+    except (ValueError, IndexError) as exc:
+        raise ExportError(f"{path}: every feature cell must be a number ({exc})", field="data") from exc
+    return x, [header[i] for i in keep]

@@ -40,17 +40,16 @@ Drop them into any torch model::
     loss = nll(logits, y) + layer.kl() / n_train
     draws = layer.draw(32)               # {"weight": [32, 10, 64], "bias": [32, 10]}
 
-``build_model`` assembles the two demo architectures from only the modules
-the ONNX graph builder understands (``VariationalLinear``,
-``VariationalConv2d``, ``nn.ReLU``, ``nn.Flatten``); ``sample_network`` and
-``forward_draws`` are the torch reference for the exported graphs.
+``build_model`` assembles the two demo architectures; any module built with
+these layers exports (export/draws.py). ``sample_network`` gives the stacked
+draws; ``forward_draws`` runs an ``nn.Sequential`` on them (tests).
 """
 
 from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from typing import Literal
+from typing import Any, Literal
 
 import torch
 import torch.nn.functional as F
@@ -175,8 +174,14 @@ class VariationalLayer(nn.Module):
         b = self.bias_mu + self.bias_sigma * self._noise(S, self.bias_mu.shape, generator)
         return {"weight": w, "bias": b}
 
+    _draw_mode: Any = None
+    """Set by ``demur.export.draws.DrawNetwork`` on its private copy: how S draws run at once."""
+
     def forward(self, x: torch.Tensor) -> torch.Tensor:
-        """One fresh draw shared by the batch (training, reparameterised)."""
+        """One fresh draw shared by the batch (training, reparameterised); in a
+        ``DrawNetwork``, S draws over a draw-carrying batch [S*B, ...]."""
+        if self._draw_mode is not None:
+            return self._draw_mode.run(self, x)
         d = self.draw(1)
         return self.forward_with(x, d["weight"][0], d["bias"][0])
 
@@ -310,7 +315,7 @@ def build_model(
     init_sigma: float = 1e-3,
     init_spread: float | None = None,
 ) -> nn.Sequential:
-    """The demo architectures, built only from modules the graph builder knows.
+    """The demo architectures of ``demur train``.
 
     ``"mlp"``: Flatten, then VariationalLinear + ReLU per ``hidden`` width, then
     a VariationalLinear to ``outputs``. Works for any ``input_shape``.
@@ -381,7 +386,7 @@ def forward_draws(model: nn.Sequential, x: torch.Tensor, draws: Sequence[Draw]) 
     ``x``: [B, *input_shape] already standardised; ``draws`` from
     ``sample_network`` (one dict per variational layer, each with S sets).
     Only ``nn.Sequential`` chains of variational layers and parameter-free
-    modules are supported, like the graph builder.
+    modules; ``demur.export.draws.reference_draws`` is the reference for any module.
     """
     layers = variational_layers(model)
     if len(draws) != len(layers):

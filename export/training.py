@@ -111,13 +111,16 @@ __all__ = [
     "KL_WEIGHT",
     "SCALE_FLOOR",
     "TrainResult",
+    "elbo_optimiser",
     "evaluate",
     "expected_calibration_error",
+    "kl_weight",
     "load_checkpoint",
     "predict_draws",
     "register",
     "standardise_inputs",
     "summary_line",
+    "total_kl",
     "train",
 ]
 
@@ -348,7 +351,6 @@ def _fit(
     bs = int(h["batch_size"])
     steps_per_epoch = math.ceil(n / bs)
     total_steps = h["epochs"] * steps_per_epoch
-    warm = max(1, int(round(float(h["kl_warmup"]) * total_steps)))
     shuffle = torch.Generator().manual_seed(seed)
     history: list[dict[str, float]] = []
     show = sys.stderr.isatty() if progress is None else progress
@@ -360,7 +362,7 @@ def _fit(
         model.train()
         sums = {"nll": 0.0, "kl": 0.0}
         for idx in torch.randperm(n, generator=shuffle).split(bs):
-            beta = min(1.0, (step + 1) / warm) * float(h["kl_weight"])
+            beta = kl_weight(step, total_steps, warmup=float(h["kl_warmup"]), weight=float(h["kl_weight"]))
             nll = _nll(model(x_tr[idx]), y_tr[idx], task)
             kl = total_kl(model)
             loss = nll + beta * kl / n
@@ -428,6 +430,20 @@ def _fit(
         record = {k: meta[k] for k in ("name", "arch", "task", "labels", "data", "training", "metrics")}
         (out_dir / "training.json").write_text(json.dumps({**record, "history": history}, indent=2) + "\n")
     return TrainResult(model=model, meta=meta, metrics=metrics, out=out_dir, dataset=dataset)
+
+
+def kl_weight(step: int, total_steps: int, *, warmup: float = KL_WARMUP, weight: float = KL_WEIGHT) -> float:
+    """The KL term's weight at 0-based ``step``: ramps linearly from 0 to ``weight`` over the first
+    ``warmup`` fraction of ``total_steps`` (KL annealing), then stays. Loss per mini-batch:
+    ``nll + kl_weight(step, total) * total_kl(model) / n_train`` (module docstring)."""
+    warm = max(1, int(round(float(warmup) * int(total_steps))))
+    return min(1.0, (int(step) + 1) / warm) * float(weight)
+
+
+def elbo_optimiser(model: nn.Module, lr: float = 3e-3, rho_lr: float | None = 1e-3) -> torch.optim.Optimizer:
+    """Adam with demur's separate step size for the ``*_rho`` (sigma) parameters; see the module
+    docstring for why sigma moves more gently than the means (``rho_lr`` None: one step size)."""
+    return _optimiser(model, lr, rho_lr)
 
 
 def _optimiser(model: nn.Module, lr: float, rho_lr: float | None) -> torch.optim.Optimizer:

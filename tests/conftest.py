@@ -102,7 +102,7 @@ def tiny_bundle_factory(tmp_path_factory: pytest.TempPathFactory) -> Callable[..
     """Build (once per argument set) a bundle of an untrained small network; see the module docstring."""
     import torch
 
-    from demur.export.exporter import bundle_from_model
+    from demur.export import export_model
     from demur.export.layers import build_model
 
     cache: dict[tuple[Any, ...], Any] = {}
@@ -120,10 +120,10 @@ def tiny_bundle_factory(tmp_path_factory: pytest.TempPathFactory) -> Callable[..
         torch.manual_seed(1234)
         model = build_model(arch, spec["shape"], len(labels) if task == "classification" else 2, posterior,
                             hidden=(16,), channels=(4, 8), init_sigma=0.05)
-        bundle = bundle_from_model(
+        bundle = export_model(
             model, root / "-".join(map(str, key)), task=task, labels=labels, inputs=spec, target=target,
-            reference_x=_tiny_reference_x(spec), kind=kind, draws=draws, seed=0,
-            name=f"tiny-{task}-{arch}-{posterior}", version="0", arch=arch,
+            reference=_tiny_reference_x(spec), kind=kind, draws=draws, seed=0,
+            name=f"tiny-{task}-{arch}-{posterior}", version="0",
         )
         cache[key] = bundle
         models[bundle.path] = model

@@ -38,10 +38,9 @@ def tiny_result(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
 def test_tiny_run_has_every_section(tiny_result: dict[str, Any]) -> None:
     r = tiny_result
     assert r["format"] == BENCH_FORMAT and r["quick"] is True
-    assert r["model"] == {"arch": "64-256-256-10", "posterior": "radial", "parameters": 85002, "trained": False,
-                          "flip_bank": bench.BANK}
+    assert r["model"] == {"arch": "64-256-256-10", "posterior": "radial", "parameters": 85002, "trained": False}
     modes = {(e["mode"], e["batch"]) for e in r["engine"]}
-    expected = {"means", "stacked", "sampler", "flip", f"flip_bank{bench.BANK}", "torch_loop", "torch_batched"}
+    expected = {"means", "stacked", "sampler", "flip", "torch_loop", "torch_batched"}
     assert modes == {(m, b) for m in expected for b in (1, 2)}
     for e in r["engine"]:
         lat = e["latency_ms"]
@@ -50,7 +49,7 @@ def test_tiny_run_has_every_section(tiny_result: dict[str, Any]) -> None:
     assert set(r["summaries"]) == {"draws", "batch", "engine_ms", "summary_ms", "share_of_engine"}
     mem = {m["mode"]: m for m in r["memory"]}
     assert mem["stacked"]["file_over_param_bytes"] == pytest.approx(4, rel=0.02)   # S = 4 weight sets
-    assert mem["flip"]["file_over_param_bytes"] == pytest.approx(2, rel=0.02)      # mu + sigma
+    assert mem["flip"]["file_over_param_bytes"] == pytest.approx(2, rel=0.15)      # mu + sigma, graph overhead
     assert r["http"] == {"skipped": "--no-http"}
     json.dumps(r)  # serialisable as written to bench.json
 

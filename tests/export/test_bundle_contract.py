@@ -5,9 +5,9 @@ For each bundle: the manifest's required sections; the graph files' SHA-256
 (hashlib) against the manifest; each graph's ONNX interface (input ``x``
 float32 ``[B, *shape]`` with a free batch axis, output ``draws`` float32
 ``[S, B, K]``) as onnxruntime reports it and as it runs for B = 1 and B = 5;
-and, where the torch model is at hand, ONNX against torch within 1e-4 (max abs
-difference; reference ``demur.export.layers.forward_draws`` on the recorded draws,
-and the network of the posterior means).
+and, where the torch model is at hand, ONNX against torch within 1e-4 (relative to
+max(|torch|, 1)); reference: the torch module run once per draw with that draw's
+weights and masks (``demur.export.draws.reference_draws``), fed the same noise.
 
 Add a new export kind or layer type to ``CASES`` (see DEVELOPERS.md).
 """
@@ -34,17 +34,49 @@ TINY = [  # (task, kind, posterior, arch)
     ("classification", "sampler", "gaussian", "mlp"),
     ("regression", "stacked", "radial", "mlp"),
     ("regression", "sampler", "radial", "mlp"),
+    ("classification", "flip", "radial", "conv"),
+    ("classification", "flip", "gaussian", "mlp"),
 ]
+OWN = ["conv-resnet-stacked", "conv-resnet-flip", "ensemble", "mc-dropout-sampler", "mc-dropout-stacked"]
 TRAINED = ["demo_bundle", "demo_sampler_bundle", "diabetes_bundle"]
 CASES = [pytest.param(("tiny", c), id="tiny-" + "-".join(c)) for c in TINY] + [
+    pytest.param(("own", c), id="own-" + c) for c in OWN] + [
     pytest.param(("trained", name), id=name, marks=pytest.mark.slow) for name in TRAINED
 ]
+
+
+@pytest.fixture(scope="module")
+def own_bundles(tmp_path_factory):
+    """Users' own modules through export_model (tests/export/_own_models.py), built once."""
+    from sklearn.datasets import load_digits
+
+    from demur.export import export_model, input_spec
+
+    from tests.export._own_models import depot_conv_net, dropout_mlp, plain_mlp
+
+    x = load_digits().data.astype(np.float64)
+    cache = {}
+
+    def make(what: str):
+        if what not in cache:
+            shape = [1, 8, 8] if what.startswith("conv") else None
+            model = (depot_conv_net() if what.startswith("conv") else [plain_mlp(seed=s) for s in range(3)]
+                     if what == "ensemble" else dropout_mlp())
+            bundle = export_model(model, tmp_path_factory.mktemp("own") / what, inputs=input_spec(x[:800], shape=shape),
+                                  kind=what.rsplit("-", 1)[-1] if what != "ensemble" else "stacked", draws=6,
+                                  reference=x[800:900], seed=5, name=what)
+            cache[what] = (bundle, model)
+        return cache[what]
+
+    return make
 
 
 @pytest.fixture(params=CASES)
 def exported(request, tiny_bundle_factory):
     """(bundle, torch model or None) for one contract case."""
     origin, what = request.param
+    if origin == "own":
+        return request.getfixturevalue("own_bundles")(what)
     if origin == "tiny":
         task, kind, posterior, arch = what
         bundle = tiny_bundle_factory(task=task, kind=kind, posterior=posterior, arch=arch)
@@ -71,7 +103,9 @@ def test_manifest_sections(exported) -> None:
     spec = m.inputs
     assert spec.dtype == "float32" and len(spec.names) == spec.size == math.prod(spec.shape)
     assert all(s > 0 for s in spec.scale) and all(lo <= hi for lo, hi in zip(spec.low, spec.high))
-    assert m.posterior["family"] in ("radial", "gaussian") and m.posterior["prior_scale"] > 0
+    assert m.posterior["family"] in ("radial", "gaussian", "ensemble", "mc_dropout")
+    if m.posterior["family"] in ("radial", "gaussian"):
+        assert m.posterior["prior_scale"] > 0
     assert isinstance(m.posterior["params"], int) and m.posterior["params"] > 0
     assert set(m.graphs) <= set(GRAPH_KINDS) and "means" in m.graphs and m.graphs["means"].draws == 1
     assert any(k in m.graphs for k in ("stacked", "sampler", "flip"))
@@ -102,14 +136,18 @@ def test_graph_interfaces(exported) -> None:
     m = bundle.manifest
     for kind, entry in m.graphs.items():
         sess = ort.InferenceSession(str(bundle.graph_path(kind)), providers=["CPUExecutionProvider"])
-        (x,) = sess.get_inputs()
+        x, *noise = sess.get_inputs()
         assert x.name == "x" and x.type == "tensor(float)"
+        assert all(n.name.split(".")[0] in ("signs", "normals", "uniforms") and n.type == "tensor(float)"
+                   and all(isinstance(d, int) for d in n.shape) for n in noise)   # filled by the engine
         assert isinstance(x.shape[0], str) and list(x.shape[1:]) == list(m.inputs.shape)
         out = sess.get_outputs()[0]
         assert out.name == "draws" and out.type == "tensor(float)"
         assert out.shape[0] == entry.draws and out.shape[2] == m.outputs
         for b in (1, 5):
-            y = sess.run(["draws"], {"x": np.zeros((b, *m.inputs.shape), np.float32)})[0]
+            feed = {n.name: np.full(n.shape, 0.5 if n.name.startswith("uniforms") else 1.0, np.float32)
+                    for n in noise}
+            y = sess.run(["draws"], {"x": np.zeros((b, *m.inputs.shape), np.float32), **feed})[0]
             assert y.shape == (entry.draws, b, m.outputs) and y.dtype == np.float32 and np.isfinite(y).all()
 
 
@@ -122,22 +160,18 @@ def test_engine_runs_every_graph(exported) -> None:
 
 
 def test_onnx_matches_torch(exported) -> None:
-    """Means graph vs the torch network of the means; stacked graph vs forward_draws on the
-    draws sample_network makes from the recorded seed. Both within 1e-4."""
-    from demur.export.layers import forward_draws, sample_network
+    """Every graph vs the torch module run once per draw on the same draws (the stacked weights
+    sample_network makes from the recorded seed, or the same fed noise); within 1e-4."""
+    from demur.export.draws import DrawNetwork, draw_noise, reference_draws
 
     bundle, model = exported
     m = bundle.manifest
     x_raw = _raw_cases(bundle, 6)
-    engine = Engine(bundle, graph="means").load()
-    x_std = torch.from_numpy(engine.standardise(x_raw))
-    with torch.no_grad():
-        h = x_std
-        for module in model:
-            h = module.forward_mean(h) if hasattr(module, "forward_mean") else module(h)
-    assert np.abs(engine.run(x_raw) - h.numpy()[None]).max() <= TOL
-    if "stacked" in m.graphs:
-        entry = m.graphs["stacked"]
-        draws = sample_network(model, entry.draws, torch.Generator().manual_seed(entry.seed))
-        got = Engine(bundle, graph="stacked").load().run(x_raw)
-        assert np.abs(got - forward_draws(model, x_std, draws).numpy()).max() <= TOL
+    x_std = Engine(bundle, graph="means").load().standardise(x_raw)
+    for kind, entry in m.graphs.items():
+        net = DrawNetwork(model, kind, entry.draws, seed=entry.seed or 0, input_shape=m.inputs.shape, task=m.task)
+        noise = draw_noise(net.noise, np.random.default_rng(3))
+        sess = ort.InferenceSession(str(bundle.graph_path(kind)), providers=["CPUExecutionProvider"])
+        got = sess.run(["draws"], {"x": x_std, **noise})[0]
+        want = reference_draws(net, torch.from_numpy(x_std), noise).numpy()
+        assert (np.abs(got - want) / np.maximum(np.abs(want), 1.0)).max() <= TOL

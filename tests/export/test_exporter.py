@@ -21,7 +21,7 @@ from scipy import special, stats
 import demur.export.exporter as exporter
 from demur.export.datasets import load_dataset
 from demur.export.errors import ExportError
-from demur.export.exporter import bundle_from_model, export_bundle
+from demur.export.exporter import export_bundle, export_model
 from demur.export.layers import forward_draws, sample_network
 from demur.export.training import load_checkpoint, standardise_inputs, train
 from demur.serve.core.bundle import load_bundle
@@ -114,18 +114,18 @@ def test_a_failed_export_leaves_nothing_behind(tiny_bundle_factory, monkeypatch,
     model = tiny_bundle_factory.models[base.path]
     m = base.manifest
     kwargs = dict(task="regression", labels=list(m.labels), inputs=m.raw["inputs"], target=m.target,
-                  reference_x=np.zeros((4, 10)), draws=3, seed=0)
+                  reference=np.zeros((4, 10)), draws=3, seed=0)
     out = tmp_path / "bundle"
-    first = bundle_from_model(model, out, **kwargs)
+    first = export_model(model, out, **kwargs)
 
     def fail(*_a, **_k):
         raise RuntimeError("disk full (simulated)")
 
     monkeypatch.setattr(exporter, "_reference_scores", fail)
     with pytest.raises(RuntimeError, match="simulated"):
-        bundle_from_model(model, out, **kwargs)
+        export_model(model, out, **kwargs)
     with pytest.raises(RuntimeError, match="simulated"):
-        bundle_from_model(model, tmp_path / "never", **kwargs)
+        export_model(model, tmp_path / "never", **kwargs)
     assert sorted(p.name for p in tmp_path.iterdir()) == ["bundle"]
     assert load_bundle(out).checksum == first.checksum
 
@@ -134,17 +134,17 @@ def test_an_existing_bundle_is_replaced_and_other_directories_are_refused(tiny_b
     base = tiny_bundle_factory(task="regression")
     model = tiny_bundle_factory.models[base.path]
     kwargs = dict(task="regression", labels=["progression"], inputs=base.manifest.raw["inputs"],
-                  reference_x=np.zeros((4, 10)), draws=3, seed=0)
+                  reference=np.zeros((4, 10)), draws=3, seed=0)
     out = tmp_path / "bundle"
-    bundle_from_model(model, out, **kwargs)
-    again = bundle_from_model(model, out, kind="sampler", **kwargs)
+    export_model(model, out, **kwargs)
+    again = export_model(model, out, kind="sampler", **kwargs)
     assert set(again.manifest.graphs) == {"sampler", "means"}
     assert not (out / "stacked.onnx").exists()
     other = tmp_path / "notes"
     other.mkdir()
     (other / "todo.txt").write_text("keep me")
     with pytest.raises(ExportError, match="is not a demur bundle") as info:
-        bundle_from_model(model, other, **kwargs)
+        export_model(model, other, **kwargs)
     assert info.value.field == "out" and (other / "todo.txt").read_text() == "keep me"
 
 
@@ -173,6 +173,6 @@ def test_cli_exports_both_kinds(quick_checkpoints, tmp_path: Path, capsys) -> No
 
 def test_all_is_exact() -> None:
     assert set(exporter.__all__) == {
-        "DEFAULT_DRAWS", "DEFAULT_SCORE", "EXPORT_KINDS", "INTERVAL_LEVEL", "THRESHOLD_QUANTILE",
-        "bundle_from_model", "export_bundle", "register",
+        "DEFAULT_DRAWS", "DEFAULT_SCORE", "EXPORT_KINDS", "INTERVAL_LEVEL", "PARITY_TOLERANCE", "SCALE_FLOOR",
+        "THRESHOLD_QUANTILE", "Inputs", "export_bundle", "export_model", "input_spec", "register",
     }

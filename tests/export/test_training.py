@@ -36,10 +36,19 @@ from demur.serve.cli import main
 def test_all_is_exact():
     assert sorted(training.__all__) == sorted(
         ["CHECKPOINT_FORMAT", "CHECKPOINT_VERSION", "DEFAULTS", "EVAL_DRAWS", "KL_WARMUP", "KL_WEIGHT",
-         "SCALE_FLOOR", "TrainResult", "evaluate", "expected_calibration_error", "load_checkpoint",
-         "predict_draws", "register", "standardise_inputs", "summary_line", "train"]
+         "SCALE_FLOOR", "TrainResult", "elbo_optimiser", "evaluate", "expected_calibration_error", "kl_weight",
+         "load_checkpoint", "predict_draws", "register", "standardise_inputs", "summary_line", "total_kl", "train"]
     )
     assert all(hasattr(training, n) for n in training.__all__)
+
+
+def test_kl_warmup_is_linear_then_flat_and_rho_gets_its_own_step():
+    """KL annealing as documented: beta = min(1, (step + 1) / (warmup * total)) * weight (linear ramp,
+    common practice); Adam's param groups carry the separate rho step size."""
+    assert [training.kl_weight(s, 10, warmup=0.5, weight=2.0) for s in (0, 4, 9)] == [0.4, 2.0, 2.0]
+    model = torch.nn.Sequential(training.build_model("mlp", [4], 2, "radial", hidden=(3,)))
+    groups = training.elbo_optimiser(model, lr=0.01, rho_lr=0.001).param_groups
+    assert [g["lr"] for g in groups] == [0.01, 0.001] and len(groups[1]["params"]) == 4
 
 
 def test_ece_worked_example():

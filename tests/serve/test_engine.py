@@ -115,18 +115,19 @@ def test_two_engines_without_a_seed_draw_different_streams(tiny_bundle_factory) 
 
 def test_reseed_rule_matches_the_exporter() -> None:
     """serve/ cannot import export/, so the seed rule lives twice; this keeps them in step."""
-    from demur.export.graphs import node_seed, plan_from_model, sampler_graph
-    from demur.export.layers import build_model
-
-    plan = plan_from_model(build_model("mlp", (4,), 2, "radial", hidden=(3,)), (4,))
-    exported = sampler_graph(plan, 2, seed=12345)
-    data, changed = reseed_graph(sampler_graph(plan, 2, seed=7).SerializeToString(), 12345)
     import onnx
+
+    from demur.export.graphs import node_seed
+
+    from tests.serve._legacy_graphs import legacy_sampler_graph
+
+    exported = legacy_sampler_graph(4, 2, 2, seed=12345)
+    data, changed = reseed_graph(legacy_sampler_graph(4, 2, 2, seed=7).SerializeToString(), 12345)
 
     def seeds(m):
         return [a.f for n in m.graph.node if n.op_type == "RandomNormal" for a in n.attribute if a.name == "seed"]
 
-    assert changed == 8 and seeds(onnx.load_from_string(data)) == seeds(exported)
+    assert changed == 4 and seeds(onnx.load_from_string(data)) == seeds(exported)
     assert seeds(exported)[1] == node_seed(12345, 1)
 
 
@@ -177,13 +178,11 @@ def test_flip_bundles_with_in_graph_noise_still_run(tiny_bundle_factory, copy_bu
     reseeded at load, fresh per call, repeatable under a seed."""
     import onnx
 
-    from demur.export.flip import flip_graph
-    from demur.export.graphs import plan_from_model
+    from tests.serve._legacy_graphs import legacy_sampler_graph
 
     source = tiny_bundle_factory(kind="flip")
     path = copy_bundle(source)
-    plan = plan_from_model(tiny_bundle_factory.models[source.path], source.manifest.inputs.shape)
-    onnx.save_model(flip_graph(plan, 8, seed=0, rank=0), str(path / "flip.onnx"))
+    onnx.save_model(legacy_sampler_graph(64, 10, 8, seed=0), str(path / "flip.onnx"))
     write_manifest(path, json.loads((path / "manifest.json").read_text()))  # re-digest and re-seal
     bundle = load_bundle(path)
     x = _raw_cases(bundle, 3)

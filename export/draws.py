@@ -1,0 +1,442 @@
+"""S draws of any torch module in one forward pass: the batch carries the draws.
+
+Why: a bundle's graphs return ``draws`` float32[S, B, K]. Rather than
+rewriting a user's network op by op (the old ``onnx.helper`` builder knew
+five module types), ``DrawNetwork`` runs the user's own module, with its own
+``forward``, on a batch of ``S * B`` rows, draw-major (row ``s * B + b`` is
+case ``b`` under draw ``s``). Only the layers that differ between draws act
+on the draw axis:
+
+* ``VariationalLinear`` applies draw ``s``'s weights to rows ``s * B ..``:
+  one batched matmul ``[S, B, in] @ [S, in, out]``;
+* ``VariationalConv2d`` folds the draws into channels, ``[B, S * C, H, W]``,
+  and runs one grouped convolution (``groups = S``) over S weight sets;
+* ``nn.Dropout`` / ``nn.Dropout2d`` (MC dropout, Gal & Ghahramani, ICML 2016)
+  multiply rows of draw ``s`` by mask ``s``, one mask per draw shared by the
+  cases of a request (a draw is one sampled network).
+
+Every other layer is untouched and sees an ordinary batch: pooling, GELU,
+residual additions, deterministic ``nn.Linear``/``nn.Conv2d``, layer norm,
+and batch norm, which in eval mode normalises each row with its stored
+running statistics, so it is per-row and safe over ``S * B`` rows. (Batch
+norm in training mode, or any layer that mixes rows of a batch, would mix
+draws; the parity check in export/exporter.py refuses such an export.)
+
+Where the draws come from, per graph kind:
+
+``stacked``  S weight sets drawn at export (``sample_network`` with the seed)
+             and S dropout masks, stored as constants.
+``sampler``  fresh every call, from noise the engine feeds as graph inputs
+             (serve/adapters/engine.py, "Noise fed by the engine"): per
+             variational layer ``normals.L{i}.weight`` [S, *w],
+             ``normals.L{i}.bias`` [S, out] and, radial, ``normals.L{i}.radius``
+             [S, 2]; per dropout layer ``uniforms.D{j}`` [S, 1, *mask shape]
+             (keep where u > p, u uniform on (0, 1]).
+``flip``     fresh Flipout draws (export/flip.py), noise fed the same way.
+``means``    one draw: the posterior means, dropout off (identity); for an
+             ensemble, the members' averaged prediction.
+
+A list of modules is a deep ensemble (Lakshminarayanan, Pritzel & Blundell,
+NeurIPS 2017): S = the number of members, one draw per member (variational
+layers inside a member run at their means).
+
+``reference_draws`` is the torch reference the exporter checks every graph
+against: it runs the user's module once per draw on the B cases with plain
+per-draw weights (``forward_with``) and masks, so it shares none of the
+``S * B`` folding above.
+"""
+
+from __future__ import annotations
+
+import copy
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import torch
+import torch.nn.functional as F
+from torch import nn
+
+from demur.export.errors import GraphBuildError
+from demur.export.layers import VariationalConv2d, VariationalLayer, VariationalLinear, sample_network
+
+__all__ = [
+    "DRAW_KINDS",
+    "FAMILIES",
+    "DrawNetwork",
+    "DropoutDraws",
+    "Feed",
+    "NoiseInput",
+    "apply_draws",
+    "draw_noise",
+    "reference_draws",
+]
+
+DRAW_KINDS = ("stacked", "sampler", "flip", "means")
+"""Graph kinds a ``DrawNetwork`` can run."""
+
+FAMILIES = ("gaussian", "radial", "ensemble", "mc_dropout")
+"""What a bundle's set of draws is (the manifest's ``posterior.family``)."""
+
+_DROPOUTS = (nn.Dropout, nn.Dropout2d)
+
+
+@dataclass(frozen=True)
+class NoiseInput:
+    """One graph input the engine fills per call; its law is the name's part before the first dot."""
+
+    name: str
+    shape: tuple[int, ...]
+
+    @property
+    def law(self) -> str:
+        return self.name.split(".")[0]
+
+
+class Feed:
+    """The noise values of the current forward pass, by input name (shared by every draw mode)."""
+
+    def __init__(self) -> None:
+        self.values: dict[str, torch.Tensor] = {}
+
+    def __getitem__(self, name: str) -> torch.Tensor:
+        return self.values[name]
+
+
+def draw_noise(inputs: Sequence[NoiseInput], rng: np.random.Generator) -> dict[str, np.ndarray]:
+    """Values for ``inputs`` by the engine's laws (signs +-1, normals N(0, 1), uniforms on (0, 1])."""
+    out = {}
+    for spec in inputs:
+        if spec.law == "signs":
+            out[spec.name] = np.where(rng.integers(0, 2, spec.shape) == 1, 1.0, -1.0).astype(np.float32)
+        elif spec.law == "normals":
+            out[spec.name] = rng.standard_normal(spec.shape).astype(np.float32)
+        else:
+            out[spec.name] = (1.0 - rng.random(spec.shape)).astype(np.float32)
+    return out
+
+
+# -- applying S weight sets to a draw-carrying batch --------------------------------------
+def apply_draws(layer: VariationalLayer, x: torch.Tensor, weight: torch.Tensor, bias: torch.Tensor,
+                S: int) -> torch.Tensor:
+    """Draw s's weights on rows s*B..(s+1)*B-1 of ``x`` [S*B, ...]; weight [S, *w], bias [S, out]."""
+    if isinstance(layer, VariationalConv2d):
+        xs = x.unflatten(0, (S, -1)).transpose(0, 1).flatten(1, 2)            # [B, S*C, H, W]
+        y = F.conv2d(xs, weight.flatten(0, 1), bias.flatten(), stride=layer.stride, padding=layer.padding,
+                     groups=S)
+        return y.unflatten(1, (S, layer.out_channels)).transpose(0, 1).flatten(0, 1)
+    if isinstance(layer, VariationalLinear):
+        return _linear_draws(layer, x, weight.transpose(1, 2), bias, S)
+    raise GraphBuildError(f"{type(layer).__name__} is a variational layer demur cannot export (only "
+                          "VariationalLinear and VariationalConv2d)", field="model")
+
+
+def _linear_draws(layer: VariationalLinear, x: torch.Tensor, weight_t: torch.Tensor, bias: torch.Tensor,
+                  S: int) -> torch.Tensor:
+    """x [S*B, ..., in]; weight_t [S, in, out] (transposed); bias [S, out] -> [S*B, ..., out]."""
+    xs = x.unflatten(0, (S, -1))                                             # [S, B, ..., in]
+    ones = [1] * (xs.dim() - 3)
+    wt = weight_t.reshape(S, *ones, layer.in_features, layer.out_features)
+    y = torch.matmul(xs, wt) + bias.reshape(S, 1, *ones, layer.out_features)
+    return y.flatten(0, 1)
+
+
+class _Mode:
+    """How one variational layer makes its S draws. ``weights`` gives them as [S, *w], [S, out]
+    (the reference uses those); ``run`` applies them to a draw-carrying batch."""
+
+    noise: tuple[NoiseInput, ...] = ()
+    S: int = 1
+
+    def weights(self, layer: VariationalLayer) -> tuple[torch.Tensor, torch.Tensor]:
+        raise NotImplementedError
+
+    def run(self, layer: VariationalLayer, x: torch.Tensor) -> torch.Tensor:
+        w, b = self.weights(layer)
+        return apply_draws(layer, x, w, b, self.S)
+
+
+class _Fixed(_Mode):
+    """Stored weight sets (stacked draws, or the means with S = 1)."""
+
+    def __init__(self, weight: torch.Tensor, bias: torch.Tensor) -> None:
+        self.w, self.b = weight.detach().float(), bias.detach().float()
+        self.S = int(self.w.shape[0])
+        # stored in the layout the matmul reads, so the graph holds no per-call transpose of S weight sets
+        self.w_t = self.w.transpose(1, 2).contiguous() if self.w.dim() == 3 else None
+
+    def weights(self, layer: VariationalLayer) -> tuple[torch.Tensor, torch.Tensor]:
+        return self.w, self.b
+
+    def run(self, layer: VariationalLayer, x: torch.Tensor) -> torch.Tensor:
+        if isinstance(layer, VariationalLinear) and self.w_t is not None:
+            return _linear_draws(layer, x, self.w_t, self.b, self.S)
+        return apply_draws(layer, x, self.w, self.b, self.S)
+
+
+class _Fresh(_Mode):
+    """Fresh weights per call from fed normals: w = mu + sigma * eps (gaussian) or
+    mu + sigma * (eps / ||eps||) * r (radial, Farquhar et al. 2020, eq. 2), as ``VariationalLayer.draw``."""
+
+    def __init__(self, feed: Feed, index: int, layer: VariationalLayer, S: int) -> None:
+        self.feed, self.S, self.radial = feed, S, layer.posterior == "radial"
+        stem = f"normals.L{index}"
+        self.names = (f"{stem}.weight", f"{stem}.bias", f"{stem}.radius")
+        specs = [NoiseInput(self.names[0], (S, *layer.weight_mu.shape)), NoiseInput(self.names[1], (S, layer.bias_mu.numel()))]
+        if self.radial:
+            specs.append(NoiseInput(self.names[2], (S, 2)))
+        self.noise = tuple(specs)
+        with torch.no_grad():
+            self.mu = (layer.weight_mu.detach().clone(), layer.bias_mu.detach().clone())
+            self.sigma = (layer.weight_sigma.detach().clone(), layer.bias_sigma.detach().clone())
+
+    def weights(self, layer: VariationalLayer) -> tuple[torch.Tensor, torch.Tensor]:
+        out = []
+        for part in (0, 1):
+            eps = self.feed[self.names[part]]
+            if self.radial:
+                flat = eps.flatten(1)
+                r = self.feed[self.names[2]][:, part:part + 1]
+                eps = (flat / torch.linalg.vector_norm(flat, dim=1, keepdim=True) * r).reshape(eps.shape)
+            out.append(self.mu[part] + self.sigma[part] * eps)
+        return out[0], out[1]
+
+
+class _Single(_Mode):
+    """One weight set on an ordinary batch (the torch reference)."""
+
+    def __init__(self, weight: torch.Tensor, bias: torch.Tensor) -> None:
+        self.w, self.b = weight, bias
+
+    def run(self, layer: VariationalLayer, x: torch.Tensor) -> torch.Tensor:
+        return layer.forward_with(x, self.w, self.b)
+
+
+class DropoutDraws(nn.Module):
+    """Stands in for an ``nn.Dropout``/``nn.Dropout2d``: mask s on the rows of draw s.
+
+    ``masks`` [S, 1, *mask shape] (stacked), or fed ``uniforms.D{j}`` (sampler);
+    ``single`` set by the reference: one mask on an ordinary batch."""
+
+    def __init__(self, p: float, S: int, mask_shape: tuple[int, ...], feed: Feed, name: str,
+                 masks: torch.Tensor | None) -> None:
+        super().__init__()
+        self.p, self.S, self.feed, self.name = float(p), S, feed, name
+        self.mask_shape, self.masks = mask_shape, masks
+        self.single: torch.Tensor | None = None
+        self.noise = () if masks is not None else (NoiseInput(name, (S, 1, *mask_shape)),)
+
+    def all_masks(self) -> torch.Tensor:
+        if self.masks is not None:
+            return self.masks
+        return (self.feed[self.name] > self.p).to(torch.float32) / (1.0 - self.p)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        if self.single is not None:
+            return x * self.single[0]
+        return (x.unflatten(0, (self.S, -1)) * self.all_masks()).flatten(0, 1)
+
+
+# -- the network ----------------------------------------------------------------------------
+class DrawNetwork(nn.Module):
+    """A user's module (or list of modules) running S draws per pass: ``forward(x, *noise)`` with
+    x float32[B, *input_shape] (standardised) returns float32[S, B, K].
+
+    ``noise`` lists the inputs after ``x`` in order. The user's module is deep-copied and put
+    in eval mode; the original is left alone.
+
+    Example::
+
+        net = DrawNetwork(model, "sampler", 32, seed=0, input_shape=(1, 8, 8), task="classification")
+        feed = draw_noise(net.noise, np.random.default_rng(0))
+        draws = net(x, *[torch.from_numpy(feed[n.name]) for n in net.noise])   # [32, B, 10]
+    """
+
+    def __init__(self, model: nn.Module | Sequence[nn.Module], kind: str, draws: int, *, seed: int,
+                 input_shape: Sequence[int], task: str = "classification") -> None:
+        super().__init__()
+        if kind not in DRAW_KINDS:
+            raise GraphBuildError(f"kind must be one of {', '.join(DRAW_KINDS)}; got '{kind}'", field="kind")
+        self.kind, self.task, self.feed = kind, task, Feed()
+        self.input_shape = tuple(int(d) for d in input_shape)
+        self.ensemble = isinstance(model, (list, tuple, nn.ModuleList))
+        members = [_as_module(m, i) for i, m in enumerate(model)] if self.ensemble else [_as_module(model, None)]
+        if self.ensemble and len(members) < 2:
+            raise GraphBuildError(f"a deep ensemble needs at least 2 members; got {len(members)}", field="model")
+        self.members = nn.ModuleList(copy.deepcopy(m).eval() for m in members)
+        self.layers = [lay for m in self.members for lay in m.modules() if isinstance(lay, VariationalLayer)]
+        self.family = self._family()
+        self.S = 1 if kind == "means" else len(self.members) if self.ensemble else int(draws)
+        if self.S < 1:
+            raise GraphBuildError(f"draws must be a positive integer; got {draws}", field="draws")
+        self.dropouts: list[DropoutDraws] = []
+        if self.ensemble:
+            if kind not in ("stacked", "means"):
+                raise GraphBuildError(f"a deep ensemble has one fixed draw per member: export it as 'stacked'; "
+                                      f"got '{kind}'", field="kind")
+            for lay in self.layers:  # each member is one network: variational layers at their means
+                lay._draw_mode = _Fixed(lay.weight_mu[None], lay.bias_mu[None])
+        else:
+            self._set_modes(kind, int(seed))
+        self.noise: tuple[NoiseInput, ...] = tuple(
+            n for part in [*(lay._draw_mode for lay in self.layers), *self.dropouts] for n in part.noise)
+        self.eval()
+
+    # -- construction ---------------------------------------------------------------------
+    def _family(self) -> str:
+        if self.ensemble:
+            return "ensemble"
+        families = {lay.posterior for lay in self.layers}
+        if len(families) > 1:
+            raise GraphBuildError(f"the model mixes posterior families {sorted(families)}; demur exports one "
+                                  "family per model", field="model")
+        if families:
+            return families.pop()
+        if any(isinstance(m, _DROPOUTS) for m in self.members[0].modules()):
+            return "mc_dropout"
+        raise GraphBuildError(
+            "the model has no variational layers and no dropout, so every draw would be the same network: use "
+            "demur's VariationalLinear/VariationalConv2d, nn.Dropout (MC dropout), or pass a list of modules "
+            "(a deep ensemble)", field="model")
+
+    def _set_modes(self, kind: str, seed: int) -> None:
+        from demur.export.flip import FlipDraws
+
+        S, model = self.S, self.members[0]
+        if kind == "stacked" and self.layers:
+            sets = sample_network(model, S, torch.Generator().manual_seed(seed))
+        for i, lay in enumerate(self.layers):
+            if kind == "means":
+                lay._draw_mode = _Fixed(lay.weight_mu[None], lay.bias_mu[None])
+            elif kind == "stacked":
+                lay._draw_mode = _Fixed(sets[i]["weight"], sets[i]["bias"])
+            elif kind == "sampler":
+                lay._draw_mode = _Fresh(self.feed, i, lay, S)
+            else:
+                lay._draw_mode = FlipDraws(self.feed, i, lay, S)
+        if self.family != "mc_dropout" or kind == "means":
+            return  # dropout in a variational network (or in the means graph) stays off: eval mode
+        if kind == "flip":
+            raise GraphBuildError("the flip graph perturbs variational layers; this model has none (MC dropout): "
+                                  "export it as 'sampler' (fresh masks per call) or 'stacked'", field="kind")
+        shapes = _dropout_input_shapes(model, self.input_shape)
+        masks_gen = torch.Generator().manual_seed(seed + 1)
+        for j, (parent, attr, drop) in enumerate(_dropout_slots(model)):
+            shape = shapes[drop]
+            mask_shape = shape if isinstance(drop, nn.Dropout) else (shape[0], *[1] * (len(shape) - 1))
+            if not 0.0 <= drop.p < 1.0:
+                raise GraphBuildError(f"dropout {attr} has p = {drop.p}; MC dropout needs 0 <= p < 1", field="model")
+            masks = None
+            if kind == "stacked":
+                masks = (torch.rand((S, 1, *mask_shape), generator=masks_gen) >= drop.p).float() / (1.0 - drop.p)
+            sub = DropoutDraws(drop.p, S, mask_shape, self.feed, f"uniforms.D{j}", masks)
+            setattr(parent, attr, sub)
+            self.dropouts.append(sub)
+
+    def train(self, mode: bool = True) -> DrawNetwork:
+        """Always eval: batch norm must use its running statistics (per row, so draws never mix),
+        and ``torch.onnx.export`` restores the mode it found after exporting."""
+        return super().train(False)
+
+    # -- running ----------------------------------------------------------------------------
+    def forward(self, x: torch.Tensor, *noise: torch.Tensor) -> torch.Tensor:
+        self.feed.values = {spec.name: value for spec, value in zip(self.noise, noise)}
+        if self.ensemble:
+            out = torch.stack([m(x) for m in self.members])                  # [M, B, K]
+            return _ensemble_mean(out, self.task) if self.kind == "means" else out
+        xs = x.unsqueeze(0).expand(self.S, *x.shape).flatten(0, 1)            # [S*B, ...], draw-major
+        y = self.members[0](xs)
+        _check_output(y)
+        return y.unflatten(0, (self.S, -1))
+
+    def parameter_count(self) -> int:
+        """Variational parameters (weights + biases, each with a mu and a sigma), else all parameters."""
+        if self.layers and not self.ensemble:
+            return int(sum(lay.weight_mu.numel() + lay.bias_mu.numel() for lay in self.layers))
+        return int(sum(p.numel() for p in self.members.parameters()))
+
+
+def _as_module(m: Any, index: int | None) -> nn.Module:
+    if not isinstance(m, nn.Module):
+        where = "model" if index is None else f"model[{index}]"
+        raise GraphBuildError(f"{where} must be a torch.nn.Module; got {type(m).__name__}", field=where)
+    return m
+
+
+def _check_output(y: Any) -> None:
+    if not isinstance(y, torch.Tensor) or y.dim() != 2:
+        got = f"shape {list(y.shape)}" if isinstance(y, torch.Tensor) else type(y).__name__
+        raise GraphBuildError(f"the model must return one tensor [B, K] per batch; got {got}", field="model")
+
+
+def _ensemble_mean(out: torch.Tensor, task: str) -> torch.Tensor:
+    """[M, B, K] -> [1, B, K]: log of the mean softmax (classification) or the moment-matched
+    (mean, log-variance) of the members' Gaussians (regression)."""
+    M = out.shape[0]
+    if task == "classification":
+        return (torch.logsumexp(torch.log_softmax(out, dim=-1), dim=0) - math.log(M))[None]
+    mean, var = out[..., 0], out[..., 1].exp()
+    mu = mean.mean(0)
+    total = (var + mean.square()).mean(0) - mu.square()
+    return torch.stack([mu, torch.log(total.clamp_min(1e-30))], dim=-1)[None]
+
+
+def _dropout_slots(model: nn.Module) -> list[tuple[nn.Module, str, nn.Module]]:
+    """(parent, attribute, dropout module) for every dropout layer, in module order."""
+    slots = []
+    for parent in model.modules():
+        for attr, child in parent.named_children():
+            if isinstance(child, _DROPOUTS):
+                slots.append((parent, attr, child))
+            elif isinstance(child, nn.modules.dropout._DropoutNd):
+                raise GraphBuildError(f"{type(child).__name__} has no MC-dropout form in demur (nn.Dropout and "
+                                      "nn.Dropout2d do)", field="model")
+    return slots
+
+
+def _dropout_input_shapes(model: nn.Module, input_shape: tuple[int, ...]) -> dict[nn.Module, tuple[int, ...]]:
+    """Each dropout's input shape per case, recorded by one eval pass on two zero cases."""
+    shapes: dict[nn.Module, tuple[int, ...]] = {}
+
+    def record(mod: nn.Module, args: tuple[Any, ...]) -> None:  # a pre-hook's return value would replace args
+        shapes.setdefault(mod, tuple(args[0].shape[1:]))
+
+    hooks = [m.register_forward_pre_hook(record) for m in model.modules() if isinstance(m, _DROPOUTS)]
+    try:
+        with torch.no_grad():
+            model(torch.zeros((2, *input_shape)))
+    except Exception as exc:  # whatever the user's forward raises on the declared shape
+        raise GraphBuildError(f"the model does not accept inputs of shape [B, {', '.join(map(str, input_shape))}] "
+                              f"(inputs.shape): {type(exc).__name__}: {exc}", field="inputs.shape") from exc
+    finally:
+        for h in hooks:
+            h.remove()
+    return shapes
+
+
+@torch.no_grad()
+def reference_draws(net: DrawNetwork, x: torch.Tensor, noise: dict[str, np.ndarray]) -> torch.Tensor:
+    """The torch reference float32[S, B, K]: the user's module once per draw on ``x`` [B, ...]
+    with that draw's plain weights and mask, the same draws the graph makes from ``noise``."""
+    net.feed.values = {k: torch.from_numpy(v) for k, v in noise.items()}
+    if net.ensemble:
+        return net(x)
+    modes = [lay._draw_mode for lay in net.layers]
+    sets = [mode.weights(lay) for mode, lay in zip(modes, net.layers)]
+    masks = [d.all_masks() for d in net.dropouts]
+    outs = []
+    try:
+        for s in range(net.S):
+            for lay, (w, b) in zip(net.layers, sets):
+                lay._draw_mode = _Single(w[s], b[s])
+            for drop, m in zip(net.dropouts, masks):
+                drop.single = m[s]
+            outs.append(net.members[0](x))
+    finally:
+        for lay, mode in zip(net.layers, modes):
+            lay._draw_mode = mode
+        for drop in net.dropouts:
+            drop.single = None
+    return torch.stack(outs)
