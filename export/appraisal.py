@@ -139,7 +139,7 @@ def _baseline(members: list[Any], bundle: Bundle, x: np.ndarray, y: np.ndarray,
 
 def _holdout(bundle: Bundle, label: str, data: Any, seed: int, baseline: bool) -> dict[str, Any]:
     """Train without ``label``; AUROC of each score for its test cases against the seen classes'."""
-    from demur.export.exporter import bundle_from_model
+    from demur.export.exporter import Inputs, training_rows, export_model
     from demur.export.training import train
 
     m = bundle.manifest
@@ -155,9 +155,10 @@ def _holdout(bundle: Bundle, label: str, data: Any, seed: int, baseline: bool) -
     unseen_x, seen_x = data.x_test[data.y_test == k], data.x_test[data.y_test != k]
     out: dict[str, Any] = {}
     with tempfile.TemporaryDirectory(prefix="demur-holdout-") as tmp:
-        held = bundle_from_model(result.model, Path(tmp) / "bundle", task="classification", labels=list(m.labels),
-                                 inputs=result.meta["inputs"], reference_x=seen.x_val, training_x=seen.x_train,
-                                 draws=m.graphs[next(iter(m.graphs))].draws, seed=seed, name="holdout")
+        held = export_model(result.model, Path(tmp) / "bundle", task="classification", labels=list(m.labels),
+                            inputs=Inputs(spec=result.meta["inputs"], training=training_rows(seen.x_train)),
+                            reference=seen.x_val, draws=m.graphs[next(iter(m.graphs))].draws, seed=seed,
+                            name="holdout")
         y_seen = data.y_test[data.y_test != k]
         out["bundle"] = _served(held, seen_x, y_seen, {"unseen_class": unseen_x})
         if baseline:

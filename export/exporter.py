@@ -69,6 +69,7 @@ __all__ = [
     "PARITY_TOLERANCE",
     "SUPPORT_SAMPLE",
     "TrainingRows",
+    "training_rows",
     "THRESHOLD_QUANTILE",
     "Inputs",
     "export_bundle",
@@ -113,7 +114,8 @@ class TrainingRows:
     sample: np.ndarray = field(repr=False)
 
 
-def _training_rows(x_train: Any, seed: int = 0) -> TrainingRows:
+def training_rows(x_train: Any, seed: int = 0) -> TrainingRows:
+    """What a bundle keeps of raw training rows ``x_train`` float[N, F] (for ``Inputs.training``)."""
     x = np.asarray(x_train, dtype=np.float64)
     x = x.reshape(len(x), -1)
     keep = x if len(x) <= SUPPORT_SAMPLE else x[np.random.default_rng(seed).choice(len(x), SUPPORT_SAMPLE,
@@ -183,7 +185,7 @@ def input_spec(x_train: Any, names: Sequence[str] | None = None, shape: Sequence
         "high": [float(v) for v in x.max(axis=0)],
         "kind": kind,
     }
-    return Inputs(spec=spec, drift_features=feature_reference(x), training=_training_rows(x))
+    return Inputs(spec=spec, drift_features=feature_reference(x), training=training_rows(x))
 
 
 def export_model(
@@ -435,7 +437,7 @@ def export_bundle(
                            task=meta["task"])
     return export_model(
         model, out, inputs=Inputs(spec=meta["inputs"], drift_features=meta.get("drift_features"),
-                                  training=_training_rows(dataset.x_train)),
+                                  training=training_rows(dataset.x_train)),
         labels=list(meta["labels"]), task=meta["task"], target=meta.get("target"), kind=kind, draws=draws,
         seed=seed, reference=dataset.x_val, name=name or str(meta.get("name", Path(checkpoint_dir).name)),
         version=version or "1", extensions={"training": {"metrics": meta.get("metrics", {}), "data": data}},

@@ -13,7 +13,6 @@ import numpy as np
 import pytest
 from sklearn.datasets import load_diabetes, load_digits
 
-import demur.export.datasets as datasets
 from demur.export.datasets import FRACTIONS, load_dataset, split_indices
 from demur.export.errors import (
     DatasetError,
@@ -24,14 +23,6 @@ from demur.export.errors import (
 )
 
 SPLITS = ("train", "val", "cal", "test")
-
-
-def test_all_is_exact():
-    assert sorted(datasets.__all__) == sorted(
-        ["BUILTIN", "FRACTIONS", "MAX_CLASSES", "Dataset", "LabelledRows", "column_order", "load_dataset",
-         "read_labelled", "split_indices", "write_labelled"]
-    )
-    assert all(hasattr(datasets, n) for n in datasets.__all__)
 
 
 def test_fractions_sum_to_one():

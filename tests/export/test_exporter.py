@@ -171,8 +171,3 @@ def test_cli_exports_both_kinds(quick_checkpoints, tmp_path: Path, capsys) -> No
     assert "no checkpoint" in capsys.readouterr().err
 
 
-def test_all_is_exact() -> None:
-    assert set(exporter.__all__) == {
-        "DEFAULT_DRAWS", "DEFAULT_SCORE", "EXPORT_KINDS", "INTERVAL_LEVEL", "PARITY_TOLERANCE", "SCALE_FLOOR",
-        "THRESHOLD_QUANTILE", "Inputs", "export_bundle", "export_model", "input_spec", "register",
-    }

@@ -33,15 +33,6 @@ from demur.export.training import (
 from demur.serve.cli import main
 
 
-def test_all_is_exact():
-    assert sorted(training.__all__) == sorted(
-        ["CHECKPOINT_FORMAT", "CHECKPOINT_VERSION", "DEFAULTS", "EVAL_DRAWS", "KL_WARMUP", "KL_WEIGHT",
-         "SCALE_FLOOR", "TrainResult", "elbo_optimiser", "evaluate", "expected_calibration_error", "kl_weight",
-         "load_checkpoint", "predict_draws", "register", "standardise_inputs", "summary_line", "total_kl", "train"]
-    )
-    assert all(hasattr(training, n) for n in training.__all__)
-
-
 def test_kl_warmup_is_linear_then_flat_and_rho_gets_its_own_step():
     """KL annealing as documented: beta = min(1, (step + 1) / (warmup * total)) * weight (linear ramp,
     common practice); Adam's param groups carry the separate rho step size."""

@@ -19,7 +19,6 @@ from jsonschema import Draft202012Validator
 from scipy.stats import entropy
 
 from demur.serve.web import app as app_module
-from demur.serve.core import render
 from demur.serve.web.app import EXTENSION, OPENAPI_PATH, create_app
 from demur.serve.config import ServeConfig
 from demur.serve.adapters.engine import Engine

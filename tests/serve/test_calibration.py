@@ -21,7 +21,6 @@ from sklearn.datasets import load_diabetes
 from sklearn.linear_model import BayesianRidge
 from sklearn.metrics import brier_score_loss, log_loss
 
-import demur.serve.offline.calibration as cal
 from demur.serve.offline.calibration import (
     accuracy_at_referral,
     aurc,
@@ -42,16 +41,6 @@ from demur.serve.offline.calibration import (
 from demur.serve.errors import CalibrationInfeasible, ConfigError
 from demur.serve.core.summary import regression_summary
 from tests._conformal import split_coverages
-
-
-def test_all_is_exact():
-    assert sorted(cal.__all__) == sorted([
-        "DEFAULT_MAX_ABSTAIN", "ECE_BINS", "MAX_CANDIDATES", "REFERRAL_RATES", "ThresholdChoice",
-        "accuracy_at_referral", "aurc", "batch_spread", "brier_score", "calibration_record", "candidate_ranks",
-        "check_feasible", "classification_metrics", "conformal_scale", "error_upper_bound",
-        "expected_calibration_error", "fingerprint", "guarantee_text", "minimum_rows", "negative_log_likelihood",
-        "regression_metrics", "reliability_bins", "risk_coverage", "select_for_abstain", "select_for_accuracy",
-    ])
 
 
 # --------------------------------------------------------------------------- bounds

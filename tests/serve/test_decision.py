@@ -16,19 +16,11 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-import demur.serve.core.decision as decision_mod
-from demur.serve.core.bundle import SCORES, Decision
+from demur.serve.core.bundle import Decision
 from demur.serve.config import ServeConfig
 from demur.serve.core.decision import DecisionRule, decide, rule_from, score_values
 from demur.serve.errors import ConfigError
 from demur.serve.core.summary import classification_summary, regression_summary
-
-
-def test_all_is_exact():
-    assert sorted(decision_mod.__all__) == sorted(
-        ["SCORE_TASKS", "SCORE_UNITS", "DecisionRule", "Decisions", "decide", "rule_from", "score_values"]
-    )
-    assert set(decision_mod.SCORE_TASKS) == set(SCORES)
 
 
 @settings(max_examples=100, deadline=None)

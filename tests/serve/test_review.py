@@ -18,16 +18,11 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from demur.serve.review import router as review_module
 from demur.serve.errors import ReviewStoreUnavailable
 from demur.serve.review.router import ReviewRouter, accuracy_estimate, audit_draw
 from demur.serve.review.store import NewItem, SqliteStore
 from demur.serve.review.spool import Spool
 from tests.serve._review_helpers import MODEL
-
-
-def test_all_is_exact() -> None:
-    assert sorted(review_module.__all__) == sorted(["SPOOL_FILE", "STORE_RETRY_MAX_S", "ReviewRouter", "accuracy_estimate", "audit_draw"])
 
 
 class SwitchStore:

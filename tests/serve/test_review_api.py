@@ -18,7 +18,6 @@ from typing import Any
 
 import pytest
 
-from demur.serve.web import review_api
 from demur.serve.review.router import ReviewRouter
 
 TOKENS = {"review_tokens": "desk-token-1,desk-token-2", "admin_tokens": "ops-token",
@@ -27,10 +26,6 @@ R1 = {"Authorization": "Bearer desk-token-1"}
 R2 = {"Authorization": "Bearer desk-token-2"}
 ADMIN = {"Authorization": "Bearer ops-token"}
 SORTER = {"Authorization": "Bearer sorter-token"}
-
-
-def test_all_is_exact() -> None:
-    assert sorted(review_api.__all__) == ["PAGE_HEADERS", "install_review_api", "make_blueprint"]
 
 
 @pytest.fixture()

@@ -20,7 +20,6 @@ import psycopg
 import psycopg_pool
 import pytest
 
-from demur.serve.review import store as review_store
 from demur.serve.errors import ConfigError, Conflict, NotFound, ReviewStoreUnavailable
 from demur.serve.review.store import (
     SCHEMA_VERSION,
@@ -35,12 +34,6 @@ from demur.serve.review.store import (
 from tests.serve._review_helpers import PG_URL, Clock, free_port, item, pg_schema, require_postgres, with_schema
 
 LEASE_S = 60.0
-
-
-def test_all_is_exact() -> None:
-    assert sorted(review_store.__all__) == sorted([
-        "KINDS", "SCHEMA_VERSION", "STATUSES", "NewItem", "PostgresStore", "ReviewItem", "ReviewStore",
-        "SqliteStore", "new_id", "new_item", "open_store"])
 
 
 @pytest.fixture(params=["sqlite", pytest.param("postgres", marks=pytest.mark.postgres)])

@@ -24,12 +24,6 @@ from demur.serve.adapters.engine import Engine
 from demur.serve.adapters.metrics import Metrics
 
 
-def test_all_is_exact() -> None:
-    public = {n for n, v in vars(snapshot).items() if not n.startswith("_")
-              and getattr(v, "__module__", None) == snapshot.__name__}
-    assert set(snapshot.__all__) == public
-
-
 @pytest.mark.parametrize("value,reading", [(0.0, "stable"), (0.099, "stable"), (0.1, "moderate shift"),
                                            (0.25, "moderate shift"), (0.26, "major shift")])
 def test_psi_reading_common_practice(value: float, reading: str) -> None:

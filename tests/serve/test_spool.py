@@ -15,15 +15,10 @@ from typing import Any
 
 import pytest
 
-from demur.serve.review import spool as spool_module
 from demur.serve.errors import ReviewStoreUnavailable
 from demur.serve.review.store import NewItem, SqliteStore
 from demur.serve.review.spool import Replayer, Spool, SpoolError
 from tests.serve._review_helpers import item
-
-
-def test_all_is_exact() -> None:
-    assert sorted(spool_module.__all__) == ["Replayer", "Spool", "SpoolError"]
 
 
 class FlakyStore:

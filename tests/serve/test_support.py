@@ -59,12 +59,6 @@ class _SpecView:
         self.__dict__.update(spec)
 
 
-def test_all_is_exact() -> None:
-    public = {n for n, v in vars(support_mod).items() if not n.startswith("_")
-              and (getattr(v, "__module__", None) == support_mod.__name__ or n.isupper())}
-    assert set(support_mod.__all__) == public
-
-
 def test_standardisation_floors_near_constant_features() -> None:
     x = DIGITS[:900]
     center, scale = standardisation(x, shared_units=True)

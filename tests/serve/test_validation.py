@@ -17,7 +17,6 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from demur.serve.core import validation
 from demur.serve.core.bundle import InputSpec
 from demur.serve.errors import InvalidInput, PayloadTooLarge
 from demur.serve.core.validation import PredictRequest, parse_json, validate_predict
@@ -39,13 +38,6 @@ def _error(body: Any, spec: InputSpec = FLAT, max_cases: int = 16) -> InvalidInp
     with pytest.raises(InvalidInput) as info:
         validate_predict(body, spec, max_cases)
     return info.value
-
-
-def test_all_is_exact() -> None:
-    public = {n for n in vars(validation) if not n.startswith("_") and n not in ("annotations",)}
-    defined = {n for n in public if getattr(getattr(validation, n), "__module__", "") == "demur.serve.core.validation"
-               or n.isupper()}
-    assert set(validation.__all__) == defined
 
 
 # --- the messages the brief names -------------------------------------------------------
