@@ -5,18 +5,16 @@ Request path (``POST /v1/predict``)::
     body bytes -> validation.parse_json -> validation.validate_predict (InputSpec of the live model)
       -> Runtime.runner(engine, x)  float32[S, B, K]
       -> summary.summarise -> decision.decide -> render.results
-      -> review.route(...) per-case annotations merged into the results
+      -> review.enqueue(Answered) per-case annotations merged into the results
       -> metrics.observe_predict(...) -> orjson response
 
 Seams for the components that plug in. ``create_app`` builds the configured review
 router and metrics when none are passed; ``Runtime`` itself falls back to no-op hooks:
 
-``review``   ``route(results, cases, summary, decisions, model) -> list[dict | None]``:
-             one annotation per case, merged into that case's result as-is, e.g.
-             ``{"review_id": "r-..."}`` or ``{"review": {"queued": False, "reason": "..."}}``
-             (a bare ``{"queued": ..., ...}`` is wrapped under ``"review"``).
-             ``cases`` is the ``PredictRequest`` (raw inputs ``x`` and ``case_ids``),
-             ``model`` the ``{"name", "version", "checksum"}`` dict. If ``route``
+``review``   ``enqueue(answered: Answered) -> list[dict | None]`` (the ``ReviewHook`` of
+             serve/core/pipeline.py): one annotation per case, merged into that case's
+             result as-is, e.g. ``{"review_id": "r-..."}`` or ``{"review": {"queued": False,
+             "reason": "..."}}``. If ``enqueue``
              raises, the predictions are still answered and every abstained case
              says ``{"review": {"queued": false, "reason": ...}}``.
 ``metrics``  ``observe_predict(x_raw=, summary=, decisions=, graph_seconds=, total_seconds=)``
@@ -58,6 +56,7 @@ from werkzeug.exceptions import HTTPException
 
 from demur.serve.core import render
 from demur.serve.web.admin import install_admin
+from demur.serve.web.auth import ANONYMOUS as _ANONYMOUS
 from demur.serve.web.auth import authenticate, install_auth
 from demur.serve.web.batching import batching_runner
 from demur.serve.core.bundle import load_bundle
@@ -74,6 +73,7 @@ from demur.serve.errors import (
 )
 from demur.serve.web.limits import install_limits
 from demur.serve.adapters.metrics import Metrics
+from demur.serve.core.pipeline import Answered
 from demur.serve.core.summary import summarise
 from demur.serve.core.validation import PredictRequest, parse_json, validate_predict
 
@@ -147,13 +147,9 @@ class EngineHolder:
 class _NoReview:
     """Default review hook: nothing is queued, and the result says so only for abstentions."""
 
-    def route(self, results: list[dict[str, Any]], cases: Any, summary: Any, decisions: Any,
-              model: dict[str, str]) -> list[dict[str, Any] | None]:
-        return [
-            {"review": {"queued": False, "reason": "no review queue is configured"}} if r["decision"] == "abstain"
-            else None
-            for r in results
-        ]
+    def enqueue(self, answered: Answered) -> list[dict[str, Any] | None]:
+        return [{"review": {"queued": False, "reason": "no review queue is configured"}} if a else None
+                for a in answered.decisions.abstain.tolist()]
 
 
 class _NoMetrics:
@@ -256,8 +252,8 @@ class Runtime:
             raise answer
         return answer
 
-    def answer(self, bodies: list[Any], runner: Callable[[Any, np.ndarray], np.ndarray] | None = None
-               ) -> tuple[Live, list[dict[str, Any] | DemurError]]:
+    def answer(self, bodies: list[Any], runner: Callable[[Any, np.ndarray], np.ndarray] | None = None,
+               *, caller: str | None = None) -> tuple[Live, list[dict[str, Any] | DemurError]]:
         """Answer several parsed predict bodies with ONE graph run; return the model that
         answered and, per body in order, its response dict or the ``DemurError`` it earned.
 
@@ -288,7 +284,7 @@ class Runtime:
         summary = summarise(manifest.task, draws, live.level, manifest.target)
         decisions = decide(summary, live.rule)
         results = render.results(summary, decisions, live.rule, manifest.labels, req.case_ids)
-        self._annotate(results, req, summary, decisions, live)
+        self._annotate(Answered(live, req, summary, decisions, results, caller))
         rule = {"score": live.rule.score, "threshold": live.rule.threshold, "source": live.rule.source}
         draw_count = int(np.shape(draws)[0])
         start = 0
@@ -303,23 +299,20 @@ class Runtime:
             log.exception("metrics hook failed")
         return live, answers
 
-    def _annotate(self, results: list[dict[str, Any]], req: Any, summary: Any, decisions: Any,
-                  live: Live) -> None:
+    def _annotate(self, answered: Answered) -> None:
+        results = answered.results
         try:
-            notes = self.review.route(results, req, summary, decisions, live.model)
+            notes = self.review.enqueue(answered)
             if len(notes) != len(results):
                 raise ValueError(f"review hook returned {len(notes)} annotations for {len(results)} cases")
         except Exception as exc:  # a failing queue must not lose the predictions
             log.exception("review hook failed")
             reason = f"review queue failed: {type(exc).__name__}"
-            notes = [{"review": {"queued": False, "reason": reason}} if r["decision"] == "abstain" else None
-                     for r in results]
+            notes = [{"review": {"queued": False, "reason": reason}} if a else None
+                     for a in answered.decisions.abstain.tolist()]
         for result, note in zip(results, notes):
-            if not note:
-                continue
-            if "queued" in note and "review" not in note:
-                note = {"review": note}
-            result.update(note)
+            if note:
+                result.update(note)
 
     def describe(self) -> dict[str, Any]:
         """The body of ``GET /v1/model``."""
@@ -413,7 +406,7 @@ def create_app(
 
     @app.post("/v1/predict")
     def predict() -> Response:
-        authenticate("predict")
+        principal = authenticate("predict")
         if request.mimetype != "application/json":
             got = request.content_type or "no Content-Type"
             raise UnsupportedMediaType(f"Content-Type must be application/json; got {got}", field="Content-Type")
@@ -421,7 +414,8 @@ def create_app(
         if length is not None and length > config.max_body_bytes:
             raise PayloadTooLarge(f"body is {length} bytes; the limit is {config.max_body_bytes}", field="body")
         body = parse_json(request.get_data(cache=False))
-        live, (answer,) = runtime.answer([body])
+        caller = None if principal is _ANONYMOUS else principal.id  # open predict: no caller
+        live, (answer,) = runtime.answer([body], caller=caller)
         g.demur_live = live
         if isinstance(answer, DemurError):
             raise answer

@@ -178,11 +178,11 @@ class _Review:
         self.calls: list[tuple[Any, ...]] = []
         self.fail = fail
 
-    def route(self, results: Any, cases: Any, summary: Any, decisions: Any, model: Any) -> list[Any]:
+    def enqueue(self, answered: Any) -> list[Any]:
         if self.fail:
             raise ConnectionError("store down")
-        self.calls.append((results, cases, summary, decisions, model))
-        return [{"review_id": f"r-{i}"} if r["decision"] == "abstain" else None for i, r in enumerate(results)]
+        self.calls.append(answered)
+        return [{"review_id": f"r-{i}"} if a else None for i, a in enumerate(answered.decisions.abstain.tolist())]
 
 
 class _Metrics:
@@ -207,9 +207,10 @@ def test_review_and_metrics_hooks(tiny_bundle_factory: Any, make_app: Any) -> No
     client = make_app(bundle, threshold=-1.0, review=review, metrics=metrics).test_client()
     body = _post(client, {"cases": _rows(3), "case_ids": ["a", "b", "c"]}).get_json()
     assert [r["review_id"] for r in body["results"]] == ["r-0", "r-1", "r-2"]
-    results, cases, summary, decisions, model = review.calls[0]
-    assert cases.case_ids == ["a", "b", "c"] and cases.x.shape == (3, 64)
-    assert model == body["model"] and decisions.abstain.all()
+    answered = review.calls[0]
+    assert answered.request.case_ids == ["a", "b", "c"] and answered.request.x.shape == (3, 64)
+    assert answered.live.model == body["model"] and answered.decisions.abstain.all()
+    assert answered.live.manifest.task == "classification" and len(answered.results) == 3
     assert metrics.bound == [(bundle.checksum, "mutual_information")]
     seen = metrics.predicts[0]
     assert seen["x_raw"].shape == (3, 64) and seen["graph_seconds"] >= 0 and seen["total_seconds"] >= 0

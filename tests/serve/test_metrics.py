@@ -46,7 +46,7 @@ ROOT = Path(__file__).resolve().parents[2]
 def test_all_is_exact() -> None:
     public = {n for n, v in vars(metrics_mod).items() if not n.startswith("_")
               and getattr(v, "__module__", None) == metrics_mod.__name__}
-    constants = {"BATCH_BUCKETS", "LATENCY_BUCKETS_S", "PREFIX", "PUBLISH_EVERY_S", "SCORE_BUCKETS"}
+    constants = {"BATCH_BUCKETS", "LATENCY_BUCKETS_S", "METHODS", "PREFIX", "PUBLISH_EVERY_S", "SCORE_BUCKETS"}
     assert set(metrics_mod.__all__) == public | constants
 
 

@@ -23,11 +23,12 @@ from demur.serve.errors import ReviewStoreUnavailable
 from demur.serve.review.router import ReviewRouter, accuracy_estimate, audit_draw
 from demur.serve.review.store import NewItem, SqliteStore
 from demur.serve.review.spool import Spool
-from tests.serve._review_helpers import MODEL
+from tests.serve._review_helpers import MODEL, answered
 
 
 def test_all_is_exact() -> None:
-    assert sorted(review_module.__all__) == sorted(["SPOOL_FILE", "STORE_RETRY_MAX_S", "ReviewRouter", "accuracy_estimate", "audit_draw"])
+    assert sorted(review_module.__all__) == sorted(["NOT_QUEUED", "PENDING_REFRESH_S", "SPOOL_FILE", "STORE_RETRY_MAX_S",
+                                                   "ReviewRouter", "accuracy_estimate", "audit_draw"])
 
 
 class SwitchStore:
@@ -58,21 +59,11 @@ def parts(tmp_path: Path) -> Iterator[tuple[SwitchStore, Spool]]:
     inner.close()
 
 
-def _results(decisions: list[str], case_ids: list[str | None] | None = None) -> list[dict[str, Any]]:
-    ids = case_ids or [None] * len(decisions)
-    return [{"case_id": cid, "decision": d, "prediction": "7", "mean": [0.1] * 10,
-             "interval": {"level": 0.9, "lower": [0.0] * 10, "upper": [0.2] * 10},
-             "uncertainty": {"mutual_information": 0.3, "predictive_entropy": 2.0, "expected_entropy": 1.7,
-                             "unit": "nats"},
-             "score": {"name": "mutual_information", "value": 0.3}, "threshold": 0.2, "reason": "r"}
-            for d, cid in zip(decisions, ids)]
-
-
 def test_abstentions_are_queued_before_the_answer(parts: tuple[SwitchStore, Spool]) -> None:
     store, spool = parts
     router = ReviewRouter(store, spool)
     x = np.arange(3 * 64, dtype=np.float32).reshape(3, 64)
-    notes = router.route(_results(["abstain", "accept", "abstain"]), x, None, None, MODEL)
+    notes = router.enqueue(answered(["abstain", "accept", "abstain"], x))
     assert notes[1] is None
     for i in (0, 2):
         got = store.inner.get(notes[i]["review_id"])  # committed: readable now
@@ -87,13 +78,13 @@ def test_store_down_spools_says_so_counts_and_replays_exactly_once(parts: tuple[
     router = ReviewRouter(store, spool, replay_s=60, on_failure=seen.append)
     x = np.zeros((2, 64), dtype=np.float32)
     store.down = True
-    notes = router.route(_results(["abstain", "abstain"], ["parcel-1", None]), x, None, None, MODEL)
+    notes = router.enqueue(answered(["abstain", "abstain"], x, ["parcel-1", None]))
     for note in notes:
         review = note["review"]
         assert review["queued"] is False and review["spooled"] is True and "unavailable" in review["reason"]
     assert router.failures == 2 and seen == [2] and spool.size() == 2
     # The client retries parcel-1 while the store is still down: spooled again, with another id.
-    router.route(_results(["abstain"], ["parcel-1"]), x[:1], None, None, MODEL)
+    router.enqueue(answered(["abstain"], x[:1], ["parcel-1"]))
     calls = store.calls
     assert calls == 1, "after a failure the store is not tried on the request path until the replayer finds it"
     store.down = False
@@ -106,7 +97,7 @@ def test_store_down_spools_says_so_counts_and_replays_exactly_once(parts: tuple[
         assert store.inner.get(note["review"]["pending_review_id"]).status == "pending"
     assert spool.size() == 0
     # the store is tried on the request path again
-    again = router.route(_results(["abstain"]), x[:1], None, None, MODEL)
+    again = router.enqueue(answered(["abstain"], x[:1]))
     assert "review_id" in again[0]
 
 
@@ -118,16 +109,16 @@ def test_while_the_store_stays_down_the_request_path_does_not_retry_it(parts: tu
     router = ReviewRouter(store, spool, replay_s=0.05)
     x = np.zeros((1, 64), dtype=np.float32)
     store.down = True
-    router.route(_results(["abstain"]), x, None, None, MODEL)
+    router.enqueue(answered(["abstain"], x))
     assert router.replayer is not None
     router.replayer.stop()  # count only the request path's calls from here
     calls = store.calls
     threading.Event().wait(0.2)  # four replay intervals
-    router.route(_results(["abstain"]), x, None, None, MODEL)
+    router.enqueue(answered(["abstain"], x))
     assert store.calls == calls and spool.size() == 2
     store.down = False
     router.replayer.run_once()
-    assert "review_id" in router.route(_results(["abstain"]), x, None, None, MODEL)[0]
+    assert "review_id" in router.enqueue(answered(["abstain"], x))[0]
 
 
 def test_without_a_working_spool_the_answer_says_not_queued(tmp_path: Path, parts: tuple[SwitchStore, Spool]) -> None:
@@ -135,7 +126,7 @@ def test_without_a_working_spool_the_answer_says_not_queued(tmp_path: Path, part
     (tmp_path / "file").write_text("x")
     router = ReviewRouter(store, Spool(tmp_path / "file" / "spool.sqlite3"))
     store.down = True
-    [note] = router.route(_results(["abstain"]), np.zeros((1, 64)), None, None, MODEL)
+    [note] = router.enqueue(answered(["abstain"]))
     assert note == {"review": {"queued": False, "spooled": False, "reason": note["review"]["reason"]}}
     assert router.stats()["unspooled"] == 1 and router.failures == 1
 
@@ -143,11 +134,10 @@ def test_without_a_working_spool_the_answer_says_not_queued(tmp_path: Path, part
 def test_audit_sampling_goes_to_review_silently(parts: tuple[SwitchStore, Spool]) -> None:
     store, spool = parts
     router = ReviewRouter(store, spool, audit_fraction=1.0)
-    notes = router.route(_results(["accept"] * 4), np.zeros((4, 64)), None, None, MODEL)
+    notes = router.enqueue(answered(["accept"] * 4))
     assert notes == [None] * 4  # the client is not told
     assert [i.kind for i in store.inner.list()] == ["audit"] * 4
-    assert ReviewRouter(store, spool, audit_fraction=0.0).route(
-        _results(["accept"]), np.zeros((1, 64)), None, None, MODEL) == [None]
+    assert ReviewRouter(store, spool, audit_fraction=0.0).enqueue(answered(["accept"])) == [None]
 
 
 def test_audit_choice_is_deterministic_per_case_id_and_near_the_fraction() -> None:
@@ -180,7 +170,7 @@ def test_accuracy_known_value_zero_of_one() -> None:
 def test_router_accuracy_from_decided_items(parts: tuple[SwitchStore, Spool]) -> None:
     store, spool = parts
     router = ReviewRouter(store, spool, audit_fraction=1.0)
-    router.route(_results(["accept"] * 4 + ["abstain"] * 2), np.zeros((6, 64)), None, None, MODEL)
+    router.enqueue(answered(["accept"] * 4 + ["abstain"] * 2))
     labels = {"audit": ["7", "7", "7", "1"], "abstain": ["2", "7"]}
     for _ in range(6):
         got = store.inner.claim_next("r")

@@ -40,7 +40,7 @@ LEASE_S = 60.0
 def test_all_is_exact() -> None:
     assert sorted(review_store.__all__) == sorted([
         "KINDS", "SCHEMA_VERSION", "STATUSES", "NewItem", "PostgresStore", "ReviewItem", "ReviewStore",
-        "SqliteStore", "new_id", "new_item", "open_store"])
+        "SqliteStore", "new_id", "new_item", "open_store", "unstorable"])
 
 
 @pytest.fixture(params=["sqlite", pytest.param("postgres", marks=pytest.mark.postgres)])
