@@ -39,7 +39,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
 
-from demur.serve.errors import BundleNotFound, ChecksumMismatch, ManifestInvalid, UnsupportedFormat
+from demur.serve.errors import BundleError, BundleNotFound, ChecksumMismatch, ManifestInvalid, UnsupportedFormat
 
 __all__ = [
     "FORMAT_NAME",

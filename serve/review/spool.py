@@ -17,9 +17,11 @@ the store committed them.
 One bad item never stalls the spool. The store sets aside an item it can
 never hold (its dead-letter table; ``enqueue`` gives ``None`` for it) and
 stores the rest; if a batch still fails with anything but an outage, the
-replay goes item by item, and an item that fails alone is moved to the
-spool's own dead-letter table (``demur_spool_rejected``, with the reason),
-as is an entry that cannot be read back. The replayer thread survives any
+replay goes item by item, and an item that fails alone while others get
+through is moved to the spool's own dead-letter table
+(``demur_spool_rejected``, with the reason), as is an entry that cannot be
+read back. (When every item fails alone, the store is at fault, not the
+items: they stay spooled.) The replayer thread survives any
 exception: it logs it, counts it (``errors``, ``on_error``) and tries again
 at the next tick.
 
@@ -176,16 +178,25 @@ class Spool:
             moved += len(entries)
 
     def _one_by_one(self, store: ReviewStore, entries: Sequence[tuple[int, NewItem]]) -> int:
+        """Each item alone. Those that fail are set aside only if others got through (then
+        the fault is in them); if none did, the fault is the store's: re-raise, keep all."""
+        failed: list[tuple[int, str]] = []
+        first: Exception | None = None
         for seq, item in entries:
             try:
                 store.enqueue([item])
             except ReviewStoreUnavailable:
                 raise
             except Exception as exc:
+                first = first or exc
                 reason = exc.message if isinstance(exc, DemurError) else f"{type(exc).__name__}: {exc}"
-                self._set_aside([(seq, f"the review store refused it: {reason}")])
+                failed.append((seq, f"the review store refused it: {reason}"))
                 continue
             self._remove([seq])
+        if failed and len(failed) == len(entries) and first is not None:
+            raise first
+        if failed:
+            self._set_aside(failed)
         return len(entries)
 
 

@@ -197,3 +197,72 @@ def test_from_config_uses_sqlite_under_data_dir(tmp_path: Path) -> None:
         assert not (tmp_path / "d").exists(), "nothing touches disk before the first item"
     finally:
         router.close()
+
+
+# --- limits: the pending ceiling and per-caller quotas -----------------------------------------
+
+
+class Clock:
+    def __init__(self) -> None:
+        self.t = 1000.0
+
+    def __call__(self) -> float:
+        return self.t
+
+
+def test_the_ceiling_holds_and_the_answer_says_backlog_full(parts: tuple[SwitchStore, Spool]) -> None:
+    store, spool = parts
+    events: list[tuple[str, int]] = []
+    clock = Clock()
+    router = ReviewRouter(store, spool, max_pending=5, on_event=lambda name, n: events.append((name, n)),
+                          clock=clock)
+    notes = router.enqueue(answered(["abstain"] * 3))
+    assert all("review_id" in n for n in notes)
+    notes = router.enqueue(answered(["abstain", "accept", "abstain", "abstain"]))  # room for 2
+    assert "review_id" in notes[0] and notes[1] is None and "review_id" in notes[2]
+    assert notes[3] == {"review": {"queued": False, "reason": "not queued: backlog full"}}
+    assert router.enqueue(answered(["abstain"])) == [{"review": {"queued": False,
+                                                                 "reason": "not queued: backlog full"}}]
+    assert store.inner.counts()["pending"] == 5
+    assert events == [("backlog_full", 1), ("backlog_full", 1)] and router.stats()["backlog_full"] == 2
+    claimed = store.inner.claim_next("t-1")
+    assert claimed is not None
+    store.inner.decide(claimed.id, "t-1", label="1")
+    clock.t += 1.0  # the next refresh sees the decided item gone from pending
+    assert "review_id" in router.enqueue(answered(["abstain"]))[0]
+
+
+def test_audits_never_take_room_from_abstentions(parts: tuple[SwitchStore, Spool]) -> None:
+    store, spool = parts
+    router = ReviewRouter(store, spool, max_pending=2, audit_fraction=1.0, clock=Clock())
+    notes = router.enqueue(answered(["accept", "abstain", "accept", "abstain"]))
+    assert notes[0] is None and notes[2] is None  # audits are dropped silently
+    assert "review_id" in notes[1] and "review_id" in notes[3]
+    assert [it.kind for it in store.inner.list()] == ["abstain", "abstain"]
+
+
+def test_per_caller_quota_per_minute(parts: tuple[SwitchStore, Spool]) -> None:
+    store, spool = parts
+    clock = Clock()
+    events: list[tuple[str, int]] = []
+    router = ReviewRouter(store, spool, quota_per_min=3, clock=clock,
+                          on_event=lambda name, n: events.append((name, n)))
+    a = router.enqueue(answered(["abstain"] * 4, caller="t-aaaa"))
+    assert [("review_id" in n) for n in a] == [True, True, True, False]
+    assert a[3] == {"review": {"queued": False, "reason": "not queued: enqueue quota exceeded"}}
+    assert all("review_id" in n for n in router.enqueue(answered(["abstain"] * 3, caller="t-bbbb")))
+    clock.t += 60.0  # a new minute
+    assert all("review_id" in n for n in router.enqueue(answered(["abstain"] * 3, caller="t-aaaa")))
+    assert events == [("quota", 1)]
+
+
+def test_an_unstorable_case_is_set_aside_and_the_rest_queued(parts: tuple[SwitchStore, Spool]) -> None:
+    """Past the boundary (e.g. a caller of the pipeline that skips validation): the store
+    rejects the one item, the others are queued, the answer says so, the event is counted."""
+    store, spool = parts
+    events: list[tuple[str, int]] = []
+    router = ReviewRouter(store, spool, on_event=lambda name, n: events.append((name, n)))
+    notes = router.enqueue(answered(["abstain"] * 3, case_ids=["fine-1", "bad\x00", "fine-2"]))
+    assert "review_id" in notes[0] and "review_id" in notes[2]
+    assert notes[1] == {"review": {"queued": False, "reason": review_module.NOT_QUEUED["rejected"]}}
+    assert events == [("rejected", 1)] and store.inner.rejected_count() == 1 and spool.size() == 0
