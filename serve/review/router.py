@@ -291,7 +291,7 @@ class ReviewRouter:
         if now - self._pending_at >= PENDING_REFRESH_S and time.monotonic() >= self._skip_until:
             self._pending_at = now
             try:
-                self._pending = int(self.store.counts()["pending"])
+                self._pending = int(self.store.pending_count())
             except Exception as exc:  # keep the last figure; the enqueue will meet the outage
                 log.debug("pending count unavailable: %r", exc)
         return max(0, self.max_pending - self._pending)

@@ -440,3 +440,12 @@ def test_a_version_1_store_is_migrated(backend: tuple[str, str], clock: Clock) -
             assert cur.fetchall() == [(SCHEMA_VERSION,)]
     finally:
         new.close()
+
+
+def test_pending_count_is_the_pending_of_counts(store: ReviewStore, clock: Clock) -> None:
+    store.enqueue([item() for _ in range(4)])
+    store.claim_next("t-1")
+    store.claim_next("t-2")
+    assert store.pending_count() == store.counts()["pending"] == 2
+    clock.advance(LEASE_S + 1)  # both leases expired: pending again
+    assert store.pending_count() == store.counts()["pending"] == 4
