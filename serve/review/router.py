@@ -34,10 +34,10 @@ Limits, so no client can flood the people who review:
 - a **ceiling** on pending items (``config.review_max_pending``, default 50,000; 0
   turns it off). Above it the prediction is still answered and the abstention says
   ``{"review": {"queued": false, "reason": "not queued: backlog full"}}``. The
-  pending count is read from the store at most once a second
-  (``PENDING_REFRESH_S``) and this process's own enqueues are added in between, so
-  with several workers the queue can pass the ceiling by what the others queued
-  within that second;
+  pending count is read from the store once a second (``PENDING_REFRESH_S``; every
+  0.1 s past half the ceiling) and this process's own enqueues are added in
+  between, so with several workers the queue can pass the ceiling by what the
+  others queued since the last read;
 - an optional **quota** per caller (``config.review_quota_per_min``: items per
   token fingerprint, ``Answered.caller``, per minute, counted per process; 0, the
   default, turns it off; an open predict endpoint is one caller): above it,
@@ -82,7 +82,8 @@ STORE_RETRY_MAX_S = 60.0
 """Longest the router spools without trying the store after a failure, when a replayer
 watches the store (it ends the wait as soon as a replay succeeds)."""
 PENDING_REFRESH_S = 1.0
-"""How often (seconds) the router reads the store's pending count for the ceiling."""
+"""How often (seconds) the router reads the store's pending count for the ceiling; ten
+times as often once this process's figure is past half the ceiling."""
 NOT_QUEUED = {
     "backlog_full": "not queued: backlog full",
     "quota": "not queued: enqueue quota exceeded",
@@ -264,7 +265,7 @@ class ReviewRouter:
                notes: list[dict[str, Any] | None]) -> list[tuple[int, str]]:
         """Keep what the ceiling and the caller's quota allow, abstentions first; annotate
         the refused abstentions in ``notes``; drop refused audits silently."""
-        room = self._room()
+        room = self._room(len(chosen))
         quota = self._quota_left(caller)
         keep = min(len(chosen), room, quota)
         if keep == len(chosen):
@@ -283,12 +284,14 @@ class ReviewRouter:
             self._event(why, len(refused))
         return kept
 
-    def _room(self) -> int:
+    def _room(self, wanted: int) -> int:
         """Items the ceiling still admits (a large number when there is none)."""
         if self.max_pending <= 0:
             return 1 << 62
         now = self._clock()
-        if now - self._pending_at >= PENDING_REFRESH_S and time.monotonic() >= self._skip_until:
+        near = 2 * (self._pending + wanted) > self.max_pending
+        every = PENDING_REFRESH_S / 10 if near else PENDING_REFRESH_S
+        if now - self._pending_at >= every and time.monotonic() >= self._skip_until:
             self._pending_at = now
             try:
                 self._pending = int(self.store.pending_count())

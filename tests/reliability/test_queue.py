@@ -56,7 +56,7 @@ def _counts(url: str) -> dict[str, int]:
 
 # -- queue flood -------------------------------------------------------------------------------
 def test_queue_flood_holds_the_ceiling(tmp_path: Path, tiny_bundle_factory: Any) -> None:
-    ceiling, n_requests, per_request = 1500, 12, 512
+    ceiling, n_requests, per_request = 1500, 24, 256
     # threshold 0: every case abstains, the flood of the report (20,419 items queued in 19 s)
     env = _env(tmp_path, DEMUR_REVIEW_MAX_PENDING=str(ceiling), DEMUR_THRESHOLD="0")
 
