@@ -135,6 +135,32 @@ def answered(decisions: list[str], x: Any = None, case_ids: list[str | None] | N
                     decisions=dec, results=results(decisions, ids), caller=caller)
 
 
+class SwitchStore:
+    """A real store behind a switch: while ``down`` every call fails as if unreachable;
+    ``calls`` counts enqueues."""
+
+    def __init__(self, inner: Any) -> None:
+        self.inner = inner
+        self.down = False
+        self.calls = 0
+        self.lease_s = inner.lease_s
+
+    def enqueue(self, items: Any) -> list[str | None]:
+        from demur.serve.errors import ReviewStoreUnavailable
+
+        self.calls += 1
+        if self.down:
+            raise ReviewStoreUnavailable("connection refused (test)")
+        return self.inner.enqueue(items)
+
+    def __getattr__(self, name: str) -> Any:
+        from demur.serve.errors import ReviewStoreUnavailable
+
+        if self.down:
+            raise ReviewStoreUnavailable("connection refused (test)")
+        return getattr(self.inner, name)
+
+
 class TcpProxy:
     """Forwards 127.0.0.1:port to a target; ``stop`` refuses new connections and cuts open ones,
     ``start`` accepts again on the same port. Stands in for a database that goes away."""

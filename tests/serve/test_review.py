@@ -10,46 +10,23 @@ the audit sample size against scipy.stats.binom quantiles.
 from __future__ import annotations
 
 import threading
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterator
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 import pytest
 from scipy import stats
 
 from demur.serve.review import router as review_module
-from demur.serve.errors import ReviewStoreUnavailable
 from demur.serve.review.router import ReviewRouter, accuracy_estimate, audit_draw
-from demur.serve.review.store import NewItem, SqliteStore
+from demur.serve.review.store import SqliteStore
 from demur.serve.review.spool import Spool
-from tests.serve._review_helpers import MODEL, answered
+from tests.serve._review_helpers import MODEL, SwitchStore, answered
 
 
 def test_all_is_exact() -> None:
     assert sorted(review_module.__all__) == sorted(["NOT_QUEUED", "PENDING_REFRESH_S", "SPOOL_FILE", "STORE_RETRY_MAX_S",
                                                    "ReviewRouter", "accuracy_estimate", "audit_draw"])
-
-
-class SwitchStore:
-    """A real SQLite store behind a switch: while ``down`` every call fails as if unreachable."""
-
-    def __init__(self, inner: SqliteStore) -> None:
-        self.inner = inner
-        self.down = False
-        self.calls = 0
-        self.lease_s = inner.lease_s
-
-    def enqueue(self, items: Sequence[NewItem]) -> list[str]:
-        self.calls += 1
-        if self.down:
-            raise ReviewStoreUnavailable("connection refused (test)")
-        return self.inner.enqueue(items)
-
-    def __getattr__(self, name: str) -> Any:
-        if self.down:
-            raise ReviewStoreUnavailable("connection refused (test)")
-        return getattr(self.inner, name)
 
 
 @pytest.fixture()

@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import contextlib
 import json
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
@@ -26,11 +26,11 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from demur.serve.core.validation import MAX_CASE_ID_CHARS, client_text
-from demur.serve.errors import InvalidInput, ReviewStoreUnavailable
+from demur.serve.errors import InvalidInput
 from demur.serve.review.router import ReviewRouter
 from demur.serve.review.spool import Spool
-from demur.serve.review.store import NewItem, ReviewStore, open_store
-from tests.serve._review_helpers import PG_URL, pg_schema, require_postgres, with_schema
+from demur.serve.review.store import open_store
+from tests.serve._review_helpers import PG_URL, SwitchStore, pg_schema, require_postgres, with_schema
 
 GOOD_ID = st.text(st.characters(codec="utf-8", exclude_categories=("Cc", "Cs")), min_size=1, max_size=40)
 HOSTILE_ID = st.one_of(
@@ -41,25 +41,6 @@ HOSTILE_ID = st.one_of(
     st.integers(201, 10_000).map(lambda n: "x" * n),                               # up to 10 KB
     st.just(""),
 )
-
-
-class CutStore:
-    """A real store behind a switch: while ``down``, every call fails as if unreachable."""
-
-    def __init__(self, inner: ReviewStore) -> None:
-        self.inner = inner
-        self.down = False
-        self.lease_s = inner.lease_s
-
-    def enqueue(self, items: Sequence[NewItem]) -> list[str | None]:
-        if self.down:
-            raise ReviewStoreUnavailable("connection refused (test)")
-        return self.inner.enqueue(items)
-
-    def __getattr__(self, name: str) -> Any:
-        if self.down:
-            raise ReviewStoreUnavailable("connection refused (test)")
-        return getattr(self.inner, name)
 
 
 @pytest.fixture(params=["sqlite", pytest.param("postgres", marks=pytest.mark.postgres)])
@@ -73,8 +54,8 @@ def store_url(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
 
 
 @contextlib.contextmanager
-def _app(url: str, tmp_path: Path, tiny_bundle_factory: Any, make_app: Any) -> Iterator[tuple[Any, CutStore, Any]]:
-    store = CutStore(open_store(url, lease_s=60))
+def _app(url: str, tmp_path: Path, tiny_bundle_factory: Any, make_app: Any) -> Iterator[tuple[Any, SwitchStore, Any]]:
+    store = SwitchStore(open_store(url, lease_s=60))
     router = ReviewRouter(store, Spool(tmp_path / "spool.sqlite3"), replay_s=3600)  # replays by hand below
     app = make_app(tiny_bundle_factory(), review=router, threshold=-1.0)  # every case abstains
     try:
