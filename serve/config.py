@@ -32,6 +32,9 @@ DEFAULT_PORT = 8600
 DEFAULT_MAX_CASES = 1024
 DEFAULT_MAX_BODY_BYTES = 8 * 1024 * 1024
 DEFAULT_LEASE_S = 300.0
+DEFAULT_MAX_PENDING = 50_000
+"""Pending review items above which abstentions are answered but not queued: at a minute
+a case about 830 hours of one reviewer's time, past any backlog a team can work down."""
 
 
 
@@ -76,6 +79,8 @@ class ServeConfig:
     review_lease_s: float = DEFAULT_LEASE_S
     audit_fraction: float = 0.01
     spool_replay_s: float = 5.0
+    review_max_pending: int = DEFAULT_MAX_PENDING  # ceiling on pending review items; 0: none
+    review_quota_per_min: int = 0  # review items per caller (token) per minute, per process; 0: none
     # access: tokens come from these files or the matching DEMUR_*_TOKENS env (comma separated)
     predict_tokens: str = ""  # empty: predict is open
     review_tokens: str = ""
@@ -182,6 +187,9 @@ def _check(cfg: ServeConfig) -> None:
                  "max_body_bytes", "queue_max_requests", "drift_window", "abstain_window"):
         if getattr(cfg, name) < 1:
             raise ConfigError(f"{name} must be at least 1; got {getattr(cfg, name)}", field=name)
+    for name in ("review_max_pending", "review_quota_per_min"):
+        if getattr(cfg, name) < 0:
+            raise ConfigError(f"{name} must be >= 0 (0: no limit); got {getattr(cfg, name)}", field=name)
     if cfg.batch_max_rows < 0:
         raise ConfigError(f"batch_max_rows must be >= 0 (0: chosen by graph kind); got {cfg.batch_max_rows}",
                           field="batch_max_rows")

@@ -22,6 +22,7 @@ so callers that only know Python's own exceptions still catch it::
     ├── Overloaded(RuntimeError)             queue full or deadline passed (503)
     ├── GraphRunError(RuntimeError)          onnxruntime failed on validated input (500)
     ├── ReviewStoreUnavailable(ConnectionError)  the review store cannot be reached
+    ├── ReviewItemRejected(ValueError)       this one item can never be stored (set aside)
     └── CalibrationInfeasible(ValueError)    no threshold meets the target
 
 Every error carries ``field`` (the offending key path, or ``None``), an HTTP
@@ -49,6 +50,7 @@ __all__ = [
     "NotLoaded",
     "Overloaded",
     "PayloadTooLarge",
+    "ReviewItemRejected",
     "ReviewStoreUnavailable",
     "SmokeFailed",
     "Unauthorized",
@@ -161,6 +163,15 @@ class GraphRunError(DemurError, RuntimeError):
 class ReviewStoreUnavailable(DemurError, ConnectionError):
     status = 503
     code = "review_store_unavailable"
+
+
+class ReviewItemRejected(DemurError, ValueError):
+    """A data error, not an outage: the store can never hold this item as it is (text the
+    database cannot encode, a value out of its range). The store sets the item aside in its
+    dead-letter table; retrying it would fail the same way, so it must not hold up others."""
+
+    status = 422
+    code = "review_item_rejected"
 
 
 class CalibrationInfeasible(DemurError, ValueError):

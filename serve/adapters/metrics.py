@@ -32,7 +32,18 @@ demur_drift_score_ks_critical       gauge      KS value noise alone exceeds with
 demur_drift_window_cases            gauge      cases in the drift window
 demur_review_queue_cases            gauge      review items by status (from the review router)
 demur_review_enqueue_failures_total counter    abstentions the review queue did not accept
+demur_review_not_queued_total       counter    abstentions not queued on purpose, label ``reason``:
+                                               backlog_full, quota, rejected (set aside)
+demur_review_replay_errors_total    counter    spool replay passes that failed (not outages)
+demur_review_pending_ceiling        gauge      the ceiling on pending review items (0: none)
 ==================================  =========  =========================================
+
+Label values come from fixed sets, whatever a client sends: ``method`` is one of
+``METHODS`` or ``other``; ``route`` is a route template of the app (or ``/v1/predict``,
+``unmatched``), anything else ``other``; ``status`` is a three-digit code; ``reason``
+and ``code`` are names defined here and in serve/errors.py. (Prometheus keeps one series
+per label set; a label a client can choose is a memory leak on the server and on
+Prometheus, see prometheus.io/docs/practices/naming, "Labels".)
 
 The abstention window is count-based: the last ``config.abstain_window``
 decisions (default 1000), so ``demur_abstain_ratio`` gives an instant view
@@ -99,6 +110,7 @@ from demur.serve.errors import DemurError
 __all__ = [
     "BATCH_BUCKETS",
     "LATENCY_BUCKETS_S",
+    "METHODS",
     "PREFIX",
     "PUBLISH_EVERY_S",
     "SCORE_BUCKETS",
@@ -117,6 +129,11 @@ SCORE_BUCKETS = (1e-6, 3e-6, 1e-5, 3e-5, 1e-4, 3e-4, 0.001, 0.003, 0.01, 0.03, 0
                  1.0, 1.5, 2.5, 5.0)
 """Decision scores and mutual information are >= 0; MI for K classes is at most ln K (2.30 nats for 10).
 Log-spaced at the low end: a confident model's MI on clean inputs is often 1e-5 nats or less."""
+
+METHODS = frozenset({"GET", "HEAD", "POST", "PUT", "DELETE", "PATCH", "OPTIONS"})
+"""HTTP methods kept as ``method`` label values; any other method is counted as ``other``."""
+_BASE_ROUTES = frozenset({"/v1/predict", "unmatched"})
+_NOT_QUEUED = ("backlog_full", "quota", "rejected")
 
 PUBLISH_EVERY_S = 1.0
 """In multiprocess mode a worker writes its drift figures for the others' scrapes at most this often."""
@@ -185,6 +202,8 @@ class Metrics:
         # about 10 us a call (argument checks, a lock), several times per
         # request. Safe to keep because these metrics are never cleared.
         self._children: dict[tuple[Any, ...], Any] = {}
+        self._routes: frozenset[str] = _BASE_ROUTES
+        self._app: Any = None
         self._build(self.registry)
         self.registry.register(_StateCollector(self, pooled_from=None))
 
@@ -223,6 +242,14 @@ class Metrics:
         self._connections_refused = Counter(f"{p}_http_connections_refused",
                                             "Connections the loop front refused (worker_connections reached).",
                                             registry=reg)
+        self.not_queued = Counter(f"{p}_review_not_queued",
+                                  "Abstained cases not queued on purpose, by reason (backlog_full: the pending "
+                                  "ceiling; quota: the caller's per-minute quota; rejected: set aside as unstorable).",
+                                  ["reason"], registry=reg)
+        for reason in _NOT_QUEUED:  # every series from 0, so increase() sees the first event
+            self.not_queued.labels(reason)
+        self.replay_errors = Counter(f"{p}_review_replay_errors",
+                                     "Spool replay passes that failed with anything but a store outage.", registry=reg)
         # per-process windows, published for the multiprocess merge
         self.abstain_window_cases = Gauge(f"{p}_abstain_window_cases",
                                           "Decisions in the recent abstention window (summed over workers).",
@@ -335,9 +362,22 @@ class Metrics:
                     self._publish_drift()
 
     def observe_request(self, route: str, method: str, status: int, seconds: float) -> None:
-        """Record one answered HTTP request (the app's ``after_request`` hook calls this)."""
-        self._child(self.requests, route, method, str(status)).inc()
+        """Record one answered HTTP request (the app's ``after_request`` hook calls this).
+        ``route`` and ``method`` are mapped onto fixed sets (see the module docstring)."""
+        if route not in self._routes:
+            route = self._route_label(route)
+        if method not in METHODS:
+            method = "other"
+        code = int(status) if 100 <= int(status) <= 599 else 0
+        self._child(self.requests, route, method, str(code)).inc()
         self._child(self.request_seconds, route).observe(max(0.0, float(seconds)))
+
+    def _route_label(self, route: str) -> str:
+        """``route`` if it is one of the app's route templates, else ``other``. The app's
+        url map is read again only when an unknown name shows up (blueprints register late)."""
+        if self._app is not None:
+            self._routes = _BASE_ROUTES | {r.rule for r in self._app.url_map.iter_rules()}
+        return route if route in self._routes else "other"
 
     def _child(self, metric: Any, *values: str) -> Any:
         """``metric.labels(*values)``, cached (a dict read after the first call)."""
@@ -350,6 +390,15 @@ class Metrics:
     def observe_connection_refused(self) -> None:
         """A connection the loop front refused (worker_connections reached)."""
         self._connections_refused.inc()
+    def review_event(self, name: str, n: int = 1) -> None:
+        """The review router's events: ``backlog_full`` / ``quota`` / ``rejected`` (cases not
+        queued, ``n`` of them) and ``replay_error``; any other name is ignored."""
+        if n <= 0:
+            return
+        if name == "replay_error":
+            self.replay_errors.inc(n)
+        elif name in _NOT_QUEUED:
+            self._child(self.not_queued, name).inc(n)
 
     def review_enqueue_failed(self, n: int = 1) -> None:
         """Count abstained cases that the review queue did not accept at once."""
@@ -424,6 +473,7 @@ class Metrics:
         from flask import Blueprint, Response, g, request
 
         self._runtime = app.extensions.get("demur")
+        self._app = app
         if self._review is None and self._runtime is not None:
             review = getattr(self._runtime, "review", None)
             if hasattr(review, "queue_depths"):
@@ -542,6 +592,11 @@ class _StateCollector:
             yield GaugeMetricFamily(f"{PREFIX}_calibrated_abstain_ratio",
                                     "Abstention rate expected from calibration (held-out scores above the threshold).",
                                     value=m._calibrated_ratio)
+        ceiling = getattr(m._review, "max_pending", None)
+        if isinstance(ceiling, int):
+            yield GaugeMetricFamily(f"{PREFIX}_review_pending_ceiling",
+                                    "Pending review items above which abstentions are not queued (0: no ceiling).",
+                                    value=float(ceiling))
         depths = _review_depths(m._review)
         if depths is not None:
             q = GaugeMetricFamily(f"{PREFIX}_review_queue_cases", "Review items by status.", labels=["status"])

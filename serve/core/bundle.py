@@ -39,7 +39,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
 
-from demur.serve.errors import BundleNotFound, ChecksumMismatch, ManifestInvalid, UnsupportedFormat
+from demur.serve.errors import BundleError, BundleNotFound, ChecksumMismatch, ManifestInvalid, UnsupportedFormat
 
 __all__ = [
     "FORMAT_NAME",
@@ -302,12 +302,14 @@ def load_bundle(path: str | os.PathLike[str], *, verify: bool = True) -> Bundle:
         raise BundleNotFound(f"no bundle directory at {root}", field="bundle")
     if not manifest_path.is_file():
         raise BundleNotFound(f"{root} has no {MANIFEST}; is this a demur bundle?", field=MANIFEST)
+    _inside(root, MANIFEST, MANIFEST)
     data = manifest_path.read_bytes()
     checksum = hashlib.sha256(data).hexdigest()
     seal_path = root / SEAL
     if verify:
         if not seal_path.is_file():
             raise BundleNotFound(f"{root} has no {SEAL}; the bundle is incomplete", field=SEAL)
+        _inside(root, SEAL, SEAL)
         recorded = seal_path.read_text(encoding="ascii", errors="replace").strip()
         if recorded != checksum:
             raise ChecksumMismatch(
@@ -322,12 +324,16 @@ def load_bundle(path: str | os.PathLike[str], *, verify: bool = True) -> Bundle:
     if not isinstance(raw, dict):
         raise ManifestInvalid(f"{MANIFEST} must hold a JSON object", field=MANIFEST)
     manifest = _parse(raw)
+    for entry in manifest.graphs.values():
+        gpath = root / entry.file
+        if gpath.is_symlink() or gpath.exists():
+            _inside(root, entry.file, f"graphs.{entry.kind}.file")
+        if verify and not gpath.is_file():
+            raise BundleNotFound(f"graph file {entry.file} named in the manifest is missing",
+                                 field=f"graphs.{entry.kind}.file")
     if verify:
         for entry in manifest.graphs.values():
             gpath = root / entry.file
-            if not gpath.is_file():
-                raise BundleNotFound(f"graph file {entry.file} named in the manifest is missing",
-                                     field=f"graphs.{entry.kind}.file")
             digest = sha256_file(gpath)
             if digest != entry.sha256:
                 raise ChecksumMismatch(
@@ -336,6 +342,20 @@ def load_bundle(path: str | os.PathLike[str], *, verify: bool = True) -> Bundle:
                     field=f"graphs.{entry.kind}.sha256",
                 )
     return Bundle(path=root, manifest=manifest, checksum=checksum)
+
+
+def _inside(root: Path, name: str, field: str) -> None:
+    """Refuse a bundle file that is a symbolic link or resolves outside the bundle directory:
+    the seal covers the bytes the manifest names, and a link would let them change (or be
+    read from anywhere on the host) without the bundle changing. The directory itself may
+    be a link (``bundles/current -> v7``)."""
+    path = root / name
+    if path.is_symlink():
+        raise BundleError(f"{name} in bundle {root} is a symbolic link; bundle files must be regular files "
+                          "inside the bundle directory (copy the file in instead)", field=field)
+    base = root.resolve()
+    if not path.resolve().is_relative_to(base):
+        raise BundleError(f"{name} resolves outside bundle {root}; bundle files must live inside it", field=field)
 
 
 def _atomic_write(path: Path, data: bytes) -> None:

@@ -29,6 +29,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 from dataclasses import dataclass
 from itertools import chain
 from typing import Any
@@ -39,7 +40,7 @@ import orjson
 from demur.serve.core.bundle import InputSpec
 from demur.serve.errors import InvalidInput, PayloadTooLarge
 
-__all__ = ["BODY_KEYS", "MAX_CASE_ID_CHARS", "PredictRequest", "parse_json", "validate_predict"]
+__all__ = ["BODY_KEYS", "MAX_CASE_ID_CHARS", "PredictRequest", "client_text", "parse_json", "validate_predict"]
 
 BODY_KEYS = ("cases", "case_ids")
 """Top-level keys a predict body may hold; any other key is refused (a typo should not pass silently)."""
@@ -48,6 +49,13 @@ MAX_CASE_ID_CHARS = 200
 """Longest client case id accepted (characters)."""
 
 _F32_MAX = float(np.finfo(np.float32).max)
+_BAD_TEXT = re.compile("[\x00-\x1f\x7f-\x9f\ud800-\udfff]")
+"""What no client text may hold: C0 and C1 control characters (NUL included) and lone
+surrogates (U+D800..U+DFFF are not Unicode scalar values, so no UTF-8 form exists;
+Unicode 15, section 3.9, D76). A store cannot encode them, a log line or a CSV cell
+is corrupted by them."""
+_BAD_MULTILINE = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f\ud800-\udfff]")
+"""The same for multi-line text (reviewer notes): tab and line feed are allowed."""
 _NUMBER_TYPES = frozenset({int, float})
 
 
@@ -129,6 +137,38 @@ def validate_predict(body: Any, spec: InputSpec, max_cases: int) -> PredictReque
     return PredictRequest(x=x, case_ids=case_ids)
 
 
+# --- client text ------------------------------------------------------------------------
+
+
+def client_text(value: Any, field: str, *, max_chars: int, multiline: bool = False) -> str:
+    """``value`` if it is client text a store, a log and a spreadsheet can all hold; else
+    ``InvalidInput`` naming ``field``.
+
+    Every text a client sends that reaches the review store goes through here (case ids
+    in predict, labels, notes and item ids in the reviewer API): a string of 1 to
+    ``max_chars`` characters, valid Unicode (no lone surrogates), no control characters
+    (NUL, C0, DEL, C1; ``multiline`` allows tab and line feed). The message shows the
+    offending character's code point, never the character itself.
+
+    Example::
+
+        client_text("parcel-0042", "case_ids[3]", max_chars=200)     # -> "parcel-0042"
+        client_text("a\x00b", "case_ids[3]", max_chars=200)          # InvalidInput: U+0000 at 1
+    """
+    if not isinstance(value, str):
+        raise InvalidInput(f"'{field}' must be a string; got {_kind(value)}", field=field)
+    if not 0 < len(value) <= max_chars:
+        raise InvalidInput(f"'{field}' must have 1 to {max_chars} characters; got {len(value)}", field=field)
+    bad = (_BAD_MULTILINE if multiline else _BAD_TEXT).search(value)
+    if bad is not None:
+        ch = bad.group()
+        what = "a lone surrogate (not valid Unicode)" if "\ud800" <= ch <= "\udfff" else (
+            "a control character" if ch != "\x00" else "the NUL character")
+        raise InvalidInput(f"'{field}' holds {what}, U+{ord(ch):04X} at position {bad.start()}; "
+                           "send printable Unicode text", field=field)
+    return value
+
+
 # --- case ids ---------------------------------------------------------------------------
 
 
@@ -145,11 +185,7 @@ def _case_ids(raw: Any, n: int) -> list[str | None]:
             continue
         if not isinstance(cid, str):
             raise InvalidInput(f"'case_ids[{i}]' must be a string or null; got {_kind(cid)}", field=f"case_ids[{i}]")
-        if not 0 < len(cid) <= MAX_CASE_ID_CHARS:
-            raise InvalidInput(
-                f"'case_ids[{i}]' must have 1 to {MAX_CASE_ID_CHARS} characters; got {len(cid)}",
-                field=f"case_ids[{i}]",
-            )
+        client_text(cid, f"case_ids[{i}]", max_chars=MAX_CASE_ID_CHARS)
         if cid in seen:
             raise InvalidInput(
                 f"'case_ids[{i}]' repeats '{_clip(cid)}' (first at case_ids[{seen[cid]}]); ids must be unique",

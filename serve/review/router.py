@@ -1,7 +1,7 @@
 """The review router: the app's ``review`` hook, deciding which cases go to people.
 
-For each answered case (``route``, called by ``Runtime.predict`` before the
-response is sent):
+For each answered case (``enqueue(answered)``, the pipeline's ``ReviewHook``, called
+before the response is sent; see serve/core/pipeline.py):
 
 - **abstained** -> enqueued with kind ``abstain``; the store has committed the
   item before the result says ``review_id``;
@@ -29,6 +29,23 @@ on the request path again until the replayer finds it answering (at most
 ``spool_replay_s`` later), so an outage does not add the store's connect
 timeout to every prediction.
 
+Limits, so no client can flood the people who review:
+
+- a **ceiling** on pending items (``config.review_max_pending``, default 50,000; 0
+  turns it off). Above it the prediction is still answered and the abstention says
+  ``{"review": {"queued": false, "reason": "not queued: backlog full"}}``. The
+  pending count is read from the store once a second (``PENDING_REFRESH_S``; every
+  0.1 s past half the ceiling) and this process's own enqueues are added in
+  between, so with several workers the queue can pass the ceiling by what the
+  others queued since the last read;
+- an optional **quota** per caller (``config.review_quota_per_min``: items per
+  token fingerprint, ``Answered.caller``, per minute, counted per process; 0, the
+  default, turns it off; an open predict endpoint is one caller): above it,
+  ``"reason": "not queued: enqueue quota exceeded"``.
+
+Refused cases are counted (``on_event("backlog_full" | "quota" | "rejected", n)``,
+wired to the metrics), and audit samples are dropped silently before abstentions.
+
 Accuracy from decided items (``accuracy``): over decided audit items, the
 fraction where the reviewer's label equals the model's prediction estimates
 the live accuracy of *accepted* predictions; over decided abstained items,
@@ -50,11 +67,13 @@ from typing import Any
 import numpy as np
 
 from demur.serve.config import ServeConfig
+from demur.serve.core.pipeline import Answered
 from demur.serve.errors import ReviewStoreUnavailable
 from demur.serve.review.store import NewItem, ReviewStore, new_item, open_store
 from demur.serve.review.spool import Replayer, Spool, SpoolError
 
-__all__ = ["SPOOL_FILE", "STORE_RETRY_MAX_S", "ReviewRouter", "accuracy_estimate", "audit_draw"]
+__all__ = ["NOT_QUEUED", "PENDING_REFRESH_S", "SPOOL_FILE", "STORE_RETRY_MAX_S", "ReviewRouter",
+           "accuracy_estimate", "audit_draw"]
 
 log = logging.getLogger("demur.review")
 
@@ -62,7 +81,17 @@ SPOOL_FILE = "review-spool.sqlite3"
 STORE_RETRY_MAX_S = 60.0
 """Longest the router spools without trying the store after a failure, when a replayer
 watches the store (it ends the wait as soon as a replay succeeds)."""
+PENDING_REFRESH_S = 1.0
+"""How often (seconds) the router reads the store's pending count for the ceiling; ten
+times as often once this process's figure is past half the ceiling."""
+NOT_QUEUED = {
+    "backlog_full": "not queued: backlog full",
+    "quota": "not queued: enqueue quota exceeded",
+    "rejected": "not queued: the case cannot be stored as sent; it is set aside for an operator",
+}
+"""Why an abstention was not queued, by event name (the metric's label): the ``reason`` shown."""
 ACCURACY_LEVEL = 0.95
+_MAX_CALLERS = 10_000
 _DESCRIBE_TTL_S = 5.0
 _UNAVAILABLE = ("the review store is unavailable; the case is kept in this server's spool and will be "
                 "queued when the store answers again")
@@ -75,6 +104,10 @@ def _grid(shape: tuple[int, ...]) -> list[int]:
     n = int(shape[0]) if shape else 1
     side = int(round(n ** 0.5))
     return [side, side] if side * side == n else [1, n]
+
+
+def _not_queued(event: str) -> dict[str, Any]:
+    return {"review": {"queued": False, "reason": NOT_QUEUED[event]}}
 
 
 def audit_draw(checksum: str, case_id: str) -> float:
@@ -112,13 +145,25 @@ class ReviewRouter:
 
     def __init__(self, store: ReviewStore, spool: Spool | None = None, *, audit_fraction: float = 0.0,
                  replay_s: float = 5.0, seed: int | None = None,
-                 on_failure: Callable[[int], Any] | None = None) -> None:
+                 on_failure: Callable[[int], Any] | None = None, max_pending: int = 0,
+                 quota_per_min: int = 0, on_event: Callable[[str, int], Any] | None = None,
+                 clock: Callable[[], float] = time.monotonic) -> None:
         if not 0.0 <= audit_fraction <= 1.0:
             raise ValueError(f"audit_fraction must be in [0, 1]; got {audit_fraction}")
         self.store = store
         self.spool = spool
         self.audit_fraction = float(audit_fraction)
         self.on_failure = on_failure
+        self.on_event = on_event
+        self.max_pending = max(0, int(max_pending))
+        self.quota_per_min = max(0, int(quota_per_min))
+        self.refused: dict[str, int] = {name: 0 for name in NOT_QUEUED}
+        """Cases not queued on purpose, by event: ``backlog_full``, ``quota``, ``rejected``."""
+        self._clock = clock
+        self._pending = 0
+        self._pending_at = -float("inf")
+        self._quota: dict[str | None, tuple[int, int]] = {}  # caller -> (minute, items queued in it)
+        self._views: dict[str, dict[str, Any]] = {}
         self.failures = 0
         """Abstained cases the store did not take at once (spooled, or lost if the spool failed too)."""
         self.spooled = 0
@@ -131,8 +176,8 @@ class ReviewRouter:
         self._replay_s = float(replay_s)
         self.replayer: Replayer | None = None
         if spool is not None:
-            self.replayer = Replayer(spool, store, interval_s=replay_s, on_up=self._store_up)
-        self._runtime: Any = None
+            self.replayer = Replayer(spool, store, interval_s=replay_s, on_up=self._store_up,
+                                     on_error=lambda: self._event("replay_error", 1))
         self._described: tuple[float, dict[str, Any]] | None = None
 
     @classmethod
@@ -144,7 +189,8 @@ class ReviewRouter:
                            pool_size=max(2, config.threads + 1))
         spool = Spool(Path(config.data_dir) / SPOOL_FILE)
         return cls(store, spool, audit_fraction=config.audit_fraction, replay_s=config.spool_replay_s,
-                   seed=config.seed, on_failure=on_failure)
+                   seed=config.seed, on_failure=on_failure, max_pending=config.review_max_pending,
+                   quota_per_min=config.review_quota_per_min)
 
     # ------------------------------------------------------------------ app hook
     def init_app(self, app: Any) -> None:
@@ -152,14 +198,17 @@ class ReviewRouter:
         add the review summary to ``GET /v1/model``; start replaying a non-empty spool."""
         from demur.serve.web.review_api import install_review_api
 
-        self._runtime = app.extensions.get("demur")
+        runtime = app.extensions.get("demur")
         install_review_api(app, self)
-        runtime = self._runtime
         if runtime is not None:
             if self.on_failure is None:
                 hook = getattr(runtime.metrics, "review_enqueue_failed", None)
                 if callable(hook):
                     self.on_failure = hook
+            if self.on_event is None:
+                hook = getattr(runtime.metrics, "review_event", None)
+                if callable(hook):
+                    self.on_event = hook
             extras = getattr(runtime, "model_extras", None)
             if isinstance(extras, list):
                 extras.append(lambda: {"review": self.describe()})
@@ -169,32 +218,27 @@ class ReviewRouter:
         except SpoolError as exc:
             log.error("review spool cannot be read at start: %s", exc)
 
-    def enqueue(self, answered: Any) -> list[dict[str, Any] | None]:
-        """The pipeline's review hook (serve/core/pipeline.py, ``ReviewHook``)."""
-        return self.route(answered.results, answered.request, answered.summary, answered.decisions,
-                          answered.live.model)
-
-    def route(self, results: list[dict[str, Any]], cases: Any, summary: Any, decisions: Any,
-              model: dict[str, str]) -> list[dict[str, Any] | None]:
-        """One annotation per result: ``{"review_id": id}`` for a queued abstention,
-        ``{"review": {"queued": false, ...}}`` for one that was not, ``None`` otherwise."""
-        x = np.asarray(getattr(cases, "x", cases))
-        view: dict[str, Any] | None = None  # built on the first picked case: most requests pick none
-        picked: list[tuple[int, NewItem]] = []
-        now = time.time()
-        for i, result in enumerate(results):
-            abstained = result.get("decision") == "abstain"
-            cid = result.get("case_id")
-            if not abstained and not self._audit(model["checksum"], cid):
-                continue
-            if view is None:
-                view = self._view(model)
-            picked.append((i, self._item("abstain" if abstained else "audit", result, x[i], model, view, now)))
-        notes: list[dict[str, Any] | None] = [None] * len(results)
-        if not picked:
+    def enqueue(self, answered: Answered) -> list[dict[str, Any] | None]:
+        """One annotation per case: ``{"review_id": id}`` for a queued abstention,
+        ``{"review": {"queued": false, ...}}`` for one that was not, ``None`` otherwise.
+        Never raises for a store fault (the items are spooled)."""
+        abstain = answered.decisions.abstain.tolist()
+        case_ids = answered.request.case_ids
+        model = answered.live.model
+        checksum = model["checksum"]
+        notes: list[dict[str, Any] | None] = [None] * len(abstain)
+        chosen = [(i, "abstain") for i, a in enumerate(abstain) if a]
+        chosen += [(i, "audit") for i, a in enumerate(abstain) if not a and self._audit(checksum, case_ids[i])]
+        if not chosen:
             return notes
-        items = [item for _, item in picked]
-        abstained = [(i, item) for i, item in picked if item.kind == "abstain"]
+        chosen = self._limit(chosen, answered.caller, notes)
+        if not chosen:
+            return notes
+        view = self._view(answered.live)
+        x = answered.request.x
+        now = time.time()
+        items = [self._item(kind, answered.results[i], case_ids[i], x[i], model, view, now) for i, kind in chosen]
+        abstained = [(i, item) for (i, kind), item in zip(chosen, items) if kind == "abstain"]
         try:
             if time.monotonic() < self._skip_until:
                 raise ReviewStoreUnavailable("the review store failed recently; waiting for the replayer")
@@ -202,13 +246,86 @@ class ReviewRouter:
         except Exception as exc:
             self._store_down(exc)
             return self._fallback(items, abstained, notes)
-        with self._lock:
-            self.queued += len(abstained)
-            self.audited += len(items) - len(abstained)
         by_item = dict(zip((it.id for it in items), ids))
+        rejected = sum(1 for rid in ids if rid is None)
+        n_abstained = sum(1 for _, it in abstained if by_item[it.id] is not None)
+        with self._lock:
+            self.queued += n_abstained
+            self.audited += len(items) - len(abstained) - sum(
+                1 for it in items if it.kind == "audit" and by_item[it.id] is None)
+            self._pending += len(items) - rejected
         for i, item in abstained:
-            notes[i] = {"review_id": by_item[item.id]}
+            rid = by_item[item.id]
+            notes[i] = {"review_id": rid} if rid is not None else _not_queued("rejected")
+        if rejected:
+            self._event("rejected", rejected)
         return notes
+
+    def _limit(self, chosen: list[tuple[int, str]], caller: str | None,
+               notes: list[dict[str, Any] | None]) -> list[tuple[int, str]]:
+        """Keep what the ceiling and the caller's quota allow, abstentions first; annotate
+        the refused abstentions in ``notes``; drop refused audits silently."""
+        room = self._room(len(chosen))
+        quota = self._quota_left(caller)
+        keep = min(len(chosen), room, quota)
+        if keep == len(chosen):
+            self._take_quota(caller, keep)
+            return chosen
+        kept = chosen[:keep]  # abstentions come first in ``chosen``
+        why = "backlog_full" if room <= quota else "quota"
+        refused = [i for i, kind in chosen[keep:] if kind == "abstain"]
+        for i in refused:
+            notes[i] = _not_queued(why)
+        self._take_quota(caller, keep)
+        if refused:
+            if why == "backlog_full" and not any(self.refused.values()):
+                log.warning("review backlog is full (%d pending); abstentions are answered but not queued",
+                            self._pending)
+            self._event(why, len(refused))
+        return kept
+
+    def _room(self, wanted: int) -> int:
+        """Items the ceiling still admits (a large number when there is none)."""
+        if self.max_pending <= 0:
+            return 1 << 62
+        now = self._clock()
+        near = 2 * (self._pending + wanted) > self.max_pending
+        every = PENDING_REFRESH_S / 10 if near else PENDING_REFRESH_S
+        if now - self._pending_at >= every and time.monotonic() >= self._skip_until:
+            self._pending_at = now
+            try:
+                self._pending = int(self.store.pending_count())
+            except Exception as exc:  # keep the last figure; the enqueue will meet the outage
+                log.debug("pending count unavailable: %r", exc)
+        return max(0, self.max_pending - self._pending)
+
+    def _quota_left(self, caller: str | None) -> int:
+        if self.quota_per_min <= 0:
+            return 1 << 62
+        minute = int(self._clock() // 60)
+        with self._lock:
+            start, used = self._quota.get(caller, (minute, 0))
+        return self.quota_per_min - (used if start == minute else 0)
+
+    def _take_quota(self, caller: str | None, n: int) -> None:
+        if self.quota_per_min <= 0 or n <= 0:
+            return
+        minute = int(self._clock() // 60)
+        with self._lock:
+            start, used = self._quota.get(caller, (minute, 0))
+            if len(self._quota) >= _MAX_CALLERS and caller not in self._quota:
+                self._quota = {c: v for c, v in self._quota.items() if v[0] == minute}
+            self._quota[caller] = (minute, (used if start == minute else 0) + n)
+
+    def _event(self, name: str, n: int) -> None:
+        if name in self.refused:
+            with self._lock:
+                self.refused[name] += n
+        if self.on_event is not None:
+            try:
+                self.on_event(name, n)
+            except Exception:
+                log.exception("review event hook failed")
 
     def _fallback(self, items: list[NewItem], abstained: list[tuple[int, NewItem]],
                   notes: list[dict[str, Any] | None]) -> list[dict[str, Any] | None]:
@@ -224,6 +341,7 @@ class ReviewRouter:
             self.failures += n
             if spooled:
                 self.spooled += len(items)
+                self._pending += len(items)  # they will be pending once replayed
             else:
                 self.unspooled += n
         if n and self.on_failure is not None:
@@ -267,40 +385,34 @@ class ReviewRouter:
         with self._lock:
             return self._random.random() < self.audit_fraction
 
-    def _view(self, model: dict[str, str]) -> dict[str, Any]:
+    def _view(self, live: Any) -> dict[str, Any]:
         """What the reviewer's page needs from the bundle that answered: input kind,
-        shape, names and training range, labels, task."""
-        manifest = None
-        try:
-            from flask import g, has_request_context
-
-            live = g.get("demur_live") if has_request_context() else None
-            if live is None and self._runtime is not None:
-                live = self._runtime.slot.live
-            if live is not None and live.model.get("checksum") == model.get("checksum"):
-                manifest = live.manifest
-        except Exception:
-            manifest = None
-        if manifest is None:
-            return {}
+        shape, names and training range, labels, task (built once per model)."""
+        checksum = live.model["checksum"]
+        view = self._views.get(checksum)
+        if view is not None:
+            return view
+        manifest = live.manifest
         spec = manifest.inputs
-        view: dict[str, Any] = {"task": manifest.task, "labels": list(manifest.labels), "kind": spec.kind,
-                                "shape": list(spec.shape)}
+        view = {"task": manifest.task, "labels": list(manifest.labels), "kind": spec.kind,
+                "shape": list(spec.shape)}
         if spec.kind == "image":
             view["low"], view["high"] = [min(spec.low)], [max(spec.high)]
-            view["grid"] = _grid(spec.shape)
+            view["grid"] = _grid(tuple(spec.shape))
         else:
             view["names"], view["low"], view["high"] = list(spec.names), list(spec.low), list(spec.high)
+        if len(self._views) > 16:
+            self._views.clear()
+        self._views[checksum] = view
         return view
 
     @staticmethod
-    def _item(kind: str, result: dict[str, Any], x: np.ndarray, model: dict[str, str],
+    def _item(kind: str, result: dict[str, Any], case_id: str | None, x: np.ndarray, model: dict[str, str],
               view: dict[str, Any], now: float) -> NewItem:
-        task = view.get("task") or ("regression" if not isinstance(result.get("prediction"), str) else "classification")
+        task = view["task"]
         # The float32 values the model saw, in their shortest round-trip form (0.3, not 0.30000001192092896).
         case = {"values": [float(v) for v in np.asarray(x, dtype=np.float32).ravel().astype(str)],
-                "shape": view.get("shape") or list(np.shape(x)),
-                **{k: view[k] for k in ("kind", "grid", "names", "low", "high") if k in view}}
+                "shape": view["shape"], **{k: view[k] for k in ("kind", "grid", "names", "low", "high") if k in view}}
         summary = {k: result.get(k) for k in ("mean", "interval", "uncertainty", "score", "threshold", "reason")}
         summary["task"] = task
         if "variance" in result:
@@ -314,10 +426,9 @@ class ReviewRouter:
             if isinstance(iv.get("lower"), (int, float)) and isinstance(iv.get("upper"), (int, float)):
                 interval = (float(iv["lower"]), float(iv["upper"]))
             prediction = None if prediction is None else repr(float(prediction))
-        cid = result.get("case_id")
         return new_item(kind=kind, model=model, case=case, summary=summary,
                         prediction=None if prediction is None else str(prediction), interval=interval,
-                        client_case_id=None if cid is None else str(cid), now=now)
+                        client_case_id=case_id, now=now)
 
     # ------------------------------------------------------------------ reading
     def _check_up(self) -> None:
@@ -327,13 +438,16 @@ class ReviewRouter:
             raise ReviewStoreUnavailable("the review store failed recently; waiting for the replayer")
 
     def queue_depths(self) -> dict[str, int]:
-        """Items per status (pending, claimed, decided) plus ``spooled`` here (metrics)."""
+        """Items per status (pending, claimed, decided), ``rejected`` (the store's dead
+        letters), plus ``spooled`` and ``spool_rejected`` here (metrics)."""
         self._check_up()
         counts = self.store.counts()
         out = {k: v for k, v in counts.items() if k != "total"}
+        out["rejected"] = self.store.rejected_count()
         if self.spool is not None:
             try:
                 out["spooled"] = self.spool.size()
+                out["spool_rejected"] = self.spool.rejected_size()
             except SpoolError:
                 pass
         return out
@@ -367,11 +481,14 @@ class ReviewRouter:
         return out
 
     def stats(self) -> dict[str, int]:
-        """This process's counters: queued, audited, failures, spooled, unspooled, replayed."""
+        """This process's counters: queued, audited, failures, spooled, unspooled, replayed,
+        replay errors, and the cases not queued on purpose (backlog_full, quota, rejected)."""
         with self._lock:
             return {"queued": self.queued, "audited": self.audited, "failures": self.failures,
                     "spooled": self.spooled, "unspooled": self.unspooled,
-                    "replayed": self.replayer.replayed if self.replayer is not None else 0}
+                    "replayed": self.replayer.replayed if self.replayer is not None else 0,
+                    "replay_errors": self.replayer.errors if self.replayer is not None else 0,
+                    **self.refused}
 
     def close(self) -> None:
         """Stop the replayer and close the store."""

@@ -19,12 +19,12 @@ SECURITY_HEADERS: dict[str, str] = {
     "Cross-Origin-Opener-Policy": "same-origin",
     "Cross-Origin-Resource-Policy": "same-origin",
     "Permissions-Policy": "camera=(), microphone=(), geolocation=()",
-    # The reviewer page is plain HTML with its own inline script and style;
-    # nothing may be loaded from elsewhere and no site may frame it.
+    # One strict policy for every response: no inline script or style anywhere (the
+    # reviewer page loads its script and style from /review/assets), nothing from
+    # elsewhere, no framing, no forms posting anywhere.
     "Content-Security-Policy": (
-        "default-src 'self'; img-src 'self' data:; style-src 'self' 'unsafe-inline'; "
-        "script-src 'self' 'unsafe-inline'; connect-src 'self'; frame-ancestors 'none'; "
-        "base-uri 'none'; form-action 'self'"
+        "default-src 'none'; script-src 'self'; style-src 'self'; img-src 'self' data:; "
+        "connect-src 'self'; base-uri 'none'; form-action 'none'; frame-ancestors 'none'"
     ),
 }
 """Headers added to every response (common practice; values from memory of the

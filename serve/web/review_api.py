@@ -28,6 +28,7 @@ from __future__ import annotations
 import csv
 import io
 import math
+import re
 from pathlib import Path
 from typing import Any
 
@@ -35,17 +36,15 @@ import orjson
 from flask import Blueprint, Response, g, request
 
 from demur.serve.web.auth import require
+from demur.serve.web.limits import SECURITY_HEADERS
 from demur.serve.errors import InvalidInput, NotFound
 from demur.serve.review.store import KINDS, MAX_EXCLUDE, MAX_NOTE_CHARS, STATUSES, ReviewItem
-from demur.serve.core.validation import parse_json
+from demur.serve.core.validation import client_text, parse_json
 
 __all__ = ["PAGE_HEADERS", "install_review_api", "make_blueprint"]
 
 PAGE_HEADERS: dict[str, str] = {
-    "Content-Security-Policy": (
-        "default-src 'none'; script-src 'self'; style-src 'self'; img-src 'self' data:; "
-        "connect-src 'self'; base-uri 'none'; form-action 'none'; frame-ancestors 'none'"
-    ),
+    "Content-Security-Policy": SECURITY_HEADERS["Content-Security-Policy"],  # the one policy of every response
     "X-Content-Type-Options": "nosniff",
     "Referrer-Policy": "no-referrer",
     "X-Frame-Options": "DENY",
@@ -111,6 +110,18 @@ def _check_keys(body: dict[str, Any], allowed: tuple[str, ...]) -> None:
                                field=str(key)[:40])
 
 
+_ITEM_ID = re.compile(r"[A-Za-z0-9_-]{1,64}")
+
+
+def _item_id(value: Any, field: str) -> str:
+    """An item id a client sent back (``skip``, ``after``): client text, then the id alphabet."""
+    text = client_text(value, field, max_chars=64)
+    if not _ITEM_ID.fullmatch(text):
+        raise InvalidInput(f"'{field}' must be an item id (1-64 characters of A-Z a-z 0-9 _ -); "
+                           f"got {len(text)} characters", field=field)
+    return text
+
+
 def _decision_fields(body: dict[str, Any], item: ReviewItem) -> tuple[str | None, float | None, str | None]:
     _check_keys(body, ("label", "value", "note"))
     label, value, note = body.get("label"), body.get("value"), body.get("note")
@@ -121,9 +132,7 @@ def _decision_fields(body: dict[str, Any], item: ReviewItem) -> tuple[str | None
     if label is not None:
         if task == "regression":
             raise InvalidInput("this item is a regression case: give 'value', not 'label'", field="label")
-        if not isinstance(label, str) or not label or len(label) > MAX_LABEL_CHARS:
-            raise InvalidInput(f"'label' must be a non-empty string of at most {MAX_LABEL_CHARS} characters; "
-                               f"got {type(label).__name__}", field="label")
+        client_text(label, "label", max_chars=MAX_LABEL_CHARS)
         labels = item.summary.get("labels")
         if labels and label not in labels:
             raise InvalidInput(f"'label' must be one of the model's labels ({', '.join(map(str, labels))}); "
@@ -135,8 +144,8 @@ def _decision_fields(body: dict[str, Any], item: ReviewItem) -> tuple[str | None
             raise InvalidInput(f"'value' must be a finite number; got {type(value).__name__}", field="value")
         value = float(value)
     if note is not None:
-        if not isinstance(note, str) or len(note) > MAX_NOTE_CHARS:
-            raise InvalidInput(f"'note' must be a string of at most {MAX_NOTE_CHARS} characters", field="note")
+        if note != "":  # an empty note is no note
+            note = client_text(note, "note", max_chars=MAX_NOTE_CHARS, multiline=True)
         note = note.strip() or None
     return label, value, note
 
@@ -178,8 +187,8 @@ def make_blueprint(router: Any) -> Blueprint:
         kind = _choice_arg("kind", KINDS, None)
         limit = _int_arg("limit", 50, 1, MAX_LIMIT)
         after = request.args.get("after") or None
-        if after is not None and (len(after) > 64 or not after.replace("-", "").replace("_", "").isalnum()):
-            raise InvalidInput("'after' must be an item id from a previous page", field="after")
+        if after is not None:
+            _item_id(after, "after")
         items = store().list(status, kind=kind, limit=limit, after=after)
         nxt = items[-1].id if len(items) == limit else None
         return _json({"items": [it.brief() for it in items], "next": nxt})
@@ -190,8 +199,10 @@ def make_blueprint(router: Any) -> Blueprint:
         body = _body(optional=True)
         _check_keys(body, ("skip",))
         skip = body.get("skip", [])
-        if not isinstance(skip, list) or len(skip) > MAX_EXCLUDE or not all(isinstance(s, str) for s in skip):
+        if not isinstance(skip, list) or len(skip) > MAX_EXCLUDE:
             raise InvalidInput(f"'skip' must be a list of at most {MAX_EXCLUDE} item ids", field="skip")
+        for i, sid in enumerate(skip):
+            _item_id(sid, f"skip[{i}]")
         item = store().claim_next(me().id, exclude=skip)
         return _json({"item": item.to_json() if item else None, "reviewer": me().id,
                       "lease_s": store().lease_s, "counts": store().counts()})
@@ -271,17 +282,25 @@ def _csv(items: list[ReviewItem]) -> str:
     writer.writerow(head + inputs)
     for it in items:
         d = it.to_json()
-        writer.writerow([it.id, it.kind, it.model_name, it.model_version, it.model_checksum,
-                         it.client_case_id or "", d["created"], d["decision"]["decided"], it.decided_by,
-                         it.label if it.label is not None else "",
-                         "" if it.value is None else repr(it.value), it.prediction or "",
-                         _safe_cell(it.note or "")] + [repr(float(v)) for v in it.case.get("values", [])])
+        text = [it.id, it.kind, it.model_name, it.model_version, it.model_checksum, it.client_case_id or "",
+                d["created"], d["decision"]["decided"], it.decided_by or "",
+                it.label if it.label is not None else "", "" if it.value is None else repr(it.value),
+                it.prediction or "", it.note or ""]
+        writer.writerow([_safe_cell(str(cell)) for cell in text] + [repr(float(v)) for v in it.case.get("values", [])])
     return buf.getvalue()
 
 
+_NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?|[+-]?(?:inf|nan)")
+_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+
+
 def _safe_cell(text: str) -> str:
-    """Neutralise spreadsheet formulas in free text (common practice against CSV injection)."""
-    return "'" + text if text[:1] in ("=", "+", "-", "@", "\t", "\r") else text
+    """A text cell a spreadsheet will not run: one starting with = + - @ tab or CR gets a
+    leading apostrophe (OWASP, "CSV Injection"). A plain number ("-0.25") is left as it is:
+    spreadsheets read it as a number, never as a formula."""
+    if text[:1] in _FORMULA_START and not _NUMBER.fullmatch(text):
+        return "'" + text
+    return text
 
 
 def install_review_api(app: Any, router: Any) -> None:

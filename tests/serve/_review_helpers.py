@@ -19,6 +19,14 @@ from pathlib import Path
 
 import pytest
 
+from types import SimpleNamespace
+from typing import Any
+
+import numpy as np
+
+from demur.serve.core.decision import Decisions
+from demur.serve.core.pipeline import Answered
+from demur.serve.core.validation import PredictRequest
 from demur.serve.review.store import NewItem, new_item
 
 PG_URL = os.environ.get("DEMUR_TEST_POSTGRES", "postgresql://postgres@127.0.0.1:5432/test")
@@ -97,6 +105,60 @@ def item(kind: str = "abstain", *, client_case_id: str | None = None, prediction
                  "score": {"name": "mutual_information", "value": 0.4}, "threshold": 0.2},
         prediction=prediction, interval=interval, client_case_id=client_case_id, now=now,
     )
+
+
+def results(decisions: list[str], case_ids: list[str | None] | None = None) -> list[dict[str, Any]]:
+    """Rendered per-case results as the pipeline gives them (classification, 10 labels)."""
+    ids = case_ids or [None] * len(decisions)
+    return [{"case_id": cid, "decision": d, "prediction": "7", "mean": [0.1] * 10,
+             "interval": {"level": 0.9, "lower": [0.0] * 10, "upper": [0.2] * 10},
+             "uncertainty": {"mutual_information": 0.3, "predictive_entropy": 2.0, "expected_entropy": 1.7,
+                             "unit": "nats"},
+             "score": {"name": "mutual_information", "value": 0.3}, "threshold": 0.2, "reason": "r"}
+            for d, cid in zip(decisions, ids)]
+
+
+def answered(decisions: list[str], x: Any = None, case_ids: list[str | None] | None = None, *,
+             model: dict[str, str] | None = None, caller: str | None = None) -> Answered:
+    """An ``Answered`` for the review router: a digits-like model (8x8 image, labels 0-9),
+    the given accept/abstain decisions, inputs ``x`` float32[B, 64] (zeros by default)."""
+    n = len(decisions)
+    ids = list(case_ids) if case_ids is not None else [None] * n
+    arr = np.zeros((n, 64), dtype=np.float32) if x is None else np.asarray(x, dtype=np.float32)
+    inputs = SimpleNamespace(kind="image", shape=(64,), names=tuple(f"px{i}" for i in range(64)),
+                             low=(0.0,) * 64, high=(16.0,) * 64)
+    manifest = SimpleNamespace(task="classification", labels=tuple(str(d) for d in range(10)), inputs=inputs)
+    live = SimpleNamespace(model=dict(model or MODEL), manifest=manifest)
+    abstain = np.asarray([d == "abstain" for d in decisions], dtype=bool)
+    dec = Decisions(score=np.full(n, 0.3), abstain=abstain, reason=["r"] * n)
+    return Answered(live=live, request=PredictRequest(x=arr, case_ids=ids), summary=None,  # type: ignore[arg-type]
+                    decisions=dec, results=results(decisions, ids), caller=caller)
+
+
+class SwitchStore:
+    """A real store behind a switch: while ``down`` every call fails as if unreachable;
+    ``calls`` counts enqueues."""
+
+    def __init__(self, inner: Any) -> None:
+        self.inner = inner
+        self.down = False
+        self.calls = 0
+        self.lease_s = inner.lease_s
+
+    def enqueue(self, items: Any) -> list[str | None]:
+        from demur.serve.errors import ReviewStoreUnavailable
+
+        self.calls += 1
+        if self.down:
+            raise ReviewStoreUnavailable("connection refused (test)")
+        return self.inner.enqueue(items)
+
+    def __getattr__(self, name: str) -> Any:
+        from demur.serve.errors import ReviewStoreUnavailable
+
+        if self.down:
+            raise ReviewStoreUnavailable("connection refused (test)")
+        return getattr(self.inner, name)
 
 
 class TcpProxy:

@@ -203,6 +203,7 @@ def test_review_and_metrics_hooks(tiny_bundle_factory: Any, make_app: Any) -> No
     assert answered.request.case_ids == ["a", "b", "c"] and answered.request.x.shape == (3, 64)
     assert answered.live.model == body["model"] and answered.decisions.abstain.all()
     assert answered.caller is None  # predict is open: no token to name
+    assert answered.live.manifest.task == "classification" and len(answered.results) == 3
     assert metrics.bound == [(bundle.checksum, "mutual_information")]
     seen = metrics.predicts[0]
     assert seen["x_raw"].shape == (3, 64) and seen["graph_seconds"] >= 0 and seen["total_seconds"] >= 0

@@ -96,6 +96,42 @@ def test_a_graph_path_outside_the_bundle_is_refused(tiny_bundle_factory, copy_bu
         write_manifest(path, raw)  # the writer validates with the same parser
 
 
+@pytest.mark.parametrize("target", ["inside", "outside"])
+def test_a_graph_file_that_is_a_link_is_refused(tiny_bundle_factory, copy_bundle, tmp_path: Path,
+                                                target: str) -> None:
+    """A graph file must be a regular file inside the bundle: a symbolic link (even to an
+    identical copy, so the digests match) lets the served bytes change, or be read from
+    anywhere on the host, while the sealed bundle stays the same."""
+    path = copy_bundle(tiny_bundle_factory())
+    graph = path / _raw(path)["graphs"]["stacked"]["file"]
+    copy = (path / "copy.onnx") if target == "inside" else (tmp_path / "elsewhere.onnx")
+    copy.write_bytes(graph.read_bytes())
+    graph.unlink()
+    graph.symlink_to(copy)
+    with pytest.raises(BundleError, match="symbolic link") as err:
+        load_bundle(path)
+    assert err.value.field == "graphs.stacked.file"
+    with pytest.raises(BundleError, match="symbolic link"):
+        load_bundle(path, verify=False)
+
+
+def test_a_manifest_that_is_a_link_is_refused(tiny_bundle_factory, copy_bundle, tmp_path: Path) -> None:
+    path = copy_bundle(tiny_bundle_factory())
+    real = tmp_path / "manifest-elsewhere.json"
+    real.write_bytes((path / "manifest.json").read_bytes())
+    (path / "manifest.json").unlink()
+    (path / "manifest.json").symlink_to(real)
+    with pytest.raises(BundleError, match="symbolic link"):
+        load_bundle(path)
+
+
+def test_a_bundle_directory_reached_through_a_link_still_loads(tiny_bundle_factory, tmp_path: Path) -> None:
+    """``bundles/current -> v7`` is how roll-outs name the live bundle: the directory may be a link."""
+    link = tmp_path / "current"
+    link.symlink_to(tiny_bundle_factory().path, target_is_directory=True)
+    assert load_bundle(link).checksum == tiny_bundle_factory().checksum
+
+
 def test_the_seal_and_digests_are_sha256_of_the_bytes(tiny_bundle_factory) -> None:
     """Reference: hashlib.sha256 over each file's bytes."""
     bundle = tiny_bundle_factory(kind="sampler")

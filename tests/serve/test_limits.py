@@ -32,7 +32,9 @@ def test_security_headers_and_no_debug(app: Any) -> None:
             assert r.headers[key] == value, (path, key)
         assert r.headers["Cache-Control"] == "no-store"
     assert app.debug is False
-    assert "frame-ancestors 'none'" in SECURITY_HEADERS["Content-Security-Policy"]
+    csp = SECURITY_HEADERS["Content-Security-Policy"]
+    assert "frame-ancestors 'none'" in csp and "default-src 'none'" in csp
+    assert "unsafe-inline" not in csp and "unsafe-eval" not in csp  # one strict policy everywhere
 
 
 def test_body_cap_is_the_configured_limit(app: Any) -> None:

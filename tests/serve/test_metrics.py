@@ -121,6 +121,29 @@ def test_app_builds_its_own_metrics_when_none_given(tiny: Any) -> None:
 
 
 # -- counts ---------------------------------------------------------------------------
+def test_label_values_stay_bounded_under_random_methods_and_paths(tiny: Any) -> None:
+    """2,000 requests with random methods (any RFC 9110 token is a valid method) and random
+    paths: the request counter keeps a bounded set of label values (Prometheus, "Metric and
+    label naming": never put unbounded values such as user input in labels)."""
+    client, metrics, _ = make(tiny)
+    rng = np.random.default_rng(15)
+    letters = np.array(list("ABCDEFGHIJKLMNOPQRSTUVWXYZ-_"))
+    for i in range(2000):
+        method = "".join(rng.choice(letters, size=int(rng.integers(1, 10))))
+        path = "/" + "".join(rng.choice(letters, size=8)).lower() + ("/v1/model" if i % 5 == 0 else "")
+        if i % 7 == 0:
+            path = f"/v1/reviews/r-{i:030d}"
+        client.open(path, method=method)
+    metrics.observe_request("/made/up/by/a/caller", "BREW", 999, 0.0)  # direct callers are held too
+    text = scrape_text(client)
+    series = [lab for (n, lab) in samples(text) if n == "demur_http_requests_total"]
+    methods = {dict(lab)["method"] for lab in series}
+    routes = {dict(lab)["route"] for lab in series}
+    assert methods <= set(metrics_mod.METHODS) | {"other"} and "other" in methods
+    assert routes <= {r.rule for r in client.application.url_map.iter_rules()} | {"unmatched", "other"}
+    assert len(series) < 60, len(series)
+
+
 def test_cases_and_requests_match_what_was_answered(tiny: Any) -> None:
     # reference: the responses themselves (each case's "decision")
     client, _, _ = make(tiny)

@@ -88,6 +88,8 @@ def test_rules_name_only_metrics_the_server_exports(tiny_bundle_factory: Any) ->
     config = ServeConfig(bundle=str(bundle.path), seed=0)
 
     class Review:
+        max_pending = 50_000
+
         def queue_depths(self) -> dict[str, int]:
             return {"pending": 0}
 

@@ -10,40 +10,19 @@ the audit sample size against scipy.stats.binom quantiles.
 from __future__ import annotations
 
 import threading
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterator
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 import pytest
 from scipy import stats
 
-from demur.serve.errors import ReviewStoreUnavailable
-from demur.serve.review.router import ReviewRouter, accuracy_estimate, audit_draw
-from demur.serve.review.store import NewItem, SqliteStore
+from demur.serve.review.router import NOT_QUEUED, ReviewRouter, accuracy_estimate, audit_draw
+from demur.serve.review.store import SqliteStore
 from demur.serve.review.spool import Spool
-from tests.serve._review_helpers import MODEL
+from tests.serve._review_helpers import MODEL, SwitchStore, answered
 
 
-class SwitchStore:
-    """A real SQLite store behind a switch: while ``down`` every call fails as if unreachable."""
-
-    def __init__(self, inner: SqliteStore) -> None:
-        self.inner = inner
-        self.down = False
-        self.calls = 0
-        self.lease_s = inner.lease_s
-
-    def enqueue(self, items: Sequence[NewItem]) -> list[str]:
-        self.calls += 1
-        if self.down:
-            raise ReviewStoreUnavailable("connection refused (test)")
-        return self.inner.enqueue(items)
-
-    def __getattr__(self, name: str) -> Any:
-        if self.down:
-            raise ReviewStoreUnavailable("connection refused (test)")
-        return getattr(self.inner, name)
 
 
 @pytest.fixture()
@@ -53,21 +32,11 @@ def parts(tmp_path: Path) -> Iterator[tuple[SwitchStore, Spool]]:
     inner.close()
 
 
-def _results(decisions: list[str], case_ids: list[str | None] | None = None) -> list[dict[str, Any]]:
-    ids = case_ids or [None] * len(decisions)
-    return [{"case_id": cid, "decision": d, "prediction": "7", "mean": [0.1] * 10,
-             "interval": {"level": 0.9, "lower": [0.0] * 10, "upper": [0.2] * 10},
-             "uncertainty": {"mutual_information": 0.3, "predictive_entropy": 2.0, "expected_entropy": 1.7,
-                             "unit": "nats"},
-             "score": {"name": "mutual_information", "value": 0.3}, "threshold": 0.2, "reason": "r"}
-            for d, cid in zip(decisions, ids)]
-
-
 def test_abstentions_are_queued_before_the_answer(parts: tuple[SwitchStore, Spool]) -> None:
     store, spool = parts
     router = ReviewRouter(store, spool)
     x = np.arange(3 * 64, dtype=np.float32).reshape(3, 64)
-    notes = router.route(_results(["abstain", "accept", "abstain"]), x, None, None, MODEL)
+    notes = router.enqueue(answered(["abstain", "accept", "abstain"], x))
     assert notes[1] is None
     for i in (0, 2):
         got = store.inner.get(notes[i]["review_id"])  # committed: readable now
@@ -82,13 +51,13 @@ def test_store_down_spools_says_so_counts_and_replays_exactly_once(parts: tuple[
     router = ReviewRouter(store, spool, replay_s=60, on_failure=seen.append)
     x = np.zeros((2, 64), dtype=np.float32)
     store.down = True
-    notes = router.route(_results(["abstain", "abstain"], ["parcel-1", None]), x, None, None, MODEL)
+    notes = router.enqueue(answered(["abstain", "abstain"], x, ["parcel-1", None]))
     for note in notes:
         review = note["review"]
         assert review["queued"] is False and review["spooled"] is True and "unavailable" in review["reason"]
     assert router.failures == 2 and seen == [2] and spool.size() == 2
     # The client retries parcel-1 while the store is still down: spooled again, with another id.
-    router.route(_results(["abstain"], ["parcel-1"]), x[:1], None, None, MODEL)
+    router.enqueue(answered(["abstain"], x[:1], ["parcel-1"]))
     calls = store.calls
     assert calls == 1, "after a failure the store is not tried on the request path until the replayer finds it"
     store.down = False
@@ -101,7 +70,7 @@ def test_store_down_spools_says_so_counts_and_replays_exactly_once(parts: tuple[
         assert store.inner.get(note["review"]["pending_review_id"]).status == "pending"
     assert spool.size() == 0
     # the store is tried on the request path again
-    again = router.route(_results(["abstain"]), x[:1], None, None, MODEL)
+    again = router.enqueue(answered(["abstain"], x[:1]))
     assert "review_id" in again[0]
 
 
@@ -113,16 +82,16 @@ def test_while_the_store_stays_down_the_request_path_does_not_retry_it(parts: tu
     router = ReviewRouter(store, spool, replay_s=0.05)
     x = np.zeros((1, 64), dtype=np.float32)
     store.down = True
-    router.route(_results(["abstain"]), x, None, None, MODEL)
+    router.enqueue(answered(["abstain"], x))
     assert router.replayer is not None
     router.replayer.stop()  # count only the request path's calls from here
     calls = store.calls
     threading.Event().wait(0.2)  # four replay intervals
-    router.route(_results(["abstain"]), x, None, None, MODEL)
+    router.enqueue(answered(["abstain"], x))
     assert store.calls == calls and spool.size() == 2
     store.down = False
     router.replayer.run_once()
-    assert "review_id" in router.route(_results(["abstain"]), x, None, None, MODEL)[0]
+    assert "review_id" in router.enqueue(answered(["abstain"], x))[0]
 
 
 def test_without_a_working_spool_the_answer_says_not_queued(tmp_path: Path, parts: tuple[SwitchStore, Spool]) -> None:
@@ -130,7 +99,7 @@ def test_without_a_working_spool_the_answer_says_not_queued(tmp_path: Path, part
     (tmp_path / "file").write_text("x")
     router = ReviewRouter(store, Spool(tmp_path / "file" / "spool.sqlite3"))
     store.down = True
-    [note] = router.route(_results(["abstain"]), np.zeros((1, 64)), None, None, MODEL)
+    [note] = router.enqueue(answered(["abstain"]))
     assert note == {"review": {"queued": False, "spooled": False, "reason": note["review"]["reason"]}}
     assert router.stats()["unspooled"] == 1 and router.failures == 1
 
@@ -138,11 +107,10 @@ def test_without_a_working_spool_the_answer_says_not_queued(tmp_path: Path, part
 def test_audit_sampling_goes_to_review_silently(parts: tuple[SwitchStore, Spool]) -> None:
     store, spool = parts
     router = ReviewRouter(store, spool, audit_fraction=1.0)
-    notes = router.route(_results(["accept"] * 4), np.zeros((4, 64)), None, None, MODEL)
+    notes = router.enqueue(answered(["accept"] * 4))
     assert notes == [None] * 4  # the client is not told
     assert [i.kind for i in store.inner.list()] == ["audit"] * 4
-    assert ReviewRouter(store, spool, audit_fraction=0.0).route(
-        _results(["accept"]), np.zeros((1, 64)), None, None, MODEL) == [None]
+    assert ReviewRouter(store, spool, audit_fraction=0.0).enqueue(answered(["accept"])) == [None]
 
 
 def test_audit_choice_is_deterministic_per_case_id_and_near_the_fraction() -> None:
@@ -175,7 +143,7 @@ def test_accuracy_known_value_zero_of_one() -> None:
 def test_router_accuracy_from_decided_items(parts: tuple[SwitchStore, Spool]) -> None:
     store, spool = parts
     router = ReviewRouter(store, spool, audit_fraction=1.0)
-    router.route(_results(["accept"] * 4 + ["abstain"] * 2), np.zeros((6, 64)), None, None, MODEL)
+    router.enqueue(answered(["accept"] * 4 + ["abstain"] * 2))
     labels = {"audit": ["7", "7", "7", "1"], "abstain": ["2", "7"]}
     for _ in range(6):
         got = store.inner.claim_next("r")
@@ -202,3 +170,72 @@ def test_from_config_uses_sqlite_under_data_dir(tmp_path: Path) -> None:
         assert not (tmp_path / "d").exists(), "nothing touches disk before the first item"
     finally:
         router.close()
+
+
+# --- limits: the pending ceiling and per-caller quotas -----------------------------------------
+
+
+class Clock:
+    def __init__(self) -> None:
+        self.t = 1000.0
+
+    def __call__(self) -> float:
+        return self.t
+
+
+def test_the_ceiling_holds_and_the_answer_says_backlog_full(parts: tuple[SwitchStore, Spool]) -> None:
+    store, spool = parts
+    events: list[tuple[str, int]] = []
+    clock = Clock()
+    router = ReviewRouter(store, spool, max_pending=5, on_event=lambda name, n: events.append((name, n)),
+                          clock=clock)
+    notes = router.enqueue(answered(["abstain"] * 3))
+    assert all("review_id" in n for n in notes)
+    notes = router.enqueue(answered(["abstain", "accept", "abstain", "abstain"]))  # room for 2
+    assert "review_id" in notes[0] and notes[1] is None and "review_id" in notes[2]
+    assert notes[3] == {"review": {"queued": False, "reason": "not queued: backlog full"}}
+    assert router.enqueue(answered(["abstain"])) == [{"review": {"queued": False,
+                                                                 "reason": "not queued: backlog full"}}]
+    assert store.inner.counts()["pending"] == 5
+    assert events == [("backlog_full", 1), ("backlog_full", 1)] and router.stats()["backlog_full"] == 2
+    claimed = store.inner.claim_next("t-1")
+    assert claimed is not None
+    store.inner.decide(claimed.id, "t-1", label="1")
+    clock.t += 1.0  # the next refresh sees the decided item gone from pending
+    assert "review_id" in router.enqueue(answered(["abstain"]))[0]
+
+
+def test_audits_never_take_room_from_abstentions(parts: tuple[SwitchStore, Spool]) -> None:
+    store, spool = parts
+    router = ReviewRouter(store, spool, max_pending=2, audit_fraction=1.0, clock=Clock())
+    notes = router.enqueue(answered(["accept", "abstain", "accept", "abstain"]))
+    assert notes[0] is None and notes[2] is None  # audits are dropped silently
+    assert "review_id" in notes[1] and "review_id" in notes[3]
+    assert [it.kind for it in store.inner.list()] == ["abstain", "abstain"]
+
+
+def test_per_caller_quota_per_minute(parts: tuple[SwitchStore, Spool]) -> None:
+    store, spool = parts
+    clock = Clock()
+    events: list[tuple[str, int]] = []
+    router = ReviewRouter(store, spool, quota_per_min=3, clock=clock,
+                          on_event=lambda name, n: events.append((name, n)))
+    a = router.enqueue(answered(["abstain"] * 4, caller="t-aaaa"))
+    assert [("review_id" in n) for n in a] == [True, True, True, False]
+    assert a[3] == {"review": {"queued": False, "reason": "not queued: enqueue quota exceeded"}}
+    assert all("review_id" in n for n in router.enqueue(answered(["abstain"] * 3, caller="t-bbbb")))
+    clock.t += 60.0  # a new minute
+    assert all("review_id" in n for n in router.enqueue(answered(["abstain"] * 3, caller="t-aaaa")))
+    assert events == [("quota", 1)]
+
+
+def test_an_unstorable_case_is_set_aside_and_the_rest_queued(parts: tuple[SwitchStore, Spool]) -> None:
+    """Past the boundary (e.g. a caller of the pipeline that skips validation): the store
+    rejects the one item, the others are queued, the answer says so, the event is counted."""
+    store, spool = parts
+    events: list[tuple[str, int]] = []
+    router = ReviewRouter(store, spool, on_event=lambda name, n: events.append((name, n)))
+    notes = router.enqueue(answered(["abstain"] * 3, case_ids=["fine-1", "bad\x00", "fine-2"]))
+    assert "review_id" in notes[0] and "review_id" in notes[2]
+    assert notes[1] == {"review": {"queued": False, "reason": NOT_QUEUED["rejected"]}}
+    assert events == [("rejected", 1)] and store.inner.rejected_count() == 1 and spool.size() == 0

@@ -19,6 +19,7 @@ from typing import Any
 import pytest
 
 from demur.serve.review.router import ReviewRouter
+from demur.serve.web import review_api
 
 TOKENS = {"review_tokens": "desk-token-1,desk-token-2", "admin_tokens": "ops-token",
           "predict_tokens": "sorter-token"}
@@ -287,3 +288,40 @@ def test_store_down_the_answer_still_comes_spooled_and_the_failure_metric_rises(
         assert client.get("/v1/model").json["review"]["available"] is False
     finally:
         _router(app).close()
+
+
+def test_csv_export_neutralises_formulas_in_every_text_cell(client: Any) -> None:
+    """OWASP, "CSV Injection": a cell that starts with = + - @ tab or carriage return is read
+    as a formula by spreadsheets; prefix it with an apostrophe. The client's case id and the
+    reviewer's note are free text; numbers (a negative value) stay numbers."""
+    hostile = ["=HYPERLINK(\"http://x\")", "+1+cmd|' /C calc'!A0", "-2+3", "@SUM(A1)"]
+    ids = [r["review_id"] for r in _predict(client, [_digit(s) for s in range(4)], hostile)]
+    for rid, note in zip(ids, ["=1+1", "plain", "-x", "@me"]):
+        claimed = client.post("/v1/reviews/claim", headers=R1).json["item"]
+        assert claimed["id"] == rid
+        assert client.post(f"/v1/reviews/{rid}/decision", headers=R1,
+                           json={"label": "4", "note": note}).status_code == 200
+    rows = list(csv.DictReader(io.StringIO(client.get("/v1/reviews/export?format=csv", headers=R1)
+                                           .get_data(as_text=True))))
+    assert [r["client_case_id"] for r in rows] == ["'" + h for h in hostile]
+    assert [r["note"] for r in rows] == ["'=1+1", "plain", "'-x", "'@me"]
+    assert not any(cell.startswith(tuple("=+-@\t\r")) for r in rows for k, cell in r.items() if k[:1] != "x")
+    assert review_api._safe_cell("-0.25") == "-0.25" and review_api._safe_cell("-1e-3") == "-1e-3"
+
+
+@pytest.mark.parametrize(("body", "field"), [
+    ({"label": "4", "note": "bad \ud800 note"}, "note"),
+    ({"label": "4", "note": "nul\x00"}, "note"),
+    ({"label": "4\x00"}, "label"),
+    ({"label": "\ud800"}, "label"),
+])
+def test_reviewer_text_is_checked_at_the_boundary(client: Any, body: dict[str, Any], field: str) -> None:
+    [res] = _predict(client, [_digit(0)])
+    assert client.post("/v1/reviews/claim", headers=R1).json["item"]["id"] == res["review_id"]
+    r = client.post(f"/v1/reviews/{res['review_id']}/decision", headers=R1, data=json.dumps(body),
+                    content_type="application/json")
+    assert r.status_code == 400 and r.json["error"]["field"] == field, r.json
+    r = client.post("/v1/reviews/claim", headers=R1, data=json.dumps({"skip": ["ok", "\ud800"]}),
+                    content_type="application/json")
+    assert r.status_code == 400 and r.json["error"]["field"] == "skip[1]"
+    assert client.get("/v1/reviews?after=%00", headers=R1).json["error"]["field"] == "after"

@@ -20,7 +20,8 @@ import psycopg
 import psycopg_pool
 import pytest
 
-from demur.serve.errors import ConfigError, Conflict, NotFound, ReviewStoreUnavailable
+from demur.serve.review import store as review_store
+from demur.serve.errors import ConfigError, Conflict, NotFound, ReviewItemRejected, ReviewStoreUnavailable
 from demur.serve.review.store import (
     SCHEMA_VERSION,
     PostgresStore,
@@ -302,6 +303,9 @@ def test_open_store_parses_urls(tmp_path: Path) -> None:
     (sqlite3.ProgrammingError("Cannot operate on a closed database."), ReviewStoreUnavailable),
     (sqlite3.IntegrityError("UNIQUE constraint failed"), Conflict),
     (PermissionError("read-only directory"), ReviewStoreUnavailable),
+    (sqlite3.DataError("string or blob too big"), ReviewItemRejected),
+    (UnicodeEncodeError("utf-8", "\ud800", 0, 1, "surrogates not allowed"), ReviewItemRejected),
+    (OverflowError("Python int too large to convert to SQLite INTEGER"), ReviewItemRejected),
 ])
 def test_sqlite_exceptions_map_to_ours(exc: Exception, expected: type) -> None:
     with pytest.raises(expected) as err:
@@ -318,6 +322,10 @@ def test_sqlite_exceptions_map_to_ours(exc: Exception, expected: type) -> None:
     (psycopg_pool.PoolTimeout("couldn't get a connection after 3.00 sec"), ReviewStoreUnavailable),
     (psycopg_pool.PoolClosed("the pool is closed"), ReviewStoreUnavailable),
     (psycopg.errors.UniqueViolation("duplicate key value"), Conflict),
+    (psycopg.DataError("PostgreSQL text fields cannot contain NUL (0x00) bytes"), ReviewItemRejected),
+    (psycopg.errors.CharacterNotInRepertoire("invalid byte sequence for encoding"), ReviewItemRejected),
+    (psycopg.errors.NumericValueOutOfRange("value out of range"), ReviewItemRejected),
+    (UnicodeEncodeError("utf-8", "\ud800", 0, 1, "surrogates not allowed"), ReviewItemRejected),
 ])
 def test_postgres_exceptions_map_to_ours(exc: Exception, expected: type) -> None:
     with pytest.raises(expected) as err:
@@ -366,3 +374,72 @@ def test_repr_never_shows_credentials() -> None:
         s.close()
 
 
+
+
+# --------------------------------------------------------------------------- data errors
+
+
+POISON = ["\ud800x", "nul\x00here", "\udfff", "a\x00\ud800"]
+"""Client case ids no store can hold: lone surrogates have no UTF-8 form (Unicode 15,
+section 3.9, D76); PostgreSQL's text type cannot hold NUL (PostgreSQL manual, "Character
+Types"); SQLite is held to the same rule."""
+
+
+def test_unstorable_items_are_set_aside_and_the_rest_stored(store: ReviewStore) -> None:
+    batch = [item(client_case_id="good-0")] + [item(client_case_id=c) for c in POISON] + [item(client_case_id="good-1")]
+    ids = store.enqueue(batch)
+    assert ids[0] == batch[0].id and ids[-1] == batch[-1].id
+    assert ids[1:-1] == [None] * len(POISON)
+    assert {it.client_case_id for it in store.list()} == {"good-0", "good-1"}
+    assert store.rejected_count() == len(POISON)
+    aside = store.rejected()
+    assert {r["id"] for r in aside} == {it.id for it in batch[1:-1]}
+    assert {r["item"]["client_case_id"] for r in aside} == set(POISON)  # kept exactly, escaped in JSON
+    assert all(r["reason"].isascii() and r["reason"] for r in aside)
+    assert store.enqueue(batch[1:2]) == [None] and store.rejected_count() == len(POISON)  # set aside once
+
+
+def test_driver_data_errors_are_rejections_not_outages(store: ReviewStore, monkeypatch: pytest.MonkeyPatch) -> None:
+    """Past the pre-check, the driver's own refusal (psycopg: DataError for a NUL and
+    UnicodeEncodeError for a surrogate; sqlite3: UnicodeEncodeError) sets the item aside too."""
+    monkeypatch.setattr(review_store, "unstorable", lambda it: None)
+    batch = [item(client_case_id="ok-a"), item(client_case_id="\ud800y"), item(client_case_id="ok-b")]
+    ids = store.enqueue(batch)
+    assert ids[1] is None and ids[0] == batch[0].id and ids[2] == batch[2].id
+    assert store.rejected_count() == 1
+    claimed = store.claim_next("t-1")
+    assert claimed is not None
+    with pytest.raises(ReviewItemRejected):  # a reviewer's text the API let through: a 422, not a 503
+        store.decide(claimed.id, "t-1", label="1", note="bad \ud800 note")
+    assert store.get(claimed.id).status == "claimed"
+
+
+def test_a_version_1_store_is_migrated(backend: tuple[str, str], clock: Clock) -> None:
+    """A queue made by the previous release (schema 1, no dead-letter table) gains the table;
+    its items stay."""
+    kind, url = backend
+    old = open_store(url, lease_s=LEASE_S, clock=clock)
+    [rid] = old.enqueue([item(client_case_id="from-v1")])
+    with old._op(write=True) as cur:  # put it back to version 1
+        cur.execute(old._q("DROP TABLE {rejected}"))
+        cur.execute(old._q("DELETE FROM {version}"))
+        cur.execute(old._q("INSERT INTO {version} (version) VALUES (1)"))
+    old.close()
+    new = open_store(url, lease_s=LEASE_S, clock=clock)
+    try:
+        assert new.get(rid).client_case_id == "from-v1"
+        assert new.enqueue([item(client_case_id="\ud800")]) == [None] and new.rejected_count() == 1
+        with new._op(write=False) as cur:
+            cur.execute(new._q("SELECT version FROM {version}"))
+            assert cur.fetchall() == [(SCHEMA_VERSION,)]
+    finally:
+        new.close()
+
+
+def test_pending_count_is_the_pending_of_counts(store: ReviewStore, clock: Clock) -> None:
+    store.enqueue([item() for _ in range(4)])
+    store.claim_next("t-1")
+    store.claim_next("t-2")
+    assert store.pending_count() == store.counts()["pending"] == 2
+    clock.advance(LEASE_S + 1)  # both leases expired: pending again
+    assert store.pending_count() == store.counts()["pending"] == 4

@@ -132,3 +132,84 @@ def test_unwritable_spool_raises_spool_error(tmp_path: Path) -> None:
     (tmp_path / "file").write_text("x")
     with pytest.raises(SpoolError):
         Spool(tmp_path / "file" / "spool.sqlite3").put([item()])
+
+
+# -- one bad item never stalls the spool ------------------------------------------------------
+
+
+class PickyStore:
+    """Wraps a real store; any batch holding an item whose case id starts with ``bomb`` raises
+    a plain ``RuntimeError`` (a failure the store did not classify); ``crash`` makes every
+    call raise ``KeyError`` (a bug, not an outage)."""
+
+    def __init__(self, inner: SqliteStore) -> None:
+        self.inner = inner
+        self.crash = False
+        self.lease_s = inner.lease_s
+
+    def enqueue(self, items: Sequence[NewItem]) -> list[str | None]:
+        if self.crash:
+            raise KeyError("a bug in the store")
+        if any((it.client_case_id or "").startswith("bomb") for it in items):
+            raise RuntimeError("cannot take this item")
+        return self.inner.enqueue(items)
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self.inner, name)
+
+
+def test_the_spool_drains_past_poisoned_items(tmp_path: Path) -> None:
+    """Items the store can never hold (a lone surrogate, a NUL: set aside by the store) and an
+    item the store fails on alone (set aside here) sit first in the oldest-first spool; every
+    good item behind them still reaches the store, and the spool ends empty."""
+    inner = SqliteStore(tmp_path / "r.sqlite3", lease_s=60)
+    spool = Spool(tmp_path / "s.sqlite3")
+    poison = [item(client_case_id="\ud800x"), item(client_case_id="nul\x00"), item(client_case_id="bomb-1")]
+    good = [item(client_case_id=f"good-{i}") for i in range(5)]
+    spool.put(poison + good)
+    moved = spool.replay(PickyStore(inner), batch=3)
+    assert spool.size() == 0 and moved == len(poison) + len(good)
+    assert {it.client_case_id for it in inner.list()} == {f"good-{i}" for i in range(5)}
+    assert inner.rejected_count() == 2  # the store's dead letters
+    assert spool.rejected_size() == 1  # the one the store failed on alone
+    inner.close()
+
+
+def test_an_unreadable_spool_entry_is_set_aside(tmp_path: Path) -> None:
+    inner = SqliteStore(tmp_path / "r.sqlite3", lease_s=60)
+    spool = Spool(tmp_path / "s.sqlite3")
+    spool.put([item(client_case_id="first")])
+    with spool._conn() as conn:
+        conn.execute("INSERT INTO demur_spool (id, item) VALUES ('x', '{not json')")
+        conn.execute("""INSERT INTO demur_spool (id, item) VALUES ('y', '{"id": "y"}')""")
+    spool.put([item(client_case_id="last")])
+    assert spool.replay(inner) == 2 and spool.size() == 0 and spool.rejected_size() == 2
+    assert {it.client_case_id for it in inner.list()} == {"first", "last"}
+    inner.close()
+
+
+def test_the_replayer_survives_any_exception(tmp_path: Path) -> None:
+    """A store that fails every call with a bug (not an outage): each pass is logged and
+    counted, the thread lives on, nothing is set aside (no item was at fault); once the store
+    works again the spool drains."""
+    inner = SqliteStore(tmp_path / "r.sqlite3", lease_s=60)
+    store = PickyStore(inner)
+    spool = Spool(tmp_path / "s.sqlite3")
+    spool.put([item(client_case_id="wait-1"), item(client_case_id="wait-2")])
+    errors: list[int] = []
+    up = threading.Event()
+    replayer = Replayer(spool, store, interval_s=0.05, on_error=lambda: errors.append(1), on_up=up.set)
+    store.crash = True
+    replayer.start()
+    deadline = time.monotonic() + 10
+    while replayer.errors < 3 and time.monotonic() < deadline:
+        time.sleep(0.02)
+    assert replayer.running and replayer.errors >= 3 and len(errors) == replayer.errors
+    assert spool.size() == 2 and spool.rejected_size() == 0 and not up.is_set()
+    store.crash = False
+    while spool.size() and time.monotonic() < deadline:
+        time.sleep(0.02)
+    replayer.stop()
+    assert spool.size() == 0 and up.is_set()
+    assert {it.client_case_id for it in inner.list()} == {"wait-1", "wait-2"}
+    inner.close()

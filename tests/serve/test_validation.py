@@ -19,7 +19,7 @@ from hypothesis import strategies as st
 
 from demur.serve.core.bundle import InputSpec
 from demur.serve.errors import InvalidInput, PayloadTooLarge
-from demur.serve.core.validation import PredictRequest, parse_json, validate_predict
+from demur.serve.core.validation import PredictRequest, client_text, parse_json, validate_predict
 
 NAMES = tuple(f"px_r{r}c{c}" for r in range(8) for c in range(8))
 F32_MAX = float(np.finfo(np.float32).max)  # IEEE 754 binary32 largest finite value
@@ -303,3 +303,29 @@ def test_malformed_count_reached() -> None:
         pytest.skip("the property test did not run in this session (selected alone)")
     assert len(MALFORMED_SEEN) >= 300
     assert not [s for s in MALFORMED_SEEN if s >= 500]
+
+
+# --- client text ------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(("text", "what"), [
+    ("\ud800x", "lone surrogate"), ("x\udfff", "lone surrogate"), ("a\x00b", "NUL"),
+    ("\x1b[31mred", "control"), ("del\x7f", "control"), ("c1\x85", "control"), ("cr\rlf", "control"),
+    ("x" * 201, "1 to 200"), ("", "1 to 200"),
+])
+def test_hostile_case_ids_get_a_400_naming_the_entry(text: str, what: str) -> None:
+    """Lone surrogates are not Unicode scalar values (Unicode 15, section 3.9, D76), so no UTF-8
+    form exists; C0/C1 controls and NUL are refused as well (a store, a log line, a CSV cell)."""
+    err = _error({"cases": [[0] * 64] * 3, "case_ids": ["ok-0", None, text]})
+    assert err.field == "case_ids[2]" and what in err.message
+    assert text not in err.message or not text  # the message names the code point, never echoes it
+
+
+def test_client_text_accepts_printable_unicode() -> None:
+    for text in ("parcel-0042", "Straße 7 · 郵便番号", "emoji 📦", "x" * 200):
+        assert client_text(text, "f", max_chars=200) == text
+    assert client_text("two\nlines\tand a tab", "note", max_chars=50, multiline=True)
+    with pytest.raises(InvalidInput, match="control character"):
+        client_text("two\nlines", "label", max_chars=50)
+    with pytest.raises(InvalidInput, match="must be a string"):
+        client_text(7, "label", max_chars=50)
