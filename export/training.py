@@ -97,6 +97,7 @@ from torch import nn
 
 from demur.serve.core.drift import feature_reference
 from demur.serve.core.support import standardisation
+from demur.serve.offline.calibration import expected_calibration_error
 
 from demur.export.datasets import Dataset, load_dataset
 from demur.export.errors import CheckpointError, LayerConfigError, TrainingError
@@ -113,7 +114,6 @@ __all__ = [
     "TrainResult",
     "elbo_optimiser",
     "evaluate",
-    "expected_calibration_error",
     "kl_weight",
     "load_checkpoint",
     "predict_draws",
@@ -139,7 +139,6 @@ SCALE_FLOOR = 1e-6
 EVAL_DRAWS = 32
 """Weight draws used for the reported metrics."""
 
-ECE_BINS = 15
 
 DEFAULTS: dict[str, Any] = {
     "epochs": 60,
@@ -208,23 +207,6 @@ def predict_draws(model: nn.Module, x: torch.Tensor, S: int = EVAL_DRAWS, chunk:
     for _ in range(S):
         out.append(torch.cat([model(x[i:i + chunk]) for i in range(0, len(x), chunk)]))
     return torch.stack(out)
-
-
-def expected_calibration_error(probs: np.ndarray, y: np.ndarray, bins: int = ECE_BINS) -> float:
-    """ECE = sum_m |B_m| / n * |acc(B_m) - conf(B_m)| over equal-width
-    confidence bins (Guo et al. 2017, eq. 3). probs: float[B, K]; y: int[B]."""
-    probs = np.asarray(probs, dtype=np.float64)
-    conf = probs.max(axis=1)
-    correct = (probs.argmax(axis=1) == np.asarray(y)).astype(np.float64)
-    # bin m holds confidences in ((m-1)/M, m/M]
-    idx = np.clip(np.ceil(conf * bins).astype(int) - 1, 0, bins - 1)
-    n = len(conf)
-    total = 0.0
-    for m in range(bins):
-        sel = idx == m
-        if sel.any():
-            total += sel.sum() / n * abs(correct[sel].mean() - conf[sel].mean())
-    return float(total)
 
 
 def evaluate(

@@ -170,7 +170,6 @@ class _Loaded:
     session: Any
     draws: int
     seed: int | None
-    means: Any | None
     noise: _Noise | None
     center: np.ndarray
     scale: np.ndarray
@@ -262,16 +261,12 @@ class Engine:
                 seed = int.from_bytes(os.urandom(4), "little") % _SEED_MODULUS
             session = self._session(kind, seed)
             noise = _Noise.of(session, kind, seed if kind in _SAMPLING_KINDS else None)
-            means = None
-            if "means" in self.bundle.manifest.graphs:
-                means = session if kind == "means" else self._session("means", None)
             spec = self.bundle.manifest.inputs
             self._state = _Loaded(
                 kind=kind,
                 session=session,
                 draws=int(self.bundle.manifest.graphs[kind].draws),
                 seed=seed if kind in _SAMPLING_KINDS else None,
-                means=means,
                 noise=noise,
                 center=np.asarray(spec.center, dtype=np.float64).reshape(spec.shape),
                 scale=np.asarray(spec.scale, dtype=np.float64).reshape(spec.shape),
@@ -313,18 +308,6 @@ class Engine:
         state = self._loaded()
         return self._run(state.session, self.standardise(x_raw), state.kind, state.noise)
 
-    def run_standardised(self, x_std: Any) -> np.ndarray:
-        """Like ``run`` for inputs already standardised (float32[B, *shape]); nothing is re-applied."""
-        state = self._loaded()
-        return self._run(state.session, np.ascontiguousarray(x_std, dtype=np.float32), state.kind, state.noise)
-
-    def run_means(self, x_raw: Any) -> np.ndarray:
-        """float[B, *shape] raw inputs -> float32[1, B, K] from the means graph (the deterministic fallback)."""
-        state = self._loaded()
-        if state.means is None:
-            raise ConfigError(f"bundle {self.bundle.path} has no 'means' graph", field="graph")
-        return self._run(state.means, self.standardise(x_raw), "means")
-
     # -- description --------------------------------------------------------------
     @property
     def loaded(self) -> bool:
@@ -339,11 +322,6 @@ class Engine:
     def draws(self) -> int:
         """S, the number of draws ``run`` returns."""
         return self._loaded().draws
-
-    @property
-    def seed_in_use(self) -> int | None:
-        """The base seed of this load's random nodes and noise generator (``None`` for graphs that do not sample)."""
-        return self._loaded().seed
 
     @property
     def task(self) -> str:

@@ -175,7 +175,7 @@ class Metrics:
     ``config`` supplies the window sizes and the multiprocess directory;
     ``registry`` is where the metrics live (a fresh ``CollectorRegistry`` when
     not given); ``review`` is the review router, read at scrape time for queue
-    depths (optional, also settable with ``bind_review``).
+    depths (optional; ``init_app`` takes the app's review router when none is given).
     """
 
     def __init__(self, config: ServeConfig, *, registry: CollectorRegistry | None = None, review: Any = None) -> None:
@@ -303,10 +303,6 @@ class Metrics:
         if live is not None:
             self.bind_model(live.engine.bundle, rule if rule is not None else live.rule)
 
-    def bind_review(self, review: Any) -> None:
-        """Read queue depths from ``review`` at scrape time."""
-        self._review = review
-
     # ------------------------------------------------------------------ observing
     def observe_error(self, *, status: int, code: str, endpoint: str | None) -> None:
         """The app's hook for every error answer: counted by its machine code."""
@@ -317,7 +313,7 @@ class Metrics:
         """Record one answered predict batch (vectorised over its B cases); the app calls it.
 
         ``x_raw``: float[B, ...] inputs before standardisation (flattened per case);
-        ``summary``: a ``demur.serve.core.summary`` summary; ``decisions``: ``demur.serve.core.decision.Decisions``;
+        ``summary``: a ``demur.serve.core.summary`` summary; ``decisions``: ``demur.serve.core.decision.Verdicts``;
         ``graph_seconds`` / ``total_seconds``: wall time of the graph run and of the whole batch.
         """
         abstain = np.asarray(decisions.abstain, dtype=bool).ravel()

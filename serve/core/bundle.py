@@ -34,6 +34,7 @@ import datetime as _dt
 import hashlib
 import json
 import os
+import re
 import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -47,7 +48,7 @@ __all__ = [
     "GRAPH_KINDS",
     "SCORES",
     "Bundle",
-    "Decision",
+    "DecisionSection",
     "GraphEntry",
     "InputSpec",
     "Manifest",
@@ -114,8 +115,9 @@ class GraphEntry:
 
 
 @dataclass(frozen=True)
-class Decision:
-    """The abstention rule: abstain when ``score`` > ``threshold``.
+class DecisionSection:
+    """The manifest's ``decision`` section: the abstention rule as stored (abstain when
+    ``score`` > ``threshold``); ``decision.rule_from`` turns it into the ``DecisionRule`` in force.
 
     ``calibration`` is the record written by ``demur calibrate`` (method,
     target, delta, n, achieved figures, bound, data fingerprint, date), or
@@ -140,7 +142,7 @@ class Manifest:
     inputs: InputSpec
     posterior: dict[str, Any]
     graphs: dict[str, GraphEntry]
-    decision: Decision
+    decision: DecisionSection
     interval_level: float
     drift_reference: dict[str, Any]
     target: dict[str, float]
@@ -186,6 +188,18 @@ def _need(obj: dict[str, Any], key: str, kind: type | tuple[type, ...], where: s
         raise ManifestInvalid(
             f"manifest '{where}{key}' must be {want}; got {type(value).__name__}", field=f"{where}{key}"
         )
+    return value
+
+
+_HEADER_SAFE = re.compile(r"[\x21-\x7e](?:[\x20-\x7e]{0,198}[\x21-\x7e])?")
+
+
+def _header_safe(value: str, field: str) -> str:
+    """Model name and version go into every response's ``Demur-Model-Version`` header: printable
+    ASCII only (RFC 9110, section 5.5 field values), 1-200 characters, no CR/LF."""
+    if not _HEADER_SAFE.fullmatch(value):
+        raise ManifestInvalid(f"manifest '{field}' must be 1-200 printable ASCII characters (it is sent in a "
+                              f"header); got {value[:40]!r}", field=field)
     return value
 
 
@@ -263,7 +277,7 @@ def _parse(raw: dict[str, Any]) -> Manifest:
     if score not in SCORES:
         raise ManifestInvalid(f"decision.score must be one of {', '.join(SCORES)}; got '{score}'",
                               field="decision.score")
-    decision = Decision(
+    decision = DecisionSection(
         score=score,
         threshold=float(_need(dec, "threshold", (int, float), "decision.")),
         calibration=dec.get("calibration"),
@@ -272,8 +286,8 @@ def _parse(raw: dict[str, Any]) -> Manifest:
     if not 0.0 < level < 1.0:
         raise ManifestInvalid(f"interval_level must be in (0, 1); got {level}", field="interval_level")
     return Manifest(
-        model_name=str(_need(model, "name", str, "model.")),
-        model_version=str(_need(model, "version", str, "model.")),
+        model_name=_header_safe(_need(model, "name", str, "model."), "model.name"),
+        model_version=_header_safe(_need(model, "version", str, "model."), "model.version"),
         created=str(model.get("created", "")),
         task=task,  # type: ignore[arg-type]
         labels=labels,

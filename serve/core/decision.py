@@ -18,7 +18,7 @@ epistemic_std        regression     std of the draw means, target units
 Before a case may be accepted it must also be inside the training data
 (``demur.serve.core.support``): a case outside abstains whatever its score,
 with its own reason (``outside_training_data: ...``), and
-``Decisions.outside`` marks it (the metrics count it under its own label).
+``Verdicts.outside`` marks it (the metrics count it under its own label).
 Bundles without a support record are decided on the score alone.
 
 The threshold comes from the bundle's decision section (set by ``demur
@@ -46,7 +46,7 @@ from demur.serve.errors import ConfigError
 from demur.serve.core.summary import Summary
 from demur.serve.core.support import SupportCheck
 
-__all__ = ["SCORE_TASKS", "SCORE_UNITS", "DecisionRule", "Decisions", "decide", "rule_from", "score_values"]
+__all__ = ["SCORE_TASKS", "SCORE_UNITS", "DecisionRule", "Verdicts", "decide", "rule_from", "score_values"]
 
 SCORE_TASKS: dict[str, tuple[str, ...]] = {
     "mutual_information": ("classification", "regression"),
@@ -84,8 +84,9 @@ class DecisionRule:
 
 
 @dataclass(frozen=True)
-class Decisions:
-    """One decision per case: the score value, the abstain flag, a readable reason, and
+class Verdicts:
+    """The per-case outcome of applying a ``DecisionRule``: the score value, the abstain flag,
+    a readable reason, and
     whether the case failed the support check (``outside``: bool[B], all False when unchecked)."""
 
     score: np.ndarray  # float64[B]
@@ -116,7 +117,7 @@ def score_values(summary: Summary, name: str) -> np.ndarray:
 
 
 def decide(summary: Summary, rule: DecisionRule, *, support: SupportCheck | None = None,
-           x_raw: np.ndarray | None = None) -> Decisions:
+           x_raw: np.ndarray | None = None) -> Verdicts:
     """Apply ``rule`` to every case of ``summary``; with ``support`` (and the raw inputs
     ``x_raw``: float[B, *shape], before standardisation) a case outside the training data
     abstains too, its reason first."""
@@ -129,12 +130,12 @@ def decide(summary: Summary, rule: DecisionRule, *, support: SupportCheck | None
         for v, a in zip(score.tolist(), abstain.tolist())
     ]
     if support is None:
-        return Decisions(score=score, abstain=abstain, reason=reason)
+        return Verdicts(score=score, abstain=abstain, reason=reason)
     if x_raw is None or len(x_raw) != len(score):
         raise ValueError("decide with a support check needs the raw inputs of every case (x_raw)")
     checked = support.check(x_raw)
     reason = [f"{why}; {r}" if why else r for why, r in zip(checked.reason, reason)]
-    return Decisions(score=score, abstain=abstain | checked.outside, reason=reason, outside=checked.outside)
+    return Verdicts(score=score, abstain=abstain | checked.outside, reason=reason, outside=checked.outside)
 
 
 def rule_from(manifest: Any, config: Any = None) -> DecisionRule:

@@ -34,7 +34,7 @@ import numpy as np
 
 from demur.serve.config import ServeConfig
 from demur.serve.core import render
-from demur.serve.core.decision import DecisionRule, Decisions, decide, rule_from
+from demur.serve.core.decision import DecisionRule, Verdicts, decide, rule_from
 from demur.serve.core.summary import Summary, summarise
 from demur.serve.core.support import support_from_manifest
 from demur.serve.core.validation import PredictRequest, validate_predict
@@ -86,7 +86,7 @@ class Answered:
     live: Live
     request: PredictRequest
     summary: Summary
-    decisions: Decisions
+    decisions: Verdicts
     results: list[dict[str, Any]]
     caller: str | None = None
 
@@ -104,7 +104,7 @@ class MetricsHook(Protocol):
 
     def bind_model(self, bundle: Any, rule: DecisionRule) -> None: ...
 
-    def observe_predict(self, *, x_raw: np.ndarray, summary: Summary, decisions: Decisions,
+    def observe_predict(self, *, x_raw: np.ndarray, summary: Summary, decisions: Verdicts,
                         graph_seconds: float, total_seconds: float) -> None: ...
 
     def observe_error(self, *, status: int, code: str, endpoint: str | None) -> None: ...

@@ -31,7 +31,7 @@ from typing import Any
 
 import numpy as np
 
-from demur.serve.core.decision import DecisionRule, Decisions
+from demur.serve.core.decision import DecisionRule, Verdicts
 from demur.serve.core.summary import ClassificationSummary, RegressionSummary, Summary
 
 __all__ = ["model_ref", "results"]
@@ -44,7 +44,7 @@ def model_ref(name: str, version: str, checksum: str) -> dict[str, str]:
 
 def results(
     summary: Summary,
-    decisions: Decisions,
+    decisions: Verdicts,
     rule: DecisionRule,
     labels: tuple[str, ...],
     case_ids: list[str | None],

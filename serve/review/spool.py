@@ -243,10 +243,6 @@ class Replayer:
             self._thread = threading.Thread(target=self._loop, name="demur-spool-replayer", daemon=True)
             self._thread.start()
 
-    def wake(self) -> None:
-        """Replay now instead of at the next tick."""
-        self._wake.set()
-
     def stop(self, timeout_s: float = 5.0) -> None:
         self._stop.set()
         self._wake.set()

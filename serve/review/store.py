@@ -363,7 +363,7 @@ class ReviewStore(Protocol):
     def get(self, item_id: str) -> ReviewItem:
         """The item, or ``NotFound``."""
 
-    def list(self, status: str | None = None, *, kind: str | None = None,
+    def page(self, status: str | None = None, *, kind: str | None = None,
              limit: int = 50, after: str | None = None) -> list[ReviewItem]:
         """Items oldest first, ``limit`` at most, ids greater than ``after`` (a page cursor)."""
 
@@ -553,7 +553,7 @@ class _SqlStore:
             raise NotFound(f"no review item with id '{item_id}'", field="id")
         return _row_to_item(row, self._clock())
 
-    def list(self, status: str | None = None, *, kind: str | None = None,
+    def page(self, status: str | None = None, *, kind: str | None = None,
              limit: int = 50, after: str | None = None) -> list[ReviewItem]:
         now = self._clock()
         where, params = ["1 = 1"], []

@@ -189,7 +189,7 @@ def make_blueprint(router: Any) -> Blueprint:
         after = request.args.get("after") or None
         if after is not None:
             _item_id(after, "after")
-        items = store().list(status, kind=kind, limit=limit, after=after)
+        items = store().page(status, kind=kind, limit=limit, after=after)
         nxt = items[-1].id if len(items) == limit else None
         return _json({"items": [it.brief() for it in items], "next": nxt})
 
@@ -257,7 +257,7 @@ def _decided(store: Any, limit: int) -> list[ReviewItem]:
     out: list[ReviewItem] = []
     after = None
     while len(out) < limit:
-        page = store.list("decided", limit=min(MAX_LIMIT, limit - len(out)), after=after)
+        page = store.page("decided", limit=min(MAX_LIMIT, limit - len(out)), after=after)
         out += page
         if len(page) < MAX_LIMIT:
             break

@@ -170,7 +170,7 @@ def test_poisoned_spool_drains(backend: str, tmp_path: Path, tiny_bundle_factory
             left = spool.size()
             store = open_store(url, lease_s=60)
             try:
-                stored = {it.client_case_id for it in store.list(limit=500)}
+                stored = {it.client_case_id for it in store.page(limit=500)}
                 rejected = store.rejected_count() if hasattr(store, "rejected_count") else 0
             finally:
                 store.close()

@@ -24,7 +24,7 @@ from typing import Any
 
 import numpy as np
 
-from demur.serve.core.decision import Decisions
+from demur.serve.core.decision import Verdicts
 from demur.serve.core.pipeline import Answered
 from demur.serve.core.validation import PredictRequest
 from demur.serve.review.store import NewItem, new_item
@@ -130,7 +130,7 @@ def answered(decisions: list[str], x: Any = None, case_ids: list[str | None] | N
     manifest = SimpleNamespace(task="classification", labels=tuple(str(d) for d in range(10)), inputs=inputs)
     live = SimpleNamespace(model=dict(model or MODEL), manifest=manifest)
     abstain = np.asarray([d == "abstain" for d in decisions], dtype=bool)
-    dec = Decisions(score=np.full(n, 0.3), abstain=abstain, reason=["r"] * n)
+    dec = Verdicts(score=np.full(n, 0.3), abstain=abstain, reason=["r"] * n)
     return Answered(live=live, request=PredictRequest(x=arr, case_ids=ids), summary=None,  # type: ignore[arg-type]
                     decisions=dec, results=results(decisions, ids), caller=caller)
 

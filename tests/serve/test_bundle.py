@@ -10,6 +10,7 @@ from __future__ import annotations
 import hashlib
 import json
 from pathlib import Path
+from typing import Any
 
 import pytest
 
@@ -167,3 +168,19 @@ def test_a_refused_bundle_leaves_a_running_engine_untouched(tiny_bundle_factory,
         fresh.run([[0.0] * 64])
 
 
+
+
+@pytest.mark.parametrize("name", ["depot\r\nX-Injected: 1", "", "digits\x00", "ziffern-\u00fc", "x" * 201])
+def test_model_names_that_cannot_be_a_header_are_refused(tiny_bundle_factory: Any, copy_bundle: Any,
+                                                          name: str) -> None:
+    """RFC 9110 section 5.5: a field value is visible ASCII and spaces; a CR/LF in the model name
+    would inject a header into every response, so the bundle is refused at load, naming the field."""
+    path = copy_bundle(tiny_bundle_factory())
+    manifest = json.loads((path / "manifest.json").read_text())
+    manifest["model"]["name"] = name
+    with pytest.raises(ManifestInvalid) as info:  # the writer checks too: such a bundle is never written
+        write_manifest(path, manifest)
+    assert info.value.field == "model.name"
+    (path / "manifest.json").write_text(json.dumps(manifest))  # written by hand, past the writer
+    with pytest.raises((ManifestInvalid, ChecksumMismatch)):
+        load_bundle(path)

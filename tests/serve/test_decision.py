@@ -16,7 +16,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from demur.serve.core.bundle import Decision
+from demur.serve.core.bundle import DecisionSection
 from demur.serve.config import ServeConfig
 from demur.serve.core.decision import DecisionRule, decide, rule_from, score_values
 from demur.serve.errors import ConfigError
@@ -65,13 +65,13 @@ def test_scores_that_do_not_fit_the_task_are_config_errors():
 @dataclasses.dataclass
 class _Manifest:
     task: str
-    decision: Decision
+    decision: DecisionSection
 
 
 def test_rule_from_bundle_and_config_override():
     """Order from DEVELOPERS.md: the bundle's decision section, overridden by ServeConfig."""
-    calibrated = _Manifest("classification", Decision("mutual_information", 0.2, {"method": "x"}))
-    plain = _Manifest("classification", Decision("mutual_information", 0.3, None))
+    calibrated = _Manifest("classification", DecisionSection("mutual_information", 0.2, {"method": "x"}))
+    plain = _Manifest("classification", DecisionSection("mutual_information", 0.3, None))
     assert rule_from(calibrated, ServeConfig()) == DecisionRule("mutual_information", 0.2, "calibrated")
     assert rule_from(plain, None) == DecisionRule("mutual_information", 0.3, "bundle")
     assert rule_from(plain, ServeConfig(threshold=0.05)) == DecisionRule("mutual_information", 0.05, "config")

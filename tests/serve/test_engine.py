@@ -39,7 +39,7 @@ def test_using_the_engine_before_load_raises_not_loaded(tiny_bundle_factory) -> 
     """Constructors store, loading is explicit (scikit-learn's check_is_fitted pattern)."""
     engine = Engine(tiny_bundle_factory())
     x = _raw_cases(engine.bundle, 1)
-    for use in (lambda: engine.run(x), lambda: engine.run_means(x), lambda: engine.draws, lambda: engine.kind):
+    for use in (lambda: engine.run(x), lambda: engine.draws, lambda: engine.kind):
         with pytest.raises(NotLoaded, match="call load"):
             use()
     assert not engine.loaded
@@ -62,7 +62,8 @@ def test_standardisation_is_applied_once(tiny_bundle_factory, arch: str) -> None
     assert np.abs(got - _direct(bundle, "stacked", twice)).max() > 1e-3
     assert np.abs(got - _direct(bundle, "stacked", x.reshape(6, *spec.shape))).max() > 1e-3
     np.testing.assert_allclose(engine.run(x.reshape(6, *spec.shape)), got, atol=0)  # [B, *shape] == [B, F]
-    np.testing.assert_allclose(engine.run_means(x), _direct(bundle, "means", once), atol=1e-5)
+    means = Engine(bundle, graph="means").load()
+    np.testing.assert_allclose(means.run(x), _direct(bundle, "means", once), atol=1e-5)
 
 
 def test_wrong_input_shape_is_invalid_input_naming_x(tiny_bundle_factory) -> None:
@@ -109,7 +110,7 @@ def test_two_engines_without_a_seed_draw_different_streams(tiny_bundle_factory) 
     bundle = tiny_bundle_factory(kind="sampler")
     x = _raw_cases(bundle, 3)
     a, b = Engine(bundle).load(), Engine(bundle).load()
-    assert a.seed_in_use != b.seed_in_use
+    assert a._loaded().seed != b._loaded().seed
     assert not np.array_equal(a.run(x), b.run(x))
 
 
@@ -146,7 +147,7 @@ def test_flip_noise_is_fresh_per_call_repeats_under_a_seed_and_differs_between_u
         np.testing.assert_array_equal(u, v)
     np.testing.assert_array_equal(a.load().run(x), seq_a[0])  # reloading restarts the seeded stream
     c, d = Engine(bundle).load(), Engine(bundle).load()
-    assert c.seed_in_use != d.seed_in_use
+    assert c._loaded().seed != d._loaded().seed
     assert not np.array_equal(c.run(x), d.run(x))
 
 
@@ -269,7 +270,7 @@ def test_a_real_runtime_failure_becomes_graph_run_error(tiny_bundle_factory) -> 
     """onnxruntime refuses a wrongly shaped standardised input (InvalidArgument) -> GraphRunError."""
     engine = Engine(tiny_bundle_factory()).load()
     with pytest.raises(GraphRunError, match="InvalidArgument"):
-        engine.run_standardised(np.zeros((2, 63), np.float32))
+        engine._run(engine._loaded().session, np.zeros((2, 63), np.float32), "stacked", None)
 
 
 def test_a_graph_onnxruntime_cannot_open_fails_load_and_nothing_is_loaded(tiny_bundle_factory, copy_bundle) -> None:

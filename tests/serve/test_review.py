@@ -109,7 +109,7 @@ def test_audit_sampling_goes_to_review_silently(parts: tuple[SwitchStore, Spool]
     router = ReviewRouter(store, spool, audit_fraction=1.0)
     notes = router.enqueue(answered(["accept"] * 4))
     assert notes == [None] * 4  # the client is not told
-    assert [i.kind for i in store.inner.list()] == ["audit"] * 4
+    assert [i.kind for i in store.inner.page()] == ["audit"] * 4
     assert ReviewRouter(store, spool, audit_fraction=0.0).enqueue(answered(["accept"])) == [None]
 
 
@@ -211,7 +211,7 @@ def test_audits_never_take_room_from_abstentions(parts: tuple[SwitchStore, Spool
     notes = router.enqueue(answered(["accept", "abstain", "accept", "abstain"]))
     assert notes[0] is None and notes[2] is None  # audits are dropped silently
     assert "review_id" in notes[1] and "review_id" in notes[3]
-    assert [it.kind for it in store.inner.list()] == ["abstain", "abstain"]
+    assert [it.kind for it in store.inner.page()] == ["abstain", "abstain"]
 
 
 def test_per_caller_quota_per_minute(parts: tuple[SwitchStore, Spool]) -> None:

@@ -115,7 +115,7 @@ def test_hostile_case_ids_never_stop_review(store_url: str, tmp_path: Path, tiny
             if router.spool is not None and router.spool.size() == 0:
                 break
         assert router.spool is not None and router.spool.size() == 0
-        stored = {it.id for it in store.inner.list(limit=500)}
+        stored = {it.id for it in store.inner.page(limit=500)}
         assert expected <= stored, sorted(expected - stored)[:5]
         assert store.inner.rejected_count() == 0  # nothing hostile got past the boundary
         assert seen["200"] > 0 and seen["400"] > 0, seen

@@ -127,7 +127,7 @@ def test_an_expired_claim_returns_to_pending(store: ReviewStore, clock: Clock) -
     clock.advance(LEASE_S + 1)
     assert store.get(it.id).status == "pending"
     assert store.counts() == {"pending": 1, "claimed": 0, "decided": 0, "total": 1}
-    assert [x.id for x in store.list("pending")] == [it.id]
+    assert [x.id for x in store.page("pending")] == [it.id]
     again = store.claim_next("fast")
     assert again.id == it.id and again.claims == 2
     with pytest.raises(Conflict, match="claimed by another reviewer"):
@@ -186,14 +186,14 @@ def test_list_filters_by_status_and_kind_and_pages(store: ReviewStore, clock: Cl
     first = store.claim_next("r1")
     store.decide(first.id, "r1", label="7")
     store.claim_next("r1")
-    assert [x.status for x in store.list("decided")] == ["decided"]
-    assert len(store.list("claimed")) == 1 and len(store.list("pending")) == 5
-    assert {x.kind for x in store.list(kind="audit")} == {"audit"} and len(store.list(kind="audit")) == 3
-    page1 = store.list(limit=4)
-    page2 = store.list(limit=4, after=page1[-1].id)
+    assert [x.status for x in store.page("decided")] == ["decided"]
+    assert len(store.page("claimed")) == 1 and len(store.page("pending")) == 5
+    assert {x.kind for x in store.page(kind="audit")} == {"audit"} and len(store.page(kind="audit")) == 3
+    page1 = store.page(limit=4)
+    page2 = store.page(limit=4, after=page1[-1].id)
     assert [x.id for x in page1 + page2] == [x.id for x in items]
     with pytest.raises(ValueError):
-        store.list("lost")
+        store.page("lost")
 
 
 def test_agreement_counts_label_matches_and_interval_coverage(store: ReviewStore) -> None:
@@ -390,7 +390,7 @@ def test_unstorable_items_are_set_aside_and_the_rest_stored(store: ReviewStore) 
     ids = store.enqueue(batch)
     assert ids[0] == batch[0].id and ids[-1] == batch[-1].id
     assert ids[1:-1] == [None] * len(POISON)
-    assert {it.client_case_id for it in store.list()} == {"good-0", "good-1"}
+    assert {it.client_case_id for it in store.page()} == {"good-0", "good-1"}
     assert store.rejected_count() == len(POISON)
     aside = store.rejected()
     assert {r["id"] for r in aside} == {it.id for it in batch[1:-1]}

@@ -169,7 +169,7 @@ def test_the_spool_drains_past_poisoned_items(tmp_path: Path) -> None:
     spool.put(poison + good)
     moved = spool.replay(PickyStore(inner), batch=3)
     assert spool.size() == 0 and moved == len(poison) + len(good)
-    assert {it.client_case_id for it in inner.list()} == {f"good-{i}" for i in range(5)}
+    assert {it.client_case_id for it in inner.page()} == {f"good-{i}" for i in range(5)}
     assert inner.rejected_count() == 2  # the store's dead letters
     assert spool.rejected_size() == 1  # the one the store failed on alone
     inner.close()
@@ -184,7 +184,7 @@ def test_an_unreadable_spool_entry_is_set_aside(tmp_path: Path) -> None:
         conn.execute("""INSERT INTO demur_spool (id, item) VALUES ('y', '{"id": "y"}')""")
     spool.put([item(client_case_id="last")])
     assert spool.replay(inner) == 2 and spool.size() == 0 and spool.rejected_size() == 2
-    assert {it.client_case_id for it in inner.list()} == {"first", "last"}
+    assert {it.client_case_id for it in inner.page()} == {"first", "last"}
     inner.close()
 
 
@@ -211,5 +211,5 @@ def test_the_replayer_survives_any_exception(tmp_path: Path) -> None:
         time.sleep(0.02)
     replayer.stop()
     assert spool.size() == 0 and up.is_set()
-    assert {it.client_case_id for it in inner.list()} == {"wait-1", "wait-2"}
+    assert {it.client_case_id for it in inner.page()} == {"wait-1", "wait-2"}
     inner.close()
