@@ -96,7 +96,6 @@ import torch.nn.functional as F
 from torch import nn
 
 from demur.serve.core.drift import feature_reference
-from demur.serve.core.support import standardisation
 from demur.serve.offline.calibration import expected_calibration_error
 
 from demur.export.datasets import Dataset, load_dataset
@@ -176,20 +175,13 @@ class TrainResult:
 
 # -- inputs -------------------------------------------------------------------
 def _input_spec(ds: Dataset, arch: str) -> dict[str, Any]:
-    x = ds.x_train
-    center, scale = standardisation(x, shared_units=ds.image_shape is not None)
+    """The bundle's input spec for ``ds`` (the public ``input_spec``: floored standardisation,
+    training range); a conv net sees the image shape."""
+    from demur.export.exporter import input_spec  # the exporter imports this module's checkpoints
+
     shape = list(ds.image_shape) if arch == "conv" and ds.image_shape is not None else [ds.n_features]
-    spec: dict[str, Any] = {
-        "names": list(ds.feature_names),
-        "shape": shape,
-        "dtype": "float32",
-        "center": [float(v) for v in center],
-        "scale": [float(v) for v in scale],
-        "low": [float(v) for v in x.min(axis=0)],
-        "high": [float(v) for v in x.max(axis=0)],
-        "kind": "image" if ds.image_shape is not None else "tabular",
-    }
-    return spec
+    return input_spec(ds.x_train, names=list(ds.feature_names), shape=shape,
+                      kind="image" if ds.image_shape is not None else "tabular").spec
 
 
 def standardise_inputs(inputs: dict[str, Any], x: np.ndarray) -> np.ndarray:

@@ -79,32 +79,50 @@ def test_matplotlib_only_offline(path: Path) -> None:
     assert "matplotlib" not in {_top(n) for n in _imports(path)}, path
 
 
+def _fresh(code: str, cwd: Path) -> object:
+    """Run ``code`` in a fresh interpreter (this test process already holds torch from the
+    bundle fixtures) and return the JSON its last line prints."""
+    out = subprocess.run([sys.executable, "-c", "import json, sys\n" + code], cwd=cwd, capture_output=True,
+                         text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+LOADED = "sorted(m for m in sys.modules if m.split('.')[0] in {names} or m.startswith('demur.export'))"
+
+
 def test_generic_names_are_not_importable_and_runtime_loads_no_torch(tmp_path: Path) -> None:
     """Run outside the checkout (the checkout itself is on sys.path when cwd is the root)."""
     names = [_module_name(p) for p in _serve_files()]
-    code = (
-        "import importlib, importlib.util, json, sys\n"
-        f"for name in {names!r}:\n"
-        "    importlib.import_module(name)\n"
-        "bad = sorted(m for m in sys.modules if m.split('.')[0] in ('torch', 'matplotlib') "
-        "or m.startswith('demur.export'))\n"
-        "generic = [n for n in ('serve', 'export') if importlib.util.find_spec(n) is not None]\n"
-        "print(json.dumps({'bad': bad, 'generic': generic}))\n"
-    )
-    out = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, capture_output=True, text=True, timeout=120)
-    assert out.returncode == 0, out.stderr
-    got = json.loads(out.stdout.strip().splitlines()[-1])
-    assert got["generic"] == [], f"generic top-level names importable: {got['generic']}"
-    assert got["bad"] == [], f"importing the runtime loaded {got['bad'][:5]}"
+    got = _fresh("import importlib, importlib.util\n"
+                 f"for name in {names!r}:\n"
+                 "    importlib.import_module(name)\n"
+                 "generic = [n for n in ('serve', 'export') if importlib.util.find_spec(n) is not None]\n"
+                 f"print(json.dumps({{'bad': {LOADED.format(names=('torch', 'matplotlib'))}, 'generic': generic}}))\n",
+                 tmp_path)
+    assert got["generic"] == [], f"generic top-level names importable: {got['generic']}"  # type: ignore[index]
+    assert got["bad"] == [], f"importing the runtime loaded {got['bad'][:5]}"  # type: ignore[index]
 
 
 def test_gunicorn_master_never_loads_onnxruntime(tmp_path: Path) -> None:
-    """gunicorn's master imports the worker class and the server module before forking; a
-    forked child whose parent had loaded onnxruntime aborts at exit (std::thread::join on a
-    thread that did not survive the fork, seen here). So neither may pull onnxruntime in."""
-    code = ("import json, sys\n"
-            "import demur.serve.web.loop.worker, demur.serve.web.server, demur.serve.cli\n"
-            "print(json.dumps(sorted(m for m in sys.modules if m.split('.')[0] in ('onnxruntime', 'torch'))))\n")
-    out = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, capture_output=True, text=True, timeout=120)
-    assert out.returncode == 0, out.stderr
-    assert json.loads(out.stdout.strip().splitlines()[-1]) == []
+    """gunicorn's master imports the worker class and the server module before forking, and
+    parses ``demur serve``; a forked child whose parent had loaded onnxruntime aborts at exit
+    (std::thread::join on a thread that did not survive the fork, seen here), and torch's
+    thread pools would be inherited by every worker. So none of them may be loaded there."""
+    got = _fresh("import demur.serve.web.loop.worker, demur.serve.web.server\n"
+                 "from demur.serve.cli import build_parser\n"
+                 "assert build_parser(only='serve').parse_args(['serve', 'b', '--port', '9000']).command == 'serve'\n"
+                 f"print(json.dumps({LOADED.format(names=('onnxruntime', 'torch'))}))\n", tmp_path)
+    assert got == []
+
+
+def test_the_production_app_runs_without_torch(tiny_bundle_factory: object, tmp_path: Path) -> None:
+    """Building the production app and answering a predict (what each gunicorn worker does)."""
+    bundle = tiny_bundle_factory(task="classification", kind="stacked", draws=8)  # type: ignore[operator]
+    got = _fresh("from demur.serve.config import ServeConfig\n"
+                 "from demur.serve.web.server import build_app\n"
+                 f"app = build_app(ServeConfig(bundle={str(bundle.path)!r}, data_dir={str(tmp_path)!r}))\n"
+                 "r = app.test_client().post('/v1/predict', json={'cases': [[1.0] * 64]})\n"
+                 "assert r.status_code == 200, r.get_data()\n"
+                 f"print(json.dumps({LOADED.format(names=('torch',))}))\n", tmp_path)
+    assert got == []
