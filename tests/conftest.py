@@ -254,3 +254,11 @@ def diabetes_bundle(diabetes_checkpoint: Path, tmp_path_factory: pytest.TempPath
 
     out = tmp_path_factory.mktemp("diabetes") / "diabetes-stacked"
     return export_bundle(diabetes_checkpoint, out, kind="stacked", draws=32, seed=0, version="1")
+
+
+# Property tests have no per-example deadline: the machines are shared and noisy, and speed is
+# measured by demur bench, never by a timed test (DEVELOPERS.md).
+from hypothesis import settings as _hypothesis_settings  # noqa: E402
+
+_hypothesis_settings.register_profile("demur", deadline=None)
+_hypothesis_settings.load_profile("demur")

@@ -157,13 +157,7 @@ def _score_hist(plt: Any, scores: np.ndarray, groups: list[tuple[str, np.ndarray
             ax.hist(scores[mask], bins=bins, alpha=0.6, density=True, label=f"{label} (n={int(mask.sum())})")
     if threshold is not None:
         ax.axvline(threshold, color="black", ls="--", lw=1.2, label=f"threshold {threshold:.4g}")
-    ax.set_xlabel(_axis_label(name, unit))
-    ax.set_ylabel(f"density (per {unit.rstrip('s') if unit else 'unit of score'})")
-    ax.set_title(title)
-    ax.legend(fontsize=8)
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    _finish(plt, fig, ax, path, _axis_label(name, unit), f"density (per {unit.rstrip('s') if unit else 'unit of score'})", title)
 
 
 def _coverage_plot(plt: Any, p: RegressionPlots, path: Path) -> None:
@@ -181,13 +175,7 @@ def _coverage_plot(plt: Any, p: RegressionPlots, path: Path) -> None:
     ax.plot(100 * levels, 100 * np.array(gaussian), "s-", ms=3, label="moment-matched normal, uncalibrated")
     ax.plot([50, 98], [50, 98], "--", color="grey", label="nominal")
     ax.axvline(100 * p.level, color="black", lw=0.8, ls=":")
-    ax.set_xlabel("nominal interval level (%)")
-    ax.set_ylabel("test cases inside the interval (%)")
-    ax.set_title(f"Interval coverage versus level ({p.split} cases)")
-    ax.legend(fontsize=8)
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    _finish(plt, fig, ax, path, "nominal interval level (%)", "test cases inside the interval (%)", f"Interval coverage versus level ({p.split} cases)")
 
 
 def _residual_plot(plt: Any, p: RegressionPlots, path: Path) -> None:
@@ -199,13 +187,7 @@ def _residual_plot(plt: Any, p: RegressionPlots, path: Path) -> None:
     ax.plot(p.mean[inside], (p.y - p.mean)[inside], ".", ms=4, label="inside")
     ax.plot(p.mean[~inside], (p.y - p.mean)[~inside], "x", ms=5, color="red", label="outside")
     ax.axhline(0, color="grey", lw=0.8)
-    ax.set_xlabel("predicted mean (target units)")
-    ax.set_ylabel("residual y - mean (target units)")
-    ax.set_title(f"Residuals and the served interval ({p.split} cases)")
-    ax.legend(fontsize=8)
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    _finish(plt, fig, ax, path, "predicted mean (target units)", "residual y - mean (target units)", f"Residuals and the served interval ({p.split} cases)")
 
 
 def _json_safe(obj: Any) -> Any:
@@ -420,3 +402,14 @@ def _html(report: Mapping[str, Any], images: list[tuple[str, str]]) -> str:
         "text-align:left}} thead th{{background:#eee}}</style></head><body>"
         f"{''.join(parts)}</body></html>\n"
     )
+
+
+def _finish(plt: Any, fig: Any, ax: Any, path: Path, xlabel: str, ylabel: str, title: str) -> None:
+    """Label, lay out and write one figure (PNG, 110 dpi), then free it."""
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel(ylabel)
+    ax.set_title(title)
+    ax.legend(fontsize=8)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
