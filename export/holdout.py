@@ -256,7 +256,13 @@ def _from_arrays(bundle: Bundle, X: Any, y: Any, source: str, what: str) -> _Cas
     if not np.all(np.isfinite(x)):
         r = int(np.flatnonzero(~np.all(np.isfinite(x), axis=1))[0])
         raise DatasetError(f"{what} must hold finite numbers; row {r} does not", field=what)
-    yy = _labels_to_index(bundle, y, source, None, "y" if what == "X" else f"{what} labels")
+    field_y = "y" if what == "X" else f"{what} labels"
+    shape = list(np.shape(y))
+    if len(shape) > 2 or (len(shape) == 2 and shape[1] != 1):
+        raise DatasetError(f"{field_y} must hold one label per row (class names, or class indices 0..K-1; a "
+                           f"regression target: values), shape [N]; got shape {shape} (one-hot or probabilities? "
+                           "pass y.argmax(axis=1))", field=field_y)
+    yy = _labels_to_index(bundle, y, source, None, field_y)
     if len(yy) != len(x):
         raise DatasetError(f"{what} has {len(x)} rows but its labels have {len(yy)}", field="y")
     return _Cases(x, yy, source, rows=len(x))
