@@ -43,6 +43,10 @@ from demur.serve.offline.evaluation import (
     write_evaluation,
 )
 
+from demur.export.datasets import BUILTIN, column_order, load_dataset
+from demur.export.errors import DatasetError
+from demur.export.holdout import labelled_file
+
 __all__ = ["ENSEMBLE_MEMBERS", "evaluate", "register"]
 
 ENSEMBLE_MEMBERS = 5
@@ -246,12 +250,32 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 
 def _main(args: argparse.Namespace) -> int:
-    from demur.export.calibrate import _dataset_for
-
     b = load_bundle(args.bundle)
-    ds = _dataset_for(b, args.data, args.target, args.seed)
-    figures = evaluate(b, ds.x_test, ds.y_test, x_train=ds.x_train, y_train=ds.y_train, baseline=args.baseline,
-                       out=args.out, seed=ds.seed,
+    m = b.manifest
+    trained = (m.raw.get("extensions", {}).get("training", {}) or {}).get("data", {}) or {}
+    if str(args.data) in BUILTIN:
+        same = str(trained.get("source", args.data)) == str(args.data)
+        seed = int(args.seed if args.seed is not None else (trained.get("seed", 0) if same else 0))
+        ds = load_dataset(args.data, None, seed=seed, task=m.task)
+        column_order(list(ds.feature_names), list(m.inputs.names), where=f"'{args.data}'")
+        if m.task == "classification" and tuple(ds.labels) != tuple(m.labels):
+            raise DatasetError(f"data '{args.data}' has labels {list(ds.labels)}; bundle {b.path} has "
+                               f"{list(m.labels)}", field="data")
+        x, y, x_train, y_train = ds.x_test, ds.y_test, ds.x_train, ds.y_train
+    else:  # the user's own held-out file: every row is evaluated, as calibrate uses every row
+        target = args.target or trained.get("target")
+        if target is None:
+            raise ConfigError("a CSV needs --target COLUMN (the label column); the bundle records none",
+                              field="target")
+        if args.baseline or args.holdout_class is not None:
+            raise ConfigError("--baseline and --holdout-class retrain on a training split, which a held-out CSV "
+                              "does not give; use --data digits, or from Python evaluate(bundle, x, y, "
+                              "x_train=..., y_train=..., baseline=True)",
+                              field="baseline" if args.baseline else "holdout_class")
+        x, y = labelled_file(b, args.data, target)
+        x_train = y_train = ds = None
+        seed = int(args.seed or 0)
+    figures = evaluate(b, x, y, x_train=x_train, y_train=y_train, baseline=args.baseline, out=args.out, seed=seed,
                        holdout=(args.holdout_class, ds) if args.holdout_class is not None else None)
     for name, body in figures["models"].items():
         ref = body["referral"]

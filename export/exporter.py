@@ -41,8 +41,10 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import os
 import secrets
 import shutil
+import sys
 import tempfile
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
@@ -59,6 +61,7 @@ from demur.serve.adapters.engine import Engine
 from demur.serve.core.summary import summarise
 from demur.serve.core.support import standardisation, support_record
 
+from demur.export.datasets import column_order
 from demur.export.errors import ExportError, GraphBuildError
 
 __all__ = [
@@ -504,10 +507,11 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     own.add_argument("--factory", metavar="MODULE:FUNCTION",
                      help="importable function returning the untrained torch module (a list: a deep ensemble)")
     own.add_argument("--weights", type=Path, help="state_dict saved with torch.save (a list of them for an ensemble)")
-    own.add_argument("--data", type=Path, help="training rows (CSV with a header) for the input spec")
+    own.add_argument("--data", type=Path, help="training rows (CSV with a header) for the input spec; its "
+                                               "columns, in file order, are the model's inputs")
     own.add_argument("--target", help="label column of --data / --reference (excluded from the inputs)")
-    own.add_argument("--reference", type=Path, help="held-out rows (CSV, same columns) for the parity check "
-                                                    "and the default threshold (default: --data)")
+    own.add_argument("--reference", type=Path, help="held-out rows (CSV, the same columns in any order) for "
+                                                    "the parity check and the default threshold (default: --data)")
     own.add_argument("--labels", help="comma-separated class names in output order (default: 0..K-1)")
     own.add_argument("--shape", help="comma-separated input shape per case, e.g. 1,8,8 (default: [F])")
     own.add_argument("--task", choices=("classification", "regression"), default="classification")
@@ -540,11 +544,13 @@ def _export_factory(args: argparse.Namespace, kind: str) -> Bundle:
         raise ExportError("--factory needs --weights (the trained state_dict) and --data (the training rows)",
                           field="weights" if args.weights is None else "data")
     module_name, _, func_name = args.factory.partition(":")
+    if os.getcwd() not in sys.path and "" not in sys.path:  # as `python -m` does: your package beside you
+        sys.path.insert(0, os.getcwd())
     try:
         factory = getattr(importlib.import_module(module_name), func_name)
     except (ImportError, AttributeError, ValueError) as exc:
-        raise ExportError(f"--factory must name an importable MODULE:FUNCTION; got {args.factory!r} ({exc})",
-                          field="factory") from exc
+        raise ExportError(f"--factory must name an importable MODULE:FUNCTION; got {args.factory!r} ({exc}); "
+                          "run from the folder holding MODULE, or put it on PYTHONPATH", field="factory") from exc
     model = factory()
     try:
         state = torch.load(args.weights, map_location="cpu", weights_only=True)
@@ -563,7 +569,7 @@ def _export_factory(args: argparse.Namespace, kind: str) -> Bundle:
             raise ExportError(f"--weights do not fit the module the factory built: {exc}", field="weights") from exc
         member.eval()
     x_train, names = _csv_rows(args.data, args.target)
-    x_ref = _csv_rows(args.reference, args.target)[0] if args.reference else x_train
+    x_ref = _csv_rows(args.reference, args.target, names)[0] if args.reference else x_train
     shape = [int(v) for v in args.shape.split(",")] if args.shape else None
     labels = [v.strip() for v in args.labels.split(",")] if args.labels else None
     return export_model(model, args.out, inputs=input_spec(x_train, names, shape), labels=labels, task=args.task,
@@ -571,23 +577,33 @@ def _export_factory(args: argparse.Namespace, kind: str) -> Bundle:
                         name=args.name or func_name, version=args.version or "1")
 
 
-def _csv_rows(path: Path, target: str | None) -> tuple[np.ndarray, list[str]]:
-    """Numeric feature columns of a CSV with a header (``target`` dropped): float64[N, F], names."""
+def _csv_rows(path: Path, target: str | None, names: Sequence[str] | None = None) -> tuple[np.ndarray, list[str]]:
+    """Numeric feature columns of a CSV with a header (``target`` dropped): float64[N, F], names.
+
+    Without ``names`` (``--data``) the file's columns, in file order, are the model's inputs.
+    With ``names`` (``--reference``) the columns are matched to them by name, in any order
+    (``column_order``): read by position, a reference written in another order would be
+    judged as out-of-range rows and set the default threshold and the support check wrong.
+    """
     import csv
 
+    what = "data" if names is None else "reference"
     try:
         with open(path, newline="", encoding="utf-8") as fh:
             rows = list(csv.reader(fh))
     except OSError as exc:
-        raise ExportError(f"cannot read {path}: {exc}", field="data") from exc
+        raise ExportError(f"cannot read {path}: {exc}", field=what) from exc
     if len(rows) < 2:
-        raise ExportError(f"{path} needs a header and at least one row; got {len(rows)} line(s)", field="data")
+        raise ExportError(f"{path} needs a header and at least one row; got {len(rows)} line(s)", field=what)
     header = rows[0]
-    keep = [i for i, h in enumerate(header) if h != target]
-    if target is not None and len(keep) == len(header):
-        raise ExportError(f"--target {target!r} is not a column of {path}", field="target")
+    if names is not None:
+        keep = column_order(header, list(names), ignore=[target] if target else (), where=f"--reference {path}")
+    else:
+        keep = [i for i, h in enumerate(header) if h != target]
+        if target is not None and len(keep) == len(header):
+            raise ExportError(f"--target {target!r} is not a column of {path}", field="target")
     try:
         x = np.array([[float(row[i]) for i in keep] for row in rows[1:]], dtype=np.float64)
     except (ValueError, IndexError) as exc:
-        raise ExportError(f"{path}: every feature cell must be a number ({exc})", field="data") from exc
+        raise ExportError(f"{path}: every feature cell must be a number ({exc})", field=what) from exc
     return x, [header[i] for i in keep]

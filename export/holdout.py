@@ -70,7 +70,8 @@ from demur.serve.offline.report import ClassificationPlots, RegressionPlots, dec
 from demur.export.datasets import BUILTIN, column_order, load_dataset, read_labelled
 from demur.export.errors import DatasetError
 
-__all__ = ["BATCH_ROWS", "CalibrationOutcome", "FLOOR_QUANTILE", "calibrate", "calibrate_file", "register"]
+__all__ = ["BATCH_ROWS", "CalibrationOutcome", "FLOOR_QUANTILE", "calibrate", "calibrate_file", "labelled_file",
+           "register"]
 
 BATCH_ROWS = 256
 """Rows per graph run, bounding memory to about S * 256 * K floats."""
@@ -255,7 +256,13 @@ def _from_arrays(bundle: Bundle, X: Any, y: Any, source: str, what: str) -> _Cas
     if not np.all(np.isfinite(x)):
         r = int(np.flatnonzero(~np.all(np.isfinite(x), axis=1))[0])
         raise DatasetError(f"{what} must hold finite numbers; row {r} does not", field=what)
-    yy = _labels_to_index(bundle, y, source, None, "y" if what == "X" else f"{what} labels")
+    field_y = "y" if what == "X" else f"{what} labels"
+    shape = list(np.shape(y))
+    if len(shape) > 2 or (len(shape) == 2 and shape[1] != 1):
+        raise DatasetError(f"{field_y} must hold one label per row (class names, or class indices 0..K-1; a "
+                           f"regression target: values), shape [N]; got shape {shape} (one-hot or probabilities? "
+                           "pass y.argmax(axis=1))", field=field_y)
+    yy = _labels_to_index(bundle, y, source, None, field_y)
     if len(yy) != len(x):
         raise DatasetError(f"{what} has {len(x)} rows but its labels have {len(yy)}", field="y")
     return _Cases(x, yy, source, rows=len(x))
@@ -270,6 +277,14 @@ def _from_file(bundle: Bundle, path: str, target: str, ignore: Sequence[str]) ->
     rows = read_labelled(path, list(bundle.manifest.inputs.names), target, ignore=ignore)
     y = _labels_to_index(bundle, np.asarray(rows.y, dtype=object), path, rows.lines, target)
     return _Cases(rows.x, y, path, lines=rows.lines, rows=len(rows.x))
+
+
+def labelled_file(bundle: Bundle, path: str, target: str, ignore: Sequence[str] = ()) -> tuple[np.ndarray, np.ndarray]:
+    """Every row of a user's labelled CSV as (x float64[N, F] in the bundle's feature order,
+    y class indices or values), checked exactly as ``demur calibrate`` checks its ``--data``:
+    columns by name, labels by the bundle's class names. ``demur evaluate`` reads a file so."""
+    cases = _from_file(bundle, path, target, ignore)
+    return cases.x, cases.y
 
 
 def _hold_out(cal: _Cases, share: float, seed: int) -> tuple[_Cases, _Cases, dict[str, Any]]:

@@ -27,6 +27,7 @@ input shape, NaN, +-Infinity, and magnitudes beyond float32 (about 3.4e38).
 
 from __future__ import annotations
 
+import difflib
 import json
 import math
 import re
@@ -57,6 +58,7 @@ is corrupted by them."""
 _BAD_MULTILINE = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f\ud800-\udfff]")
 """The same for multi-line text (reviewer notes): tab and line feed are allowed."""
 _NUMBER_TYPES = frozenset({int, float})
+_HINT_NAMES = 50  # suggest a feature name for a typo only when the case lacks at most this many
 
 
 @dataclass(frozen=True)
@@ -270,10 +272,14 @@ def _one_case(case: Any, path: str, spec: InputSpec) -> np.ndarray:
 
 def _check_names(case: dict[str, Any], path: str, spec: InputSpec) -> None:
     known = set(spec.names)
+    missing = [name for name in spec.names if name not in case]
     for key in case:
         if key not in known:
-            raise InvalidInput(f"'{path}.{_clip(key)}' is not a feature of this model", field=f"{path}.{_clip(key)}")
-    missing = [name for name in spec.names if name not in case]
+            # a typo: the closest of the few names the case lacks (bounded work on hostile keys)
+            near = difflib.get_close_matches(_clip(key), missing, n=1) if len(missing) <= _HINT_NAMES else []
+            hint = f"; did you mean '{near[0]}'?" if near else ""
+            raise InvalidInput(f"'{path}.{_clip(key)}' is not a feature of this model{hint}",
+                               field=f"{path}.{_clip(key)}")
     if missing:
         more = f" (and {len(missing) - 1} more)" if len(missing) > 1 else ""
         raise InvalidInput(

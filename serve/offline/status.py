@@ -171,5 +171,5 @@ def render_status(status: dict[str, Any], url: str = DEFAULT_URL) -> str:
         lines.append(f"  enqueue failures   {status['review_enqueue_failures']:.0f} abstained cases spooled, "
                      "not yet in the review store")
     lines.append("  PSI reading (common practice, a rule of thumb): < 0.1 stable, 0.1-0.25 moderate, > 0.25 major.")
-    lines.append("  demur supports, never replaces, qualified human judgement: abstained parcels go to a person.")
+    lines.append("  demur supports, never replaces, qualified human judgement: abstained cases go to a person.")
     return "\n".join(lines)

@@ -326,6 +326,9 @@ def test_array_api_returns_the_record_and_checks_with_test_arrays(tiny_bundle_fa
     assert "<pre>" not in page  # tables, not JSON dumps
     with pytest.raises(Exception, match=r"must be float\[N, 64\]"):
         demur.export.calibrate(str(path), ds.x_cal[:, :63], ds.y_cal, target_abstain=0.1)
+    with pytest.raises(Exception, match=r"one label per row.*got shape \[359, 10\].*argmax") as info:
+        demur.export.calibrate(str(path), ds.x_cal, np.eye(10)[ds.y_cal], target_abstain=0.1)  # one-hot
+    assert info.value.field == "y"
     csv_path, _ = _holdout_csv(tmp_path)
     code = main(["calibrate", str(path), "--data", str(csv_path), "--target", "digit", "--holdout", "0.5",
                  "--target-abstain", "0.1"])

@@ -243,3 +243,49 @@ def test_cli_factory_exports_a_users_module(digits, tmp_path: Path, capsys) -> N
     assert main(["export", "--factory", "tests.export._own_models:nothing", "--weights", "w", "--data", "d",
                  "--out", str(tmp_path / "x")]) == 1
     assert "MODULE:FUNCTION" in capsys.readouterr().err
+
+
+def _write_rows(path: Path, names: list[str], x: np.ndarray, y: np.ndarray, order: np.ndarray) -> Path:
+    with open(path, "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(["digit", *[names[j] for j in order]])
+        w.writerows([[int(t), *map(float, r[order])] for r, t in zip(x, y)])
+    return path
+
+
+def test_cli_reference_columns_are_matched_by_name_and_the_factory_found_beside_you(digits, tmp_path: Path,
+                                                                                    monkeypatch, capsys) -> None:
+    """--reference written in another column order than --data gives the same bundle figures (support
+    check's held-out record, default threshold) as the ordered file: columns by name, as calibrate reads
+    them; read by position every reference row was once out of range. The factory's module is imported
+    from the current directory, as ``python -m`` does (Python docs, sys.path[0]). Data: load_digits."""
+    x, y = digits
+    names = [f"px{i}" for i in range(64)]
+    (tmp_path / "mynets.py").write_text("from tests.export._own_models import dropout_mlp\n\n"
+                                        "def build():\n    return dropout_mlp()\n")
+    torch.save(dropout_mlp().state_dict(), tmp_path / "weights.pt")
+    ordered = np.arange(64)
+    _write_rows(tmp_path / "train.csv", names, x[:300], y[:300], ordered)
+    _write_rows(tmp_path / "held.csv", names, x[300:400], y[300:400], ordered)
+    _write_rows(tmp_path / "shuffled.csv", names, x[300:400], y[300:400], np.random.default_rng(0).permutation(64))
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.syspath_prepend(str(Path(__file__).resolve().parents[2]))  # `tests` importable, not tmp_path
+    monkeypatch.delitem(__import__("sys").modules, "mynets", raising=False)
+    from demur.serve.core.bundle import load_bundle
+
+    made = {}
+    for ref in ("held.csv", "shuffled.csv"):
+        argv = ["export", "--factory", "mynets:build", "--weights", "weights.pt", "--data", "train.csv",
+                "--reference", ref, "--target", "digit", "--draws", "4", "--seed", "3", "--out", f"b-{ref}"]
+        assert main(argv) == 0, capsys.readouterr().err
+        made[ref] = load_bundle(tmp_path / f"b-{ref}").manifest
+    a, b = made["held.csv"], made["shuffled.csv"]
+    assert a.raw["support"]["heldout"] == b.raw["support"]["heldout"]
+    assert a.raw["support"]["heldout"]["outside_range"] < 10
+    assert a.decision.threshold == b.decision.threshold
+    typo = tmp_path / "typo.csv"
+    typo.write_text((tmp_path / "held.csv").read_text().replace("px7,", "pX7,", 1))
+    assert main(["export", "--factory", "mynets:build", "--weights", "weights.pt", "--data", "train.csv",
+                 "--reference", str(typo), "--target", "digit", "--out", "b-typo"]) == 1
+    assert "unknown column(s) 'pX7' (did you mean 'px7'?)" in capsys.readouterr().err
+    assert not (tmp_path / "b-typo").exists()

@@ -49,6 +49,8 @@ def _error(body: Any, spec: InputSpec = FLAT, max_cases: int = 16) -> InvalidInp
         ({"cases": [[0] * 64] * 3 + [[0] * 63]}, "cases[3]", "'cases[3]' must have 64 numbers; got 63"),
         ({"cases": [{**dict.fromkeys(NAMES, 0), "px_r9c9": 1}]}, "cases[0].px_r9c9",
          "'cases[0].px_r9c9' is not a feature of this model"),
+        ({"cases": [{**dict.fromkeys(set(NAMES) - {"px_r3c4"}, 0), "px_r3c44": 1}]}, "cases[0].px_r3c44",
+         "'cases[0].px_r3c44' is not a feature of this model; did you mean 'px_r3c4'?"),
         ({"cases": [[0] * 64, [0] * 64, [0] * 5 + [math.nan] + [0] * 58]}, "cases[2][5]",
          "'cases[2][5]' must be a finite number; got NaN"),
         ({"cases": [[0] * 64] * 3, "case_ids": ["a", "b"]}, "case_ids",
