@@ -23,15 +23,19 @@ also tested against the training inputs themselves, before it may be accepted:
    the seeds and the k-NN distance in every seed; the range check alone
    misses uniform noise and blank images.
 
-The threshold has a stated false-alarm rate on in-distribution data
-(split-conformal, Vovk et al. 2005; Lei et al. 2018): on n held-out cases
-that training never saw, the nonconformity score is the k-NN distance, or
-+inf when the range check fails; the threshold is the
-ceil((n + 1)(1 - alpha))-th smallest score. By exchangeability a new case
-from the same population is flagged with probability at most
-1 - k/(n + 1) <= alpha (``false_alarm_bound``), range and distance
-together. With too few held-out cases for alpha (n + 1 < 1/alpha) the
-largest score is used and the bound, 1/(n + 1), is recorded as it is.
+The distance threshold has a stated false-alarm rate on in-distribution data
+(split-conformal, Vovk et al. 2005; Lei et al. 2018): among the n held-out
+cases that training never saw and that pass the range check, the threshold
+is the ceil((n + 1)(1 - alpha))-th smallest k-NN distance. By
+exchangeability a new in-distribution case inside the range is flagged by
+the distance with probability at most 1 - k/(n + 1) <= alpha
+(``false_alarm_bound``). With too few held-out cases for alpha the largest
+distance is used and the bound, 1/(n + 1), is recorded as it is. The range
+check's own rate is measured on the same held-out cases and recorded with a
+Clopper-Pearson upper bound (``range_flagged``). Held-out cases outside the
+range are left out of the distance threshold on purpose: one of them would
+otherwise make the threshold infinite on a small held-out set and switch the
+distance check off without a word.
 
 Standardisation (``standardisation``) floors every feature's scale, so a
 near-constant training feature cannot turn a small change into a huge
@@ -259,20 +263,35 @@ def recalibrated(record: dict[str, Any], inputs: dict[str, Any], x_heldout: np.n
     """A copy of ``record`` with its threshold set on held-out raw ``x_heldout`` at level ``alpha``."""
     check = _from_record(record, inputs)
     scores = check.scores(np.asarray(x_heldout, dtype=np.float64))
-    threshold, bound = conformal_threshold(scores, alpha)
-    n = int(len(scores))
+    inside = scores[np.isfinite(scores)]
+    n, m = int(len(scores)), int(len(scores) - len(inside))
+    if len(inside) == 0:
+        raise ConfigError(f"all {n} held-out {split} cases fail the range check: they do not look like the "
+                          "training data (wrong columns or units?)", field="x_heldout")
+    # The distance threshold is set on the held-out cases inside the range: one held-out case
+    # outside it (an infinite score) must not switch the distance check off when n is small.
+    threshold, bound = conformal_threshold(inside, alpha)
+    k = min(len(inside), math.ceil((len(inside) + 1) * (1.0 - alpha) - 1e-12))
     out = dict(record)
     out.update(
-        threshold=threshold if math.isfinite(threshold) else 1e300,
+        threshold=threshold,
         alpha=float(alpha),
         false_alarm_bound=bound,
-        heldout={"split": split, "n": n, "flagged": int(np.sum(scores > threshold)),
-                 "outside_range": int(np.sum(~np.isfinite(scores)))},
-        basis=f"split-conformal: the {math.ceil((n + 1) * (1 - alpha) - 1e-12) if n + 1 >= 1 / alpha else n}-th "
-              f"smallest of {n} held-out {split} scores; at most {bound:.2%} of in-distribution cases flagged "
-              "(range and distance together)",
+        range_flagged={"n": n, "flagged": m, "upper_95": _upper_95(m, n)},
+        heldout={"split": split, "n": n, "flagged": int(m + np.sum(inside > threshold)), "outside_range": m},
+        basis=f"split-conformal on the {len(inside)} held-out {split} cases inside the training range: the "
+              f"{k}-th smallest distance; at most {bound:.2%} of in-distribution cases inside the range are "
+              f"flagged by the distance. The range check flagged {m} of {n} held-out cases (at most "
+              f"{_upper_95(m, n):.2%} of the population at 95% confidence, Clopper-Pearson)",
     )
     return out
+
+
+def _upper_95(m: int, n: int) -> float:
+    """One-sided 95% Clopper-Pearson upper bound on a rate seen m times in n (Clopper & Pearson 1934)."""
+    from scipy.stats import beta
+
+    return 1.0 if m >= n else float(beta.ppf(0.95, m + 1, n - m))
 
 
 def _from_record(record: dict[str, Any], inputs: Any) -> SupportCheck:

@@ -10,6 +10,7 @@ split-conformal rank ceil((n+1)(1-alpha)) (Lei et al. 2018; Vovk et al. 2005).
 from __future__ import annotations
 
 import json
+import math
 from collections.abc import Callable
 from typing import Any
 
@@ -127,7 +128,8 @@ def test_reasons_name_the_feature_or_the_distance() -> None:
 def test_recalibrated_keeps_the_sample_and_records_the_split() -> None:
     spec = _spec(DIGITS[:900])
     rec = support_record(DIGITS[:900], DIGITS[900:990], spec)
-    assert rec["heldout"]["split"] == "validation" and rec["false_alarm_bound"] == pytest.approx(1 / 91)
+    inside = rec["heldout"]["n"] - rec["heldout"]["outside_range"]
+    assert rec["heldout"]["split"] == "validation" and rec["false_alarm_bound"] == pytest.approx(1 / (inside + 1))
     again = recalibrated(rec, spec, DIGITS[990:1390])
     assert again["sample"] == rec["sample"] and again["heldout"]["n"] == 400
     assert again["false_alarm_bound"] <= 0.01
@@ -175,3 +177,22 @@ def test_http_abstains_outside_training_data_and_counts_it(support_client: Any) 
 def test_http_old_bundle_says_it_is_unchecked(client: Any) -> None:
     model = client.get("/v1/model").get_json()
     assert model["support"]["checked"] is False and "no support record" in model["support"]["reason"]
+
+
+def test_one_held_out_case_outside_the_range_does_not_switch_the_distance_off() -> None:
+    """Found by a new user: on a small held-out set (n + 1 < 1/alpha) one held-out case outside
+    the training range used to make the threshold infinite, and the distance check silently
+    accepted uniform noise. The distance threshold is now set on the cases inside the range
+    (split-conformal on that sub-population, Lei et al. 2018), and the range check's own rate
+    is recorded with a Clopper-Pearson bound (checked against scipy.stats.binomtest)."""
+    spec = _spec(DIGITS[:900])
+    heldout = np.vstack([DIGITS[900:990], DIGITS[990:991] * 3])  # one case far outside 0-16
+    rec = support_record(DIGITS[:900], heldout, spec)
+    assert math.isfinite(rec["threshold"]) and rec["threshold"] < 1e6
+    assert rec["range_flagged"]["flagged"] >= 1
+    m, n = rec["range_flagged"]["flagged"], rec["range_flagged"]["n"]
+    want = binomtest(m, n).proportion_ci(confidence_level=0.90, method="exact").high  # one side of a 90% CI
+    assert rec["range_flagged"]["upper_95"] == pytest.approx(want, rel=1e-9)
+    check = support_from_manifest(_Manifest({"support": rec}, _SpecView(spec)))
+    noise = np.random.default_rng(0).uniform(0, 16, size=(200, 64))
+    assert check.check(noise).outside.mean() > 0.9
