@@ -357,7 +357,7 @@ def column_order(header: Sequence[str], names: Sequence[str], *, target: str | N
         raise DatasetError(
             f"the header of {where} does not match the bundle's {len(names)} feature names: {'; '.join(parts)}. "
             "Columns are matched by name, in any order; rename them to the bundle's names "
-            "(GET /v1/model lists them), or pass unrelated columns as ignored",
+            "(GET /v1/model lists them), or name unrelated columns to skip (--ignore COLUMN on the command line)",
             field=first,
         )
     return [header.index(n) for n in names]

@@ -376,7 +376,7 @@ def _calibrate(b: Bundle, cal: _Cases, check: _Cases | None, floor_x: np.ndarray
     if check is not None:
         _screen_training_rows(b, check, drop_training_rows, "the test data")
     if target_accuracy is not None:  # up front: too few rows even with no error
-        check_feasible(len(cal.y), target_accuracy, 1.0 - confidence, max_abstain=max_abstain, method=method)
+        check_feasible(len(cal.y), target_accuracy, round(1.0 - confidence, 12), max_abstain=max_abstain, method=method)
     notes = cal.notes + (check.notes if check is not None else [])
     if check is None:
         notes.append("note: no independent check (--test FILE or --holdout F): the report shows the calibration "
@@ -411,7 +411,7 @@ def _calibrate(b: Bundle, cal: _Cases, check: _Cases | None, floor_x: np.ndarray
         ok_v = s_v.prediction == y_v
         try:
             if target_accuracy is not None:
-                choice = select_for_accuracy(sc_cal, ok_cal, target_accuracy, 1.0 - confidence,
+                choice = select_for_accuracy(sc_cal, ok_cal, target_accuracy, round(1.0 - confidence, 12),
                                              max_abstain=max_abstain, method=method)
             else:
                 choice = select_for_abstain(sc_cal, float(target_abstain), ok_cal)
