@@ -11,7 +11,7 @@
 
 from __future__ import annotations
 
-import ast
+import functools
 import json
 import subprocess
 import sys
@@ -34,16 +34,38 @@ def _module_name(path: Path) -> str:
     return "demur." + ".".join(parts)
 
 
-def _imports(path: Path) -> set[str]:
-    """Every module name an import statement in ``path`` names (function bodies included)."""
-    tree = ast.parse(path.read_text(), filename=str(path))
-    found: set[str] = set()
-    for node in ast.walk(tree):
+_PARSE = """
+import ast, json, sys
+out = {}
+for name in sys.argv[1:]:
+    found = []
+    for node in ast.walk(ast.parse(open(name).read(), filename=name)):
         if isinstance(node, ast.Import):
-            found.update(alias.name for alias in node.names)
+            found += [(a.name, 0) for a in node.names]
         elif isinstance(node, ast.ImportFrom):
-            assert node.level == 0, f"{path}: use absolute imports (from demur.serve... import)"
-            found.add(node.module or "")
+            found.append((node.module or "", node.level))
+    out[name] = found
+print(json.dumps(out))
+"""
+
+
+@functools.lru_cache(maxsize=1)
+def _all_imports() -> dict[str, list[tuple[str, int]]]:
+    """Every import statement of every serve/ file (function bodies included), parsed in a fresh
+    interpreter: CPython 3.11.7's ast can raise a spurious SystemError ("AST constructor recursion
+    depth mismatch", python/cpython#106905) in a process where other threads run, as they do here."""
+    files = [str(p) for p in _serve_files()]
+    out = subprocess.run([sys.executable, "-c", _PARSE, *files], capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    return {k: [tuple(v) for v in vs] for k, vs in json.loads(out.stdout).items()}  # type: ignore[misc]
+
+
+def _imports(path: Path) -> set[str]:
+    """Every module name an import statement in ``path`` names; relative imports are refused."""
+    found = set()
+    for name, level in _all_imports()[str(path)]:
+        assert level == 0, f"{path}: use absolute imports (from demur.serve... import)"
+        found.add(name)
     return found
 
 

@@ -210,9 +210,9 @@ def test_the_replayer_survives_any_exception(tmp_path: Path) -> None:
     store.crash = True
     replayer.start()
     deadline = time.monotonic() + 10
-    while replayer.errors < 3 and time.monotonic() < deadline:
+    while len(errors) < 3 and time.monotonic() < deadline:  # the hook runs just after the count
         time.sleep(0.02)
-    assert replayer.running and replayer.errors >= 3 and len(errors) == replayer.errors
+    assert replayer.running and replayer.errors >= 3 and len(errors) >= 3
     assert spool.size() == 2 and spool.rejected_size() == 0 and not up.is_set()
     store.crash = False
     while spool.size() and time.monotonic() < deadline:
