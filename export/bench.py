@@ -59,7 +59,7 @@ from demur.serve.adapters.engine import Engine
 from demur.serve.core.summary import summarise
 
 from demur.export.bench_conv import conv_section
-from demur.export.bench_http import CLIENTS, child_env, http_section
+from demur.export.bench_http import CLIENTS, FRONT_RULE, child_env, http_section
 from demur.export.draws import DrawNetwork
 from demur.export.errors import ExportError
 from demur.export.graphs import export_graph
@@ -90,7 +90,7 @@ TARGETS = {
     "http_over_torch_loop_server": 40.0,
     "http_rows_over_engine_rows": 0.70,     # large batches through HTTP vs engine only
     "summary_share_of_engine": 0.15,        # summaries at B=64, S=32
-    "asgi_over_loop_one_case": 0.85,        # adopt the maintained ASGI server at or above this (issue 16)
+    "asgi_over_loop_one_case": FRONT_RULE,  # adopt the maintained ASGI server at or above this (issue 16)
 }
 
 
