@@ -12,17 +12,18 @@ only S = 32; the JSON has the same shape):
   (fresh normals fed per call), the flip graph with a fresh base per call
   (``export/flip.py``); against a torch loop of S sampled forward
   passes (the obvious code) and torch with S pre-sampled weight sets batched;
+* the conv nets of export/bench_conv.py (a user's own architecture: conv stem,
+  max-pool, residual blocks with batch norm and GELU), exported through
+  ``demur.export.export_model`` as stacked and flip at S = 32: latency at each B,
+  file bytes over parameter bytes, beside the MLP's;
 * the summaries (``demur.serve.core.summary.summarise`` + ``demur.serve.core.decision.decide``) at
   B = 64, S = 32, as a share of the engine time;
 * memory per mode: graph file bytes (and their ratio to the parameter count
   x 4 bytes) and the resident set of a fresh process that loaded it;
-* HTTP on 127.0.0.1 with Debian's ``wrk`` (a compiled load generator, one
-  thread, 32 keep-alive connections, a Lua script for the POST body):
-  worker models (processes x threads x onnxruntime threads, with and without
-  micro-batching) for one case per request at S = 32; the best one for
-  large batches (64 cases per request); and a minimal Flask app running the
-  torch loop behind gunicorn with the same workers and threads; time from
-  start to ready for both.
+* HTTP on 127.0.0.1 with Debian's ``wrk`` (export/bench_http.py): the loop
+  front's sizings, the maintained ASGI server against it (the one-front rule
+  of issue 16), and a minimal Flask app running the torch loop behind gunicorn
+  with the same workers and threads.
 
 The model is the 64-256-256-10 radial MLP (untrained unless ``--checkpoint``:
 the arithmetic, not the accuracy, sets the speed); request bodies are real
@@ -35,24 +36,18 @@ path (the review queue has its own tests).
 from __future__ import annotations
 
 import argparse
-import contextlib
 import datetime as _dt
 import json
 import math
 import os
 import platform
-import re
-import resource
 import shutil
-import signal
-import socket
 import statistics
 import subprocess
 import sys
 import tempfile
 import time
-import urllib.request
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -63,15 +58,15 @@ from demur.serve.core.decision import DecisionRule, decide
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.summary import summarise
 
-from demur.export.errors import ExportError
+from demur.export.bench_conv import conv_section
+from demur.export.bench_http import CLIENTS, FRONT_RULE, child_env, http_section
 from demur.export.draws import DrawNetwork
+from demur.export.errors import ExportError
 from demur.export.graphs import export_graph
 
-__all__ = ["BENCH_FORMAT", "TARGETS", "format_table", "register", "run_bench", "torch_app"]
+__all__ = ["BENCH_FORMAT", "TARGETS", "format_table", "register", "run_bench"]
 
-BENCH_FORMAT = "demur-bench/1"
-WRK = "/usr/bin/wrk"
-CLIENTS = 32
+BENCH_FORMAT = "demur-bench/2"
 
 
 @dataclass(frozen=True)
@@ -85,6 +80,8 @@ class _Plan:
 def _plan(model: Any, spec: dict[str, Any]) -> _Plan:
     net = DrawNetwork(model, "means", 1, seed=0, input_shape=spec["shape"])
     return _Plan(net.family, net.parameter_count())
+
+
 TARGETS = {
     "flip_over_stacked_latency": 2.0,       # flip at S=32, B=1 within 2x of stacked
     "flip_memory_over_params": 4.0,         # flip graph file <= 4x the parameter bytes
@@ -93,20 +90,21 @@ TARGETS = {
     "http_over_torch_loop_server": 40.0,
     "http_rows_over_engine_rows": 0.70,     # large batches through HTTP vs engine only
     "summary_share_of_engine": 0.15,        # summaries at B=64, S=32
+    "asgi_over_loop_one_case": FRONT_RULE,  # adopt the maintained ASGI server at or above this (issue 16)
 }
-_MODEL_ENV = "DEMUR_BENCH_TORCH_MODEL"      # read by torch_app() in the baseline server's workers
 
 
 # -- settings -------------------------------------------------------------------
 def _settings(quick: bool) -> dict[str, Any]:
+    """worker_models: loop-front sizings (workers, threads, onnxruntime threads, batch wait ms);
+    front_rounds: alternated loop / ASGI one-case runs; conv_nets: names in bench_conv.CONV_NETS."""
     if quick:
         return {"draws": [32], "batches": [1, 64], "repeats": 3, "budget_s": 0.04, "http_s": 2,
-                "worker_models": [("loop", 2, 4, 1, 1.0), ("threads", 2, 4, 1, 1.0)], "rss": True}
+                "worker_models": [(2, 4, 1, 0.0)], "front_rounds": 1, "rss": True,
+                "conv_draws": 32, "conv_nets": ["small", "large"]}
     return {"draws": [8, 32, 128], "batches": [1, 64], "repeats": 5, "budget_s": 0.2, "http_s": 6,
-            "worker_models": [("loop", 2, 4, 1, 1.0), ("loop", 1, 4, 1, 1.0), ("loop", 1, 4, 2, 1.0),
-                              ("loop", 2, 4, 1, 0.0), ("loop", 2, 4, 1, 2.0), ("threads", 2, 4, 1, 1.0),
-                              ("threads", 2, 8, 1, 1.0)],
-            "rss": True}
+            "worker_models": [(2, 4, 1, 0.0), (2, 4, 1, 1.0), (1, 4, 1, 0.0), (1, 4, 2, 0.0), (1, 4, 1, 1.0)],
+            "front_rounds": 2, "rss": True, "conv_draws": 32, "conv_nets": ["small", "large"]}
 
 
 def _stats(values: list[float]) -> dict[str, float]:
@@ -276,51 +274,18 @@ def rss():
         if line.startswith('VmRSS:'):
             return int(line.split()[1]) * 1024
 base = rss()
-from demur.export.bench import _baseline_model
-model, spec = _baseline_model(sys.argv[1])
+from demur.export.bench_http import baseline_model
+model, spec = baseline_model(sys.argv[1])
 with torch.no_grad():
     torch.stack([model(torch.zeros(64, 64)) for _ in range(int(sys.argv[2]))])
 print(json.dumps({"base": base, "loaded": rss()}))
 """
 
 
-_RATE_DEMUR = """
-import sys, time
-import numpy as np
-from demur.serve.core.bundle import load_bundle
-from demur.serve.adapters.engine import Engine
-bundle, kind, rows, threads, start, seconds = sys.argv[1], sys.argv[2], int(sys.argv[3]), int(sys.argv[4]), float(sys.argv[5]), float(sys.argv[6])
-engine = Engine(load_bundle(bundle), graph=kind, intra_threads=threads).load()
-x = np.load(sys.argv[7])[:rows]
-engine.run(x)
-while time.time() < start:
-    time.sleep(0.005)
-n, t0 = 0, time.perf_counter()
-while time.perf_counter() - t0 < seconds:
-    engine.run(x)
-    n += 1
-print(n * rows / (time.perf_counter() - t0))
-"""
-
-
-def _parallel_rows(bundle: Bundle, kind: str, xs_file: Path, rows: int, procs: int, threads: int,
-                   seconds: float) -> float:
-    """Engine-only rows/s of ``procs`` processes x ``threads`` onnxruntime threads running side by
-    side (started together), summed: what the server's worker model could do without HTTP."""
-    start = time.time() + 3.0  # all loaded before any starts
-    argv = [str(bundle.path), kind, str(rows), str(threads), str(start), str(seconds), str(xs_file)]
-    children = [subprocess.Popen([sys.executable, "-c", _RATE_DEMUR, *argv], stdout=subprocess.PIPE, text=True,
-                                 env=_child_env()) for _ in range(procs)]
-    total = 0.0
-    for child in children:
-        out, _ = child.communicate(timeout=120 + seconds)
-        total += float(out.strip().splitlines()[-1]) if child.returncode == 0 and out.strip() else float("nan")
-    return total
-
 
 def _rss(code: str, *argv: str) -> dict[str, int]:
     out = subprocess.run([sys.executable, "-c", code, *argv], capture_output=True, text=True, timeout=120,
-                         env=_child_env())
+                         env=child_env())
     if out.returncode != 0:
         return {"base": -1, "loaded": -1}
     return json.loads(out.stdout.strip().splitlines()[-1])
@@ -345,259 +310,6 @@ def _memory_section(plan: _Plan, bundles: dict[int, dict[str, Bundle]], model_fi
                      "rss_bytes": rss["loaded"] if rss else None,
                      "rss_over_baseline_bytes": rss["loaded"] - rss["base"] if rss else None})
     return rows
-
-
-# -- HTTP ---------------------------------------------------------------------------------
-def _child_env(**extra: str) -> dict[str, str]:
-    env = {k: v for k, v in os.environ.items() if not k.startswith("DEMUR_")}
-    env.update({"OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1", **extra})
-    return env
-
-
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
-
-
-def _get(url: str, timeout: float = 2.0) -> int:
-    try:
-        with urllib.request.urlopen(url, timeout=timeout) as r:  # noqa: S310 - 127.0.0.1 only
-            return int(r.status)
-    except OSError:
-        return 0
-
-
-@contextlib.contextmanager
-def _server(argv: list[str], env: dict[str, str], port: int, log_path: Path) -> Iterator[tuple[float, int]]:
-    """Start a server process group; yield (seconds from start to a 200 on /readyz, group id); stop it."""
-    t0 = time.perf_counter()
-    with open(log_path, "ab") as logf:
-        proc = subprocess.Popen(argv, env=env, stdout=logf, stderr=subprocess.STDOUT, start_new_session=True)
-    try:
-        ready = None
-        for _ in range(1200):  # bounded: 60 s
-            if proc.poll() is not None:
-                raise ExportError(f"server {' '.join(argv[:3])} exited with {proc.returncode}; see {log_path}",
-                                  field="http")
-            if _get(f"http://127.0.0.1:{port}/readyz", 0.5) == 200:
-                ready = time.perf_counter() - t0
-                break
-            time.sleep(0.05)
-        if ready is None:
-            raise ExportError(f"server {' '.join(argv[:3])} was not ready within 60 s; see {log_path}", field="http")
-        yield ready, proc.pid
-    finally:
-        with contextlib.suppress(ProcessLookupError):
-            os.killpg(proc.pid, signal.SIGTERM)
-        try:
-            proc.wait(20)
-        except subprocess.TimeoutExpired:
-            with contextlib.suppress(ProcessLookupError):
-                os.killpg(proc.pid, signal.SIGKILL)
-            proc.wait(5)
-
-
-_UNITS = {"us": 1e-3, "ms": 1.0, "s": 1e3, "m": 6e4}
-
-
-def _ms(text: str) -> float:
-    m = re.fullmatch(r"([\d.]+)(us|ms|s|m)", text.strip())
-    return float(m.group(1)) * _UNITS[m.group(2)] if m else float("nan")
-
-
-def _group_cpu_s(pgid: int) -> float:
-    """CPU seconds (user + system) used so far by every live process of group ``pgid`` (from /proc)."""
-    total = 0
-    for stat in Path("/proc").glob("[0-9]*/stat"):
-        try:
-            fields = stat.read_text().rsplit(")", 1)[1].split()
-        except OSError:
-            continue
-        if int(fields[2]) == pgid:
-            total += int(fields[11]) + int(fields[12])
-    return total / os.sysconf("SC_CLK_TCK")
-
-
-def _measured(url: str, body: bytes, seconds: int, workdir: Path, pgid: int) -> dict[str, Any]:
-    """A wrk run plus the CPU it cost: server group and wrk, per request.
-
-    CPU per request does not depend on how busy the machine is (wall time
-    does), so ``implied_requests_per_s`` = cores / (server + client CPU per
-    request) estimates the capacity of this machine when idle, for CPU-bound
-    serving; it is an estimate, labelled as such, beside the measured figure.
-    """
-    cpu0, kids0 = _group_cpu_s(pgid), resource.getrusage(resource.RUSAGE_CHILDREN)
-    r = _wrk(url, body, seconds, workdir)
-    cpu1, kids1 = _group_cpu_s(pgid), resource.getrusage(resource.RUSAGE_CHILDREN)
-    n = max(1, r["requests"])
-    server = (cpu1 - cpu0) / n
-    client = (kids1.ru_utime + kids1.ru_stime - kids0.ru_utime - kids0.ru_stime) / n
-    r.update({"server_cpu_ms_per_request": server * 1e3, "client_cpu_ms_per_request": client * 1e3,
-              "implied_requests_per_s": (os.cpu_count() or 1) / (server + client) if server + client > 0 else 0.0})
-    return r
-
-
-def _wrk(url: str, body: bytes, seconds: int, workdir: Path) -> dict[str, Any]:
-    """One wrk run (1 thread, CLIENTS connections, keep-alive): requests/s, p50, p99, non-2xx."""
-    script = workdir / "post.lua"
-    lua_body = body.decode().replace("\\", "\\\\").replace('"', '\\"')
-    script.write_text(f'wrk.method = "POST"\nwrk.headers["Content-Type"] = "application/json"\n'
-                      f'wrk.body = "{lua_body}"\n')
-    out = subprocess.run([WRK, "-t1", f"-c{CLIENTS}", f"-d{seconds}s", "--timeout", "30s", "--latency", "-s",
-                          str(script), url],
-                         capture_output=True, text=True, timeout=seconds + 60)
-    text = out.stdout
-    rps = re.search(r"Requests/sec:\s+([\d.]+)", text)
-    p50 = re.search(r"^\s+50%\s+(\S+)", text, re.M)
-    p99 = re.search(r"^\s+99%\s+(\S+)", text, re.M)
-    bad = re.search(r"Non-2xx or 3xx responses:\s+(\d+)", text)
-    errors = re.search(r"Socket errors:.*", text)
-    count = re.search(r"(\d+) requests in", text)
-    return {"requests_per_s": float(rps.group(1)) if rps else 0.0, "requests": int(count.group(1)) if count else 0,
-            "p50_ms": _ms(p50.group(1)) if p50 else float("nan"),
-            "p99_ms": _ms(p99.group(1)) if p99 else float("nan"),
-            "non_2xx": int(bad.group(1)) if bad else 0, "socket_errors": errors.group(0) if errors else ""}
-
-
-def _body(xs: np.ndarray, B: int) -> bytes:
-    return json.dumps({"cases": [[float(v) for v in row] for row in xs[:B]]}, separators=(",", ":")).encode()
-
-
-def _demur_argv(bundle: Bundle, port: int, front: str, workers: int, threads: int, ort: int, graph: str,
-                data: Path) -> list[str]:
-    return [sys.executable, "-m", "demur.serve.cli", "serve", str(bundle.path), "--host", "127.0.0.1", "--port", str(port),
-            "--front", front, "--workers", str(workers), "--threads", str(threads), "--ort-threads", str(ort),
-            "--graph", graph, "--data-dir", str(data)]
-
-
-def _torch_argv(port: int, workers: int, threads: int) -> list[str]:
-    return [sys.executable, "-m", "gunicorn", "--bind", f"127.0.0.1:{port}", "--workers", str(workers),
-            "--threads", str(threads), "--worker-class", "gthread", "--log-level", "warning",
-            "demur.export.bench:torch_app()"]
-
-
-def _http_section(bundles: dict[int, dict[str, Bundle]], xs: np.ndarray, model_file: Path, workdir: Path,
-                  cfg: dict[str, Any], log: Callable[[str], None]) -> dict[str, Any]:
-    if not os.access(WRK, os.X_OK):
-        return {"skipped": f"{WRK} not found (apt-get install wrk)"}
-    S = 32 if 32 in bundles else next(iter(bundles))
-    bundle = bundles[S]["main"]
-    one, big = _body(xs, 1), _body(xs, 64)
-    logs = workdir / "servers.log"
-    section: dict[str, Any] = {"draws": S, "clients": CLIENTS, "seconds": cfg["http_s"],
-                               "load_generator": "wrk (Debian), 1 thread, keep-alive, Lua POST body",
-                               "worker_models": [], "cases": []}
-
-    def demur(front: str, workers: int, threads: int, ort: int, wait_ms: float, graph: str, B: int) -> dict[str, Any]:
-        port = _free_port()
-        env = _child_env(DEMUR_BATCH_WAIT_MS=str(wait_ms))
-        with _server(_demur_argv(bundle, port, front, workers, threads, ort, graph, workdir / f"data-{port}"), env, port,
-                     logs) as (ready, pgid):
-            url = f"http://127.0.0.1:{port}/v1/predict"
-            _wrk(url, one, 1, workdir)  # warm-up
-            r = _measured(url, one if B == 1 else big, cfg["http_s"], workdir, pgid)
-        r.update({"server": "demur", "front": front, "graph": graph, "batch": B, "workers": workers,
-                  "threads": threads,
-                  "ort_threads": ort, "batch_wait_ms": wait_ms, "ready_s": ready,
-                  "rows_per_s": r["requests_per_s"] * B})
-        log(f"  http demur {front:>7} {graph:>7} w={workers} t={threads} ort={ort} wait={wait_ms}ms B={B:<3} "
-            f"{r['requests_per_s']:8.0f} req/s p50 {r['p50_ms']:.1f} ms p99 {r['p99_ms']:.1f} ms; server CPU "
-            f"{r['server_cpu_ms_per_request']:.2f} ms/req, wrk {r['client_cpu_ms_per_request']:.2f}")
-        return r
-
-    # Each worker model serves one-case requests and 64-case requests; the choice is the
-    # model with the most one-case requests/s (p99 within target, no errors) among those
-    # within 15% of the best 64-case rows/s: fast for single parcels without giving up
-    # large batches.
-    singles, batches = [], []
-    for front, workers, threads, ort, wait_ms in cfg["worker_models"]:
-        singles.append(demur(front, workers, threads, ort, wait_ms, "stacked", 1))
-        batches.append(demur(front, workers, threads, ort, wait_ms, "stacked", 64))
-    section["worker_models"] = singles + batches
-    top_rows = max(r["rows_per_s"] for r in batches)
-    fit = [i for i, (one, big) in enumerate(zip(singles, batches))
-           if one["p99_ms"] < TARGETS["http_p99_ms"] and not one["non_2xx"] and not big["non_2xx"]
-           and big["rows_per_s"] >= 0.85 * top_rows]
-    pick = max(fit or range(len(singles)), key=lambda i: singles[i]["requests_per_s"])
-    best = singles[pick]
-    chosen = {k: best[k] for k in ("front", "workers", "threads", "ort_threads", "batch_wait_ms")}
-    section["chosen"] = chosen
-    f, w, t, o = chosen["front"], chosen["workers"], chosen["threads"], chosen["ort_threads"]
-    wait = chosen["batch_wait_ms"]
-    section["cases"].append(best)
-    section["cases"].append(demur(f, w, t, o, wait, "flip", 1))
-    section["cases"].append(batches[pick])
-    section["cases"].append(demur(f, w, t, o, wait, "flip", 64))
-    xs_file = workdir / "cases.npy"
-    np.save(xs_file, xs[:64])
-    section["engine_same_cores"] = {
-        "workers": w, "ort_threads": o, "rows": 64,
-        "rows_per_s": {g: _parallel_rows(bundle, g, xs_file, 64, w, o, cfg["http_s"]) for g in ("stacked", "flip")}}
-
-    port = _free_port()
-    env = _child_env(**{_MODEL_ENV: str(model_file), "DEMUR_BENCH_DRAWS": str(S)})
-    for B in (1, 64):
-        with _server(_torch_argv(port, w, t), env, port, logs) as (ready, pgid):
-            url = f"http://127.0.0.1:{port}/v1/predict"
-            _wrk(url, one, 1, workdir)
-            r = _measured(url, one if B == 1 else big, cfg["http_s"], workdir, pgid)
-        r.update({"server": "torch_loop_flask", "front": "gthread", "graph": "torch loop", "batch": B,
-                  "workers": w, "threads": t, "ort_threads": None, "batch_wait_ms": None, "ready_s": ready, "rows_per_s": r["requests_per_s"] * B})
-        log(f"  http torch-loop flask B={B:<3} {r['requests_per_s']:8.0f} req/s p50 {r['p50_ms']:.1f} ms "
-            f"p99 {r['p99_ms']:.1f} ms")
-        section["cases"].append(r)
-    return section
-
-
-# -- the baseline server ---------------------------------------------------------------------
-def _baseline_model(path: str) -> tuple[Any, dict[str, Any]]:
-    import torch
-
-    from demur.export.layers import build_model
-
-    saved = torch.load(path, weights_only=True)
-    model = build_model("mlp", [64], 10, saved["posterior"], hidden=tuple(saved["hidden"]))
-    model.load_state_dict(saved["state_dict"])
-    model.eval()
-    return model, saved["inputs"]
-
-
-def torch_app() -> Any:
-    """The obvious server a user would write: Flask, a torch loop of S sampled forward passes.
-
-    gunicorn factory (``demur.export.bench:torch_app()``); reads the model file named
-    by ``DEMUR_BENCH_TORCH_MODEL`` and S from ``DEMUR_BENCH_DRAWS`` when called
-    (in each worker). Same request body as demur's predict route; answers mean
-    probabilities, predicted label and mutual information per case.
-    """
-    import torch
-    from flask import Flask, jsonify, request
-
-    torch.set_num_threads(1)
-    model, spec = _baseline_model(os.environ[_MODEL_ENV])
-    S = int(os.environ.get("DEMUR_BENCH_DRAWS", "32"))
-    center = torch.tensor(spec["center"], dtype=torch.float32)
-    scale = torch.tensor(spec["scale"], dtype=torch.float32)
-    app = Flask("torch-loop-baseline")
-
-    @app.post("/v1/predict")
-    def predict() -> Any:
-        x = (torch.tensor(request.get_json()["cases"], dtype=torch.float32) - center) / scale
-        with torch.no_grad():
-            logp = torch.stack([torch.log_softmax(model(x), -1) for _ in range(S)])  # [S, B, K]
-        p = logp.exp()
-        mean = p.mean(0)
-        predictive = -(mean * mean.clamp_min(1e-30).log()).sum(-1)
-        expected = -(p * logp).sum(-1).mean(0)
-        return jsonify({"results": [{"prediction": int(k), "mean": m, "mutual_information": float(mi)}
-                                    for k, m, mi in zip(mean.argmax(-1), mean.tolist(), predictive - expected)]})
-
-    @app.get("/readyz")
-    def ready() -> Any:
-        return jsonify({"status": "ready"})
-
-    return app
 
 
 # -- the run ---------------------------------------------------------------------------------
@@ -626,12 +338,25 @@ def _ratios_and_targets(result: dict[str, Any]) -> None:
     def target(name: str, goal: str, value: float | None, reached: bool | None) -> None:
         targets.append({"name": name, "target": goal, "value": value, "reached": reached})
 
-    for mode in ("flip",):
-        v = ratios.get(f"{mode}_over_stacked_S32_B1")
-        target(f"{mode} latency / stacked, S=32 B=1", "<= 2.0", v, None if v is None else v <= 2.0)
-        m = _find(mem, mode=mode, draws=32)
+    v = ratios.get("flip_over_stacked_S32_B1")
+    target("MLP flip latency / stacked, S=32 B=1", "<= 2.0", v, None if v is None else v <= 2.0)
+    m = _find(mem, mode="flip", draws=32)
+    v = m["file_over_param_bytes"] if m else None
+    target("MLP flip graph bytes / parameter bytes", "<= 4.0", v, None if v is None else v <= 4.0)
+    for net in result["conv"]:
+        name, S = net["name"], net["draws"]
+        conv_lat = {(r["mode"], r["batch"]): r["latency_ms"]["median"] for r in net["engine"]}
+        for B in sorted({b for _, b in conv_lat}):
+            if ("flip", B) in conv_lat and ("stacked", B) in conv_lat:
+                ratios[f"conv_{name}_flip_over_stacked_S{S}_B{B}"] = conv_lat[("flip", B)] / conv_lat[("stacked", B)]
+        for r in net["memory"]:
+            ratios[f"memory_file_over_params_conv_{name}_{r['mode']}_S{S}"] = r["file_over_param_bytes"]
+        label = f"conv {name} ({net['parameters']} params)"
+        v = ratios.get(f"conv_{name}_flip_over_stacked_S{S}_B1")
+        target(f"{label} flip latency / stacked, S={S} B=1", "<= 2.0", v, None if v is None else v <= 2.0)
+        m = _find(net["memory"], mode="flip")
         v = m["file_over_param_bytes"] if m else None
-        target(f"{mode} graph bytes / parameter bytes", "<= 4.0", v, None if v is None else v <= 4.0)
+        target(f"{label} flip bytes / param bytes", "<= 4.0", v, None if v is None else v <= 4.0)
     if "cases" in http:
         one = _find(http["cases"], server="demur", graph="stacked", batch=1)
         flip1 = _find(http["cases"], server="demur", graph="flip", batch=1)
@@ -672,6 +397,12 @@ def _ratios_and_targets(result: dict[str, Any]) -> None:
             ratios["start_to_ready_s_demur"] = statistics.median(c["ready_s"] for c in ready)
         if torch1:
             ratios["start_to_ready_s_torch_loop_server"] = torch1["ready_s"]
+        fronts = http["fronts"]
+        v = fronts["asgi_over_loop_one_case"]
+        ratios["http_asgi_over_loop_one_case_requests_per_s"] = v
+        ratios["http_asgi_over_loop_many_case_rows_per_s"] = fronts["asgi_over_loop_many_case_rows"]
+        target("HTTP ASGI / loop front one-case req/s (adopt ASGI)", ">= 0.85", v, v >= TARGETS[
+            "asgi_over_loop_one_case"])
     v = result["summaries"]["share_of_engine"]
     target("summaries / engine time, B=64 S=32", "< 0.15", v, v < 0.15)
     result["ratios"] = ratios
@@ -721,9 +452,14 @@ def run_bench(*, quick: bool = False, checkpoint: Path | None = None, http: bool
                         | {"worker_models": [list(w) for w in cfg["worker_models"]]},
         }
         result["engine"] = _engine_section(model, spec, bundles, xs, cfg, log)
+        result["conv"] = conv_section(xs, cfg, root / "conv", _time, log)
         result["summaries"] = _summary_section(bundles, xs, cfg)
         result["memory"] = _memory_section(plan, bundles, model_file, cfg)
-        result["http"] = _http_section(bundles, xs, model_file, root, cfg, log) if http else {"skipped": "--no-http"}
+        if http:
+            S = 32 if 32 in bundles else next(iter(bundles))
+            result["http"] = http_section(bundles[S]["main"], S, xs, model_file, root, cfg, log)
+        else:
+            result["http"] = {"skipped": "--no-http"}
         result["machine"]["load_average_end"] = list(os.getloadavg())
         result["elapsed_s"] = time.perf_counter() - t_start
         _ratios_and_targets(result)
@@ -746,6 +482,18 @@ def format_table(result: dict[str, Any]) -> str:
         lat = r["latency_ms"]
         lines.append(f"{r['mode']:>14} {r['draws']:>4} {r['batch']:>3} {lat['median']:9.3f} "
                      f"{lat['min']:9.3f}-{lat['max']:<9.3f} {r['rows_per_s']:10.0f}")
+    lines += ["", "conv nets through export_model (export/bench_conv.py), 1 onnxruntime thread, latency ms per "
+                  "call; flip / stacked beside; file bytes / parameter bytes"]
+    for net in result["conv"]:
+        stacked = {r["batch"]: r["latency_ms"]["median"] for r in net["engine"] if r["mode"] == "stacked"}
+        sizes = ", ".join(f"{m['mode']} {m['file_bytes'] / 1e3:.0f} kB = {m['file_over_param_bytes']:.2f}x"
+                          for m in net["memory"])
+        lines.append(f"  {net['name']} {net['arch']}, {net['parameters']} params, S={net['draws']}: {sizes}")
+        for r in net["engine"]:
+            lat = r["latency_ms"]
+            vs = f"{lat['median'] / stacked[r['batch']]:6.2f}x stacked" if r["mode"] == "flip" else ""
+            lines.append(f"{r['mode']:>14} {r['draws']:>4} {r['batch']:>3} {lat['median']:9.3f} "
+                         f"{lat['min']:9.3f}-{lat['max']:<9.3f} {r['rows_per_s']:10.0f} {vs}")
     s = result["summaries"]
     lines += ["", f"summaries + decision at B={s['batch']} S={s['draws']}: {s['summary_ms']['median']:.3f} ms "
                   f"[{s['summary_ms']['min']:.3f}-{s['summary_ms']['max']:.3f}] vs stacked engine "
@@ -766,13 +514,7 @@ def format_table(result: dict[str, Any]) -> str:
                      f"{'wrkCPU':>6} {'implied req/s':>13}")
         shown = [json.dumps(r, sort_keys=True, default=str) for r in http["worker_models"]]
         rest = [c for c in http["cases"] if json.dumps(c, sort_keys=True, default=str) not in shown]
-        for r in http["worker_models"] + rest:
-            shape = f"{r['workers']}x{r['threads']}x{r['ort_threads'] or '-'}"
-            wait = "-" if r["batch_wait_ms"] is None else f"{r['batch_wait_ms']:g}"
-            lines.append(f"{r['server']:>17} {r.get('front', '-'):>7} {r['graph']:>10} {r['batch']:>3} {shape:>11} {wait:>5} "
-                         f"{r['requests_per_s']:8.0f} {r['rows_per_s']:9.0f} {r['p50_ms']:7.2f} {r['p99_ms']:7.2f} "
-                         f"{r['non_2xx']:>6} {r['ready_s']:7.2f} {r['server_cpu_ms_per_request']:13.3f} "
-                         f"{r['client_cpu_ms_per_request']:6.3f} {r['implied_requests_per_s']:13.0f}")
+        lines += [_http_row(r) for r in http["worker_models"] + rest]
         same = http.get("engine_same_cores")
         if same:
             lines.append(f"engine only, {same['workers']} process(es) x {same['ort_threads']} onnxruntime thread(s) "
@@ -781,16 +523,38 @@ def format_table(result: dict[str, Any]) -> str:
         c = http["chosen"]
         lines.append(f"chosen worker model: {c['front']} front, {c['workers']} processes x {c['threads']} threads x "
                      f"{c['ort_threads']} onnxruntime threads, batch wait {c['batch_wait_ms']:g} ms")
+        f = http["fronts"]
+        lines += ["", f"one production front (issue 16): loop front vs maintained ASGI server (uvicorn + httptools "
+                      f"under gunicorn, export/bench_asgi.py), same sizing, {f['rounds']} alternated one-case "
+                      "round(s)"]
+        lines += [_http_row(r) for r in f["runs"]]
+        lo, asg = f["loop"], f["asgi"]
+        lines += [f"  one-case req/s: loop {lo['one_case_requests_per_s']:.0f} (p99 {lo['one_case_p99_ms']:.1f} ms), "
+                  f"ASGI {asg['one_case_requests_per_s']:.0f} (p99 {asg['one_case_p99_ms']:.1f} ms): "
+                  f"ASGI / loop {f['asgi_over_loop_one_case']:.3f}",
+                  f"  64-case rows/s: loop {lo['many_case_rows_per_s']:.0f} (p99 {lo['many_case_p99_ms']:.1f} ms), "
+                  f"ASGI {asg['many_case_rows_per_s']:.0f} (p99 {asg['many_case_p99_ms']:.1f} ms): "
+                  f"ASGI / loop {f['asgi_over_loop_many_case_rows']:.3f}",
+                  f"  rule: {f['rule']}; chosen front: {f['chosen']}"]
     lines += ["", "ratios"]
     for k, v in result["ratios"].items():
         lines.append(f"  {k:<52} {v:10.3f}" if isinstance(v, (int, float)) else f"  {k:<52} {'-':>10}")
-    lines += ["", "targets (issue 8)"]
+    lines += ["", "targets (issues 8, 12, 16)"]
     for t in result["targets"]:
         verdict = "n/a" if t["reached"] is None else "REACHED" if t["reached"] else "NOT reached"
         value = "-" if t["value"] is None else f"{t['value']:.3f}"
         lines.append(f"  {t['name']:<48} {t['target']:>8}  {value:>10}  {verdict}")
     lines.append(f"\nelapsed {result['elapsed_s']:.0f} s")
     return "\n".join(lines)
+
+
+def _http_row(r: dict[str, Any]) -> str:
+    shape = f"{r['workers']}x{r['threads']}x{r['ort_threads'] or '-'}"
+    wait = "-" if r["batch_wait_ms"] is None else f"{r['batch_wait_ms']:g}"
+    return (f"{r['server']:>17} {r.get('front', '-'):>7} {r['graph']:>10} {r['batch']:>3} {shape:>11} {wait:>5} "
+            f"{r['requests_per_s']:8.0f} {r['rows_per_s']:9.0f} {r['p50_ms']:7.2f} {r['p99_ms']:7.2f} "
+            f"{r['non_2xx']:>6} {r['ready_s']:7.2f} {r['server_cpu_ms_per_request']:13.3f} "
+            f"{r['client_cpu_ms_per_request']:6.3f} {r['implied_requests_per_s']:13.0f}")
 
 
 # -- command line ----------------------------------------------------------------------------

@@ -91,7 +91,7 @@ import math
 import torch
 import torch.nn.functional as F
 
-from demur.export.draws import Feed, NoiseInput, _Mode
+from demur.export.draws import Feed, NoiseInput, _Mode, static_shape
 from demur.export.errors import GraphBuildError
 from demur.export.layers import VariationalConv2d, VariationalLayer
 
@@ -168,18 +168,20 @@ class FlipDraws(_Mode):
         d_w, d_b, r_w, r_b = self._base()
         a, c = self._signs()
         S = self.S
-        xs = x.unflatten(0, (S, -1))                                             # [S, B, ...]
+        case = static_shape(x.shape[1:])
+        xs = x.reshape(S, -1, *case)                                             # [S, B, ...]
         if self.conv:
             assert isinstance(layer, VariationalConv2d)
             mean = F.conv2d(x, self.mu_w, self.mu_b, stride=layer.stride, padding=layer.padding)
-            signed = (xs * a.reshape(S, 1, self.in_c, 1, 1)).flatten(0, 1)
-            pert = F.conv2d(signed, d_w, None, stride=layer.stride, padding=layer.padding).unflatten(0, (S, -1))
-            pert = pert * (c * r_w[:, None]).reshape(S, 1, self.out, 1, 1)
+            signed = (xs * a.reshape(S, 1, self.in_c, 1, 1)).reshape(-1, *case)
+            pert = F.conv2d(signed, d_w, None, stride=layer.stride, padding=layer.padding)
+            out_case = static_shape(pert.shape[1:])
+            pert = pert.reshape(S, -1, *out_case) * (c * r_w[:, None]).reshape(S, 1, self.out, 1, 1)
             pert = pert + (d_b * c * r_b[:, None]).reshape(S, 1, self.out, 1, 1)
-            return mean + pert.flatten(0, 1)
+            return mean + pert.reshape(-1, *out_case)
         ones = [1] * (xs.dim() - 2)
         mean = F.linear(x, self.mu_w, self.mu_b)
         pert = F.linear(xs * a.reshape(S, *ones, self.in_c), d_w)                # [S, B, ..., out]
         pert = pert * (c * r_w[:, None]).reshape(S, *ones, self.out) + (d_b * c * r_b[:, None]).reshape(
             S, *ones, self.out)
-        return mean + pert.flatten(0, 1)
+        return mean + pert.reshape(-1, *case[:-1], self.out)

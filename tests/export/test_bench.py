@@ -20,7 +20,8 @@ from demur.export.bench import BENCH_FORMAT, TARGETS, format_table, run_bench
 from demur.serve.cli import build_parser
 
 TINY = {"draws": [4], "batches": [1, 2], "repeats": 1, "budget_s": 0.0, "rss": False,
-        "http_s": 1, "worker_models": [("loop", 1, 2, 1, 1.0)]}
+        "http_s": 1, "worker_models": [(1, 2, 1, 0.0)], "front_rounds": 1, "conv_draws": 4,
+        "conv_nets": ["small"]}
 
 
 @pytest.fixture(scope="module")
@@ -45,6 +46,13 @@ def test_tiny_run_has_every_section(tiny_result: dict[str, Any]) -> None:
     assert mem["stacked"]["file_over_param_bytes"] == pytest.approx(4, rel=0.02)   # S = 4 weight sets
     assert mem["flip"]["file_over_param_bytes"] == pytest.approx(2, rel=0.15)      # mu + sigma, graph overhead
     assert r["http"] == {"skipped": "--no-http"}
+    (conv,) = r["conv"]
+    # 8x8 digits: stem 1*8*9+8, one block 8*8*9+8 (+ batch norm: 2*8 affine, 2*8 running statistics),
+    # head 128*10+10 (definition of a convolution / affine map)
+    assert conv["name"] == "small" and conv["parameters"] == 80 + 584 + 32 + 1290
+    assert {(e["mode"], e["batch"]) for e in conv["engine"]} == {(m, b) for m in ("stacked", "flip") for b in (1, 2)}
+    assert all(e["draws"] == 4 and e["latency_ms"]["median"] > 0 for e in conv["engine"])
+    assert {m["mode"] for m in conv["memory"]} == {"stacked", "flip"}
     json.dumps(r)  # serialisable as written to bench.json
 
 
@@ -52,8 +60,10 @@ def test_ratios_and_targets_are_named(tiny_result: dict[str, Any]) -> None:
     ratios = tiny_result["ratios"]
     assert "flip_over_stacked_S4_B1" in ratios and "torch_loop_over_stacked_S4_B1" in ratios
     assert "summary_share_of_engine_B64_S32" in ratios
+    assert "conv_small_flip_over_stacked_S4_B1" in ratios and "memory_file_over_params_conv_small_flip_S4" in ratios
     names = [t["name"] for t in tiny_result["targets"]]
     assert "summaries / engine time, B=64 S=32" in names
+    assert any(n.startswith("conv small") and "flip latency" in n for n in names)
     for t in tiny_result["targets"]:
         assert set(t) == {"name", "target", "value", "reached"}
     assert TARGETS["http_requests_per_s"] == 1500.0 and TARGETS["http_p99_ms"] == 30.0  # issue 8, never weakened
@@ -61,7 +71,7 @@ def test_ratios_and_targets_are_named(tiny_result: dict[str, Any]) -> None:
 
 def test_table_prints_every_engine_row(tiny_result: dict[str, Any]) -> None:
     table = format_table(tiny_result)
-    assert "engine level" in table and "targets (issue 8)" in table
+    assert "engine level" in table and "targets (issues 8, 12, 16)" in table and "conv nets" in table
     assert table.count("\n") > len(tiny_result["engine"])
 
 
@@ -73,10 +83,10 @@ def test_bench_is_a_demur_subcommand() -> None:
 @pytest.mark.long
 @pytest.mark.skipif(not os.access("/usr/bin/wrk", os.X_OK), reason="needs Debian's wrk")
 def test_tiny_http_section_has_demur_and_the_torch_server(tmp_path: Path, request: pytest.FixtureRequest) -> None:
-    # six server starts: on demand only (pytest -m long). Both servers on 127.0.0.1, 1-second
+    # ten server starts: on demand only (pytest -m long). Both servers on 127.0.0.1, 1-second
     # wrk runs, bounded start (60 s) and stop; shape only, no timing
     if "long" not in (request.config.getoption("-m") or ""):
-        pytest.skip("starts six servers; run with -m long")
+        pytest.skip("starts ten servers; run with -m long")
     r = run_bench(quick=True, http=True, workdir=tmp_path, log=lambda _m: None, settings=TINY)
     http = r["http"]
     servers = {(c["server"], c["graph"], c["batch"]) for c in http["cases"]}
@@ -85,3 +95,7 @@ def test_tiny_http_section_has_demur_and_the_torch_server(tmp_path: Path, reques
     for case in http["cases"]:
         assert case["requests_per_s"] >= 0 and case["non_2xx"] == 0 and case["ready_s"] > 0
     assert "http_stacked_over_torch_loop_server" in r["ratios"]
+    fronts = http["fronts"]
+    assert {(c["front"], c["batch"]) for c in fronts["runs"]} == {(f, b) for f in ("loop", "asgi") for b in (1, 64)}
+    assert fronts["chosen"] in ("loop", "asgi") and fronts["asgi_over_loop_one_case"] > 0
+    assert all(c["non_2xx"] == 0 for c in fronts["runs"])
