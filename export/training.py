@@ -122,6 +122,7 @@ __all__ = [
     "summary_line",
     "total_kl",
     "train",
+    "train_ensemble",
 ]
 
 CHECKPOINT_FORMAT = "demur-checkpoint"
@@ -296,6 +297,18 @@ def train(
         return _fit(dataset, arch, posterior, seed, out, progress, h)
     finally:
         torch.set_num_threads(previous_threads)
+
+
+def train_ensemble(dataset: Dataset, members: int, *, posterior: str = "radial", seed: int = 0,
+                   **options: Any) -> list[TrainResult]:
+    """``members`` variational networks on the same split, member i from seed ``seed * members + i``
+    (its own initialisation and shuffling; Lakshminarayanan et al. 2017 train deep-ensemble members
+    from random initialisations). ``options`` are ``train``'s (no ``out``: a list of modules exports
+    through ``export_model``). Exported together they serve the mixture of the members' posteriors."""
+    if not isinstance(members, int) or members < 2:
+        raise LayerConfigError(f"an ensemble needs at least 2 members; got {members!r}", field="members")
+    return [train(dataset, posterior=posterior, seed=seed * members + i, progress=False, **options)
+            for i in range(members)]
 
 
 def _fit(
