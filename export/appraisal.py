@@ -9,8 +9,9 @@ the training defaults of ``demur.export.training``: Adam, lr, batch size, epochs
 their tables beside the bundle's. A baseline's "served rule" is the same support check plus
 a 1 - max-probability threshold that refers as many clean cases as the bundle's rule does.
 ``holdout_class`` trains a fresh variational network (the bundle's posterior, the training
-defaults; an ensemble bundle: as many members, ``train_ensemble``) without that class, exports it to a temporary bundle (support check included,
-the exporter's uncalibrated default threshold) and measures how its test cases are flagged.
+defaults; an ensemble bundle: as many members, ``train_ensemble``) without that class, exports
+it to a temporary bundle (support check included, the exporter's uncalibrated default
+threshold) and measures how its test cases are flagged.
 
 Example::
 
