@@ -368,8 +368,13 @@ class DrawNetwork(nn.Module):
         self.feed.values = {spec.name: value for spec, value in zip(self.noise, noise)}
         if self.ensemble:
             P = self.per_member
-            xs = x if P == 1 else x.unsqueeze(0).expand(P, *x.shape).flatten(0, 1)   # [P*B, ...]
-            out = torch.cat([m(xs).unflatten(0, (P, -1)) for m in self.members])     # [M*P, B, K]
+            xs = x if P == 1 else x.repeat(P, *[1] * (x.dim() - 1))                 # [P*B, ...], draw-major
+            outs = []
+            for member in self.members:
+                y = member(xs)
+                _check_output(y)
+                outs.append(y.reshape(P, -1, int(y.shape[-1])))  # int sizes: one constant-shape Reshape
+            out = torch.cat(outs)                                                   # [M*P, B, K]
             return _ensemble_mean(out, self.task) if self.kind == "means" else out
         xs = x.unsqueeze(0).expand(self.S, *x.shape).flatten(0, 1)            # [S*B, ...], draw-major
         y = self.members[0](xs)

@@ -136,6 +136,22 @@ def test_ensemble_of_variational_members_serves_the_mixture_of_their_posteriors(
     assert np.abs(special_softmax(Engine(bundle, graph="means").load().run(cases)[0]) - at_means).max() <= 1e-5
 
 
+def test_holdout_class_of_an_ensemble_of_plain_networks_is_refused_by_name(tmp_path: Path) -> None:
+    """`demur evaluate --holdout-class` retrains the model; demur trains only variational members,
+    so an ensemble of the user's plain networks is refused naming the field, never retrained wrong."""
+    from demur.export import evaluate
+    from demur.export.datasets import load_dataset
+    from demur.serve.errors import ConfigError
+
+    ds = load_dataset("digits")
+    bundle = export_model([plain_mlp(seed=s) for s in range(2)], tmp_path / "b", inputs=input_spec(ds.x_train),
+                          reference=ds.x_val, seed=0)
+    assert "member_family" not in bundle.manifest.posterior and bundle.manifest.posterior["draws_per_member"] == 1
+    with pytest.raises(ConfigError, match="ensembles of variational members") as info:
+        evaluate(bundle, ds.x_test[:40], ds.y_test[:40], holdout=("9", ds))
+    assert info.value.field == "holdout_class"
+
+
 def special_softmax(z: np.ndarray) -> np.ndarray:
     from scipy import special
 
