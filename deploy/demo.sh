@@ -13,13 +13,15 @@ mkdir -p "$BUILD"
 
 step() { printf '\n== %s\n' "$*"; }
 
-step "1/7 train: radial variational MLP on the depot's handwritten postcode digits"
-demur train --data digits --posterior radial --out "$BUILD/checkpoint"
+# The demo's defaults were chosen by measurement (README, "Choosing the demo's defaults"):
+# five radial networks served as one mixture of their posteriors, 6 draws each, abstaining on
+# predictive entropy (it ranked an unseen digit better than mutual information in 2 of 3 seeds).
+step "1/7 train: five radial variational MLPs on the depot's handwritten postcode digits"
+demur train --data digits --posterior radial --members 5 --out "$BUILD/checkpoint"
 
-step "2/7 export: stacked-draws bundle (S=32) and fresh-draw sampler bundle"
+step "2/7 export: one stacked-draws bundle, 5 members x 6 posterior draws (S=30)"
 rm -rf "$BUILD/bundle" "$BUILD/bundle-sampler"
-demur export "$BUILD/checkpoint" --draws 32 --out "$BUILD/bundle"
-demur export "$BUILD/checkpoint" --sampler --out "$BUILD/bundle-sampler"
+demur export "$BUILD/checkpoint" --draws 30 --out "$BUILD/bundle"
 
 step "3/7 calibrate on the depot's own held-out file: accepted digits >= 98% correct with 90% confidence"
 # The held-out digits as the user would hold them: CSVs with feature names and a 'digit' column
@@ -28,7 +30,7 @@ python -c "from demur.export.datasets import load_dataset, write_labelled as w; 
 [w('$BUILD/holdout-' + s + '.csv', *d.split(s)[:1], [str(v) for v in d.split(s)[1]], d.feature_names, 'digit') \
  for s in ('cal', 'test')]"
 demur calibrate "$BUILD/bundle" --data "$BUILD/holdout-cal.csv" --test "$BUILD/holdout-test.csv" \
-  --target-accuracy 0.98 --confidence 0.9 --max-abstain 0.3 --report "$BUILD/report"
+  --target-accuracy 0.98 --confidence 0.9 --max-abstain 0.3 --score predictive_entropy --report "$BUILD/report"
 
 step "4/7 serve on $URL"
 rm -rf "$BUILD/data"

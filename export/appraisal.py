@@ -9,8 +9,9 @@ the training defaults of ``demur.export.training``: Adam, lr, batch size, epochs
 their tables beside the bundle's. A baseline's "served rule" is the same support check plus
 a 1 - max-probability threshold that refers as many clean cases as the bundle's rule does.
 ``holdout_class`` trains a fresh variational network (the bundle's posterior, the training
-defaults) without that class, exports it to a temporary bundle (support check included,
-the exporter's uncalibrated default threshold) and measures how its test cases are flagged.
+defaults; an ensemble bundle: as many members, ``train_ensemble``) without that class, exports
+it to a temporary bundle (support check included, the exporter's uncalibrated default
+threshold) and measures how its test cases are flagged.
 
 Example::
 
@@ -144,7 +145,8 @@ def _baseline(members: list[Any], bundle: Bundle, x: np.ndarray, y: np.ndarray,
 def _holdout(bundle: Bundle, label: str, data: Any, seed: int, baseline: bool) -> dict[str, Any]:
     """Train without ``label``; AUROC of each score for its test cases against the seen classes'."""
     from demur.export.exporter import Inputs, training_rows, export_model
-    from demur.export.training import train
+    from demur.export.layers import POSTERIORS
+    from demur.export.training import train, train_ensemble
 
     m = bundle.manifest
     if label not in m.labels:
@@ -154,12 +156,23 @@ def _holdout(bundle: Bundle, label: str, data: Any, seed: int, baseline: bool) -
     keep = {f"{a}_{s}": getattr(data, f"{a}_{s}")[getattr(data, f"y_{s}") != k]
             for s in ("train", "val", "cal") for a in ("x", "y")}
     seen = dataclasses.replace(data, **keep)
-    result = train(seen, arch="mlp", posterior=str(m.posterior.get("family", "radial")), seed=seed,
-                   progress=False)
+    family = str(m.posterior.get("family", "radial"))
+    if family == "ensemble":  # retrain every member the same way (demur.export.training.train_ensemble)
+        if m.posterior.get("member_family") not in POSTERIORS:
+            raise ConfigError("--holdout-class retrains the model without the class, and demur trains only "
+                              f"ensembles of variational members ({', '.join(POSTERIORS)}); this bundle's "
+                              f"members are {m.posterior.get('member_family', 'plain networks')}",
+                              field="holdout_class")
+        results = train_ensemble(seen, int(m.posterior["members"]), posterior=m.posterior["member_family"],
+                                 seed=seed)
+        result, model = results[0], [r.model for r in results]
+    else:
+        result = train(seen, arch="mlp", posterior=family, seed=seed, progress=False)
+        model = result.model
     unseen_x, seen_x = data.x_test[data.y_test == k], data.x_test[data.y_test != k]
     out: dict[str, Any] = {}
     with tempfile.TemporaryDirectory(prefix="demur-holdout-") as tmp:
-        held = export_model(result.model, Path(tmp) / "bundle", task="classification", labels=list(m.labels),
+        held = export_model(model, Path(tmp) / "bundle", task="classification", labels=list(m.labels),
                             inputs=Inputs(spec=result.meta["inputs"], training=training_rows(seen.x_train)),
                             reference=seen.x_val, draws=m.graphs[next(iter(m.graphs))].draws, seed=seed,
                             name="holdout")

@@ -150,6 +150,9 @@ def _load_model(checkpoint: Path | None) -> tuple[Any, dict[str, Any], bool]:
         from demur.export.training import load_checkpoint
 
         model, meta = load_checkpoint(checkpoint)
+        if isinstance(model, list):
+            raise ExportError(f"demur bench measures one network; {checkpoint} holds an ensemble of {len(model)} "
+                              "(train one with 'demur train' without --members)", field="checkpoint")
         return model, meta["inputs"], True
     torch.manual_seed(0)
     _, spec = _digits()

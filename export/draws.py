@@ -37,8 +37,13 @@ Where the draws come from, per graph kind:
              ensemble, the members' averaged prediction.
 
 A list of modules is a deep ensemble (Lakshminarayanan, Pritzel & Blundell,
-NeurIPS 2017): S = the number of members, one draw per member (variational
-layers inside a member run at their means).
+NeurIPS 2017), always stacked. Members without variational layers give one
+draw each (S = M). Members with variational layers give ``S // M`` stored
+draws each from their own posterior (at least one; S = M * (S // M)), so the
+served predictive is the equal-weight mixture of the members' posteriors (a
+mixture of variational posteriors, as in Wilson & Izmailov, NeurIPS 2020,
+"multi-SWAG": each member's own spread plus the spread between members).
+Draws are member-major: draws ``m * P .. (m + 1) * P - 1`` are member m's.
 
 ``reference_draws`` is the torch reference the exporter checks every graph
 against: it runs the user's module once per draw on the B cases with plain
@@ -277,16 +282,20 @@ class DrawNetwork(nn.Module):
         self.members = nn.ModuleList(copy.deepcopy(m).eval() for m in members)
         self.layers = [lay for m in self.members for lay in m.modules() if isinstance(lay, VariationalLayer)]
         self.family = self._family()
-        self.S = 1 if kind == "means" else len(self.members) if self.ensemble else int(draws)
-        if self.S < 1:
+        if int(draws) < 1:
             raise GraphBuildError(f"draws must be a positive integer; got {draws}", field="draws")
+        self.member_layers = [[lay for lay in m.modules() if isinstance(lay, VariationalLayer)]
+                              for m in self.members]
+        self.per_member = (max(1, int(draws) // len(self.members))
+                           if self.ensemble and self.layers and kind != "means" else 1)
+        self.S = (1 if kind == "means" else len(self.members) * self.per_member if self.ensemble
+                  else int(draws))
         self.dropouts: list[DropoutDraws] = []
         if self.ensemble:
             if kind not in ("stacked", "means"):
-                raise GraphBuildError(f"a deep ensemble has one fixed draw per member: export it as 'stacked'; "
+                raise GraphBuildError(f"a deep ensemble has fixed draws per member: export it as 'stacked'; "
                                       f"got '{kind}'", field="kind")
-            for lay in self.layers:  # each member is one network: variational layers at their means
-                lay._draw_mode = _Fixed(lay.weight_mu[None], lay.bias_mu[None])
+            self._set_member_modes(kind, int(seed))
         else:
             self._set_modes(kind, int(seed))
         self.noise: tuple[NoiseInput, ...] = tuple(
@@ -309,6 +318,20 @@ class DrawNetwork(nn.Module):
             "the model has no variational layers and no dropout, so every draw would be the same network: use "
             "demur's VariationalLinear/VariationalConv2d, nn.Dropout (MC dropout), or pass a list of modules "
             "(a deep ensemble)", field="model")
+
+    def member_families(self) -> list[str]:
+        """The posterior families inside an ensemble's variational members (empty: plain members)."""
+        return sorted({lay.posterior for lay in self.layers})
+
+    def _set_member_modes(self, kind: str, seed: int) -> None:
+        """Each member's ``per_member`` stored draws from its own posterior (one generator, seeded,
+        member after member); the means graph runs every member at its posterior means."""
+        gen = torch.Generator().manual_seed(seed)
+        for member, layers in zip(self.members, self.member_layers):
+            sets = sample_network(member, self.per_member, gen) if layers and kind == "stacked" else None
+            for i, lay in enumerate(layers):
+                lay._draw_mode = (_Fixed(sets[i]["weight"], sets[i]["bias"]) if sets is not None
+                                  else _Fixed(lay.weight_mu[None], lay.bias_mu[None]))
 
     def _set_modes(self, kind: str, seed: int) -> None:
         from demur.export.flip import FlipDraws
@@ -353,7 +376,14 @@ class DrawNetwork(nn.Module):
     def forward(self, x: torch.Tensor, *noise: torch.Tensor) -> torch.Tensor:
         self.feed.values = {spec.name: value for spec, value in zip(self.noise, noise)}
         if self.ensemble:
-            out = torch.stack([m(x) for m in self.members])                  # [M, B, K]
+            P = self.per_member
+            xs = x if P == 1 else x.repeat(P, *[1] * (x.dim() - 1))                 # [P*B, ...], draw-major
+            outs = []
+            for member in self.members:
+                y = member(xs)
+                _check_output(y)
+                outs.append(y.reshape(P, -1, int(y.shape[-1])))  # int sizes: one constant-shape Reshape
+            out = torch.cat(outs)                                                   # [M*P, B, K]
             return _ensemble_mean(out, self.task) if self.kind == "means" else out
         xs = x.repeat(self.S, *[1] * (x.dim() - 1))                         # [S*B, ...], draw-major
         y = self.members[0](xs)
@@ -431,7 +461,9 @@ def reference_draws(net: DrawNetwork, x: torch.Tensor, noise: dict[str, np.ndarr
     with that draw's plain weights and mask, the same draws the graph makes from ``noise``."""
     net.feed.values = {k: torch.from_numpy(v) for k, v in noise.items()}
     if net.ensemble:
-        return net(x)
+        out = torch.stack([y for member, layers in zip(net.members, net.member_layers)
+                           for y in _member_draws(member, layers, net.per_member, x)])
+        return _ensemble_mean(out, net.task) if net.kind == "means" else out
     modes = [lay._draw_mode for lay in net.layers]
     sets = [mode.weights(lay) for mode, lay in zip(modes, net.layers)]
     masks = [d.all_masks() for d in net.dropouts]
@@ -449,3 +481,19 @@ def reference_draws(net: DrawNetwork, x: torch.Tensor, noise: dict[str, np.ndarr
         for drop in net.dropouts:
             drop.single = None
     return torch.stack(outs)
+
+
+def _member_draws(member: nn.Module, layers: list[VariationalLayer], P: int, x: torch.Tensor) -> list[torch.Tensor]:
+    """One ensemble member run once per stored draw with that draw's plain weights: P x [B, K]."""
+    modes = [lay._draw_mode for lay in layers]
+    sets = [mode.weights(lay) for mode, lay in zip(modes, layers)]
+    outs = []
+    try:
+        for p in range(P):
+            for lay, (w, b) in zip(layers, sets):
+                lay._draw_mode = _Single(w[p], b[p])
+            outs.append(member(x))
+    finally:
+        for lay, mode in zip(layers, modes):
+            lay._draw_mode = mode
+    return outs

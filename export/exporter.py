@@ -10,7 +10,8 @@
 ``model`` is any ``torch.nn.Module`` whose variational layers are demur's
 (``VariationalLinear``/``VariationalConv2d``) and whose other layers torch can
 export to ONNX; or a module with ``nn.Dropout`` and no variational layers (MC
-dropout); or a list of modules (a deep ensemble, one draw per member). How
+dropout); or a list of modules (a deep ensemble: one draw per plain member,
+S // M posterior draws per variational member, export/draws.py). How
 the draws run is export/draws.py; how they become ONNX is export/graphs.py.
 
 Never a silent mis-export. Before a bundle is sealed: the model must accept
@@ -215,7 +216,8 @@ def export_model(
     "regression" (mean and log-variance [B, 2] in standardised target units,
     ``target`` = {"center", "scale"} of the target). ``kind``: the sampling
     graph, one of ``EXPORT_KINDS`` (a deep ensemble is always "stacked").
-    ``draws``: S (an ensemble: one per member). ``reference``: held-out raw
+    ``draws``: S (an ensemble: one per plain member; variational members
+    ``draws // M`` each, the manifest's ``posterior.draws_per_member``). ``reference``: held-out raw
     inputs float[N, F] for the parity check, the default threshold and the
     score reference (None: 64 cases uniform over the training range, a
     placeholder until ``demur calibrate``). ``seed``: the stacked draws and
@@ -231,7 +233,7 @@ def export_model(
     if task not in ("classification", "regression"):
         raise ExportError(f"task must be 'classification' or 'regression'; got '{task}'", field="task")
     if isinstance(model, (list, tuple)) and kind != "stacked":
-        raise ExportError(f"a deep ensemble (a list of modules) has one fixed draw per member: export it with "
+        raise ExportError(f"a deep ensemble (a list of modules) has its draws fixed at export: export it with "
                           f"kind='stacked'; got '{kind}'", field="kind")
     seed = secrets.randbelow(SEED_MODULUS) if seed is None else int(seed) % SEED_MODULUS
     spec_in = inputs if isinstance(inputs, Inputs) else Inputs(spec=dict(inputs))
@@ -303,6 +305,9 @@ def _manifest_extras(net: Any, model: Any, extensions: Mapping[str, Any] | None,
         posterior["prior_scale"] = scales[0] if len(scales) == 1 else scales
     if net.family == "ensemble":
         posterior["members"] = len(members)
+        posterior["draws_per_member"] = net.per_member
+        if net.member_families():  # a mixture of the members' variational posteriors
+            posterior["member_family"] = "+".join(net.member_families())
     if net.family == "mc_dropout":
         posterior["dropout"] = [float(d.p) for d in net.dropouts] or None
     ext = dict(extensions or {})

@@ -95,6 +95,63 @@ def test_deep_ensemble_serves_the_average_of_member_softmaxes(digits, tmp_path: 
     assert np.abs(special_softmax(means) - want).max() <= 1e-5  # the means graph: the same average
 
 
+def test_ensemble_of_variational_members_serves_the_mixture_of_their_posteriors(digits, tmp_path: Path) -> None:
+    """A list of radial MLPs: each member contributes S // M draws from its own posterior (a mixture
+    of posteriors, Wilson & Izmailov, NeurIPS 2020). Reference: each member's draws (its own
+    ``sample_network``, one seeded generator member after member) pushed through ``F.linear`` and
+    ``torch.relu`` by hand, ``torch.softmax`` per draw, averaged over all draws; 1e-5."""
+    from demur.export.layers import build_model, sample_network
+
+    x, _ = digits
+    members = []
+    for s in range(3):
+        torch.manual_seed(s)
+        members.append(build_model("mlp", [64], 10, "radial", hidden=(16,), init_spread=0.05))
+    spec = input_spec(x[:1000])
+    bundle = export_model(members, tmp_path / "b", inputs=spec, reference=x[1000:1200], draws=7, seed=3)
+    m = bundle.manifest
+    assert m.posterior["family"] == "ensemble" and m.posterior["members"] == 3
+    assert m.posterior["draws_per_member"] == 2 and m.posterior["member_family"] == "radial"
+    assert m.graphs["stacked"].draws == 6  # 3 members x (7 // 3) draws
+    cases = x[1200:1240]
+    xs = torch.from_numpy(spec.standardise(cases)).float()
+    gen = torch.Generator().manual_seed(3)
+    logits = []
+    for member in members:
+        (l1, l2) = sample_network(member, 2, gen)
+        for p in range(2):
+            h = torch.relu(F.linear(xs, l1["weight"][p], l1["bias"][p]))
+            logits.append(F.linear(h, l2["weight"][p], l2["bias"][p]))
+    want_draws = torch.stack(logits).double()
+    served = Engine(bundle).load().run(cases)
+    assert np.abs(served - want_draws.numpy()).max() <= 1e-4  # draw for draw, member-major
+    got = summarise(m.task, served, m.interval_level, m.target).mean_probs
+    want = torch.softmax(want_draws, dim=-1).mean(0).numpy()
+    assert np.abs(got - want).max() <= 1e-5
+    assert not np.allclose(served[0], served[1])  # a member's two draws differ: its posterior's spread
+    with torch.no_grad():  # the means graph: the members' posterior means, softmaxes averaged
+        at_means = torch.stack([torch.softmax(F.linear(torch.relu(F.linear(xs, mb[1].weight_mu, mb[1].bias_mu)),
+                                                       mb[3].weight_mu, mb[3].bias_mu).double(), -1)
+                                for mb in members]).mean(0).numpy()
+    assert np.abs(special_softmax(Engine(bundle, graph="means").load().run(cases)[0]) - at_means).max() <= 1e-5
+
+
+def test_holdout_class_of_an_ensemble_of_plain_networks_is_refused_by_name(tmp_path: Path) -> None:
+    """`demur evaluate --holdout-class` retrains the model; demur trains only variational members,
+    so an ensemble of the user's plain networks is refused naming the field, never retrained wrong."""
+    from demur.export import evaluate
+    from demur.export.datasets import load_dataset
+    from demur.serve.errors import ConfigError
+
+    ds = load_dataset("digits")
+    bundle = export_model([plain_mlp(seed=s) for s in range(2)], tmp_path / "b", inputs=input_spec(ds.x_train),
+                          reference=ds.x_val, seed=0)
+    assert "member_family" not in bundle.manifest.posterior and bundle.manifest.posterior["draws_per_member"] == 1
+    with pytest.raises(ConfigError, match="ensembles of variational members") as info:
+        evaluate(bundle, ds.x_test[:40], ds.y_test[:40], holdout=("9", ds))
+    assert info.value.field == "holdout_class"
+
+
 def special_softmax(z: np.ndarray) -> np.ndarray:
     from scipy import special
 

@@ -208,3 +208,59 @@ def test_demo_radial_mlp_reaches_95_percent_on_digits(tmp_path):
     print(f"\n{training.summary_line(r)}; sigma median {r.metrics['sigma']['median']:.4f}")
     assert t["accuracy"] >= 0.95
     assert 0.0 <= t["ece"] < 0.1
+
+
+def test_ensemble_checkpoint_round_trips_and_exports_the_mixture(tmp_path, capsys):
+    """`demur train --members 3` -> one checkpoint of 3 members (torch.load(weights_only=True) reads
+    it) -> `demur export` serves each member's own posterior draws, 10 // 3 = 3 each; reference:
+    each member's stored draws through F.linear/torch.relu by hand, torch.softmax per draw,
+    averaged over all draws (the mixture predictive; Wilson & Izmailov, NeurIPS 2020), 1e-5."""
+    import torch.nn.functional as F
+
+    from demur.export.draws import DrawNetwork
+    from demur.serve.adapters.engine import Engine
+    from demur.serve.core.bundle import load_bundle
+    from demur.serve.core.summary import summarise
+
+    ck, out = tmp_path / "ck", tmp_path / "b"
+    assert main(["train", "--data", "digits", "--members", "3", "--epochs", "1", "--hidden", "16",
+                 "--out", str(ck), "--seed", "1"]) == 0
+    assert "ensemble of 3 (radial)" in capsys.readouterr().out
+    raw = torch.load(ck / "checkpoint.pt", weights_only=True)
+    assert raw["members"] == 3 and len(raw["state_dict"]) == 3 and raw["training"]["member_seeds"] == [3, 4, 5]
+    members, meta = load_checkpoint(ck)
+    assert isinstance(members, list) and len(members) == 3 and "test" in meta["metrics"]
+    assert not torch.equal(members[0][1].weight_mu, members[1][1].weight_mu)  # own initialisations
+    assert main(["export", str(ck), "--draws", "10", "--seed", "2", "--out", str(out)]) == 0
+    b = load_bundle(out)
+    assert b.manifest.posterior["family"] == "ensemble" and b.manifest.graphs["stacked"].draws == 9
+    ds = load_dataset("digits", seed=1)
+    x = ds.x_test[:20]
+    xs = torch.from_numpy(standardise_inputs(meta["inputs"], x)).float()
+    net = DrawNetwork(members, "stacked", 10, seed=2, input_shape=[64])
+    logits = []
+    for member in net.members:  # the stored draws, applied by hand
+        l1, l2 = (lay._draw_mode for lay in member if isinstance(lay, VariationalLinear))
+        for p in range(3):
+            h = torch.relu(F.linear(xs, l1.w[p], l1.b[p]))
+            logits.append(F.linear(h, l2.w[p], l2.b[p]))
+    want = torch.softmax(torch.stack(logits).double(), -1).mean(0).numpy()
+    m = b.manifest
+    got = summarise(m.task, Engine(b).load().run(x), m.interval_level, m.target).mean_probs
+    assert np.abs(got - want).max() <= 1e-5
+    from demur.export.bench import _load_model
+    from demur.export.errors import ExportError
+
+    with pytest.raises(ExportError, match="holds an ensemble of 3"):  # demur bench measures one network
+        _load_model(ck)
+
+
+def test_ensemble_checkpoint_with_missing_members_is_refused(tmp_path):
+    ds = load_dataset("digits")
+    train(ds, epochs=1, out=tmp_path, hidden=(16,), progress=False)
+    raw = torch.load(tmp_path / "checkpoint.pt", weights_only=True)
+    torch.save({**raw, "members": 3, "state_dict": [raw["state_dict"]]}, tmp_path / "checkpoint.pt")
+    with pytest.raises(CheckpointError, match="3 members needs as many state_dicts"):
+        load_checkpoint(tmp_path)
+    with pytest.raises(LayerConfigError, match="at least 2 members"):
+        training.train_ensemble(ds, 1)
