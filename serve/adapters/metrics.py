@@ -81,7 +81,7 @@ one process with threads is the default and gives exact windows.
 Example::
 
     metrics = Metrics(config, registry=CollectorRegistry())
-    metrics.bind_model(bundle, rule)          # or metrics.init_app(app): binds to the app's live model
+    metrics.bind_model(bundle, rule)          # or create_app(...): binds to the app's live model
     metrics.observe_predict(x_raw, summary, decisions, graph_seconds=0.004, total_seconds=0.006)
     body, content_type = metrics.exposition()
 """
@@ -460,20 +460,16 @@ class Metrics:
         return generate_latest(scrape), CONTENT_TYPE_LATEST
 
     # ------------------------------------------------------------------ flask
-    def init_app(self, app: Any) -> None:
-        """Time every request and serve ``GET /metrics`` on ``app`` (a Flask app).
-
-        Also reads the app's ``Runtime`` (``app.extensions["demur"]``): the live
-        model to bind to and, when it has one, the review router.
-        """
+    def install(self, app: Any, runtime: Any, review: Any = None) -> None:
+        """Time every request and serve ``GET /metrics`` on ``app`` (a Flask app); bind to
+        ``runtime``'s live model at scrape time; read queue depths from ``review`` (the review
+        router, or None) unless one was given at construction. Called by ``create_app``."""
         from flask import Blueprint, Response, g, request
 
-        self._runtime = app.extensions.get("demur")
+        self._runtime = runtime
         self._app = app
-        if self._review is None and self._runtime is not None:
-            review = getattr(self._runtime, "review", None)
-            if hasattr(review, "queue_depths"):
-                self._review = review
+        if self._review is None:
+            self._review = review
 
         @app.before_request
         def _start_timer() -> None:

@@ -193,25 +193,18 @@ class ReviewRouter:
                    quota_per_min=config.review_quota_per_min)
 
     # ------------------------------------------------------------------ app hook
-    def init_app(self, app: Any) -> None:
-        """Register the reviewer API and page; wire failures to the app's metrics;
-        add the review summary to ``GET /v1/model``; start replaying a non-empty spool."""
+    def install(self, app: Any, runtime: Any, metrics: Any = None) -> None:
+        """Register the reviewer API and page on ``app``; report failures and events to
+        ``metrics`` (a ``demur.serve.adapters.metrics.Metrics``, or None); add the review
+        summary to ``GET /v1/model`` through ``runtime.model_extras``; start replaying a
+        non-empty spool. Called by ``create_app``, which owns the composition."""
         from demur.serve.web.review_api import install_review_api
 
-        runtime = app.extensions.get("demur")
         install_review_api(app, self)
-        if runtime is not None:
-            if self.on_failure is None:
-                hook = getattr(runtime.metrics, "review_enqueue_failed", None)
-                if callable(hook):
-                    self.on_failure = hook
-            if self.on_event is None:
-                hook = getattr(runtime.metrics, "review_event", None)
-                if callable(hook):
-                    self.on_event = hook
-            extras = getattr(runtime, "model_extras", None)
-            if isinstance(extras, list):
-                extras.append(lambda: {"review": self.describe()})
+        if metrics is not None:
+            self.on_failure = self.on_failure or metrics.review_enqueue_failed
+            self.on_event = self.on_event or metrics.review_event
+        runtime.model_extras.append(lambda: {"review": self.describe()})
         try:
             if self.spool is not None and self.spool.size() > 0 and self.replayer is not None:
                 self.replayer.start()

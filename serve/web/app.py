@@ -34,6 +34,7 @@ from demur.serve.config import ServeConfig
 from demur.serve.core.bundle import load_bundle
 from demur.serve.core.pipeline import CAUTION, Runtime
 from demur.serve.errors import DemurError, PayloadTooLarge
+from demur.serve.review.router import ReviewRouter
 from demur.serve.web import predict_http
 from demur.serve.web.admin import install_admin
 from demur.serve.web.auth import AUTH_EXTENSION, TokenSet
@@ -101,8 +102,6 @@ def create_app(
     if metrics is None:  # the app owns its metrics, in its own registry (a fresh one unless given)
         metrics = Metrics(config, registry=registry)
     if review is None:  # the review queue named by config (SQLite under data_dir by default)
-        from demur.serve.review.router import ReviewRouter
-
         review = ReviewRouter.from_config(config)
     tokens = tokens if tokens is not None else TokenSet.from_config(config)
     app.extensions[AUTH_EXTENSION] = tokens
@@ -145,10 +144,12 @@ def create_app(
         return response
 
     install_admin(app, config)
-    for component in (review, metrics, *plugins):
-        init = getattr(component, "init_app", None)
-        if callable(init):
-            init(app)
+    router = review if isinstance(review, ReviewRouter) else None  # a test may pass a bare ReviewHook
+    if router is not None:
+        router.install(app, runtime, metrics)
+    metrics.install(app, runtime, router)
+    for plugin in plugins:
+        plugin.init_app(app)
     install_limits(app, config)
     if engine is not None:
         runtime.install(engine)
