@@ -192,6 +192,9 @@ class _Metrics:
     def observe_error(self, **kw: Any) -> None:
         self.errors.append(kw)
 
+    def install(self, app: Any, runtime: Any, review: Any = None) -> None:
+        """What create_app calls on its metrics (the real one adds /metrics); nothing here."""
+
 
 def test_review_and_metrics_hooks(tiny_bundle_factory: Any, make_app: Any) -> None:
     bundle = tiny_bundle_factory(task="classification", kind="stacked", draws=8)
