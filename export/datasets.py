@@ -41,6 +41,7 @@ __all__ = [
     "LabelledRows",
     "column_order",
     "load_dataset",
+    "read_features",
     "read_labelled",
     "split_indices",
     "write_labelled",
@@ -380,12 +381,25 @@ def read_labelled(path: str | Path, names: Sequence[str], target: str, *,
     header, body = _read_rows(path)
     cols = column_order(header, names, target=target, ignore=ignore, where=str(path))
     t = header.index(target)
+    return LabelledRows(x=_cells(header, body, cols, path), y=[row[t].strip() for _, row in body],
+                        lines=np.array([line for line, _ in body], dtype=np.int64), source=str(path), target=target)
+
+
+def read_features(path: str | Path, names: Sequence[str], *, ignore: Sequence[str] = ()) -> np.ndarray:
+    """The feature columns of an unlabelled CSV (any order; ``ignore``d columns may be present)
+    as float64[N, F] in the order of ``names``, checked as ``read_labelled`` checks them."""
+    path = Path(path)
+    header, body = _read_rows(path)
+    return _cells(header, body, column_order(header, names, ignore=ignore, where=str(path)), path)
+
+
+def _cells(header: Sequence[str], body: Sequence[tuple[int, Sequence[str]]], cols: Sequence[int],
+           path: Path) -> np.ndarray:
     x = np.empty((len(body), len(cols)), dtype=np.float64)
     for i, (line, row) in enumerate(body):
         for k, j in enumerate(cols):
             x[i, k] = _number(row[j], header[j], line, path)
-    return LabelledRows(x=x, y=[row[t].strip() for _, row in body],
-                        lines=np.array([line for line, _ in body], dtype=np.int64), source=str(path), target=target)
+    return x
 
 
 def write_labelled(path: str | Path, x: np.ndarray, y: Sequence[object], names: Sequence[str], target: str) -> Path:

@@ -448,7 +448,10 @@ def export_bundle(
                                   training=training_rows(dataset.x_train)),
         labels=list(meta["labels"]), task=meta["task"], target=meta.get("target"), kind=kind, draws=draws,
         seed=seed, reference=dataset.x_val, name=name or str(meta.get("name", Path(checkpoint_dir).name)),
-        version=version or "1", extensions={"training": {"metrics": meta.get("metrics", {}), "data": data}},
+        version=version or "1",
+        # settings + arch let `demur evaluate --holdout-class` retrain the same network the same way
+        extensions={"training": {"metrics": meta.get("metrics", {}), "data": data,
+                                 "settings": meta.get("training", {}), "arch": meta.get("arch", {})}},
     )
 
 

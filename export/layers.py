@@ -66,6 +66,7 @@ __all__ = [
     "build_model",
     "forward_draws",
     "inverse_softplus",
+    "plain_model",
     "sample_network",
     "total_kl",
     "variational_layers",
@@ -327,17 +328,44 @@ def build_model(
 
     ``init_sigma`` / ``init_spread`` go to every layer (module docstring).
     """
-    shape = tuple(int(d) for d in input_shape)
     kw = {"posterior": posterior, "prior_scale": prior_scale, "init_sigma": init_sigma, "init_spread": init_spread}
+    return _assemble(
+        kind, input_shape, outputs, hidden, channels,
+        linear=lambda a, b: VariationalLinear(a, b, **kw),
+        conv=lambda a, b, stride: VariationalConv2d(a, b, 3, stride=stride, padding=1, **kw),
+    )
+
+
+def plain_model(
+    kind: str,
+    input_shape: Sequence[int],
+    outputs: int,
+    hidden: Sequence[int] = (256, 256),
+    channels: Sequence[int] = (16, 32),
+) -> nn.Sequential:
+    """The deterministic twin of ``build_model``: the same layers and widths with plain
+    ``nn.Linear`` / ``nn.Conv2d`` (torch's default initialisation), for the baselines of
+    ``demur evaluate`` ("what does the posterior buy over the same network without one")."""
+    return _assemble(
+        kind, input_shape, outputs, hidden, channels,
+        linear=lambda a, b: nn.Linear(a, b),
+        conv=lambda a, b, stride: nn.Conv2d(a, b, 3, stride=stride, padding=1),
+    )
+
+
+def _assemble(kind: str, input_shape: Sequence[int], outputs: int, hidden: Sequence[int],
+              channels: Sequence[int], *, linear: Any, conv: Any) -> nn.Sequential:
+    """The demo architectures' geometry, with the layer constructors given."""
+    shape = tuple(int(d) for d in input_shape)
     if outputs < 1:
         raise LayerConfigError(f"outputs must be >= 1; got {outputs}", field="outputs")
     if kind == "mlp":
         layers: list[nn.Module] = [nn.Flatten()]
         width = math.prod(shape)
         for h in hidden:
-            layers += [VariationalLinear(width, int(h), **kw), nn.ReLU()]
+            layers += [linear(width, int(h)), nn.ReLU()]
             width = int(h)
-        layers.append(VariationalLinear(width, outputs, **kw))
+        layers.append(linear(width, outputs))
         return nn.Sequential(*layers)
     if kind == "conv":
         if len(shape) != 3:
@@ -349,10 +377,11 @@ def build_model(
         c, h, w = shape
         layers = []
         for i, out_c in enumerate(channels):
-            conv = VariationalConv2d(c, int(out_c), 3, stride=1 if i == 0 else 2, padding=1, **kw)
-            layers += [conv, nn.ReLU()]
-            c, h, w = int(out_c), conv.output_size(h), conv.output_size(w)
-        layers += [nn.Flatten(), VariationalLinear(c * h * w, outputs, **kw)]
+            stride = 1 if i == 0 else 2
+            layers += [conv(c, int(out_c), stride), nn.ReLU()]
+            h, w = (h + 2 - 3) // stride + 1, (w + 2 - 3) // stride + 1
+            c = int(out_c)
+        layers += [nn.Flatten(), linear(c * h * w, outputs)]
         return nn.Sequential(*layers)
     raise LayerConfigError(f"arch must be one of {list(ARCHITECTURES)}; got {kind!r}", field="arch")
 

@@ -63,3 +63,108 @@ def test_evaluate_on_a_csv_refuses_what_it_cannot_do_naming_the_option(tiny_bund
                  "--out", str(tmp_path / "b")]) == 1
     assert "training split" in capsys.readouterr().err
     assert not (tmp_path / "a").exists() and not (tmp_path / "b").exists()
+
+
+# -- the unseen-class table ------------------------------------------------------------
+@pytest.fixture(scope="module")
+def small_trained_bundle(tmp_path_factory):
+    """A `demur train` + `demur export` bundle, small and quick: 2 radial members, 16 hidden units,
+    2 epochs, so the retraining `--holdout-class` does is quick too (it reads these settings)."""
+    root = tmp_path_factory.mktemp("trained")
+    assert main(["train", "--data", "digits", "--posterior", "radial", "--members", "2", "--hidden", "16",
+                 "--epochs", "2", "--out", str(root / "ckpt"), "--no-progress"]) == 0
+    assert main(["export", str(root / "ckpt"), "--draws", "8", "--out", str(root / "bundle")]) == 0
+    from demur.serve.core.bundle import load_bundle
+
+    return load_bundle(root / "bundle")
+
+
+def test_holdout_class_retrains_as_recorded_and_uses_every_row_of_the_class(small_trained_bundle, tmp_path, capsys):
+    """`--holdout-class 9` retrains with the bundle's recorded settings and takes every nine in
+    the data as unseen: scikit-learn's load_digits has 180 of them (none is trained on), against
+    the test split's other digits. The row carries each score's AUROC with its standard error."""
+    from sklearn.datasets import load_digits
+
+    out = tmp_path / "ev"
+    assert main(["evaluate", str(small_trained_bundle.path), "--data", "digits", "--holdout-class", "9",
+                 "--baseline", "--out", str(out)]) == 0
+    assert "unseen class (180 rows)" in capsys.readouterr().out
+    figures = json.loads((out / "evaluation.json").read_text())
+    ds = load_dataset("digits")
+    for name in ("bundle", "deterministic", "ensemble"):
+        row = figures["models"][name]["holdout"]
+        assert row["n"] == int((load_digits().target == 9).sum()) == 180
+        assert row["n_seen"] == int((ds.y_test != 9).sum())
+        assert set(row["auroc"]) == set(row["auroc_se"]) and all(0 < v < 0.2 for v in row["auroc_se"].values())
+        assert "all four splits" in row["rows"]
+    assert "recorded training settings" in figures["models"]["deterministic"]["network"]
+    versus = figures["models"]["bundle"]["holdout"]["against_deterministic"]
+    assert versus["score"] == small_trained_bundle.manifest.raw["decision"]["score"]
+    assert versus["standard_error"] > 0 and 0.0 <= versus["p_value"] <= 1.0
+    assert "Unseen class 9" in (out / "index.html").read_text()
+
+
+def test_holdout_class_sets_the_retrained_rule_as_the_bundle_was_calibrated(small_trained_bundle, tmp_path):
+    """A calibrated bundle: the retrained network's rule uses the same score and goal (here an
+    abstain rate of 20% on predictive entropy), so the unseen class's "accepted" share is the
+    served rule's, and the paired comparison uses that score."""
+    import shutil
+
+    from demur.export import calibrate, evaluate
+    from demur.serve.core.bundle import load_bundle
+
+    path = tmp_path / "bundle"
+    shutil.copytree(small_trained_bundle.path, path)
+    ds = load_dataset("digits")
+    calibrate(path, ds.x_cal, ds.y_cal, target_abstain=0.2, score="predictive_entropy")
+    figures = evaluate(load_bundle(path), ds.x_test, ds.y_test, x_train=ds.x_train, y_train=ds.y_train,
+                       baseline=True, holdout=("9", ds))
+    row = figures["models"]["bundle"]["holdout"]
+    assert row["rule"].startswith("predictive_entropy > ") and "target_abstain 0.2" in row["rule"]
+    assert row["against_deterministic"]["score"] == "predictive_entropy"
+
+
+def test_unseen_rows_measure_a_users_own_model(tiny_bundle_factory, tmp_path):
+    """A model of the user's own (no recorded training) cannot be retrained by demur, so
+    `holdout` is refused naming the field and the way that works: `unseen=` rows of a class the
+    model never saw. Given rows identical to the held-out ones, every score's AUROC is exactly 0.5
+    (the Mann-Whitney statistic of two equal samples; sklearn.metrics.roc_auc_score agrees)."""
+    from sklearn.metrics import roc_auc_score
+
+    from demur.export import evaluate
+    from demur.serve.errors import ConfigError
+
+    bundle = tiny_bundle_factory()
+    ds = load_dataset("digits")
+    x, y = ds.x_test[:60], ds.y_test[:60]
+    with pytest.raises(ConfigError, match=r"unseen=") as info:
+        evaluate(bundle, x, y, holdout=("9", ds))
+    assert info.value.field == "holdout_class"
+    figures = evaluate(bundle, x, y, unseen=x.copy(), unseen_label="copies")
+    row = figures["models"]["bundle"]["holdout"]
+    assert row["label"] == "copies" and row["n"] == row["n_seen"] == 60
+    same = np.r_[np.arange(60.0), np.arange(60.0)]
+    assert roc_auc_score(np.r_[np.ones(60), np.zeros(60)], same) == pytest.approx(0.5)
+    assert all(v == pytest.approx(0.5, abs=1e-12) for v in row["auroc"].values())
+    assert "unseen_class" not in figures["models"]["bundle"]["shift"]
+    with pytest.raises(ConfigError) as bad:
+        evaluate(bundle, x, y, unseen=np.ones((3, 5)))
+    assert bad.value.field == "unseen"
+
+
+def test_unseen_file_on_the_command_line(tiny_bundle_factory, tmp_path, capsys):
+    """`--unseen FILE`: columns by name, a target column ignored; a missing file is refused naming
+    --unseen (exit 1, no traceback)."""
+    bundle = tiny_bundle_factory()
+    ds = load_dataset("digits")
+    names = list(ds.feature_names)
+    nines = write_labelled(tmp_path / "nines.csv", ds.x_val[ds.y_val == 9][:, ::-1],
+                           ["9"] * int((ds.y_val == 9).sum()), names[::-1], "digit")
+    assert main(["evaluate", str(bundle.path), "--data", "digits", "--unseen", str(nines), "--target", "digit",
+                 "--out", str(tmp_path / "ev")]) == 0
+    row = json.loads((tmp_path / "ev" / "evaluation.json").read_text())["models"]["bundle"]["holdout"]
+    assert row["n"] == int((ds.y_val == 9).sum()) and row["label"] == "nines.csv"
+    capsys.readouterr()
+    assert main(["evaluate", str(bundle.path), "--data", "digits", "--unseen", str(tmp_path / "none.csv"),
+                 "--out", str(tmp_path / "ev2")]) == 1
+    assert "--unseen" in capsys.readouterr().err
