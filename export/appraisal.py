@@ -40,6 +40,7 @@ import numpy as np
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.bundle import Bundle, load_bundle
 from demur.serve.core.decision import decide, rule_from
+from demur.serve.core.fingerprint import training_overlap
 from demur.serve.core.summary import summarise
 from demur.serve.core.support import support_from_manifest
 from demur.serve.errors import ConfigError
@@ -55,7 +56,7 @@ from demur.serve.offline.evaluation import (
 
 from demur.export.datasets import BUILTIN, column_order, load_dataset, read_features
 from demur.export.errors import DatasetError
-from demur.export.holdout import labelled_file
+from demur.export.holdout import case_array, labelled_arrays, labelled_file
 
 __all__ = ["ENSEMBLE_MEMBERS", "HOLDOUT_ROWS", "UNSEEN_ROWS", "evaluate", "register"]
 
@@ -191,6 +192,9 @@ def _unseen_rows(models: dict[str, dict[str, Any]], *, label: str, n_unseen: int
     for name, body in models.items():
         out[name] = holdout_row(body["shift"].pop("unseen_class"), label=label, n_unseen=n_unseen,
                                 n_seen=n_seen, rows=rows)
+        r = body["rule"]
+        out[name]["rule"] = (f"{r['score']} > {r['threshold']:.4g} ({r.get('source') or r.get('basis')})"
+                             + (", and the support check" if r.get("support") else ""))
         kept[name] = body.pop(_SCORES)
     if "deterministic" in kept:
         (u, c), (bu, bc) = kept["bundle"], kept["deterministic"]
@@ -201,11 +205,39 @@ def _unseen_rows(models: dict[str, dict[str, Any]], *, label: str, n_unseen: int
     return out
 
 
-UNSEEN_ROWS = ("the rows given as unseen (a class the model was trained without) against every held-out row "
-               "given as x")
+UNSEEN_ROWS = ("the unseen rows given (a class the model was trained without) against every labelled held-out "
+               "row evaluated")
 
 HOLDOUT_ROWS = ("every row of the class in all four splits (train, val, cal, test): the model was trained "
                 "without any of them; the seen classes' test rows are the other side")
+
+
+def _retrainable(bundle: Bundle, label: str) -> tuple[str, dict[str, Any]]:
+    """(posterior family, recipe) when ``--holdout-class label`` can retrain this bundle's
+    network; else ``ConfigError`` naming ``holdout_class`` and the way that measures the user's
+    own model (rows of the class, ``unseen=``). Checked before anything runs."""
+    from demur.export.layers import POSTERIORS
+
+    m = bundle.manifest
+    own = ("For a model of your own, train it without the class, export it, and pass that class's rows as "
+           "evaluate(..., unseen=X) (demur evaluate ... --unseen FILE)")
+    if label not in m.labels:
+        raise ConfigError(f"--holdout-class must be one of the bundle's labels {list(m.labels)}; got {label!r}. "
+                          "If your model was trained without that class already, pass that class's rows as "
+                          "evaluate(..., unseen=X) (demur evaluate ... --unseen FILE)", field="holdout_class")
+    family = str(m.posterior.get("family", "radial"))
+    if family == "ensemble" and m.posterior.get("member_family") not in POSTERIORS:
+        raise ConfigError("--holdout-class retrains the model without the class, and demur trains only "
+                          f"ensembles of variational members ({', '.join(POSTERIORS)}); this bundle's "
+                          f"members are {m.posterior.get('member_family', 'plain networks')}. {own}",
+                          field="holdout_class")
+    recipe = _recipe(bundle)
+    if not recipe["recorded"] or (family != "ensemble" and family not in POSTERIORS):
+        raise ConfigError("--holdout-class retrains the bundle's network without the class, so it needs a bundle "
+                          "exported from a `demur train` checkpoint, whose manifest records the architecture and "
+                          "settings (extensions.training); this bundle records none. A bundle from `demur train` "
+                          f"exported by an older demur: export it again. {own}", field="holdout_class")
+    return family, recipe
 
 
 def _holdout(bundle: Bundle, label: str, data: Any, seed: int, baseline: bool) -> dict[str, dict[str, Any]]:
@@ -216,28 +248,10 @@ def _holdout(bundle: Bundle, label: str, data: Any, seed: int, baseline: bool) -
     model demur would be measuring a network that is not the user's, so it refuses and names
     the way that measures the user's own model (``evaluate(..., unseen=...)``)."""
     from demur.export.exporter import Inputs, export_model, training_rows
-    from demur.export.layers import POSTERIORS
     from demur.export.training import train, train_ensemble
 
     m = bundle.manifest
-    if label not in m.labels:
-        raise ConfigError(f"--holdout-class must be one of the labels {list(m.labels)}; got {label!r}",
-                          field="holdout_class")
-    family = str(m.posterior.get("family", "radial"))
-    if family == "ensemble" and m.posterior.get("member_family") not in POSTERIORS:
-        raise ConfigError("--holdout-class retrains the model without the class, and demur trains only "
-                          f"ensembles of variational members ({', '.join(POSTERIORS)}); this bundle's "
-                          f"members are {m.posterior.get('member_family', 'plain networks')}. Train yours without "
-                          "the class, export it, and pass that class's rows as evaluate(..., unseen=X) "
-                          "(demur evaluate ... --unseen FILE)", field="holdout_class")
-    recipe = _recipe(bundle)
-    if not recipe["recorded"] or (family != "ensemble" and family not in POSTERIORS):
-        raise ConfigError("--holdout-class retrains the bundle's network without the class, so it needs a bundle "
-                          "exported from a `demur train` checkpoint (its manifest records the architecture and "
-                          "settings under extensions.training); this one records none (a model of your own, or "
-                          "an older export: export it again). For your own model, train it without the class, "
-                          "export it, and pass that class's rows as evaluate(..., unseen=X) "
-                          "(demur evaluate ... --unseen FILE)", field="holdout_class")
+    family, recipe = _retrainable(bundle, label)
     k = m.labels.index(label)
     splits = ("train", "val", "cal", "test")
     keep = {f"{a}_{s}": getattr(data, f"{a}_{s}")[getattr(data, f"y_{s}") != k]
@@ -306,6 +320,25 @@ def _recalibrated_like(original: Bundle, held: Bundle, x_cal: np.ndarray, y_cal:
                   "classes' cal split")
 
 
+def _not_fitted(bundle: Bundle, rows: np.ndarray, what: str) -> list[str]:
+    """Refuse rows the bundle's training-row fingerprint recognises (a model is right more often on
+    rows it fitted, so the tables would flatter it); a note when the bundle keeps no fingerprint."""
+    record = bundle.manifest.raw.get("extensions", {}).get("training_rows")
+    if record is None:
+        return [f"warning: the bundle records no training-row fingerprint, so {what} could not be checked for "
+                "rows the model was trained on"]
+    try:
+        overlap = training_overlap(record, rows)
+    except ValueError as exc:
+        raise DatasetError(f"cannot check {what} against the training rows: {exc}", field=what) from None
+    if overlap.count:
+        first = ", ".join(str(v) for v in np.flatnonzero(overlap.seen)[:8])
+        raise DatasetError(f"{overlap.count} of the {len(rows)} rows of {what} were used to train this model (rows "
+                           f"{first}{' ...' if overlap.count > 8 else ''}); evaluate on rows held out from training",
+                           field=what)
+    return []
+
+
 def _image_shape(spec: Any) -> tuple[int, ...] | None:
     """(C, H, W) of image inputs (a flat image input is taken as one square channel), else None."""
     if spec.kind != "image":
@@ -329,7 +362,7 @@ def evaluate(
     title: str = "",
     holdout: tuple[str, Any] | None = None,
     unseen: np.ndarray | None = None,
-    unseen_label: str = "unseen",
+    unseen_label: str = "",
 ) -> dict[str, Any]:
     """The evaluation tables for ``bundle`` on labelled held-out ``x`` float[N, F], ``y`` int[N]
     (class indices); ``baseline`` needs ``x_train``/``y_train``. Writes the page when ``out``.
@@ -347,32 +380,36 @@ def evaluate(
     m = b.manifest
     if m.task != "classification":
         raise ConfigError("demur evaluate measures classifiers; this bundle is a regression model", field="bundle")
-    x = np.asarray(x, dtype=np.float64).reshape(len(x), -1)
-    y = np.asarray(y).astype(np.int64)
-    if x.shape[1] != m.inputs.size:
-        raise ConfigError(f"x has {x.shape[1]} features; the bundle expects {m.inputs.size}", field="x")
     if holdout is not None and unseen is not None:
         raise ConfigError("give either holdout (demur retrains without the class) or unseen (rows of a class "
                           "your model never saw), not both", field="unseen")
-    u = None
-    if unseen is not None:
-        u = np.asarray(unseen, dtype=np.float64)
-        u = u.reshape(len(u), -1) if u.ndim else u.reshape(0, 0)
-        if not len(u) or u.shape[1] != m.inputs.size or not np.isfinite(u).all():
-            raise ConfigError(f"unseen must be a non-empty float array of finite numbers with {m.inputs.size} "
-                              f"features per row; got shape {list(np.shape(unseen))}", field="unseen")
+    if holdout is not None:
+        _retrainable(b, str(holdout[0]))
+    x, y = labelled_arrays(b, x, y, "x", "y")
+    train = None
+    if baseline:
+        if x_train is None or y_train is None:
+            raise ConfigError("baseline needs the training split (x_train, y_train)", field="baseline")
+        train = labelled_arrays(b, x_train, y_train, "x_train", "y_train")
+    u = case_array(b, unseen, "unseen") if unseen is not None else None
+    notes = _not_fitted(b, x, "x") + (_not_fitted(b, u, "unseen") if u is not None else [])
+    if u is not None:
+        both = len({r.tobytes() for r in x} & {r.tobytes() for r in u})
+        if both:
+            notes.append(f"warning: {both} of the {len(u)} unseen rows are also in x: the unseen class should be "
+                         "one the model never saw, and x the classes it knows")
+    if out is not None and Path(out).exists() and not Path(out).is_dir():
+        raise ConfigError(f"out {str(out)!r} exists and is not a folder; choose another --out", field="out")
     spec = m.inputs
     shifts = shifted_inputs(x, low=np.asarray(spec.low), high=np.asarray(spec.high), center=np.asarray(spec.center),
                             image_shape=_image_shape(spec), seed=seed)
     if u is not None:
         shifts["unseen_class"] = u
     models: dict[str, Any] = {"bundle": _served(b, x, y, shifts)}
-    if baseline:
-        if x_train is None or y_train is None:
-            raise ConfigError("baseline needs the training split (x_train, y_train)", field="baseline")
+    if train is not None:
         inputs = {"center": list(spec.center), "scale": list(spec.scale), "shape": list(spec.shape)}
         recipe = _recipe(b)
-        nets = [_train_plain(np.asarray(x_train), np.asarray(y_train), inputs, len(m.labels), seed + i, recipe)
+        nets = [_train_plain(train[0], train[1], inputs, len(m.labels), seed + i, recipe)
                 for i in range(ENSEMBLE_MEMBERS)]
         refer = 1.0 - models["bundle"]["clean_accepted"]
         network = (f"the bundle's {recipe['arch']} network with plain layers, its recorded training settings"
@@ -381,14 +418,14 @@ def evaluate(
         models["deterministic"] = {**_baseline(nets[:1], b, x, y, shifts, refer), "network": network}
         models["ensemble"] = {**_baseline(nets, b, x, y, shifts, refer), "network": network}
     if u is not None:
-        for name, row in _unseen_rows(models, label=unseen_label, n_unseen=len(u), n_seen=len(x),
+        for name, row in _unseen_rows(models, label=unseen_label or "unseen", n_unseen=len(u), n_seen=len(x),
                                       rows=UNSEEN_ROWS, score=rule_from(m).score).items():
             models[name]["holdout"] = row
     if holdout is not None:
         for name, row in _holdout(b, holdout[0], holdout[1], seed, baseline).items():
             models[name]["holdout"] = row
     figures = {"title": title or f"{m.model_name} v{m.model_version}", "model": m.model_name,
-               "checksum": b.checksum, "models": models}
+               "checksum": b.checksum, "models": models, "notes": notes}
     if out is not None:
         write_evaluation(out, figures)
     return figures
@@ -401,25 +438,37 @@ def register(subparsers: argparse._SubParsersAction) -> None:
         "evaluate", help="measure whether the abstention flag is worth having, on labelled held-out data",
         description="Referral, shift and held-out-class tables for a bundle (JSON, PNG plots, index.html).")
     p.add_argument("bundle", metavar="BUNDLE")
-    p.add_argument("--data", required=True, help="'digits' or a CSV file; its test split is evaluated")
-    p.add_argument("--target", metavar="COLUMN", help="label column of a CSV")
+    p.add_argument("--data", required=True,
+                   help="a labelled CSV (every row is evaluated; columns by name) or 'digits' (its test split)")
+    p.add_argument("--target", metavar="COLUMN", help="label column of a CSV (default: the one training used)")
+    p.add_argument("--ignore", action="append", metavar="COLUMN",
+                   help="a column of --data or --unseen to skip, e.g. an id (repeatable)")
     p.add_argument("--seed", type=int, help="split seed (default: the one training used)")
     p.add_argument("--out", required=True, type=Path, help="folder for evaluation.json, plots, index.html")
     p.add_argument("--baseline", action="store_true",
                    help=f"also train a deterministic network and a {ENSEMBLE_MEMBERS}-member ensemble")
+    p.add_argument("--train", metavar="FILE", type=Path,
+                   help="with a CSV --data and --baseline: the labelled training rows the baselines learn from")
     p.add_argument("--holdout-class", metavar="LABEL",
                    help="retrain the bundle's network without this class (a bundle from `demur train`) and measure "
                         "how every row of it is flagged")
     p.add_argument("--unseen", metavar="FILE", type=Path,
-                   help="CSV of rows of a class your model was trained without (columns by name; a target column "
-                        "is ignored): how they are flagged, for any model")
+                   help="CSV of rows of a class your model was trained without (columns by name; the --target "
+                        "column and --ignore columns are skipped): how they are flagged, for any model")
+    p.add_argument("--unseen-label", metavar="NAME", help="what to call that class on the page (default: the file's name)")
     p.set_defaults(func=_main)
 
 
 def _main(args: argparse.Namespace) -> int:
     b = load_bundle(args.bundle)
     m = b.manifest
+    if args.holdout_class is not None:
+        _retrainable(b, args.holdout_class)
+    if args.out.exists() and not args.out.is_dir():
+        raise ConfigError(f"--out {str(args.out)!r} exists and is not a folder; choose another", field="out")
     trained = (m.raw.get("extensions", {}).get("training", {}) or {}).get("data", {}) or {}
+    target = args.target or trained.get("target")
+    ignore = list(args.ignore or [])
     if str(args.data) in BUILTIN:
         same = str(trained.get("source", args.data)) == str(args.data)
         seed = int(args.seed if args.seed is not None else (trained.get("seed", 0) if same else 0))
@@ -430,28 +479,30 @@ def _main(args: argparse.Namespace) -> int:
                                f"{list(m.labels)}", field="data")
         x, y, x_train, y_train = ds.x_test, ds.y_test, ds.x_train, ds.y_train
     else:  # the user's own held-out file: every row is evaluated, as calibrate uses every row
-        target = args.target or trained.get("target")
         if target is None:
             raise ConfigError("a CSV needs --target COLUMN (the label column); the bundle records none",
                               field="target")
-        if args.baseline or args.holdout_class is not None:
-            raise ConfigError("--baseline and --holdout-class retrain on a training split, which a held-out CSV "
-                              "does not give; use --data digits, or from Python evaluate(bundle, x, y, "
-                              "x_train=..., y_train=..., baseline=True); for a class your model never saw, "
-                              "--unseen FILE",
-                              field="baseline" if args.baseline else "holdout_class")
-        x, y = labelled_file(b, args.data, target)
-        x_train = y_train = ds = None
+        if args.holdout_class is not None:
+            raise ConfigError("--holdout-class retrains on the bundled set's training split, which a held-out CSV "
+                              "does not give; use --data digits, or for a class your model never saw --unseen FILE",
+                              field="holdout_class")
+        if args.baseline and args.train is None:
+            raise ConfigError("--baseline trains plain networks, so with a CSV it needs your training rows: "
+                              "--train FILE (labelled, columns by name)", field="baseline")
+        x, y = labelled_file(b, args.data, target, ignore)
+        x_train, y_train = labelled_file(b, str(args.train), target, ignore) if args.baseline else (None, None)
+        ds = None
         seed = int(args.seed or 0)
     unseen = None
     if args.unseen is not None:
         if not args.unseen.is_file():
             raise DatasetError(f"--unseen must be an existing CSV file; got {str(args.unseen)!r}", field="unseen")
-        target = args.target or trained.get("target")
-        unseen = read_features(args.unseen, list(m.inputs.names), ignore=[target] if target else [])
+        unseen = read_features(args.unseen, list(m.inputs.names), ignore=[*([target] if target else []), *ignore])
     figures = evaluate(b, x, y, x_train=x_train, y_train=y_train, baseline=args.baseline, out=args.out, seed=seed,
                        holdout=(args.holdout_class, ds) if args.holdout_class is not None else None,
-                       unseen=unseen, unseen_label=args.unseen.name if args.unseen is not None else "unseen")
+                       unseen=unseen, unseen_label=args.unseen_label or (args.unseen.name if args.unseen else ""))
+    for note in figures["notes"]:
+        print(note)
     for name, body in figures["models"].items():
         ref = body["referral"]
         acc10 = ref["rankings"].get("mutual_information", ref["rankings"]["one_minus_max_prob"])

@@ -358,7 +358,8 @@ def column_order(header: Sequence[str], names: Sequence[str], *, target: str | N
         raise DatasetError(
             f"the header of {where} does not match the bundle's {len(names)} feature names: {'; '.join(parts)}. "
             "Columns are matched by name, in any order; rename them to the bundle's names "
-            "(GET /v1/model lists them), or name unrelated columns to skip (--ignore COLUMN on the command line)",
+            "(GET /v1/model, or inputs.names in the bundle's manifest.json, lists them), or name unrelated columns "
+            "to skip (--ignore COLUMN on the command line)",
             field=first,
         )
     return [header.index(n) for n in names]

@@ -5,7 +5,9 @@ matched to the bundle's feature names in any order) is a calibration case. The
 independent check is ``--test FILE2``, or ``--holdout F`` (a seeded share of the
 file set aside and said so). The bundled scikit-learn sets (``digits``,
 ``diabetes``) keep their documented split (export/datasets.py): calibration on
-the cal split, the check on the test split. From Python::
+the cal split, the check on the test split.
+
+From Python::
 
     from demur.export import calibrate
     record = calibrate("build/model", x_holdout, y_holdout, target_accuracy=0.98,
@@ -70,8 +72,8 @@ from demur.serve.offline.report import ClassificationPlots, RegressionPlots, dec
 from demur.export.datasets import BUILTIN, column_order, load_dataset, read_labelled
 from demur.export.errors import DatasetError
 
-__all__ = ["BATCH_ROWS", "CalibrationOutcome", "FLOOR_QUANTILE", "calibrate", "calibrate_file", "labelled_file",
-           "register"]
+__all__ = ["BATCH_ROWS", "CalibrationOutcome", "FLOOR_QUANTILE", "calibrate", "calibrate_file", "case_array",
+           "labelled_arrays", "labelled_file", "register"]
 
 BATCH_ROWS = 256
 """Rows per graph run, bounding memory to about S * 256 * K floats."""
@@ -117,6 +119,7 @@ class _Cases:
     rows: int = 0
     dropped: int = 0
     notes: list[str] = field(default_factory=list)
+    columns: str = "matched by name"
 
 
 # -- the Python API -----------------------------------------------------------------
@@ -213,6 +216,12 @@ def _labels_to_index(bundle: Bundle, y: Any, source: str, lines: np.ndarray | No
         return out
     labels = [str(v) for v in m.labels]
     if lines is None and (arr.dtype.kind in "iu" or (arr.dtype.kind == "f" and np.all(arr == np.round(arr)))):
+        if _numbers_not_indices(labels):
+            shown = next(f"label {lab!r} is index {i}" for i, lab in enumerate(labels) if lab != str(i))
+            raise DatasetError(f"{what} holds numbers, and the bundle's labels are numbers that are not their own "
+                               f"indices ({shown}), so a number could be read as the wrong class; pass the labels "
+                               f"as text (e.g. y.astype(str)), which are matched to the names {labels[:20]}",
+                               field=what)
         idx = arr.astype(np.int64).ravel()
         bad = np.flatnonzero((idx < 0) | (idx >= len(labels)))
         if len(bad):
@@ -231,6 +240,16 @@ def _labels_to_index(bundle: Bundle, y: Any, source: str, lines: np.ndarray | No
     return out
 
 
+def _numbers_not_indices(labels: Sequence[str]) -> bool:
+    """Labels that read as numbers but are not 0..K-1 in order (a model trained without digit 7:
+    labels '0'..'6', '8', '9'): an integer y is then ambiguous, index or name."""
+    try:
+        values = [float(lab) for lab in labels]
+    except ValueError:
+        return False
+    return values != [float(i) for i in range(len(labels))]
+
+
 def _label_key(cell: str, index: dict[str, int]) -> str | None:
     if cell in index:
         return cell
@@ -242,21 +261,33 @@ def _label_key(cell: str, index: dict[str, int]) -> str | None:
     return text if text in index else None
 
 
-def _from_arrays(bundle: Bundle, X: Any, y: Any, source: str, what: str) -> _Cases:
+def case_array(bundle: Bundle, X: Any, what: str) -> np.ndarray:
+    """Raw cases for ``bundle`` as float64[N, F] in its feature order, from an array (float[N, F]
+    or [N, *shape], by position) or a table with ``.columns`` (matched by name); at least one
+    row, every cell finite, else ``DatasetError`` naming ``what`` (and the row and feature)."""
     names = list(bundle.manifest.inputs.names)
     if hasattr(X, "columns"):  # a table: match by name, as for a file
         cols = column_order([str(c) for c in X.columns], names, where=f"{what} (columns)")
         X = np.asarray(X.to_numpy() if hasattr(X, "to_numpy") else X, dtype=np.float64)[:, cols]
-    x = np.asarray(X, dtype=np.float64)
+    try:
+        x = np.asarray(X, dtype=np.float64)
+    except (TypeError, ValueError):
+        raise DatasetError(f"{what} must be a numeric array of cases; got {type(X).__name__}", field=what) from None
     size = bundle.manifest.inputs.size
-    if x.ndim < 2 or int(np.prod(x.shape[1:])) != size:
-        raise DatasetError(f"{what} must be float[N, {size}] (or [N, *{list(bundle.manifest.inputs.shape)}]); "
-                           f"got shape {list(x.shape)}", field=what)
+    if x.ndim < 2 or int(np.prod(x.shape[1:])) != size or not len(x):
+        raise DatasetError(f"{what} must be float[N, {size}] (or [N, *{list(bundle.manifest.inputs.shape)}]) with "
+                           f"N >= 1; got shape {list(x.shape)}", field=what)
     x = x.reshape(len(x), size)
     if not np.all(np.isfinite(x)):
-        r = int(np.flatnonzero(~np.all(np.isfinite(x), axis=1))[0])
-        raise DatasetError(f"{what} must hold finite numbers; row {r} does not", field=what)
-    field_y = "y" if what == "X" else f"{what} labels"
+        r, c = (int(v) for v in np.argwhere(~np.isfinite(x))[0])
+        raise DatasetError(f"{what} must hold finite numbers; row {r}, feature {names[c]!r} is {x[r, c]}",
+                           field=what)
+    return x
+
+
+def _from_arrays(bundle: Bundle, X: Any, y: Any, source: str, what: str, field_y: str | None = None) -> _Cases:
+    x = case_array(bundle, X, what)
+    field_y = field_y or ("y" if what == "X" else f"{what} labels")
     shape = list(np.shape(y))
     if len(shape) > 2 or (len(shape) == 2 and shape[1] != 1):
         raise DatasetError(f"{field_y} must hold one label per row (class names, or class indices 0..K-1; a "
@@ -264,8 +295,15 @@ def _from_arrays(bundle: Bundle, X: Any, y: Any, source: str, what: str) -> _Cas
                            "pass y.argmax(axis=1))", field=field_y)
     yy = _labels_to_index(bundle, y, source, None, field_y)
     if len(yy) != len(x):
-        raise DatasetError(f"{what} has {len(x)} rows but its labels have {len(yy)}", field="y")
-    return _Cases(x, yy, source, rows=len(x))
+        raise DatasetError(f"{what} has {len(x)} rows but {field_y} has {len(yy)} labels", field=field_y)
+    return _Cases(x, yy, source, rows=len(x), columns="matched by name" if hasattr(X, "columns") else "by position")
+
+
+def labelled_arrays(bundle: Bundle, X: Any, y: Any, what: str, field_y: str) -> tuple[np.ndarray, np.ndarray]:
+    """(x float64[N, F], y class indices or values) from a user's arrays, checked exactly as
+    ``calibrate`` checks its X and y; errors name ``what`` / ``field_y``. ``demur evaluate`` uses it."""
+    cases = _from_arrays(bundle, X, y, what, what, field_y=field_y)
+    return cases.x, cases.y
 
 
 def _from_file(bundle: Bundle, path: str, target: str, ignore: Sequence[str]) -> _Cases:
@@ -387,7 +425,7 @@ def _calibrate(b: Bundle, cal: _Cases, check: _Cases | None, floor_x: np.ndarray
     d_test = _run(engine, check.x) if check is not None else None
     data_info: dict[str, Any] = {
         "source": cal.source, "rows": cal.rows, "n": int(len(cal.y)), "training_rows_dropped": cal.dropped,
-        "columns": "matched by name", "sha256": fingerprint(cal.x, cal.y), "split": split,
+        "columns": cal.columns, "sha256": fingerprint(cal.x, cal.y), "split": split,
         "test": None if check is None else {"source": check.source, "n": int(len(check.y)),
                                             "training_rows_dropped": check.dropped},
     }

@@ -162,6 +162,11 @@ class Bundle:
     manifest: Manifest
     checksum: str
 
+    def __repr__(self) -> str:  # the manifest holds the drift reference: kilobytes for one print
+        m = self.manifest
+        return (f"Bundle({str(self.path)!r}, model={m.model_name!r} v{m.model_version}, task={m.task}, "
+                f"graphs={sorted(m.graphs)}, checksum={self.checksum[:12]})")
+
     def graph_path(self, kind: str) -> Path:
         if kind not in self.manifest.graphs:
             have = ", ".join(sorted(self.manifest.graphs)) or "none"

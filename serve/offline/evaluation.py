@@ -249,7 +249,9 @@ def _html(figures: Mapping[str, Any], images: list[str]) -> str:
     rates = [f"{r:.2f}" for r in REFERRAL_RATES]
     for model, body in figures["models"].items():
         ref = body["referral"]
-        parts.append(f"<h2>{html.escape(model)}</h2><p>{ref['n']} held-out cases: accuracy {ref['accuracy']:.4f}, "
+        parts.append(f"<h2>{html.escape(model)}</h2>"
+                     + (f"<p>Network: {html.escape(str(body['network']))}.</p>" if body.get("network") else "")
+                     + f"<p>{ref['n']} held-out cases: accuracy {ref['accuracy']:.4f}, "
                      f"ECE {ref['ece']:.4f} (15 bins), NLL {ref['nll']:.4f} nats, Brier {ref['brier']:.4f}</p>")
         rows = [[name, *[row["accuracy_at_referral"][r] for r in rates], row["aurc"]]
                 for name, row in ref["rankings"].items()]
@@ -264,8 +266,10 @@ def _html(figures: Mapping[str, Any], images: list[str]) -> str:
                          f"<p>{html.escape(str(h.get('rows', '')))}</p>" + _table(
                 ["score", f"AUROC unseen ({h['n']}) vs seen ({h.get('n_seen', '?')})", "standard error"],
                 [[n, v, se.get(n)] for n, v in h["auroc"].items()]
-            ) + f"<p>accepted: {h['accepted']:.4f} of {h['n']} unseen cases"
-                + (f" by the rule {html.escape(str(h['rule']))}" if h.get("rule") else "") + "</p>")
+            ) + f"<p>accepted: {round(h['accepted'] * h['n'])} of {h['n']} unseen cases ({h['accepted']:.1%})"
+                + (f" by the rule {html.escape(str(h['rule']))}" if h.get("rule") else "") + "</p>"
+                + "<p class='caution'>One class, measured on these cases: another class the model never saw may be "
+                  "flagged more or less often. An accepted unseen case gets a wrong label with no flag.</p>")
             if h.get("against_deterministic"):
                 c = h["against_deterministic"]
                 parts.append(f"<p>AUROC of {html.escape(c['score'])} minus the deterministic network's "

@@ -361,3 +361,28 @@ def test_demo_file_path_at_the_demo_target(demo_bundle, demo_dataset, copy_bundl
                                ds.feature_names, "digit")
     assert main(["calibrate", str(path), "--data", str(train_csv), "--target-abstain", "0.1"]) != 0
     assert "50 of the 50 rows" in capsys.readouterr().err
+
+
+def test_integer_labels_are_refused_when_the_labels_are_numbers_that_are_not_indices(tmp_path):
+    """A model trained without digit 7 has labels '0'..'6', '8', '9' (scikit-learn's load_digits):
+    an integer y is ambiguous there (8 the digit, or index 8 = label '9'), so it is refused
+    naming y and the fix; the same labels as text calibrate."""
+    import torch
+
+    from demur.export import calibrate, export_model, input_spec
+    from demur.export.datasets import load_dataset
+    from demur.export.errors import DatasetError
+    from demur.export.layers import build_model
+
+    ds = load_dataset("digits")
+    keep = ds.y_train != 7
+    torch.manual_seed(0)
+    labels = [str(d) for d in range(10) if d != 7]
+    bundle = export_model(build_model("mlp", [64], 9, "radial", hidden=(8,)), tmp_path / "b", labels=labels,
+                          inputs=input_spec(ds.x_train[keep]), reference=ds.x_val, seed=0)
+    cal = ds.y_cal != 7
+    with pytest.raises(DatasetError, match="as text") as info:
+        calibrate(bundle, ds.x_cal[cal], ds.y_cal[cal], target_abstain=0.2)
+    assert info.value.field == "y"
+    record = calibrate(bundle, ds.x_cal[cal], ds.y_cal[cal].astype(str), target_abstain=0.2)
+    assert record["data"]["columns"] == "by position"
