@@ -40,7 +40,6 @@ import numpy as np
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.bundle import Bundle, load_bundle
 from demur.serve.core.decision import decide, rule_from
-from demur.serve.core.fingerprint import training_overlap
 from demur.serve.core.summary import summarise
 from demur.serve.core.support import support_from_manifest
 from demur.serve.errors import ConfigError
@@ -56,7 +55,7 @@ from demur.serve.offline.evaluation import (
 
 from demur.export.datasets import BUILTIN, column_order, load_dataset, read_features
 from demur.export.errors import DatasetError
-from demur.export.holdout import case_array, labelled_arrays, labelled_file
+from demur.export.holdout import case_array, fitted_rows, labelled_arrays, labelled_file
 
 __all__ = ["ENSEMBLE_MEMBERS", "HOLDOUT_ROWS", "UNSEEN_ROWS", "evaluate", "register"]
 
@@ -262,7 +261,7 @@ def _holdout(bundle: Bundle, label: str, data: Any, seed: int, baseline: bool) -
     if not len(unseen_x) or not len(seen_x):
         raise ConfigError(f"--holdout-class {label!r}: the data has {len(unseen_x)} rows of it and {len(seen_x)} "
                           "test rows of other classes; both are needed", field="holdout_class")
-    options = dict(recipe["settings"], epochs=int(recipe["settings"]["epochs"]))
+    options = recipe["settings"]  # epochs included: train's own keyword
     train_seed = seed if recipe["seed"] is None else recipe["seed"]
     if family == "ensemble":
         results = train_ensemble(seen, int(m.posterior["members"]), posterior=m.posterior["member_family"],
@@ -323,14 +322,10 @@ def _recalibrated_like(original: Bundle, held: Bundle, x_cal: np.ndarray, y_cal:
 def _not_fitted(bundle: Bundle, rows: np.ndarray, what: str) -> list[str]:
     """Refuse rows the bundle's training-row fingerprint recognises (a model is right more often on
     rows it fitted, so the tables would flatter it); a note when the bundle keeps no fingerprint."""
-    record = bundle.manifest.raw.get("extensions", {}).get("training_rows")
-    if record is None:
+    overlap = fitted_rows(bundle, rows, what, field=what)
+    if overlap is None:
         return [f"warning: the bundle records no training-row fingerprint, so {what} could not be checked for "
                 "rows the model was trained on"]
-    try:
-        overlap = training_overlap(record, rows)
-    except ValueError as exc:
-        raise DatasetError(f"cannot check {what} against the training rows: {exc}", field=what) from None
     if overlap.count:
         first = ", ".join(str(v) for v in np.flatnonzero(overlap.seen)[:8])
         raise DatasetError(f"{overlap.count} of the {len(rows)} rows of {what} were used to train this model (rows "

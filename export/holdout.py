@@ -73,7 +73,7 @@ from demur.export.datasets import BUILTIN, column_order, load_dataset, read_labe
 from demur.export.errors import DatasetError
 
 __all__ = ["BATCH_ROWS", "CalibrationOutcome", "FLOOR_QUANTILE", "calibrate", "calibrate_file", "case_array",
-           "labelled_arrays", "labelled_file", "register"]
+           "fitted_rows", "labelled_arrays", "labelled_file", "register"]
 
 BATCH_ROWS = 256
 """Rows per graph run, bounding memory to about S * 256 * K floats."""
@@ -343,17 +343,26 @@ def _hold_out(cal: _Cases, share: float, seed: int) -> tuple[_Cases, _Cases, dic
     return part(c, "calibration part"), part(t, f"holdout {share:g}, seed {seed}"), split
 
 
-def _screen_training_rows(bundle: Bundle, cases: _Cases, drop: bool, what: str) -> None:
-    """Refuse (or drop, with a note) rows the bundle's training-row fingerprint recognises."""
+def fitted_rows(bundle: Bundle, x: np.ndarray, what: str, *, field: str) -> Any:
+    """Which rows of ``x`` the bundle's training-row fingerprint recognises
+    (``demur.serve.core.fingerprint.training_overlap``), or None when the bundle keeps no
+    fingerprint; a damaged one is a ``DatasetError`` naming ``field``."""
     record = bundle.manifest.raw.get("extensions", {}).get("training_rows")
     if record is None:
+        return None
+    try:
+        return training_overlap(record, x)
+    except ValueError as exc:
+        raise DatasetError(f"cannot check {what} against the training rows: {exc}", field=field) from None
+
+
+def _screen_training_rows(bundle: Bundle, cases: _Cases, drop: bool, what: str) -> None:
+    """Refuse (or drop, with a note) rows the bundle's training-row fingerprint recognises."""
+    overlap = fitted_rows(bundle, cases.x, what, field="data")
+    if overlap is None:
         cases.notes.append(f"warning: bundle {bundle.path} records no training-row fingerprint, so {what} could "
                            "not be checked for rows the model was trained on")
         return
-    try:
-        overlap = training_overlap(record, cases.x)
-    except ValueError as exc:
-        raise DatasetError(f"cannot check {what} against the training rows: {exc}", field="data") from None
     if not overlap.count:
         return
     where = (f"lines {', '.join(str(v) for v in cases.lines[overlap.seen][:8])}" if cases.lines is not None
