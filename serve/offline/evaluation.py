@@ -1,6 +1,6 @@
 """``demur evaluate``'s numerics and page: is the abstention flag worth having, on the user's data?
 
-Pure numpy + scipy for the tables (the caller, ``demur.export.evaluate`` in export/appraisal.py, runs the models);
+Pure numpy + scipy for the tables (the caller, ``demur.export.evaluate`` in export/evaluation.py, runs the models);
 matplotlib only inside ``write_evaluation`` for the plots.
 
 Tables

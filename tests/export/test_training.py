@@ -248,7 +248,7 @@ def test_ensemble_checkpoint_round_trips_and_exports_the_mixture(tmp_path, capsy
     m = b.manifest
     got = summarise(m.task, Engine(b).load().run(x), m.interval_level, m.target).mean_probs
     assert np.abs(got - want).max() <= 1e-5
-    from demur.export.bench import _load_model
+    from demur.export.bench.engine import _load_model
     from demur.export.errors import ExportError
 
     with pytest.raises(ExportError, match="holds an ensemble of 3"):  # demur bench measures one network

@@ -424,7 +424,7 @@ def test_conformal_coverage_and_out_of_range_width_on_diabetes_bundle(diabetes_b
     scores, not the width: the model's log-variance head extrapolates downwards out of range (its
     aleatoric sd falls), so the unfloored interval can shrink on milder shifts. The served width
     out of range, with the aleatoric floor that calibration records, is checked in
-    tests/export/test_holdout.py; the width claim at numerics level with sklearn's BayesianRidge
+    tests/export/test_calibration.py; the width claim at numerics level with sklearn's BayesianRidge
     in test_conformal_coverage_on_diabetes_numerics_level."""
     from demur.serve.adapters.engine import Engine
     from demur.serve.core.summary import summarise

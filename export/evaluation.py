@@ -55,7 +55,7 @@ from demur.serve.offline.evaluation import (
 
 from demur.export.datasets import BUILTIN, column_order, load_dataset, read_features
 from demur.export.errors import DatasetError
-from demur.export.holdout import case_array, fitted_rows, labelled_arrays, labelled_file
+from demur.export.calibration import case_array, fitted_rows, labelled_arrays, labelled_file
 
 __all__ = ["ENSEMBLE_MEMBERS", "HOLDOUT_ROWS", "UNSEEN_ROWS", "evaluate", "register"]
 
@@ -296,7 +296,7 @@ def _recalibrated_like(original: Bundle, held: Bundle, x_cal: np.ndarray, y_cal:
     (accuracy, confidence, max abstain; or abstain rate), calibrated on the seen classes' cal
     split, so the unseen class's "accepted" share is the served rule's. An uncalibrated original,
     or a goal the retrained network cannot meet, leaves the exporter's default, and says so."""
-    from demur.export.holdout import calibrate
+    from demur.export.calibration import calibrate
     from demur.serve.errors import CalibrationInfeasible
 
     record = original.manifest.raw.get("decision", {}).get("calibration") or {}
