@@ -41,30 +41,12 @@ from typing import Any
 
 import numpy as np
 
-from demur.serve.core.bundle import SCORES
+from demur.serve.core.bundle import SCORE_TASKS, SCORE_UNITS, SCORES
 from demur.serve.errors import ConfigError
 from demur.serve.core.summary import Summary
 from demur.serve.core.support import SupportCheck
 
-__all__ = ["SCORE_TASKS", "SCORE_UNITS", "DecisionRule", "Verdicts", "decide", "rule_from", "score_values"]
-
-SCORE_TASKS: dict[str, tuple[str, ...]] = {
-    "mutual_information": ("classification", "regression"),
-    "predictive_entropy": ("classification", "regression"),
-    "one_minus_max_prob": ("classification",),
-    "interval_width": ("regression",),
-    "epistemic_std": ("regression",),
-}
-"""Which tasks each score is defined for."""
-
-SCORE_UNITS: dict[str, str] = {
-    "mutual_information": "nats",
-    "predictive_entropy": "nats",
-    "one_minus_max_prob": "",
-    "interval_width": "target units",
-    "epistemic_std": "target units",
-}
-
+__all__ = ["DecisionRule", "Verdicts", "decide", "rule_from", "score_values"]
 
 @dataclass(frozen=True)
 class DecisionRule:
