@@ -20,18 +20,18 @@ import psycopg
 import psycopg_pool
 import pytest
 
-from demur.serve.review import store as review_store
+from demur.serve.review.store import sql as store_sql
 from demur.serve.errors import ConfigError, Conflict, NotFound, ReviewItemRejected, ReviewStoreUnavailable
 from demur.serve.review.store import (
     SCHEMA_VERSION,
     PostgresStore,
     ReviewStore,
     SqliteStore,
-    _postgres_errors,
-    _sqlite_errors,
     new_id,
     open_store,
 )
+from demur.serve.review.store.postgres import postgres_errors as _postgres_errors
+from demur.serve.review.store.sqlite import sqlite_errors as _sqlite_errors
 from tests.serve._review_helpers import PG_URL, Clock, free_port, item, pg_schema, require_postgres, with_schema
 
 LEASE_S = 60.0
@@ -402,7 +402,7 @@ def test_unstorable_items_are_set_aside_and_the_rest_stored(store: ReviewStore) 
 def test_driver_data_errors_are_rejections_not_outages(store: ReviewStore, monkeypatch: pytest.MonkeyPatch) -> None:
     """Past the pre-check, the driver's own refusal (psycopg: DataError for a NUL and
     UnicodeEncodeError for a surrogate; sqlite3: UnicodeEncodeError) sets the item aside too."""
-    monkeypatch.setattr(review_store, "unstorable", lambda it: None)
+    monkeypatch.setattr(store_sql, "unstorable", lambda it: None)
     batch = [item(client_case_id="ok-a"), item(client_case_id="\ud800y"), item(client_case_id="ok-b")]
     ids = store.enqueue(batch)
     assert ids[1] is None and ids[0] == batch[0].id and ids[2] == batch[2].id
@@ -420,17 +420,17 @@ def test_a_version_1_store_is_migrated(backend: tuple[str, str], clock: Clock) -
     kind, url = backend
     old = open_store(url, lease_s=LEASE_S, clock=clock)
     [rid] = old.enqueue([item(client_case_id="from-v1")])
-    with old._op(write=True) as cur:  # put it back to version 1
-        cur.execute(old._q("DROP TABLE {rejected}"))
-        cur.execute(old._q("DELETE FROM {version}"))
-        cur.execute(old._q("INSERT INTO {version} (version) VALUES (1)"))
+    with old._tx(write=True) as cur:  # put it back to version 1
+        cur.execute(old.sql("DROP TABLE {rejected}"))
+        cur.execute(old.sql("DELETE FROM {version}"))
+        cur.execute(old.sql("INSERT INTO {version} (version) VALUES (1)"))
     old.close()
     new = open_store(url, lease_s=LEASE_S, clock=clock)
     try:
         assert new.get(rid).client_case_id == "from-v1"
         assert new.enqueue([item(client_case_id="\ud800")]) == [None] and new.rejected_count() == 1
-        with new._op(write=False) as cur:
-            cur.execute(new._q("SELECT version FROM {version}"))
+        with new._tx(write=False) as cur:
+            cur.execute(new.sql("SELECT version FROM {version}"))
             assert cur.fetchall() == [(SCHEMA_VERSION,)]
     finally:
         new.close()
