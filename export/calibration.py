@@ -60,13 +60,12 @@ from demur.serve.offline.calibration import (
     batch_spread,
     calibration_record,
     check_feasible,
-    classification_metrics,
     conformal_scale,
     fingerprint,
-    regression_metrics,
     select_for_abstain,
     select_for_accuracy,
 )
+from demur.serve.offline.metrics import classification_metrics, regression_metrics
 from demur.serve.offline.report import ClassificationPlots, RegressionPlots, decision_lines, write_report
 
 from demur.export.datasets import BUILTIN, column_order, load_dataset, read_labelled

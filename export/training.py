@@ -99,7 +99,7 @@ import torch.nn.functional as F
 from torch import nn
 
 from demur.serve.core.drift import feature_reference
-from demur.serve.offline.calibration import expected_calibration_error
+from demur.serve.offline.metrics import expected_calibration_error
 
 from demur.export.datasets import Dataset, load_dataset
 from demur.export.errors import CheckpointError, LayerConfigError, TrainingError

@@ -22,7 +22,7 @@ import demur.export.training as training
 from demur.export.datasets import load_dataset
 from demur.export.errors import CheckpointError, LayerConfigError
 from demur.export.layers import VariationalLinear, variational_layers
-from demur.serve.offline.calibration import expected_calibration_error
+from demur.serve.offline.metrics import expected_calibration_error
 from demur.export.training import (
     CHECKPOINT_FORMAT,
     evaluate,

@@ -22,21 +22,23 @@ from sklearn.linear_model import BayesianRidge
 from sklearn.metrics import brier_score_loss, log_loss
 
 from demur.serve.offline.calibration import (
-    accuracy_at_referral,
-    aurc,
-    brier_score,
     batch_spread,
     calibration_record,
     candidate_ranks,
     conformal_scale,
     error_upper_bound,
-    expected_calibration_error,
     fingerprint,
     minimum_rows,
-    negative_log_likelihood,
-    risk_coverage,
     select_for_abstain,
     select_for_accuracy,
+)
+from demur.serve.offline.metrics import (
+    accuracy_at_referral,
+    aurc,
+    brier_score,
+    expected_calibration_error,
+    negative_log_likelihood,
+    risk_coverage,
 )
 from demur.serve.errors import CalibrationInfeasible, ConfigError
 from demur.serve.core.summary import regression_summary
