@@ -55,7 +55,7 @@ from demur.serve.offline.evaluation import (
 
 from demur.export.datasets import BUILTIN, column_order, load_dataset, read_features
 from demur.export.errors import DatasetError
-from demur.export.calibration import case_array, fitted_rows, labelled_arrays, labelled_file
+from demur.export.cases import case_array, fitted_rows, labelled_arrays, labelled_file
 
 __all__ = ["ENSEMBLE_MEMBERS", "HOLDOUT_ROWS", "UNSEEN_ROWS", "evaluate", "register"]
 

@@ -20,8 +20,18 @@ Threshold choice -- three ways
    accepts ceil((1 - max_abstain) n) cases (the most conservative threshold the
    budget allows) to n. Candidate k is the calibration scores' order statistic
    s_(k) and accepts the cases scored below it; the threshold written to the
-   bundle is the float just below s_(k), so the served rule "abstain iff score >
-   threshold" accepts exactly those cases. Each candidate's accepted-case error
+   bundle sits midway between s_(k) and the largest calibration score below it
+   (``threshold_between``), so the served rule "abstain iff score > threshold"
+   accepts exactly those cases, and a score recomputed in another batch (float32
+   sums change in their last bits with batch composition) does not change sides.
+   The bound below is for "accept scores below s_(k)"; the served rule differs
+   from it only on scores inside that gap, where no calibration case lies (its
+   expected population mass is one order-statistic spacing, 1/(n + 1)).
+
+   The scores are the SERVED rule's (``demur.serve.core.decision.ServedRule``):
+   a case the support check puts outside the training data scores +inf, so it
+   abstains at every candidate, and every figure (abstain rate, accepted
+   accuracy, the bound) is the served rule's. Each candidate's accepted-case error
    rate gets the one-sided Clopper-Pearson upper bound (Clopper & Pearson 1934),
    ``scipy.stats.beta.ppf(1 - level, e + 1, a - e)`` for e errors among a
    accepted. Why a bound at a data-chosen threshold is exact: given s_(k), the
@@ -54,7 +64,9 @@ Threshold choice -- three ways
    ``CalibrationInfeasible`` gives the best figures achievable.
 
 2. Target abstention rate r (``select_for_abstain``): the threshold is the
-   ceil((n + 1)(1 - r))-th smallest calibration score. By exchangeability a new
+   ceil((n + 1)(1 - r))-th smallest calibration score s_(k) (written midway to the
+   next larger one, ``threshold_between``; the support check's +inf scores count
+   as abstentions, so r bounds the served rule's rate). By exchangeability a new
    case's score is <= it with probability >= ceil((n+1)(1-r))/(n+1) >= 1 - r,
    so the expected abstention rate is at most r (and at least r - 1/(n+1)
    for continuous scores): the finite-sample-corrected empirical quantile
@@ -104,6 +116,7 @@ __all__ = [
     "minimum_rows",
     "select_for_abstain",
     "select_for_accuracy",
+    "threshold_between",
 ]
 
 MAX_CANDIDATES = 50
@@ -240,6 +253,32 @@ def _check_method(method: str) -> None:
         raise ConfigError(f"method must be one of {', '.join(METHODS)}; got '{method}'", field="method")
 
 
+def threshold_between(below: float, above: float) -> float:
+    """A threshold strictly between two calibration scores ``below`` < ``above``: midway
+    between them, so neither side is within float32 round-off of it. ``above`` may be +inf
+    (every finite score accepted: the threshold sits 1e-3 of max(|below|, 1) above ``below``,
+    scores are differences of float32 entropies, reproducible to about 1e-6) and ``below``
+    -inf (nothing accepted: as far below ``above``)."""
+    lo, hi = float(below), float(above)
+    if not lo < hi:
+        raise ValueError(f"threshold_between needs below < above; got {lo} and {hi}")
+    if math.isinf(hi) and math.isinf(lo):
+        return 0.0
+    if math.isinf(hi):
+        return lo + 1e-3 * max(abs(lo), 1.0)
+    if math.isinf(lo):
+        return hi - 1e-3 * max(abs(hi), 1.0)
+    return lo + 0.5 * (hi - lo)
+
+
+def _gaps(srt: np.ndarray, accepted: np.ndarray) -> np.ndarray:
+    """For sorted scores ``srt`` and accepted counts a (the a smallest accepted), the
+    threshold midway between srt[a - 1] and srt[a], per count."""
+    lo = np.where(accepted > 0, srt[np.maximum(accepted - 1, 0)], -np.inf)
+    hi = np.where(accepted < len(srt), srt[np.minimum(accepted, len(srt) - 1)], np.inf)
+    return np.array([threshold_between(a, b) for a, b in zip(lo.tolist(), hi.tolist())])
+
+
 def select_for_accuracy(
     scores: np.ndarray,
     correct: np.ndarray,
@@ -258,9 +297,9 @@ def select_for_accuracy(
     s = np.asarray(scores, dtype=np.float64).ravel()
     c = np.asarray(correct, dtype=bool).ravel()
     n = len(s)
-    if n < 2 or len(c) != n or not np.all(np.isfinite(s)):
-        raise ConfigError(f"need >= 2 finite scores with one correctness flag each; got {n} scores, "
-                          f"{len(c)} flags", field="scores")
+    if n < 2 or len(c) != n or np.isnan(s).any() or (s == -np.inf).any():
+        raise ConfigError(f"need >= 2 scores (finite, or +inf for a case the support check puts outside) with "
+                          f"one correctness flag each; got {n} scores, {len(c)} flags", field="scores")
     check_feasible(n, target_accuracy, delta, max_abstain=max_abstain, method=method)
     srt = np.sort(s)
     ranks = candidate_ranks(n, max_abstain, max_candidates)
@@ -277,7 +316,7 @@ def select_for_accuracy(
         certified = np.arange(m) < (tested - 1 if len(fails) else m)
     else:
         tested, certified = m, ok
-    thresholds = np.nextafter(cand, -np.inf)
+    thresholds = _gaps(srt, accepted)
     curve = [
         {"threshold": float(thresholds[j]), "coverage": float(accepted[j] / n),
          "accuracy": float(1.0 - errors[j] / accepted[j]) if accepted[j] else None,
@@ -361,16 +400,27 @@ def _finite_sample_rank(n: int, level: float, what: str) -> int:
 
 
 def select_for_abstain(scores: np.ndarray, rate: float, correct: np.ndarray | None = None) -> ThresholdChoice:
-    """Threshold = the ceil((n+1)(1-rate))-th smallest score: expected abstention <= rate."""
+    """Accept the ceil((n+1)(1-rate)) smallest scores (ties at the k-th included): expected
+    abstention <= rate. The threshold is midway to the next larger score; +inf scores (the
+    support check's) always abstain, and a rate they alone exceed is ``CalibrationInfeasible``."""
     rate = _check_fraction("target_abstain", rate)
-    s = np.sort(np.asarray(scores, dtype=np.float64).ravel())
+    raw = np.asarray(scores, dtype=np.float64).ravel()
+    if np.isnan(raw).any() or (raw == -np.inf).any():
+        raise ConfigError("scores must be finite, or +inf for a case the support check puts outside",
+                          field="scores")
+    s = np.sort(raw)
     n = len(s)
     k = _finite_sample_rank(n, 1.0 - rate, f"an abstention rate of {rate:.4g}")
-    t = float(s[k - 1])
-    raw = np.asarray(scores, dtype=np.float64).ravel()
+    if math.isinf(s[k - 1]):
+        outside = int(np.sum(np.isinf(s)))
+        raise CalibrationInfeasible(
+            f"the support check alone puts {outside} of the {n} calibration cases outside the training data "
+            f"({outside / n:.1%}), more than the abstention rate {rate:.4g} allows; raise --target-abstain, or "
+            "calibrate on rows like the training data", field="target_abstain")
+    accepted = int(np.searchsorted(s, s[k - 1], side="right"))
+    t = float(_gaps(s, np.array([accepted]))[0])
     acc_mask = raw <= t
     errors = int(np.sum(~np.asarray(correct, dtype=bool)[acc_mask])) if correct is not None else 0
-    accepted = int(acc_mask.sum())
     return ThresholdChoice(
         method="abstain_quantile", threshold=t, n=n, accepted=accepted, errors=errors,
         abstain_rate=float(1.0 - accepted / n),

@@ -116,15 +116,19 @@ def test_risk_coverage_and_aurc_worked_example():
 
 
 def test_abstain_quantile_rank_and_finite_sample_rate():
-    """Rank ceil((n+1)(1-r)) (Lei et al. 2018 / Vovk et al. 2005); for uniform scores the
-    expected abstention 1 - E[U_(k)] = 1 - k/(n+1) (Beta(k, n+1-k) mean), which must be <= r."""
+    """Rank ceil((n+1)(1-r)) (Lei et al. 2018 / Vovk et al. 2005), the threshold written midway
+    to the next score; for uniform scores the expected abstention of the served threshold is
+    1 - E[(U_(k) + U_(k+1)) / 2] = 1 - (k + 1/2)/(n+1) (Beta(k, n+1-k) means), which must be <= r."""
     n, r = 99, 0.05
     k = math.ceil((n + 1) * (1 - r))
     rng = np.random.default_rng(4)
     s = rng.random(n)
-    assert select_for_abstain(s, r).threshold == np.sort(s)[k - 1]
+    srt = np.sort(s)
+    ch = select_for_abstain(s, r)
+    assert ch.threshold == pytest.approx((srt[k - 1] + srt[k]) / 2) and srt[k - 1] < ch.threshold < srt[k]
+    assert ch.accepted == k
     thresholds = np.array([select_for_abstain(rng.random(n), r).threshold for _ in range(4000)])
-    expected = 1 - k / (n + 1)
+    expected = 1 - (k + 0.5) / (n + 1)
     assert expected <= r + 1e-12
     # Monte Carlo: standard error of the mean of (1 - t) is about 0.0003 here; 5e-3 is > 10 SE.
     assert abs(np.mean(1 - thresholds) - expected) < 5e-3
