@@ -50,7 +50,7 @@ import numpy as np
 
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.bundle import Bundle, load_bundle, write_manifest
-from demur.serve.core.decision import SCORE_TASKS, SCORE_UNITS, DecisionRule, ServedRule, score_values
+from demur.serve.core.decision import SCORE_TASKS, SCORE_UNITS, DecisionRule, ServedRule, Verdicts, score_values
 from demur.serve.core.drift import score_reference
 from demur.serve.core.summary import conformal_variance, summarise
 from demur.serve.core.support import recalibrated, support_from_manifest
@@ -98,14 +98,17 @@ small departure from exact exchangeability, said so in the record."""
 @dataclass(frozen=True)
 class CalibrationOutcome:
     """What ``calibrate_file`` did: the calibration ``record`` now in the manifest, the new
-    ``checksum`` (seal), the report.json path (or None), every ``figure`` reported and the
-    ``notes`` (warnings) printed beside them."""
+    ``checksum`` (seal), the report.json path (or None), every ``figure`` reported, the
+    ``notes`` (warnings) printed beside them, and the served rule's per-case ``verdicts`` on the
+    calibration cases (``Verdicts``: abstain, outside, in row order after any rows dropped) as
+    the rewritten bundle's ``ServedRule`` decides them, the figures the server gives."""
 
     record: dict[str, Any]
     checksum: str
     report: str | None
     figures: dict[str, Any]
     notes: tuple[str, ...] = ()
+    verdicts: Verdicts | None = None
 
 
 # -- the Python API -----------------------------------------------------------------
@@ -302,12 +305,12 @@ def _calibrate(b: Bundle, cal: Cases, check: Cases | None, floor_x: np.ndarray |
 
     record["notes"] = list(notes)
     checksum = _write(b, raw, _manifest_records(raw, score, choice, record, sc_cal, support))
-    _check_served(b.path, cal.x, d_cal, choice)
+    verdicts = _check_served(b.path, cal.x, d_cal, choice)
     model["checksum"] = checksum
     figures.update(status="calibrated", calibration=record, test=test, curve=list(choice.curve), notes=notes)
     report_path = str(write_report(report, figures, plots)) if report else None
     return CalibrationOutcome(record=record, checksum=checksum, report=report_path, figures=figures,
-                              notes=tuple(notes))
+                              notes=tuple(notes), verdicts=verdicts)
 
 
 def _regression(b: Bundle, engine: Engine, served: ServedRule, cal: Cases, check: Cases | None, floor_x: np.ndarray | None,
@@ -410,7 +413,7 @@ def _served_figures(served: ServedRule, threshold: float, summary: Any, x: np.nd
     return out
 
 
-def _check_served(path: Path, x: np.ndarray, draws: np.ndarray, choice: ThresholdChoice) -> None:
+def _check_served(path: Path, x: np.ndarray, draws: np.ndarray, choice: ThresholdChoice) -> Verdicts:
     """The rewritten bundle's served rule (``ServedRule.from_manifest``, as the server builds it)
     must accept exactly the calibration cases the choice counted; else nothing certified is served."""
     m = load_bundle(path).manifest
@@ -418,6 +421,7 @@ def _check_served(path: Path, x: np.ndarray, draws: np.ndarray, choice: Threshol
     if int((~v.abstain).sum()) != choice.accepted:
         raise RuntimeError(f"the served rule accepts {int((~v.abstain).sum())} calibration cases; calibrate counted "
                            f"{choice.accepted}: a bug in demur, please report it")
+    return v
 
 
 def _write(b: Bundle, raw: dict[str, Any], sections: dict[str, Any]) -> str:
