@@ -458,3 +458,24 @@ def test_conformal_coverage_and_out_of_range_width_on_diabetes_bundle(diabetes_b
     assert mean_cov >= 1 - alpha - 0.02
     assert outside.mutual_information.mean() > 10 * inside.mutual_information.mean()
     assert outside.epistemic_std.mean() > inside.epistemic_std.mean()
+
+
+def test_thresholds_sit_midway_between_two_calibration_scores_and_support_cases_always_abstain():
+    """The written threshold is strictly between the last accepted and the first refused score
+    (never on one), and +inf (a case the support check puts outside) abstains at every candidate."""
+    from demur.serve.offline.calibration import threshold_between
+
+    rng = np.random.default_rng(8)
+    s, c = _simulate(rng, 1500)
+    s[:30] = np.inf  # 2% outside the training data
+    ch = select_for_accuracy(s, c, 0.93, 0.1, max_abstain=0.3)
+    finite = np.sort(s[np.isfinite(s)])
+    below, above = finite[finite < ch.threshold], s[s > ch.threshold]
+    assert ch.threshold == pytest.approx((below.max() + np.min(above)) / 2)
+    assert int(np.sum(s <= ch.threshold)) == ch.accepted and not np.isinf(s[s <= ch.threshold]).any()
+    q = select_for_abstain(s, 0.05)
+    assert np.sum(s > q.threshold) / len(s) <= 0.05 and np.isfinite(q.threshold)
+    with pytest.raises(CalibrationInfeasible, match="support check alone"):
+        select_for_abstain(s, 0.01)
+    assert threshold_between(1.0, np.inf) > 1.0 and threshold_between(-np.inf, 2.0) < 2.0
+    assert threshold_between(0.25, 0.5) == 0.375
