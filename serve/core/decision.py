@@ -117,10 +117,10 @@ def score_values(summary: Summary, name: str) -> np.ndarray:
 
 
 def decide(summary: Summary, rule: DecisionRule, *, support: SupportCheck | None = None,
-           x_raw: np.ndarray | None = None) -> Verdicts:
+           x_raw: np.ndarray | None = None, x_std: np.ndarray | None = None) -> Verdicts:
     """Apply ``rule`` to every case of ``summary``; with ``support`` (and the raw inputs
     ``x_raw``: float[B, *shape], before standardisation) a case outside the training data
-    abstains too, its reason first."""
+    abstains too, its reason first (``x_std``: those inputs standardised, float32, if at hand)."""
     score = score_values(summary, rule.score)
     abstain = score > rule.threshold
     unit = SCORE_UNITS[rule.score]
@@ -133,7 +133,7 @@ def decide(summary: Summary, rule: DecisionRule, *, support: SupportCheck | None
         return Verdicts(score=score, abstain=abstain, reason=reason)
     if x_raw is None or len(x_raw) != len(score):
         raise ValueError("decide with a support check needs the raw inputs of every case (x_raw)")
-    checked = support.check(x_raw)
+    checked = support.check(x_raw, x_std)  # x_std: the same cases as the graph saw them, if at hand
     reason = [f"{why}; {r}" if why else r for why, r in zip(checked.reason, reason)]
     return Verdicts(score=score, abstain=abstain | checked.outside, reason=reason, outside=checked.outside)
 
