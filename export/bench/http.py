@@ -14,6 +14,9 @@ What is measured (``_http_section``):
   ``(workers, threads, onnxruntime threads, batch wait ms)``, one-case and 64-case requests
   at S = 32; the chosen sizing has the most one-case requests/s (p99 within target, no
   errors) among those within 15% of the best 64-case rows/s;
+* the bundle is what ``demur export`` writes by default: with its support check (and drift
+  reference); with the chosen sizing, the same graphs without the support section, alternated
+  one-case rounds, give the check's cost as a ratio (``support``);
 * with the chosen sizing: the flip graph; the maintained ASGI server (export/bench/asgi.py:
   uvicorn with httptools under gunicorn's process management, an asyncio batcher, the Flask
   app through a WSGI adapter) against the loop front, alternated in ``front_rounds`` rounds,
@@ -259,11 +262,11 @@ class _Runner:
         return r
 
     def demur(self, front: str, workers: int, threads: int, ort: int, wait_ms: float, graph: str,
-              B: int) -> dict[str, Any]:
+              B: int, bundle: Bundle | None = None) -> dict[str, Any]:
         port = _free_port()
         data = self.workdir / f"data-{port}"
         if front == "loop":
-            argv = _loop_argv(self.bundle, port, workers, threads, ort, graph, data)
+            argv = _loop_argv(bundle or self.bundle, port, workers, threads, ort, graph, data)
             env = child_env(DEMUR_BATCH_WAIT_MS=str(wait_ms))
         else:  # the candidate batches what arrived in one loop pass: a wait of 0
             data.mkdir(parents=True, exist_ok=True)
@@ -321,9 +324,28 @@ def _fronts(run: _Runner, sizing: tuple[int, int, int, float], rounds: int) -> d
             "chosen": chosen}
 
 
+def _support_cost(run: _Runner, sizing: tuple[int, int, int, float], unchecked: Bundle,
+                  rounds: int) -> dict[str, Any]:
+    """One-case stacked requests/s of the default bundle (support check on) and of the same graphs
+    without the support section, alternated in ``rounds`` rounds; medians and their ratio."""
+    w, t, o, wait = sizing
+    runs: dict[str, list[dict[str, Any]]] = {"on": [], "off": []}
+    for i in range(rounds):
+        for which in (("on", "off") if i % 2 == 0 else ("off", "on")):
+            r = run.demur("loop", w, t, o, wait, "stacked", 1, bundle=None if which == "on" else unchecked)
+            r["support"] = which
+            runs[which].append(r)
+    med = {k: {m: float(statistics.median(r[m] for r in v))
+               for m in ("requests_per_s", "p99_ms", "server_cpu_ms_per_request")} for k, v in runs.items()}
+    off = med["off"]["requests_per_s"]
+    return {"rounds": rounds, "runs": runs["on"] + runs["off"], "on": med["on"], "off": med["off"],
+            "on_over_off_requests_per_s": med["on"]["requests_per_s"] / off if off > 0 else float("nan")}
+
+
 def http_section(bundle: Bundle, S: int, xs: np.ndarray, model_file: Path, workdir: Path, cfg: dict[str, Any],
-                 log: Callable[[str], None]) -> dict[str, Any]:
-    """Every HTTP measurement of one run (module docstring); ``bundle`` holds stacked and flip at S."""
+                 log: Callable[[str], None], unchecked: Bundle | None = None) -> dict[str, Any]:
+    """Every HTTP measurement of one run (module docstring); ``bundle`` holds stacked and flip at S
+    with the support check a default export carries; ``unchecked``: the same graphs without it."""
     if not os.access(WRK, os.X_OK):
         return {"skipped": f"{WRK} not found (apt-get install wrk)"}
     run = _Runner(bundle, xs, workdir, cfg["http_s"], log)
@@ -349,6 +371,8 @@ def http_section(bundle: Bundle, S: int, xs: np.ndarray, model_file: Path, workd
     section["cases"] += [best, run.demur("loop", w, t, o, wait, "flip", 1), batches[pick],
                          run.demur("loop", w, t, o, wait, "flip", 64)]
     section["fronts"] = _fronts(run, (w, t, o, wait), cfg["front_rounds"])
+    if unchecked is not None:
+        section["support"] = _support_cost(run, (w, t, o, wait), unchecked, max(2, cfg["front_rounds"]))
     xs_file = workdir / "cases.npy"
     np.save(xs_file, xs[:64])
     section["engine_same_cores"] = {
