@@ -69,18 +69,20 @@ class _Basic(nn.Module):
 
 
 class BayesianLastLayers(nn.Module):
-    """[3, H, W] -> 10 logits: a ResNet-18-shaped backbone and a two-layer variational head."""
+    """[3, H, W] -> 10 logits: a ResNet-18-shaped backbone (``width`` 64: ResNet-18's channels;
+    the bench's tests use a narrower one) and a two-layer variational head (8w -> 4w -> 10)."""
 
-    def __init__(self, classes: int = 10, hidden: int = 256) -> None:
+    def __init__(self, classes: int = 10, width: int = 64) -> None:
         super().__init__()
-        self.stem = nn.Sequential(nn.Conv2d(3, 64, 7, stride=2, padding=3, bias=False), nn.BatchNorm2d(64),
+        self.stem = nn.Sequential(nn.Conv2d(3, width, 7, stride=2, padding=3, bias=False), nn.BatchNorm2d(width),
                                   nn.ReLU(), nn.MaxPool2d(3, stride=2, padding=1))
-        stages, c_in = [], 64
-        for c_out, stride in ((64, 1), (128, 2), (256, 2), (512, 2)):
+        stages, c_in = [], width
+        for c_out, stride in ((width, 1), (2 * width, 2), (4 * width, 2), (8 * width, 2)):
             stages += [_Basic(c_in, c_out, stride), _Basic(c_out, c_out, 1)]
             c_in = c_out
         self.stages = nn.Sequential(*stages)
-        self.hidden = VariationalLinear(512, hidden, posterior="gaussian", init_spread=0.05)
+        hidden = 4 * width
+        self.hidden = VariationalLinear(8 * width, hidden, posterior="gaussian", init_spread=0.05)
         self.head = VariationalLinear(hidden, classes, posterior="gaussian", init_spread=0.05)
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
@@ -88,9 +90,9 @@ class BayesianLastLayers(nn.Module):
         return self.head(F.gelu(self.hidden(h)))
 
 
-def _model() -> BayesianLastLayers:
+def _model(width: int) -> BayesianLastLayers:
     torch.manual_seed(0)
-    model = BayesianLastLayers()
+    model = BayesianLastLayers(width=width)
     with torch.no_grad():
         for m in model.modules():
             if isinstance(m, nn.BatchNorm2d):
@@ -143,7 +145,7 @@ def backbone_section(cfg: dict[str, Any], root: Path,
     """Per input size in ``cfg["backbone_sizes"]``: latency of every graph kind and of the
     deterministic network at each B in ``cfg["backbone_batches"]``, ratios, file bytes."""
     S = int(cfg["backbone_draws"])
-    model = _model()
+    model = _model(int(cfg.get("backbone_width", 64)))
     numbers = network_numbers(model)
     rng = np.random.default_rng(0)
     out = []
@@ -191,3 +193,24 @@ def backbone_lines(section: list[dict[str, Any]]) -> list[str]:
             lines.append(f"{r['mode']:>27} B={r['batch']:<3} {lat['median']:10.2f} {lat['min']:10.2f}-"
                          f"{lat['max']:<10.2f} {r['over_deterministic']:7.2f}x deterministic")
     return lines
+
+
+def backbone_ratios(section: list[dict[str, Any]]) -> tuple[dict[str, float], list[tuple[str, str, float, bool]]]:
+    """Ratios (name -> value) and targets (name, goal, value, reached) of ``backbone_section``:
+    every kind <= 1.3x the deterministic network at each B (issue 22)."""
+    ratios: dict[str, float] = {}
+    targets = []
+    for part in section:
+        shape = "x".join(map(str, part["input"]))
+        for r in part["rows"]:
+            if r["mode"] == "means":
+                continue
+            key = r["mode"].split()[0] + ("_per_draw" if "before" in r["mode"] else "")
+            v = r["over_deterministic"]
+            ratios[f"backbone_{shape}_{key}_over_deterministic_S{part['draws']}_B{r['batch']}"] = v
+            if "before" not in r["mode"]:
+                targets.append((f"BLL {shape} {key} / deterministic, S={part['draws']} B={r['batch']}", "<= 1.3", v,
+                                v <= 1.3))
+        for m in part["memory"]:
+            ratios[f"backbone_{shape}_file_over_params_{m['mode'].split()[0]}"] = m["file_over_param_bytes"]
+    return ratios, targets

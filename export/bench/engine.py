@@ -58,6 +58,7 @@ from demur.serve.core.decision import DecisionRule, decide
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.summary import summarise
 
+from demur.export.bench.backbone import backbone_lines, backbone_ratios, backbone_section
 from demur.export.bench.conv import conv_section
 from demur.export.bench.http import CLIENTS, FRONT_RULE, child_env, http_section
 from demur.export.draws import DrawNetwork
@@ -101,10 +102,13 @@ def _settings(quick: bool) -> dict[str, Any]:
     if quick:
         return {"draws": [32], "batches": [1, 64], "repeats": 3, "budget_s": 0.04, "http_s": 2,
                 "worker_models": [(2, 4, 1, 0.0)], "front_rounds": 1, "rss": True,
-                "conv_draws": 32, "conv_nets": ["small", "large"]}
+                "conv_draws": 32, "conv_nets": ["small", "large"], **_BACKBONE}
     return {"draws": [8, 32, 128], "batches": [1, 64], "repeats": 5, "budget_s": 0.2, "http_s": 6,
             "worker_models": [(2, 4, 1, 0.0), (2, 4, 1, 1.0), (1, 4, 1, 0.0), (1, 4, 2, 0.0), (1, 4, 1, 1.0)],
-            "front_rounds": 2, "rss": True, "conv_draws": 32, "conv_nets": ["small", "large"]}
+            "front_rounds": 2, "rss": True, "conv_draws": 32, "conv_nets": ["small", "large"], **_BACKBONE}
+
+
+_BACKBONE = {"backbone_draws": 32, "backbone_sizes": [32, 224], "backbone_batches": [1, 16]}  # [] skips
 
 
 def _stats(values: list[float]) -> dict[str, float]:
@@ -177,8 +181,7 @@ def _write(root: Path, plan: _Plan, spec: dict[str, Any], nets: dict[str, DrawNe
 
 
 def _default_sections(spec: dict[str, Any]) -> dict[str, Any]:
-    """The support check and drift reference ``demur export`` writes by default, fitted on the
-    bundled digits the bench's requests do not use (rows 0-999 train, 1000-1436 held out)."""
+    """The support check and drift reference ``demur export`` writes by default (digits rows 0-999 train, 1000-1436 held out)."""
     from sklearn.datasets import load_digits
 
     from demur.serve.core.drift import feature_reference
@@ -442,6 +445,10 @@ def _ratios_and_targets(result: dict[str, Any]) -> None:
             "asgi_over_loop_one_case"])
     v = result["summaries"]["share_of_engine"]
     target("summaries / engine time, B=64 S=32", "< 0.15", v, v < 0.15)
+    more, goals = backbone_ratios(result.get("backbone", []))
+    ratios.update(more)
+    for goal in goals:
+        target(*goal)
     result["ratios"] = ratios
     result["targets"] = targets
 
@@ -490,6 +497,7 @@ def run_bench(*, quick: bool = False, checkpoint: Path | None = None, http: bool
         }
         result["engine"] = _engine_section(model, spec, bundles, xs, cfg, log)
         result["conv"] = conv_section(xs, cfg, root / "conv", _time, log)
+        result["backbone"] = backbone_section(cfg, root / "backbone", _time, log) if cfg["backbone_sizes"] else []
         result["summaries"] = _summary_section(bundles, xs, cfg)
         result["memory"] = _memory_section(plan, bundles, model_file, cfg)
         if http:
@@ -582,10 +590,11 @@ def format_table(result: dict[str, Any]) -> str:
             lines.append(f"  one-case req/s: on {sup['on']['requests_per_s']:.0f} (p99 {sup['on']['p99_ms']:.1f} ms), "
                          f"off {sup['off']['requests_per_s']:.0f} (p99 {sup['off']['p99_ms']:.1f} ms): on / off "
                          f"{sup['on_over_off_requests_per_s']:.3f}")
+    lines += backbone_lines(result.get("backbone", []))
     lines += ["", "ratios"]
     for k, v in result["ratios"].items():
         lines.append(f"  {k:<52} {v:10.3f}" if isinstance(v, (int, float)) else f"  {k:<52} {'-':>10}")
-    lines += ["", "targets (issues 8, 12, 16)"]
+    lines += ["", "targets (issues 8, 12, 16, 22)"]
     for t in result["targets"]:
         verdict = "n/a" if t["reached"] is None else "REACHED" if t["reached"] else "NOT reached"
         value = "-" if t["value"] is None else f"{t['value']:.3f}"
