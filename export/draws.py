@@ -168,6 +168,9 @@ class _Mode:
 
     noise: tuple[NoiseInput, ...] = ()
     S: int = 1
+    entering = False
+    """Set by export/shared.py while the layer is called on a draw-free batch [B, ...] (where draws
+    enter); a mode with ``run_plain`` then takes that batch as it is."""
 
     def weights(self, layer: VariationalLayer) -> tuple[torch.Tensor, torch.Tensor]:
         raise NotImplementedError
@@ -175,6 +178,22 @@ class _Mode:
     def run(self, layer: VariationalLayer, x: torch.Tensor) -> torch.Tensor:
         w, b = self.weights(layer)
         return apply_draws(layer, x, w, b, self.S)
+
+
+def _plain_draws(layer: VariationalLayer, x: torch.Tensor, w_cat: torch.Tensor, b_cat: torch.Tensor,
+                 S: int) -> torch.Tensor:
+    """S weight sets on a draw-free batch x [B, ...] -> [S*B, ...] draw-major, as ONE matmul or
+    convolution with the sets side by side (``w_cat``: linear [in, S*out], conv [S*out, in, k, k];
+    ``b_cat`` [S*out]): each weight is read once, and x is never repeated S times."""
+    if isinstance(layer, VariationalConv2d):
+        y = F.conv2d(x, w_cat, b_cat, stride=layer.stride, padding=layer.padding)     # [B, S*out, H, W]
+        h, w = static_shape(y.shape[2:])
+        return y.reshape(-1, S, layer.out_channels, h, w).transpose(0, 1).reshape(-1, layer.out_channels, h, w)
+    assert isinstance(layer, VariationalLinear)
+    case = static_shape(x.shape[1:-1])
+    y = torch.matmul(x, w_cat) + b_cat                                                # [B, ..., S*out]
+    y = y.reshape(-1, S, layer.out_features).transpose(0, 1)                          # [S, B*..., out]
+    return y.reshape(-1, *case, layer.out_features)
 
 
 class _Fixed(_Mode):
@@ -190,9 +209,21 @@ class _Fixed(_Mode):
         return self.w, self.b
 
     def run(self, layer: VariationalLayer, x: torch.Tensor) -> torch.Tensor:
+        if self.entering:
+            return self.run_plain(layer, x)
         if isinstance(layer, VariationalLinear) and self.w_t is not None:
             return _linear_draws(layer, x, self.w_t, self.b, self.S)
         return apply_draws(layer, x, self.w, self.b, self.S)
+
+    def run_plain(self, layer: VariationalLayer, x: torch.Tensor) -> torch.Tensor:
+        """The S stored sets on a draw-free batch [B, ...] (export/shared.py calls it where draws enter)."""
+        if not hasattr(self, "_cat"):   # built once, stored as the graph's constant in the layout it reads
+            if isinstance(layer, VariationalLinear):
+                w_cat = self.w_t.permute(1, 0, 2).reshape(layer.in_features, -1).contiguous()
+            else:
+                w_cat = self.w.flatten(0, 1).contiguous()
+            self._cat = (w_cat, self.b.flatten().contiguous())
+        return _plain_draws(layer, x, *self._cat, self.S)
 
 
 class _Fresh(_Mode):
@@ -221,6 +252,18 @@ class _Fresh(_Mode):
                 eps = (flat / torch.linalg.vector_norm(flat, dim=1, keepdim=True) * r).reshape(eps.shape)
             out.append(self.mu[part] + self.sigma[part] * eps)
         return out[0], out[1]
+
+
+    def run(self, layer: VariationalLayer, x: torch.Tensor) -> torch.Tensor:
+        if self.entering:
+            return self.run_plain(layer, x)
+        return super().run(layer, x)
+
+    def run_plain(self, layer: VariationalLayer, x: torch.Tensor) -> torch.Tensor:
+        """This call's S weight sets on a draw-free batch [B, ...], side by side in one matmul/conv."""
+        w, b = self.weights(layer)
+        w_cat = w.permute(2, 0, 1).reshape(w.shape[2], -1) if isinstance(layer, VariationalLinear) else w.flatten(0, 1)
+        return _plain_draws(layer, x, w_cat, b.flatten(), self.S)
 
 
 class _Single(_Mode):

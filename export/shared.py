@@ -235,6 +235,10 @@ def _run_member(m: _Member, x: torch.Tensor, fan: int, cache: dict[Any, Any]) ->
         if key is not None and key in cache:
             env[node] = cache[key]
             continue
+        entry = _entry(m, node)
+        if entry is not None:  # the first draw on a path, on a draw-free batch: the layer fans out itself
+            env[node] = entry(env[node.args[0]])
+            continue
         load = as_carried if m.state[node] == CARRY else plain_value
         env[node] = _call(m.module, node, *_args(node, load))
         if key is not None:
@@ -244,6 +248,28 @@ def _run_member(m: _Member, x: torch.Tensor, fan: int, cache: dict[Any, Any]) ->
     if not isinstance(y, torch.Tensor):
         raise NotShareable(f"the forward returned {type(y).__name__}, not one tensor")
     return y if m.state[out] == CARRY else _fan_out(y, fan)
+
+
+def _entry(m: _Member, node: fx.Node) -> Callable[[torch.Tensor], torch.Tensor] | None:
+    """A draw source called with one draw-free tensor whose draw mode can take a [B, ...] batch
+    directly (``run_plain``: stored weight sets side by side in one matmul or convolution)."""
+    if node.op != "call_module" or m.state[node] != CARRY or len(node.args) != 1 or node.kwargs:
+        return None
+    arg = node.args[0]
+    if not isinstance(arg, fx.Node) or m.state[arg] != PLAIN:
+        return None
+    layer = m.module.get_submodule(str(node.target))
+    mode = getattr(layer, "_draw_mode", None)
+    if getattr(mode, "run_plain", None) is None:
+        return None
+
+    def enter(x: torch.Tensor) -> torch.Tensor:
+        mode.entering = True            # through the module's own call: hooks and export scopes see it
+        try:
+            return layer(x)
+        finally:
+            mode.entering = False
+    return enter
 
 
 def _args(node: fx.Node, load: Callable[[fx.Node], Any]) -> tuple[Any, Any]:

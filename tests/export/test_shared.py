@@ -82,7 +82,9 @@ def test_backbone_runs_on_the_cases_not_on_the_draws() -> None:
         net = DrawNetwork(backbone_head(), kind, 16, seed=0, input_shape=SHAPE)
         member = net.members[0]
         assert _rows_seen(net, member[0].stem[0], x) == [3]
-        assert _rows_seen(net, member[1], x) == [3 * 16]  # fanned out where the first draw enters
+        # where the first draw enters: stored or fresh sets side by side on the B rows; flip on S * B rows
+        assert _rows_seen(net, member[1], x) == [3 * 16 if kind == "flip" else 3]
+        assert _rows_seen(net, member[3], x) == [3 * 16]
         assert "draws enter at 1" in net.computation
     per_draw = DrawNetwork(backbone_head(), "stacked", 16, seed=0, input_shape=SHAPE, shared=False)
     assert _rows_seen(per_draw, per_draw.members[0][0].stem[0], x) == [3 * 16]  # today's path, for contrast
@@ -95,7 +97,7 @@ def test_residual_skip_is_repeated_not_recomputed() -> None:
     x = torch.zeros(2, *SHAPE)
     assert _rows_seen(net, net.members[0].stem, x) == [2]
     assert _rows_seen(net, net.members[0].pool, x) == [2]             # the skip's value, computed once
-    assert _rows_seen(net, net.members[0].block.conv, x) == [16]      # fanned out where the draw enters
+    assert _rows_seen(net, net.members[0].block.conv, x) == [2]       # draws enter: 8 sets in one conv
     assert _rows_seen(net, net.members[0].block.bn, x) == [16]
     assert net.computation.endswith("draws enter at block.conv")
 
