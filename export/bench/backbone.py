@@ -26,6 +26,10 @@ once per draw) within 1e-4 before it is timed.
 
 from __future__ import annotations
 
+import io
+import json
+import os
+import time
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -42,8 +46,9 @@ from demur.export.graphs import export_graph
 from demur.export.layers import VariationalLinear
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.bundle import Bundle, write_bundle
+from demur.serve.core.npy_body import NPY_MEDIA_TYPE
 
-__all__ = ["BACKBONE_KINDS", "BayesianLastLayers", "backbone_lines", "backbone_section", "image_spec"]
+__all__ = ["BACKBONE_KINDS", "BayesianLastLayers", "backbone_lines", "backbone_ratios", "backbone_section", "image_spec"]
 
 BACKBONE_KINDS = ("stacked", "sampler", "flip", "means")
 """Graph kinds measured; ``means`` is the deterministic network."""
@@ -139,11 +144,60 @@ def _bundle(root: Path, model: nn.Module, shape: tuple[int, ...], S: int, shared
     return bundle, sizes, computation
 
 
+def _bodies(x: np.ndarray) -> dict[str, tuple[bytes, str]]:
+    """One case as a client sends it: JSON (4 decimals a value) and a float32 ``.npy`` array."""
+    text = json.dumps({"cases": [[round(float(v), 4) for v in x.ravel()]]}, separators=(",", ":")).encode()
+    buf = io.BytesIO()
+    np.save(buf, x.reshape(1, *x.shape).astype(np.float32))
+    return {"json": (text, "application/json"), "npy": (buf.getvalue(), NPY_MEDIA_TYPE)}
+
+
+def _boundary_cpu_ms(bodies: dict[str, tuple[bytes, str]], spec: Any, budget_s: float) -> dict[str, float]:
+    """CPU ms per one-case body to turn its bytes into the validated float32 cases (the request
+    boundary: parse + validate), in this process: what the transport costs without the graph."""
+    from demur.serve.core.npy_body import parse_npy
+    from demur.serve.core.validation import parse_json, validate_predict
+
+    out = {}
+    for label, (data, _ctype) in bodies.items():
+        parse = parse_npy if label == "npy" else parse_json
+        n, t0 = 0, time.process_time()
+        while True:
+            validate_predict(parse(data), spec, 1024)
+            n += 1
+            if time.process_time() - t0 >= budget_s and n >= 3:
+                break
+        out[label] = (time.process_time() - t0) / n * 1e3
+    return out
+
+
+def transport_section(bundle: Bundle, x: np.ndarray, root: Path, seconds: int, http: bool,
+                      log: Callable[[str], None]) -> dict[str, Any]:
+    """JSON against ``.npy`` for one case ``x`` [*shape]: body bytes, boundary CPU per case in
+    process, and (``http``, wrk present) one-case HTTP to ``demur serve`` with each body."""
+    from demur.export.bench.http import WRK, body_cost
+
+    bodies = _bodies(x)
+    cpu = _boundary_cpu_ms(bodies, bundle.manifest.inputs, 0.3)
+    out: dict[str, Any] = {"bytes": {k: len(v[0]) for k, v in bodies.items()}, "boundary_cpu_ms": cpu,
+                           "boundary_npy_over_json": cpu["npy"] / cpu["json"]}
+    log(f"  transport {'x'.join(map(str, x.shape))}: boundary CPU per case json {cpu['json']:.3f} ms, npy "
+        f"{cpu['npy']:.3f} ms")
+    if http and os.access(WRK, os.X_OK):
+        rows = body_cost(bundle, bodies, root, seconds, log)
+        med = {k: {m: float(np.median([r[m] for r in rows if r["body"] == k]))
+                   for m in ("requests_per_s", "p99_ms", "server_cpu_ms_per_request")} for k in bodies}
+        out.update(http=rows, http_median=med, server_cpu_npy_over_json=(
+            med["npy"]["server_cpu_ms_per_request"] / med["json"]["server_cpu_ms_per_request"]))
+    return out
+
+
 def backbone_section(cfg: dict[str, Any], root: Path,
                      timer: Callable[[Callable[[], Any], int, float], dict[str, float]],
-                     log: Callable[[str], None]) -> list[dict[str, Any]]:
+                     log: Callable[[str], None], http: bool = False) -> list[dict[str, Any]]:
     """Per input size in ``cfg["backbone_sizes"]``: latency of every graph kind and of the
-    deterministic network at each B in ``cfg["backbone_batches"]``, ratios, file bytes."""
+    deterministic network at each B in ``cfg["backbone_batches"]``, ratios, file bytes; and the
+    JSON / ``.npy`` transport figures of one case (``transport_section``) on the stacked bundle."""
     S = int(cfg["backbone_draws"])
     model = _model(int(cfg.get("backbone_width", 64)))
     numbers = network_numbers(model)
@@ -171,8 +225,9 @@ def backbone_section(cfg: dict[str, Any], root: Path,
         det = {r["batch"]: r["latency_ms"]["median"] for r in rows if r["mode"] == "means"}
         for r in rows:
             r["over_deterministic"] = r["latency_ms"]["median"] / det[r["batch"]]
+        transport = transport_section(bundle, x_raw[0], root / f"backbone-{side}", int(cfg["http_s"]), http, log)
         out.append({"input": list(shape), "draws": S, "parameters": numbers, "rows": rows,
-                    "computation": computation,
+                    "computation": computation, "transport": transport,
                     "memory": [{"mode": k, "file_bytes": v, "file_over_param_bytes": v / (4 * numbers)}
                                for k, v in sizes.items()]})
     return out
@@ -192,6 +247,18 @@ def backbone_lines(section: list[dict[str, Any]]) -> list[str]:
             lat = r["latency_ms"]
             lines.append(f"{r['mode']:>27} B={r['batch']:<3} {lat['median']:10.2f} {lat['min']:10.2f}-"
                          f"{lat['max']:<10.2f} {r['over_deterministic']:7.2f}x deterministic")
+        t = part.get("transport")
+        if t:
+            cpu = t["boundary_cpu_ms"]
+            lines.append(f"  one case JSON {t['bytes']['json'] / 1e3:.0f} kB vs .npy {t['bytes']['npy'] / 1e3:.0f} kB: "
+                         f"boundary CPU (parse + validate) {cpu['json']:.3f} vs {cpu['npy']:.3f} ms per case = "
+                         f"{t['boundary_npy_over_json']:.3f}x")
+            for label, m in t.get("http_median", {}).items():
+                lines.append(f"  HTTP one case, {label:>4} body, stacked S={part['draws']}, default demur serve: "
+                             f"{m['requests_per_s']:.1f} req/s, p99 {m['p99_ms']:.0f} ms, server CPU "
+                             f"{m['server_cpu_ms_per_request']:.2f} ms per case")
+            if "server_cpu_npy_over_json" in t:
+                lines.append(f"  server CPU per case, .npy / JSON: {t['server_cpu_npy_over_json']:.3f}x")
     return lines
 
 
@@ -213,4 +280,12 @@ def backbone_ratios(section: list[dict[str, Any]]) -> tuple[dict[str, float], li
                                 v <= 1.3))
         for m in part["memory"]:
             ratios[f"backbone_{shape}_file_over_params_{m['mode'].split()[0]}"] = m["file_over_param_bytes"]
+        t = part.get("transport") or {}
+        if "boundary_npy_over_json" in t:
+            ratios[f"transport_{shape}_boundary_cpu_npy_over_json"] = t["boundary_npy_over_json"]
+        if "server_cpu_npy_over_json" in t:
+            v = t["server_cpu_npy_over_json"]
+            ratios[f"transport_{shape}_server_cpu_npy_over_json"] = v
+            if part["input"][-1] >= 224:
+                targets.append((f"binary body server CPU / JSON's, one case {shape}", "<= 0.3", v, v <= 0.3))
     return ratios, targets

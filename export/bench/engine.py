@@ -497,7 +497,7 @@ def run_bench(*, quick: bool = False, checkpoint: Path | None = None, http: bool
         }
         result["engine"] = _engine_section(model, spec, bundles, xs, cfg, log)
         result["conv"] = conv_section(xs, cfg, root / "conv", _time, log)
-        result["backbone"] = backbone_section(cfg, root / "backbone", _time, log) if cfg["backbone_sizes"] else []
+        result["backbone"] = backbone_section(cfg, root / "backbone", _time, log, http) if cfg["backbone_sizes"] else []
         result["summaries"] = _summary_section(bundles, xs, cfg)
         result["memory"] = _memory_section(plan, bundles, model_file, cfg)
         if http:
