@@ -48,7 +48,8 @@ from demur.serve.adapters.engine import Engine
 from demur.serve.core.bundle import Bundle, write_bundle
 from demur.serve.core.npy_body import NPY_MEDIA_TYPE
 
-__all__ = ["BACKBONE_KINDS", "BayesianLastLayers", "backbone_lines", "backbone_ratios", "backbone_section", "image_spec"]
+__all__ = ["BACKBONE_KINDS", "BayesianLastLayers", "backbone_lines", "backbone_ratios", "backbone_section", "image_spec",
+           "transport_section"]
 
 BACKBONE_KINDS = ("stacked", "sampler", "flip", "means")
 """Graph kinds measured; ``means`` is the deterministic network."""
