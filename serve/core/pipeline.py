@@ -278,12 +278,13 @@ class Runtime:
         req = valid[0][1] if len(valid) == 1 else PredictRequest(
             x=np.concatenate([r.x for _, r in valid]), case_ids=[c for _, r in valid for c in r.case_ids])
         t1 = time.perf_counter()
-        draws = live.engine.run(req.x)
+        x_std = live.engine.standardise(req.x)   # once: the graph and the support check read it
+        draws = live.engine.run_standardised(x_std)
         t2 = time.perf_counter()
         if draws.ndim != 3 or draws.shape[1] != req.size:
             raise GraphRunError(f"the graph returned draws of shape {list(draws.shape)} for {req.size} cases")
         summary = summarise(manifest.task, draws, live.level, manifest.target)
-        decisions = live.served.decide(summary, req.x)
+        decisions = live.served.decide(summary, req.x, x_std)
         results = render.results(summary, decisions, live.rule, manifest.labels, req.case_ids)
         self._annotate(Answered(live, req, summary, decisions, results, caller))
         rule = {"score": live.rule.score, "threshold": live.rule.threshold, "source": live.rule.source}
