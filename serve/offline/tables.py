@@ -42,6 +42,7 @@ __all__ = [
     "TableReader",
     "TableWriter",
     "arrow_rows",
+    "arrow_table",
     "check_header",
     "file_format",
     "open_reader",
