@@ -281,13 +281,16 @@ class Runtime:
         return live, answers
 
     def answer_request(self, req: PredictRequest, *, caller: str | None = None, live: Live | None = None,
-                       started: float | None = None) -> Answered:
+                       started: float | None = None, rendered: bool = True) -> Answered:
         """Answer cases already validated at their boundary (``answer`` for HTTP bodies,
         demur.serve.offline.scoring for file rows) with one graph run: engine -> summary ->
         decision (support check first) -> render -> review hook -> metrics hook. The one
         place a case is decided, so a file scored offline gets the server's decisions.
         ``live``: the model to answer with (default: the live one); ``started``: the
-        ``time.perf_counter()`` at which the request arrived, for the metrics."""
+        ``time.perf_counter()`` at which the request arrived, for the metrics.
+        ``rendered=False`` skips the response dicts and with them the review hook, which
+        reads them (``results`` is empty): for the offline scorer without a review queue,
+        which writes its columns from ``summary`` and ``decisions``."""
         t0 = time.perf_counter() if started is None else started
         live = live if live is not None else self.slot.live
         manifest = live.manifest
@@ -298,9 +301,12 @@ class Runtime:
             raise GraphRunError(f"the graph returned draws of shape {list(draws.shape)} for {req.size} cases")
         summary = summarise(manifest.task, draws, live.level, manifest.target)
         decisions = decide(summary, live.rule, support=live.support, x_raw=req.x)
-        results = render.results(summary, decisions, live.rule, manifest.labels, req.case_ids)
-        answered = Answered(live, req, summary, decisions, results, caller)
-        self._annotate(answered)
+        if not rendered:
+            answered = Answered(live, req, summary, decisions, [], caller)
+        else:
+            results = render.results(summary, decisions, live.rule, manifest.labels, req.case_ids)
+            answered = Answered(live, req, summary, decisions, results, caller)
+            self._annotate(answered)
         try:
             self.metrics.observe_predict(x_raw=req.x, summary=summary, decisions=decisions,
                                          graph_seconds=t2 - t1, total_seconds=time.perf_counter() - t0)

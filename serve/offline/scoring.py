@@ -142,7 +142,7 @@ class Scorer:
             spec = live.manifest.inputs
             x = rows.x[idx].astype(np.float32).reshape((idx.size, *spec.shape))
             req = PredictRequest(x=x, case_ids=[case_ids[i] for i in idx.tolist()])
-            self._fill(out, idx, self.runtime.answer_request(req, live=live), live)
+            self._fill(out, idx, self.runtime.answer_request(req, live=live, rendered=self.enqueue), live)
         return out, good
 
     def _case_ids(self, rows: Rows, bad: list[str | None]) -> list[str | None]:
