@@ -44,7 +44,7 @@ import numpy as np
 from demur.serve.config import ServeConfig
 from demur.serve.core.bundle import load_bundle
 from demur.serve.errors import BundleError, ConfigError
-from demur.serve.offline.scoring import Scorer, output_columns
+from demur.serve.offline.scoring import DEFAULT_CHUNK_ROWS, Scorer, output_columns
 from demur.serve.offline.tables import arrow_rows, arrow_table
 
 __all__ = ["CLUSTER_EXTRA", "ClusterReport", "score_frame", "score_partition", "score_to_parquet"]
@@ -84,18 +84,24 @@ def _scorer(config: ServeConfig, checksum: str, id_column: str | None) -> Scorer
 def score_partition(frame: Any, number: int, config: ServeConfig, checksum: str,
                     id_column: str | None = None) -> Any:
     """Score one pandas partition (number ``number``) -> a pandas DataFrame of the output
-    columns with ``partition`` first. Runs in the worker; public so a user can map it
-    over partitions of another engine's frames."""
+    columns with ``partition`` first, in graph runs of ``demur score``'s 1,024 rows (the
+    summaries and the support check slow down on much larger batches: measured 2.6x per
+    row at 2,500). Runs in the worker; public so a user can map it over partitions of
+    another engine's frames."""
     import pyarrow as pa
 
     scorer = _scorer(config, checksum, id_column)
     names = scorer.live.manifest.inputs.names
     table = pa.Table.from_pandas(frame, preserve_index=False)
-    rows = arrow_rows(table, names, id_column, 1, label=f"partition {number}")
-    columns, valid = scorer.score(rows)
     kinds = {"partition": "int", **scorer.columns}
-    columns = {"partition": np.full(rows.size, number, dtype=np.int64), **columns}
-    return arrow_table(columns, valid, kinds).to_pandas()
+    pieces = []
+    for start in range(0, max(table.num_rows, 1), DEFAULT_CHUNK_ROWS):  # demur score's batches
+        rows = arrow_rows(table.slice(start, DEFAULT_CHUNK_ROWS), names, id_column, start + 1,
+                          label=f"partition {number}")
+        columns, valid = scorer.score(rows)
+        columns = {"partition": np.full(rows.size, number, dtype=np.int64), **columns}
+        pieces.append(arrow_table(columns, valid, kinds))
+    return pa.concat_tables(pieces).to_pandas()
 
 
 def _meta(config: ServeConfig, id_column: str | None, id_dtype: Any) -> Any:

@@ -104,7 +104,7 @@ def test_killed_worker_loses_and_duplicates_no_row(cluster: Any, tiny_bundle_fac
     first = [r for r in table.to_pylist() if r["partition"] == 0]
     assert [r["parcel_id"] for r in first] == [r["parcel_id"] for r in one]
     assert [r["decision"] for r in first] == [r["decision"] for r in one]
-    np.testing.assert_allclose([r["score"] for r in first], [r["score"] for r in one], rtol=1e-5)
+    assert [r["score"] for r in first] == [r["score"] for r in one]  # same 1,024-row graph runs: equal
 
 
 def test_score_frame_is_a_lazy_dask_frame(cluster: Any, tiny_bundle_factory: Any, tmp_path: Path) -> None:
