@@ -82,6 +82,7 @@ class ServeConfig:
     data_dir: str = "demur-data"
     review_store: str = ""  # "" -> sqlite:///<data_dir>/reviews.sqlite3 ; or postgresql://...
     review_lease_s: float = DEFAULT_LEASE_S
+    review_order: str = "oldest"  # or "most_uncertain": audits first, then abstentions by mutual information
     audit_fraction: float = 0.01
     spool_replay_s: float = 5.0
     review_max_pending: int = DEFAULT_MAX_PENDING  # ceiling on pending review items; 0: none
@@ -211,5 +212,8 @@ def _check(cfg: ServeConfig) -> None:
         raise ConfigError(f"audit_fraction must be in [0, 1]; got {cfg.audit_fraction}", field="audit_fraction")
     if cfg.interval_level is not None and not 0.0 < cfg.interval_level < 1.0:
         raise ConfigError(f"interval_level must be in (0, 1); got {cfg.interval_level}", field="interval_level")
+    if cfg.review_order not in ("oldest", "most_uncertain"):
+        raise ConfigError(f"review_order must be 'oldest' or 'most_uncertain'; got {cfg.review_order!r}",
+                          field="review_order")
     if cfg.batch_wait_ms < 0 or cfg.request_timeout_s <= 0 or cfg.review_lease_s <= 0:
         raise ConfigError("batch_wait_ms must be >= 0; request_timeout_s and review_lease_s > 0", field="timing")

@@ -195,7 +195,7 @@ class ReviewRouter:
         default) and a spool file in ``data_dir``. Nothing touches disk or network
         until the first item (PostgreSQL's pool connects in the background)."""
         store = open_store(config.review_store_url, lease_s=config.review_lease_s,
-                           pool_size=max(2, config.threads + 1))
+                           pool_size=max(2, config.threads + 1), order=config.review_order)
         spool = Spool(Path(config.data_dir) / SPOOL_FILE)
         return cls(store, spool, audit_fraction=config.audit_fraction, replay_s=config.spool_replay_s,
                    seed=config.seed, on_failure=on_failure, max_pending=config.review_max_pending,

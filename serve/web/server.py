@@ -72,6 +72,9 @@ def register(subparsers: Any) -> None:
     p.add_argument("--config", dest="config_file", help="TOML file of settings")
     p.add_argument("--data-dir", help="directory for the review queue, spool and state")
     p.add_argument("--review-store", help="sqlite:///PATH or postgresql://... (default SQLite in --data-dir)")
+    p.add_argument("--review-order", choices=("oldest", "most_uncertain"),
+                   help="what people are handed first: oldest (default) or most_uncertain (audits, then the "
+                        "abstentions with the most mutual information)")
     p.set_defaults(func=_main)
 
 

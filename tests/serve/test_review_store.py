@@ -465,3 +465,69 @@ def test_pending_count_is_the_pending_of_counts(store: ReviewStore, clock: Clock
     assert store.pending_count() == store.counts()["pending"] == 2
     clock.advance(LEASE_S + 1)  # both leases expired: pending again
     assert store.pending_count() == store.counts()["pending"] == 4
+
+
+# --------------------------------------------------------------------------- review order
+
+
+def _with_mi(it: NewItem, mi: float | None) -> NewItem:
+    import dataclasses
+
+    summary = dict(it.summary)
+    summary["uncertainty"] = {"unit": "nats"} if mi is None else {"mutual_information": mi, "unit": "nats"}
+    return dataclasses.replace(it, summary=summary)
+
+
+def test_most_uncertain_hands_out_audits_by_age_then_abstentions_by_mutual_information(
+        backend: tuple[str, str], clock: Clock) -> None:
+    """BALD order (Houlsby et al. 2011) for abstentions; audits first and by age, so the decided
+    audit items stay a uniform sample of accepted cases whatever the budget; no MI comes last."""
+    s = open_store(backend[1], lease_s=LEASE_S, clock=clock, order="most_uncertain")
+    try:
+        abst = [_with_mi(item("abstain", now=clock.t + i), mi) for i, mi in enumerate([0.1, 0.9, None, 0.5, 0.9])]
+        audits = [_with_mi(item("audit", now=clock.t + 10 + i), mi) for i, mi in enumerate([0.0, 0.7])]
+        s.enqueue(abst + audits)
+        order = [s.claim_next("r").id for _ in range(7)]
+        assert order == [audits[0].id, audits[1].id, abst[1].id, abst[4].id, abst[3].id, abst[0].id, abst[2].id]
+        assert s.claim_next("r") is None
+    finally:
+        s.close()
+    fifo = open_store(backend[1], lease_s=LEASE_S, clock=clock)  # the default, on the same queue
+    try:
+        clock.advance(LEASE_S + 1)  # every lease lapses: the default hands them back oldest first
+        assert [fifo.claim_next("q").id for _ in range(7)] == sorted(it.id for it in abst + audits)
+    finally:
+        fifo.close()
+
+
+def test_most_uncertain_claims_stay_exclusive_under_threads(backend: tuple[str, str], clock: Clock) -> None:
+    """8 reviewer threads on the priority order: every item decided once."""
+    s = open_store(backend[1], lease_s=LEASE_S, clock=clock, order="most_uncertain", pool_size=10)
+    try:
+        s.enqueue([_with_mi(item("abstain"), float(i % 17) / 17) for i in range(120)])
+        decided: list[str] = []
+        lock = threading.Lock()
+
+        def reviewer(k: int) -> None:
+            for _ in range(200):  # bounded
+                got = s.claim_next(f"r{k}")
+                if got is None:
+                    return
+                s.decide(got.id, f"r{k}", label="1")
+                with lock:
+                    decided.append(got.id)
+
+        threads = [threading.Thread(target=reviewer, args=(k,)) for k in range(8)]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join(timeout=120)
+        assert len(decided) == 120 and len(set(decided)) == 120
+    finally:
+        s.close()
+
+
+def test_an_unknown_review_order_is_refused_by_name(tmp_path: Path) -> None:
+    with pytest.raises(ConfigError) as info:
+        open_store(f"sqlite:///{tmp_path / 'q.sqlite3'}", lease_s=1, order="newest")
+    assert info.value.field == "review_order"

@@ -66,6 +66,7 @@ from demur.serve.review.store.items import (
     MAX_EXCLUDE,
     MAX_ID_CHARS,
     MAX_NOTE_CHARS,
+    REVIEW_ORDERS,
     SCHEMA_VERSION,
     STATUSES,
     Enqueued,
@@ -85,6 +86,7 @@ __all__ = [
     "MAX_EXCLUDE",
     "MAX_ID_CHARS",
     "MAX_NOTE_CHARS",
+    "REVIEW_ORDERS",
     "SCHEMA_VERSION",
     "STATUSES",
     "Enqueued",
@@ -102,16 +104,16 @@ __all__ = [
 
 
 def open_store(url: str, *, lease_s: float, pool_size: int = 4,
-               clock: Callable[[], float] = time.time) -> ReviewStore:
+               clock: Callable[[], float] = time.time, order: str = "oldest") -> ReviewStore:
     """A store from a URL: ``sqlite:///relative/path``, ``sqlite:////absolute/path``,
-    or ``postgresql://user@host:port/db[?schema=NAME]``."""
+    or ``postgresql://user@host:port/db[?schema=NAME]``. ``order``: one of ``REVIEW_ORDERS``."""
     if url.startswith("sqlite:///"):
         path = url[len("sqlite:///"):]
         if not path:
             raise ConfigError("review store URL 'sqlite:///' needs a file path", field="review_store")
-        return SqliteStore(path, lease_s=lease_s, clock=clock)
+        return SqliteStore(path, lease_s=lease_s, clock=clock, order=order)
     if url.startswith(("postgresql://", "postgres://")):
-        return PostgresStore(url, lease_s=lease_s, pool_size=pool_size, clock=clock)
+        return PostgresStore(url, lease_s=lease_s, pool_size=pool_size, clock=clock, order=order)
     shown = url.split("://", 1)[0] + "://..." if "://" in url else url[:40]
     raise ConfigError(f"review store must be 'sqlite:///PATH' or 'postgresql://...'; got '{shown}'",
                       field="review_store")

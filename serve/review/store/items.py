@@ -32,6 +32,7 @@ __all__ = [
     "MAX_EXCLUDE",
     "MAX_ID_CHARS",
     "MAX_NOTE_CHARS",
+    "REVIEW_ORDERS",
     "SCHEMA_VERSION",
     "STATUSES",
     "Enqueued",
@@ -45,14 +46,22 @@ __all__ = [
     "iso_time",
     "new_id",
     "new_item",
+    "review_priority",
     "row_to_item",
     "unstorable",
 ]
 
 KINDS = ("abstain", "audit")
 STATUSES = ("pending", "claimed", "decided")
-SCHEMA_VERSION = 3
-"""1: items; 2: the dead-letter table; 3: the case digest (one item per case key) and aliases."""
+SCHEMA_VERSION = 4
+"""1: items; 2: the dead-letter table; 3: the case digest (one item per case key) and aliases;
+4: the review priority (``review_priority``) for ``review_order = "most_uncertain"``."""
+REVIEW_ORDERS = ("oldest", "most_uncertain")
+"""How people are handed items (``claim_next``): ``oldest`` first, or ``most_uncertain``: audit
+items first, oldest first (they must stay a uniform sample of accepted cases, so people decide
+them in an order that does not depend on the model), then abstentions by decreasing mutual
+information between the prediction and the weights (BALD, Houlsby et al. 2011: the cases whose
+label tells the posterior most), oldest first among equals."""
 MAX_ID_CHARS = 64
 MAX_NOTE_CHARS = 2000
 MAX_EXCLUDE = 100
@@ -162,6 +171,16 @@ def new_item(
         model_version=model["version"], model_checksum=model["checksum"], case=case, summary=summary,
         prediction=prediction, interval=interval, client_case_id=client_case_id,
     )
+
+
+def review_priority(summary: dict[str, Any]) -> float | None:
+    """The number ``most_uncertain`` orders abstentions by: the case's mutual information (nats)
+    from the model's summary, or None when it has none (such items come after the others)."""
+    try:
+        value = float(summary["uncertainty"]["mutual_information"])
+    except (KeyError, TypeError, ValueError):
+        return None
+    return value if value == value and abs(value) != float("inf") else None
 
 
 def iso_time(t: float | None) -> str | None:

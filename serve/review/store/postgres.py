@@ -22,7 +22,13 @@ from urllib.parse import parse_qsl, urlencode, urlsplit, urlunsplit
 
 from demur.serve.errors import ConfigError, Conflict, DemurError, ReviewItemRejected, ReviewStoreUnavailable
 from demur.serve.review.store.items import COLUMNS
-from demur.serve.review.store.sql import TRANSIENT_RETRIES, Migration, SqlStore, backfill_digests
+from demur.serve.review.store.sql import (
+    TRANSIENT_RETRIES,
+    Migration,
+    SqlStore,
+    backfill_digests,
+    backfill_priorities,
+)
 
 __all__ = ["MIGRATIONS", "PostgresStore", "postgres_errors"]
 
@@ -76,6 +82,11 @@ MIGRATIONS: tuple[Migration, ...] = (
             id TEXT NOT NULL,
             created DOUBLE PRECISION NOT NULL
         )""",
+    ),
+    (  # 4: the review priority (most_uncertain order)
+        "ALTER TABLE {items} ADD COLUMN IF NOT EXISTS priority DOUBLE PRECISION",
+        backfill_priorities,
+        "CREATE INDEX IF NOT EXISTS demur_review_items_priority_idx ON {items} (status, kind, priority)",
     ),
 )
 """Index i brings the schema from version i to i + 1; written in PostgreSQL's dialect."""
@@ -140,9 +151,9 @@ class PostgresStore(SqlStore):
     migrations = MIGRATIONS
 
     def __init__(self, url: str, *, lease_s: float, pool_size: int = 4, timeout_s: float = 3.0,
-                 connect_timeout_s: int = 3, clock: Callable[[], float] = time.time) -> None:
+                 connect_timeout_s: int = 3, clock: Callable[[], float] = time.time, order: str = "oldest") -> None:
         conninfo, schema = _split_schema(url)
-        super().__init__(lease_s=lease_s, clock=clock, prefix=f'"{schema}".' if schema else "")
+        super().__init__(lease_s=lease_s, clock=clock, prefix=f'"{schema}".' if schema else "", order=order)
         import psycopg_pool
 
         self.schema = schema
@@ -194,7 +205,8 @@ class PostgresStore(SqlStore):
         cond = self._claimable(exclude)
         sql = self.sql(
             "UPDATE {items} SET status = 'claimed', reviewer = {p}, claim_deadline = {p}, claims = claims + 1 "
-            f"WHERE id = (SELECT id FROM {{items}} WHERE {cond} ORDER BY id LIMIT 1 FOR UPDATE SKIP LOCKED) "
+            f"WHERE id = (SELECT id FROM {{items}} WHERE {cond} ORDER BY {self.claim_order} LIMIT 1 "
+            "FOR UPDATE SKIP LOCKED) "
             f"AND (status = 'pending' OR (status = 'claimed' AND claim_deadline < {{p}})) RETURNING {_SELECT}"
         )
         for _ in range(5):  # a row taken between the subquery and the update: try the next one

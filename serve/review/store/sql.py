@@ -30,6 +30,7 @@ from demur.serve.review.store.items import (
     COLUMNS,
     KINDS,
     MAX_EXCLUDE,
+    REVIEW_ORDERS,
     SCHEMA_VERSION,
     STATUSES,
     Enqueued,
@@ -41,11 +42,12 @@ from demur.serve.review.store.items import (
     is_item_id,
     iso_time,
     new_id,
+    review_priority,
     row_to_item,
     unstorable,
 )
 
-__all__ = ["TRANSIENT_RETRIES", "Migration", "SqlStore", "backfill_digests"]
+__all__ = ["TRANSIENT_RETRIES", "Migration", "SqlStore", "backfill_digests", "backfill_priorities"]
 
 TRANSIENT_RETRIES = 8
 """Attempts after the first for a transaction that met a deadlock or serialisation failure."""
@@ -69,10 +71,14 @@ class SqlStore:
     _p = "?"
     migrations: tuple[Migration, ...] = ()
 
-    def __init__(self, *, lease_s: float, clock: Callable[[], float] = time.time, prefix: str = "") -> None:
+    def __init__(self, *, lease_s: float, clock: Callable[[], float] = time.time, prefix: str = "",
+                 order: str = "oldest") -> None:
         if lease_s <= 0:
             raise ConfigError(f"review lease must be > 0 seconds; got {lease_s}", field="review_lease_s")
+        if order not in REVIEW_ORDERS:
+            raise ConfigError(f"review order must be one of {list(REVIEW_ORDERS)}; got {order!r}", field="review_order")
         self.lease_s = float(lease_s)
+        self.order = order
         self._clock = clock
         self._names = {name: f"{prefix}demur_{table}" for name, table in (
             ("items", "review_items"), ("rejected", "review_rejected"), ("aliases", "review_aliases"),
@@ -200,11 +206,12 @@ class SqlStore:
         lo, hi = it.interval if it.interval is not None else (None, None)
         digest = it.digest
         cur.execute(self.sql(
-            f"INSERT INTO {{items}} ({', '.join(_INSERTED)}, case_digest, claims) "
-            f"VALUES ({self._marks(len(_INSERTED) + 1)}, 0) ON CONFLICT DO NOTHING"), (
+            f"INSERT INTO {{items}} ({', '.join(_INSERTED)}, case_digest, priority, claims) "
+            f"VALUES ({self._marks(len(_INSERTED) + 2)}, 0) ON CONFLICT DO NOTHING"), (
             it.id, it.created, it.kind, "pending", it.model_name, it.model_version, it.model_checksum,
             it.client_case_id, json.dumps(it.case, separators=(",", ":")),
             json.dumps(it.summary, separators=(",", ":")), it.prediction, lo, hi, digest,
+            review_priority(it.summary),
         ))
         if cur.rowcount == 1:
             reused = False
@@ -314,6 +321,14 @@ class SqlStore:
         now = self._clock()
         row = self._run(lambda cur: self._claim(cur, reviewer, now, exclude), write=True)
         return None if row is None else row_to_item(row, now)
+
+    @property
+    def claim_order(self) -> str:
+        """The ORDER BY of a claim (``REVIEW_ORDERS``); ids sort by creation time."""
+        if self.order == "most_uncertain":
+            return ("CASE WHEN kind = 'audit' THEN 0 WHEN priority IS NULL THEN 2 ELSE 1 END, "
+                    "CASE WHEN kind = 'audit' THEN 0 ELSE priority END DESC, id")
+        return "id"
 
     def _claimable(self, exclude: Sequence[str]) -> str:
         cond = "(status = 'pending' OR (status = 'claimed' AND claim_deadline < {p}))"
@@ -462,3 +477,15 @@ def backfill_digests(store: SqlStore, cur: Any) -> None:
         except ValueError:
             continue
         cur.execute(store.sql("UPDATE {items} SET case_digest = {p} WHERE id = {p}"), (digest, item_id))
+
+
+def backfill_priorities(store: SqlStore, cur: Any) -> None:
+    """Migration step (schema 4): the review priority of every pending or claimed item."""
+    cur.execute(store.sql("SELECT id, summary_json FROM {items} WHERE status <> 'decided'"))
+    for item_id, summary_json in cur.fetchall():
+        try:
+            priority = review_priority(json.loads(summary_json))
+        except ValueError:
+            continue
+        if priority is not None:
+            cur.execute(store.sql("UPDATE {items} SET priority = {p} WHERE id = {p}"), (priority, item_id))

@@ -19,7 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from demur.serve.errors import Conflict, DemurError, ReviewItemRejected, ReviewStoreUnavailable
-from demur.serve.review.store.sql import Migration, SqlStore, backfill_digests
+from demur.serve.review.store.sql import Migration, SqlStore, backfill_digests, backfill_priorities
 
 __all__ = ["MIGRATIONS", "SqliteStore", "sqlite_errors"]
 
@@ -80,6 +80,11 @@ MIGRATIONS: tuple[Migration, ...] = (
             created REAL NOT NULL
         )""",
     ),
+    (  # 4: the review priority (most_uncertain order)
+        "ALTER TABLE {items} ADD COLUMN priority REAL",
+        backfill_priorities,
+        "CREATE INDEX IF NOT EXISTS demur_review_items_priority_idx ON {items} (status, kind, priority)",
+    ),
 )
 """Index i brings the schema from version i to i + 1; written in SQLite's dialect."""
 
@@ -109,8 +114,8 @@ class SqliteStore(SqlStore):
     migrations = MIGRATIONS
 
     def __init__(self, path: str | os.PathLike[str], *, lease_s: float, busy_timeout_s: float = 10.0,
-                 clock: Callable[[], float] = time.time) -> None:
-        super().__init__(lease_s=lease_s, clock=clock)
+                 clock: Callable[[], float] = time.time, order: str = "oldest") -> None:
+        super().__init__(lease_s=lease_s, clock=clock, order=order)
         self.path = Path(path)
         self._busy_timeout_s = busy_timeout_s
         self._local = threading.local()
@@ -162,7 +167,8 @@ class SqliteStore(SqlStore):
 
     def _claim(self, cur: Any, reviewer: str, now: float, exclude: Sequence[str]) -> Sequence[Any] | None:
         # BEGIN IMMEDIATE already holds the database's write lock: select then update is atomic.
-        cur.execute(self.sql(f"SELECT id FROM {{items}} WHERE {self._claimable(exclude)} ORDER BY id LIMIT 1"),
+        cur.execute(self.sql(f"SELECT id FROM {{items}} WHERE {self._claimable(exclude)} "
+                             f"ORDER BY {self.claim_order} LIMIT 1"),
                     (now, *exclude))
         row = cur.fetchone()
         if row is None:
