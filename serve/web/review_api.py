@@ -266,7 +266,8 @@ def _decided(store: Any, limit: int) -> list[ReviewItem]:
 
 
 def _csv(items: list[ReviewItem]) -> str:
-    """One row per decided item: who, when, the decision, the model's prediction, then the inputs.
+    """One row per decided item: who, when, the decision, the model's prediction, the chance it
+    was sent to people (``inclusion``: recertification weights by it), then the inputs.
 
     Input columns are the bundle's feature names when every item shares them,
     else ``x0, x1, ...`` (the widest item sets the count; shorter rows end early).
@@ -276,7 +277,7 @@ def _csv(items: list[ReviewItem]) -> str:
     shared = next(iter(name_sets)) if len(name_sets) == 1 else ()
     inputs = list(shared) if len(shared) == width else [f"x{i}" for i in range(width)]
     head = ["id", "kind", "model_name", "model_version", "model_checksum", "client_case_id", "created",
-            "decided", "reviewer", "label", "value", "prediction", "note"]
+            "decided", "reviewer", "label", "value", "prediction", "note", "inclusion"]
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\n")
     writer.writerow(head + inputs)
@@ -285,9 +286,18 @@ def _csv(items: list[ReviewItem]) -> str:
         text = [it.id, it.kind, it.model_name, it.model_version, it.model_checksum, it.client_case_id or "",
                 d["created"], d["decision"]["decided"], it.decided_by or "",
                 it.label if it.label is not None else "", "" if it.value is None else repr(it.value),
-                it.prediction or "", it.note or ""]
+                it.prediction or "", it.note or "", _inclusion(it)]
         writer.writerow([_safe_cell(str(cell)) for cell in text] + [repr(float(v)) for v in it.case.get("values", [])])
     return buf.getvalue()
+
+
+def _inclusion(item: ReviewItem) -> str:
+    """The chance the item was sent to people: 1 for an abstention, the audit fraction for an
+    audit (recorded in its summary since this release; empty when an older item lacks it)."""
+    value = item.summary.get("inclusion") if isinstance(item.summary, dict) else None
+    if isinstance(value, (int, float)) and not isinstance(value, bool):
+        return repr(float(value))
+    return "1.0" if item.kind == "abstain" else ""
 
 
 _NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?|[+-]?(?:inf|nan)")
