@@ -211,6 +211,28 @@ def test_agreement_counts_label_matches_and_interval_coverage(store: ReviewStore
     assert stats["abstain"] == {"decided": 1, "labelled": 1, "agree": 1, "valued": 0, "covered": 0}
 
 
+def test_audit_tallies_per_model(store: ReviewStore) -> None:
+    """The audit series' source: per model checksum and kind, decided items with a label or a
+    value and how many the model had right; pending items are not counted."""
+    store.enqueue([item("audit", prediction="7", checksum="m1") for _ in range(3)]
+                  + [item("abstain", prediction="1", checksum="m1") for _ in range(2)]
+                  + [item("audit", prediction="4", checksum="m2")]
+                  + [item("audit", prediction="2.5", interval=(1.0, 4.0), task="regression", checksum="m3")]
+                  + [item("audit", prediction="7", checksum="m1")])  # stays pending
+    # FIFO claim order is the enqueue order: m1 audits, m1 abstentions, m2, m3 (the last m1 audit stays)
+    for verdict in ["7", "7", "3", "1", "5", "4", 3.0]:
+        got = store.claim_next("r")
+        if isinstance(verdict, float):
+            store.decide(got.id, "r", value=verdict)
+        else:
+            store.decide(got.id, "r", label=verdict)
+    tallies = {t.model_checksum: t for t in store.audit_tallies()}
+    assert (tallies["m1"].audit_decided, tallies["m1"].audit_agree) == (3, 2)
+    assert (tallies["m1"].abstain_decided, tallies["m1"].abstain_model_right) == (2, 1)
+    assert (tallies["m2"].audit_decided, tallies["m2"].audit_agree) == (1, 1)
+    assert (tallies["m3"].audit_decided, tallies["m3"].audit_agree) == (1, 1)
+
+
 def test_threads_claim_each_item_exactly_once(store: ReviewStore) -> None:
     """8 reviewer threads drain 200 items: every item decided once, by whoever claimed it."""
     items = [item() for _ in range(200)]

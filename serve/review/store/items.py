@@ -24,6 +24,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any, Protocol, runtime_checkable
 
+from demur.serve.core.audit import AuditTally
 from demur.serve.errors import NotFound
 
 __all__ = [
@@ -357,6 +358,11 @@ class ReviewStore(Protocol):
 
     def pending_count(self) -> int:
         """Items waiting for a person (``counts()["pending"]``, cheaper: read for the ceiling)."""
+
+    def audit_tallies(self) -> list[AuditTally]:
+        """Per model checksum, decided items with a label (or a value) by kind, and how many of
+        them the model had right (label equals prediction; value inside the interval): the
+        audit series of /metrics (serve/adapters/audit_metrics.py)."""
 
     def agreement(self) -> dict[str, dict[str, int]]:
         """Per kind, over decided items: ``decided``, ``labelled`` (with a label),

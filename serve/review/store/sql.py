@@ -24,6 +24,7 @@ import time
 from collections.abc import Callable, Iterator, Sequence
 from typing import Any
 
+from demur.serve.core.audit import AuditTally
 from demur.serve.errors import ConfigError, Conflict, NotFound, ReviewItemRejected
 from demur.serve.review.store.items import (
     COLUMNS,
@@ -419,6 +420,29 @@ class SqlStore:
             out[kind] = {"decided": int(n), "labelled": int(labelled or 0), "agree": int(agree or 0),
                          "valued": int(valued or 0), "covered": int(covered or 0)}
         return out
+
+    def audit_tallies(self) -> list[AuditTally]:
+        sql = self.sql(
+            "SELECT model_checksum, kind, "
+            "SUM(CASE WHEN label IS NOT NULL OR value IS NOT NULL THEN 1 ELSE 0 END), "
+            "SUM(CASE WHEN (label IS NOT NULL AND label = prediction) OR (value IS NOT NULL "
+            "AND value >= interval_lower AND value <= interval_upper) THEN 1 ELSE 0 END) "
+            "FROM {items} WHERE status = 'decided' GROUP BY model_checksum, kind"
+        )
+
+        def read(cur: Any) -> list[Any]:
+            cur.execute(sql)
+            return cur.fetchall()
+
+        by_model: dict[str, dict[str, int]] = {}
+        for checksum, kind, decided, right in self._run(read, write=False):
+            row = by_model.setdefault(str(checksum), {})
+            row[f"{kind}_decided"] = int(decided or 0)
+            row[f"{kind}_right"] = int(right or 0)
+        return [AuditTally(checksum, audit_decided=r.get("audit_decided", 0), audit_agree=r.get("audit_right", 0),
+                           abstain_decided=r.get("abstain_decided", 0),
+                           abstain_model_right=r.get("abstain_right", 0))
+                for checksum, r in sorted(by_model.items())]
 
     def ping(self) -> None:
         def read(cur: Any) -> None:

@@ -9,7 +9,7 @@ is the one production front.
 
 Why not a maintained ASGI server instead (issue 16): ``demur bench`` runs uvicorn (HTTP parsed
 by httptools) under gunicorn's process management, with an asyncio batcher for predict and the
-Flask app through a WSGI adapter (export/bench_asgi.py), against this front with the same
+Flask app through a WSGI adapter (export/bench/asgi.py), against this front with the same
 sizing, alternated in one run. The rule was to adopt it within 15% of this front's one-case
 requests/s; it reached 56% (898 against 1,598 req/s, p99 53 against 33 ms; 1.07 ms of server
 CPU per request against 0.60, where the difference goes was not profiled), while matching this

@@ -14,7 +14,7 @@ What is measured (``_http_section``):
   ``(workers, threads, onnxruntime threads, batch wait ms)``, one-case and 64-case requests
   at S = 32; the chosen sizing has the most one-case requests/s (p99 within target, no
   errors) among those within 15% of the best 64-case rows/s;
-* with the chosen sizing: the flip graph; the maintained ASGI server (export/bench_asgi.py:
+* with the chosen sizing: the flip graph; the maintained ASGI server (export/bench/asgi.py:
   uvicorn with httptools under gunicorn's process management, an asyncio batcher, the Flask
   app through a WSGI adapter) against the loop front, alternated in ``front_rounds`` rounds,
   one-case and 64-case; the engine alone in the same processes x threads (the ceiling for
@@ -56,7 +56,7 @@ CLIENTS = 32
 FRONT_RULE = 0.85
 """The ASGI server is adopted when its one-case requests/s >= FRONT_RULE x the loop front's."""
 MODEL_ENV = "DEMUR_BENCH_TORCH_MODEL"  # read by torch_app() in the baseline server's workers
-_P99_MS = 30.0                         # the one-case p99 target (TARGETS in export/bench.py)
+_P99_MS = 30.0                         # the one-case p99 target (TARGETS in export/bench/engine.py)
 
 
 def child_env(**extra: str) -> dict[str, str]:
@@ -189,7 +189,7 @@ def _asgi_argv(port: int, workers: int) -> list[str]:
     # the access log on, as the loop front's: both write one line per request
     return [sys.executable, "-m", "gunicorn", "-k", "uvicorn_worker.UvicornWorker", "--workers", str(workers),
             "--bind", f"127.0.0.1:{port}", "--keep-alive", "5", "--access-logfile", "-", "--log-level", "warning",
-            "demur.export.bench_asgi:app_from_environment()"]
+            "demur.export.bench.asgi:app_from_environment()"]
 
 
 def _asgi_env(bundle: Bundle, workers: int, threads: int, ort: int, graph: str, data: Path) -> dict[str, str]:
@@ -203,7 +203,7 @@ def _asgi_env(bundle: Bundle, workers: int, threads: int, ort: int, graph: str, 
 def _torch_argv(port: int, workers: int, threads: int) -> list[str]:
     return [sys.executable, "-m", "gunicorn", "--bind", f"127.0.0.1:{port}", "--workers", str(workers),
             "--threads", str(threads), "--worker-class", "gthread", "--log-level", "warning",
-            "demur.export.bench_http:torch_app()"]
+            "demur.export.bench.http:torch_app()"]
 
 
 _RATE_DEMUR = """
@@ -360,7 +360,7 @@ def http_section(bundle: Bundle, S: int, xs: np.ndarray, model_file: Path, workd
 
 # -- the baseline server ---------------------------------------------------------------------
 def baseline_model(path: str) -> tuple[Any, dict[str, Any]]:
-    """The bench's MLP and input spec from the file ``export/bench.py`` saved (torch, eval mode)."""
+    """The bench's MLP and input spec from the file ``export/bench/engine.py`` saved (torch, eval mode)."""
     import torch
 
     from demur.export.layers import build_model
@@ -375,7 +375,7 @@ def baseline_model(path: str) -> tuple[Any, dict[str, Any]]:
 def torch_app() -> Any:
     """The obvious server a user would write: Flask, a torch loop of S sampled forward passes.
 
-    gunicorn factory (``demur.export.bench_http:torch_app()``); reads the model file named
+    gunicorn factory (``demur.export.bench.http:torch_app()``); reads the model file named
     by ``DEMUR_BENCH_TORCH_MODEL`` and S from ``DEMUR_BENCH_DRAWS`` when called
     (in each worker). Same request body as demur's predict route; answers mean
     probabilities, predicted label and mutual information per case.

@@ -12,7 +12,7 @@ only S = 32; the JSON has the same shape):
   (fresh normals fed per call), the flip graph with a fresh base per call
   (``export/flip.py``); against a torch loop of S sampled forward
   passes (the obvious code) and torch with S pre-sampled weight sets batched;
-* the conv nets of export/bench_conv.py (a user's own architecture: conv stem,
+* the conv nets of export/bench/conv.py (a user's own architecture: conv stem,
   max-pool, residual blocks with batch norm and GELU), exported through
   ``demur.export.export_model`` as stacked and flip at S = 32: latency at each B,
   file bytes over parameter bytes, beside the MLP's;
@@ -20,7 +20,7 @@ only S = 32; the JSON has the same shape):
   B = 64, S = 32, as a share of the engine time;
 * memory per mode: graph file bytes (and their ratio to the parameter count
   x 4 bytes) and the resident set of a fresh process that loaded it;
-* HTTP on 127.0.0.1 with Debian's ``wrk`` (export/bench_http.py): the loop
+* HTTP on 127.0.0.1 with Debian's ``wrk`` (export/bench/http.py): the loop
   front's sizings, the maintained ASGI server against it (the one-front rule
   of issue 16), and a minimal Flask app running the torch loop behind gunicorn
   with the same workers and threads.
@@ -35,7 +35,6 @@ path (the review queue has its own tests).
 
 from __future__ import annotations
 
-import argparse
 import datetime as _dt
 import json
 import math
@@ -58,13 +57,13 @@ from demur.serve.core.decision import DecisionRule, decide
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.summary import summarise
 
-from demur.export.bench_conv import conv_section
-from demur.export.bench_http import CLIENTS, FRONT_RULE, child_env, http_section
+from demur.export.bench.conv import conv_section
+from demur.export.bench.http import CLIENTS, FRONT_RULE, child_env, http_section
 from demur.export.draws import DrawNetwork
 from demur.export.errors import ExportError
 from demur.export.graphs import export_graph
 
-__all__ = ["BENCH_FORMAT", "TARGETS", "format_table", "register", "run_bench"]
+__all__ = ["BENCH_FORMAT", "TARGETS", "format_table", "run_bench", "save_result"]
 
 BENCH_FORMAT = "demur-bench/2"
 
@@ -97,7 +96,7 @@ TARGETS = {
 # -- settings -------------------------------------------------------------------
 def _settings(quick: bool) -> dict[str, Any]:
     """worker_models: loop-front sizings (workers, threads, onnxruntime threads, batch wait ms);
-    front_rounds: alternated loop / ASGI one-case runs; conv_nets: names in bench_conv.CONV_NETS."""
+    front_rounds: alternated loop / ASGI one-case runs; conv_nets: names in bench.conv.CONV_NETS."""
     if quick:
         return {"draws": [32], "batches": [1, 64], "repeats": 3, "budget_s": 0.04, "http_s": 2,
                 "worker_models": [(2, 4, 1, 0.0)], "front_rounds": 1, "rss": True,
@@ -147,7 +146,7 @@ def _load_model(checkpoint: Path | None) -> tuple[Any, dict[str, Any], bool]:
     from demur.export.layers import build_model
 
     if checkpoint is not None:
-        from demur.export.training import load_checkpoint
+        from demur.export.checkpoints import load_checkpoint
 
         model, meta = load_checkpoint(checkpoint)
         if isinstance(model, list):
@@ -277,7 +276,7 @@ def rss():
         if line.startswith('VmRSS:'):
             return int(line.split()[1]) * 1024
 base = rss()
-from demur.export.bench_http import baseline_model
+from demur.export.bench.http import baseline_model
 model, spec = baseline_model(sys.argv[1])
 with torch.no_grad():
     torch.stack([model(torch.zeros(64, 64)) for _ in range(int(sys.argv[2]))])
@@ -485,7 +484,7 @@ def format_table(result: dict[str, Any]) -> str:
         lat = r["latency_ms"]
         lines.append(f"{r['mode']:>14} {r['draws']:>4} {r['batch']:>3} {lat['median']:9.3f} "
                      f"{lat['min']:9.3f}-{lat['max']:<9.3f} {r['rows_per_s']:10.0f}")
-    lines += ["", "conv nets through export_model (export/bench_conv.py), 1 onnxruntime thread, latency ms per "
+    lines += ["", "conv nets through export_model (export/bench/conv.py), 1 onnxruntime thread, latency ms per "
                   "call; flip / stacked beside; file bytes / parameter bytes"]
     for net in result["conv"]:
         stacked = {r["batch"]: r["latency_ms"]["median"] for r in net["engine"] if r["mode"] == "stacked"}
@@ -528,7 +527,7 @@ def format_table(result: dict[str, Any]) -> str:
                      f"{c['ort_threads']} onnxruntime threads, batch wait {c['batch_wait_ms']:g} ms")
         f = http["fronts"]
         lines += ["", f"one production front (issue 16): loop front vs maintained ASGI server (uvicorn + httptools "
-                      f"under gunicorn, export/bench_asgi.py), same sizing, {f['rounds']} alternated one-case "
+                      f"under gunicorn, export/bench/asgi.py), same sizing, {f['rounds']} alternated one-case "
                       "round(s)"]
         lines += [_http_row(r) for r in f["runs"]]
         lo, asg = f["loop"], f["asgi"]
@@ -561,32 +560,11 @@ def _http_row(r: dict[str, Any]) -> str:
 
 
 # -- command line ----------------------------------------------------------------------------
-def register(subparsers: argparse._SubParsersAction) -> None:
-    """Add ``demur bench`` to the ``demur`` command."""
-    p = subparsers.add_parser("bench", help="measure demur against the obvious alternatives (prints ratios)",
-                              description="Engine-level and HTTP benchmark on this machine; writes a JSON file "
-                                          "and prints a table. --quick finishes in about a minute.")
-    p.add_argument("--quick", action="store_true", help="fewer repeats, S = 32 only, short HTTP runs")
-    p.add_argument("--checkpoint", type=Path, default=None, help="a trained MLP checkpoint directory "
-                   "(default: the untrained 64-256-256-10 radial MLP)")
-    p.add_argument("--out", type=Path, default=Path("bench.json"), help="JSON result (default bench.json)")
-    p.add_argument("--table", type=Path, default=None, help="also write the printed table to this file")
-    p.add_argument("--no-http", action="store_true", help="skip the HTTP section")
-    p.add_argument("--workdir", type=Path, default=None, help="keep bundles and server logs here")
-    p.set_defaults(func=_run)
-
-
-def _run(args: argparse.Namespace) -> int:
-    result = run_bench(quick=args.quick, checkpoint=args.checkpoint, http=not args.no_http, workdir=args.workdir,
-                       log=lambda m: print(m, file=sys.stderr, flush=True))
-    args.out.parent.mkdir(parents=True, exist_ok=True)
-    args.out.write_text(json.dumps(result, indent=2, default=_json_default) + "\n")
-    table = format_table(result)
-    print(table)
-    if args.table:
-        args.table.parent.mkdir(parents=True, exist_ok=True)
-        args.table.write_text(table + "\n")
-    return 0
+def save_result(result: dict[str, Any], out: Path) -> Path:
+    """Write ``run_bench``'s result to ``out`` as JSON (NumPy numbers as plain ones, NaN as null)."""
+    out.parent.mkdir(parents=True, exist_ok=True)
+    out.write_text(json.dumps(result, indent=2, default=_json_default) + "\n")
+    return out
 
 
 def _json_default(value: Any) -> Any:

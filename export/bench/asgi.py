@@ -11,7 +11,7 @@ Kept with the benchmark, not in the runtime: the loop front is the one productio
 unless a run shows this within 15% of its one-case requests/s (serve/web/loop/worker.py has
 the measured reason). Start it the way the benchmark does::
 
-    gunicorn -k uvicorn_worker.UvicornWorker --workers 2 'demur.export.bench_asgi:app_from_environment()'
+    gunicorn -k uvicorn_worker.UvicornWorker --workers 2 'demur.export.bench.asgi:app_from_environment()'
 """
 
 from __future__ import annotations

@@ -1,4 +1,4 @@
-"""export/bench.py: a tiny ``demur bench`` run has the documented JSON shape.
+"""export/bench/engine.py: a tiny ``demur bench`` run has the documented JSON shape.
 
 No timing is asserted (speed is for the benchmark itself, as ratios): these
 tests check that every section, ratio and target is present and well formed.
@@ -16,7 +16,7 @@ from typing import Any
 
 import pytest
 
-from demur.export.bench import BENCH_FORMAT, TARGETS, format_table, run_bench
+from demur.export.bench.engine import BENCH_FORMAT, TARGETS, format_table, run_bench
 from demur.serve.cli import build_parser
 
 TINY = {"draws": [4], "batches": [1, 2], "repeats": 1, "budget_s": 0.0, "rss": False,

@@ -17,7 +17,7 @@ import pytest
 
 import importlib
 
-from demur.export.holdout import calibrate_file
+from demur.export.calibration import calibrate_file
 from demur.serve.core.bundle import load_bundle, write_manifest
 from demur.serve.offline.calibration import select_for_abstain
 from demur.serve.cli import main
@@ -36,7 +36,7 @@ def _tree(path):
     return {p.name: p.read_bytes() for p in sorted(path.iterdir()) if p.is_file()}
 
 
-calibrate_mod = importlib.import_module("demur.export.holdout")
+calibrate_mod = importlib.import_module("demur.export.calibration")
 
 
 def test_impossible_target_leaves_bundle_untouched(tiny_bundle_factory, copy_bundle, capsys, tmp_path):
@@ -172,7 +172,7 @@ def test_diabetes_interval_is_wider_out_of_range_and_still_covers(diabetes_bundl
     aleatoric floor this model's log-variance head extrapolates downwards and the served interval
     was NARROWER there (measured while writing: mean width 200 in range vs 185 out of range,
     aleatoric sd 48.6 -> 3.4 target units); with the floor (median aleatoric variance of the
-    validation split, export/holdout.py FLOOR_QUANTILE) it is 203 vs 243.
+    validation split, export/calibration.py FLOOR_QUANTILE) it is 203 vs 243.
 
     Coverage: the floor comes from the validation split, so it is fixed with respect to the
     calibration and test splits; over 300 random half/half splits of the held-out pool (cal + test,
