@@ -9,7 +9,7 @@ no 5xx, documented status codes, content types and response schemas, every body 
 document allows accepted (positive data acceptance), every body it forbids refused
 with a 4xx (negative data rejection), auth not ignored, ``Allow`` matching the
 document. Bounded: ``MAX_EXAMPLES`` per operation and phase, one worker, a fixed seed
-(reproducible; ``DEMUR_FUZZ_SEED`` changes it). The server abstains on every case
+(reproducible; ``DEMUR_FUZZ_SEED`` changes it, ``DEMUR_FUZZ_EXAMPLES`` the count). The server abstains on every case
 (threshold -1; mutual information is >= 0) so predictions fill the review queue the
 stateful phase claims and decides from.
 
@@ -39,7 +39,8 @@ pytestmark = [pytest.mark.slow]
 
 ROOT = Path(__file__).resolve().parents[2]
 ST = Path(sys.executable).with_name("st")
-MAX_EXAMPLES = 25
+MAX_EXAMPLES = int(os.environ.get("DEMUR_FUZZ_EXAMPLES", "25"))
+"""Examples per operation and phase; DEMUR_FUZZ_EXAMPLES=500 for a long run by hand."""
 TOKENS = {"predict": "fuzz-predict-token-5b1e", "review": "fuzz-review-token-0c7d", "admin": "fuzz-admin-token-9a44"}
 DOC = json.loads((ROOT / "serve" / "web" / "openapi.json").read_text())
 
