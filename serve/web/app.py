@@ -33,7 +33,7 @@ from demur.serve.adapters.metrics import Metrics
 from demur.serve.config import ServeConfig
 from demur.serve.core.bundle import load_bundle
 from demur.serve.core.pipeline import CAUTION, Runtime
-from demur.serve.errors import DemurError, PayloadTooLarge
+from demur.serve.errors import DemurError, PayloadTooLarge, Refused, internal_error
 from demur.serve.review.router import ReviewRouter
 from demur.serve.web import predict_http
 from demur.serve.web.admin import install_admin
@@ -187,23 +187,16 @@ def _install_errors(app: Flask, runtime: Runtime) -> None:
             message = f"{request.method} is not allowed on {request.path}"
             if allowed:
                 message += f"; use {', '.join(m for m in allowed if m not in ('HEAD', 'OPTIONS'))}"
-            return answer(_HttpError(405, "method_not_allowed", message, "method"),
+            return answer(Refused(405, "method_not_allowed", message, "method"),
                           [("Allow", ", ".join(allowed))] if allowed else None)
         if status == 404:
-            return answer(_HttpError(404, "not_found", f"no route {request.path}; see /openapi.json", "path"))
+            return answer(Refused(404, "not_found", f"no route {request.path}; see /openapi.json", "path"))
         code = (exc.name or "error").lower().replace(" ", "_").replace("'", "")
-        return answer(_HttpError(status, code, exc.description or exc.name, None))
+        return answer(Refused(status, code, exc.description or exc.name, None))
 
     @app.errorhandler(Exception)
     def _unexpected(exc: Exception) -> Response:
         log.error("unhandled error on %s %s", request.method, request.path, exc_info=exc)
-        return answer(_HttpError(500, "internal", "internal error; the server log has the details", None))
+        return answer(internal_error())
 
 
-class _HttpError(DemurError):
-    """A werkzeug routing error (404, 405, ...) carried through the one error path."""
-
-    def __init__(self, status: int, code: str, message: str, field: str | None) -> None:
-        super().__init__(message, field=field)
-        self.status = status
-        self.code = code

@@ -29,7 +29,7 @@ from typing import Any
 
 from demur.serve.config import ServeConfig
 from demur.serve.core.pipeline import Runtime
-from demur.serve.errors import DemurError, Overloaded
+from demur.serve.errors import DemurError, Overloaded, internal_error
 from demur.serve.web.predict_http import Admitted, Headers, refusal, reply
 
 __all__ = ["DEFAULT_ROWS", "ROWS_BY_KIND", "Batcher", "rows_cap"]
@@ -53,12 +53,7 @@ def rows_cap(config: ServeConfig, kind: str | None) -> int:
     return config.batch_max_rows or ROWS_BY_KIND.get(kind or "", DEFAULT_ROWS)
 
 
-class _Internal(DemurError):
-    status = 500
-    code = "internal"
-
-
-_INTERNAL = _Internal("internal error; the server log has the details")
+_INTERNAL = internal_error()
 
 
 class Batcher:
