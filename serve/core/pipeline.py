@@ -23,6 +23,7 @@ Example::
 
 from __future__ import annotations
 
+import functools
 import logging
 import threading
 import time
@@ -72,6 +73,11 @@ class Live:
     def manifest(self) -> Any:
         return self.engine.manifest
 
+    @functools.cached_property
+    def decision_rule(self) -> dict[str, Any]:
+        """The rule in force as every answer and ``GET /v1/model`` show it, built once per model."""
+        return {"score": self.rule.score, "threshold": self.rule.threshold, "source": self.rule.source}
+
 
 @dataclass(frozen=True)
 class Answered:
@@ -100,7 +106,8 @@ class ReviewHook(Protocol):
 
 
 class MetricsHook(Protocol):
-    """What the pipeline and the fronts report to (serve/adapters/metrics.py implements it)."""
+    """Everything the pipeline and the fronts report (serve/adapters/metrics.py implements it).
+    Callers go through ``Runtime.monitor``, which guards every call once."""
 
     def bind_model(self, bundle: Any, rule: DecisionRule) -> None: ...
 
@@ -108,6 +115,10 @@ class MetricsHook(Protocol):
                         graph_seconds: float, total_seconds: float) -> None: ...
 
     def observe_error(self, *, status: int, code: str, endpoint: str | None) -> None: ...
+
+    def observe_request(self, route: str, method: str, status: int, seconds: float) -> None: ...
+
+    def observe_connection_refused(self) -> None: ...
 
 
 class _NoReview:
@@ -127,6 +138,43 @@ class _NoMetrics:
 
     def observe_error(self, **_: Any) -> None:
         return None
+
+    def observe_request(self, route: str, method: str, status: int, seconds: float) -> None:
+        return None
+
+    def observe_connection_refused(self) -> None:
+        return None
+
+
+class _Guarded:
+    """The metrics hook behind one guard: a failing metric is logged, never costs an answer,
+    a connection or a roll-out. Every caller (pipeline, fronts, error handler) goes through it."""
+
+    def __init__(self, hook: MetricsHook) -> None:
+        self.hook = hook
+
+    def _call(self, fn: Callable[..., None], *args: Any, **kwargs: Any) -> None:
+        try:
+            fn(*args, **kwargs)
+        except Exception:  # metrics must never cost an answer
+            log.exception("metrics hook failed")
+
+    def bind_model(self, bundle: Any, rule: DecisionRule) -> None:
+        self._call(self.hook.bind_model, bundle, rule)
+
+    def observe_predict(self, *, x_raw: np.ndarray, summary: Summary, decisions: Verdicts,
+                        graph_seconds: float, total_seconds: float) -> None:
+        self._call(self.hook.observe_predict, x_raw=x_raw, summary=summary, decisions=decisions,
+                   graph_seconds=graph_seconds, total_seconds=total_seconds)
+
+    def observe_error(self, *, status: int, code: str, endpoint: str | None) -> None:
+        self._call(self.hook.observe_error, status=status, code=code, endpoint=endpoint)
+
+    def observe_request(self, route: str, method: str, status: int, seconds: float) -> None:
+        self._call(self.hook.observe_request, route, method, status, seconds)
+
+    def observe_connection_refused(self) -> None:
+        self._call(self.hook.observe_connection_refused)
 
 
 class ModelSlot:
@@ -184,10 +232,11 @@ class Runtime:
         self.slot = ModelSlot()
         self.review: ReviewHook = review if review is not None else _NoReview()
         self.metrics: MetricsHook = metrics if metrics is not None else _NoMetrics()
+        self.monitor: MetricsHook = _Guarded(self.metrics)  # how everyone reports: one guard
         self._load_engine = load_engine
         self.model_extras: list[Callable[[], dict[str, Any]]] = []
         self.started_at = time.time()
-        self.slot.subscribe(lambda live: self.metrics.bind_model(live.engine.bundle, live.rule))
+        self.slot.subscribe(lambda live: self.monitor.bind_model(live.engine.bundle, live.rule))
 
     # -- models ------------------------------------------------------------------
     def build_engine(self, bundle_path: str | None = None) -> Any:
@@ -279,18 +328,14 @@ class Runtime:
         decisions = decide(summary, live.rule, support=live.support, x_raw=req.x)
         results = render.results(summary, decisions, live.rule, manifest.labels, req.case_ids)
         self._annotate(Answered(live, req, summary, decisions, results, caller))
-        rule = {"score": live.rule.score, "threshold": live.rule.threshold, "source": live.rule.source}
         draw_count = int(draws.shape[0])
         start = 0
         for i, r in valid:
             answers[i] = {"model": live.model, "results": results[start:start + r.size], "draws": draw_count,
-                          "decision_rule": rule}
+                          "decision_rule": live.decision_rule}
             start += r.size
-        try:
-            self.metrics.observe_predict(x_raw=req.x, summary=summary, decisions=decisions,
-                                         graph_seconds=t2 - t1, total_seconds=time.perf_counter() - t0)
-        except Exception:  # metrics must never cost an answer
-            log.exception("metrics hook failed")
+        self.monitor.observe_predict(x_raw=req.x, summary=summary, decisions=decisions,
+                                     graph_seconds=t2 - t1, total_seconds=time.perf_counter() - t0)
         return live, answers
 
     def _annotate(self, answered: Answered) -> None:
@@ -324,8 +369,7 @@ class Runtime:
             "graph": live.engine.kind,
             "draws": live.engine.draws,
             "interval_level": live.level,
-            "decision_rule": {"score": live.rule.score, "threshold": live.rule.threshold,
-                              "source": live.rule.source},
+            "decision_rule": live.decision_rule,
             "calibration": m.decision.calibration,
             "support": live.support.describe() if live.support is not None else {
                 "checked": False, "reason": "this bundle has no support record (exported before the support "

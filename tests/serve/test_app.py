@@ -182,6 +182,7 @@ class _Metrics:
         self.predicts: list[dict[str, Any]] = []
         self.errors: list[dict[str, Any]] = []
         self.bound: list[Any] = []
+        self.requests: list[tuple[str, int]] = []
 
     def bind_model(self, bundle: Any, rule: Any) -> None:
         self.bound.append((bundle.checksum, rule.score))
@@ -192,8 +193,17 @@ class _Metrics:
     def observe_error(self, **kw: Any) -> None:
         self.errors.append(kw)
 
-    def install(self, app: Any, runtime: Any, review: Any = None) -> None:
-        """What create_app calls on its metrics (the real one adds /metrics); nothing here."""
+    def observe_request(self, route: str, method: str, status: int, seconds: float) -> None:
+        self.requests.append((route, status))
+
+    def observe_connection_refused(self) -> None:
+        return None
+
+    def attach(self, runtime: Any, *, review: Any = None, routes: Any = None) -> None:
+        """What serve/web/metrics_http.py calls when create_app composes its metrics."""
+
+    def exposition(self) -> tuple[bytes, str]:
+        return b"", "text/plain"
 
 
 def test_review_and_metrics_hooks(tiny_bundle_factory: Any, make_app: Any) -> None:
