@@ -53,7 +53,7 @@ from demur.serve.offline.evaluation import (
     write_evaluation,
 )
 
-from demur.serve.offline.chunked import draws_in_chunks
+from demur.serve.offline.chunked import chunks
 
 from demur.export.cases import (
     builtin_splits,
@@ -83,10 +83,15 @@ def _served(bundle: Bundle, x: np.ndarray, y: np.ndarray, shifts: dict[str, np.n
     support = support_from_manifest(m)
 
     def run(xs: np.ndarray) -> tuple[dict[str, np.ndarray], np.ndarray, np.ndarray]:
-        xs = xs.reshape(-1, *m.inputs.shape)
-        s = summarise(m.task, draws_in_chunks(engine, xs), m.interval_level, m.target)
-        d = decide(s, rule, support=support, x_raw=xs)
-        return scores_of(s.mean_probs, s.mutual_information), ~d.abstain, s.mean_probs
+        probs, mi, accept = [], [], []
+        for xb in chunks(xs.reshape(-1, *m.inputs.shape)):
+            s = summarise(m.task, engine.run(xb), m.interval_level, m.target)
+            d = decide(s, rule, support=support, x_raw=xb)
+            probs.append(s.mean_probs)
+            mi.append(s.mutual_information)
+            accept.append(~d.abstain)
+        p = np.concatenate(probs)
+        return scores_of(p, np.concatenate(mi)), np.concatenate(accept), p
 
     clean, accept, probs = run(x)
     shifted = {name: run(xs)[:2] for name, xs in shifts.items()}
