@@ -37,19 +37,21 @@ Examples (the parcel depot's postcode digits)::
 from __future__ import annotations
 
 import copy
+import dataclasses
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
+from types import SimpleNamespace
 from typing import Any
 
 import numpy as np
 
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.bundle import SCORE_TASKS, SCORE_UNITS, Bundle, load_bundle, write_manifest
-from demur.serve.core.decision import score_values
+from demur.serve.core.decision import DecisionRule, ServedRule, Verdicts, score_values
 from demur.serve.core.drift import score_reference
 from demur.serve.core.summary import conformal_variance, summarise
-from demur.serve.core.support import recalibrated
+from demur.serve.core.support import recalibrated, support_from_manifest
 from demur.serve.errors import CalibrationInfeasible, ConfigError
 from demur.serve.offline.calibration import (
     DEFAULT_MAX_ABSTAIN,
@@ -57,14 +59,13 @@ from demur.serve.offline.calibration import (
     batch_spread,
     calibration_record,
     check_feasible,
-    classification_metrics,
     conformal_scale,
     fingerprint,
-    regression_metrics,
     select_for_abstain,
     select_for_accuracy,
 )
 from demur.serve.offline.chunked import draws_in_chunks
+from demur.serve.offline.metrics import classification_metrics, regression_metrics
 from demur.serve.offline.report import ClassificationPlots, RegressionPlots, write_report
 
 from demur.export.cases import (
@@ -100,14 +101,17 @@ small departure from exact exchangeability, said so in the record."""
 @dataclass(frozen=True)
 class CalibrationOutcome:
     """What ``calibrate_file`` did: the calibration ``record`` now in the manifest, the new
-    ``checksum`` (seal), the report.json path (or None), every ``figure`` reported and the
-    ``notes`` (warnings) printed beside them."""
+    ``checksum`` (seal), the report.json path (or None), every ``figure`` reported, the
+    ``notes`` (warnings) printed beside them, and the served rule's per-case ``verdicts`` on the
+    calibration cases (``Verdicts``: abstain, outside, in row order after any rows dropped) as
+    the rewritten bundle's ``ServedRule`` decides them, the figures the server gives."""
 
     record: dict[str, Any]
     checksum: str
     report: str | None
     figures: dict[str, Any]
     notes: tuple[str, ...] = ()
+    verdicts: Verdicts | None = None
 
 
 # -- the Python API -----------------------------------------------------------------
@@ -213,6 +217,8 @@ def _calibrate(b: Bundle, cal: Cases, check: Cases | None, floor_x: np.ndarray |
                      "cases only")
 
     engine = Engine(b, graph=graph, seed=engine_seed).load()
+    support = recalibrated(m.support.record, m.inputs, cal.x) if m.support is not None else None
+    served = _served_rule(m, score, support)
     d_cal = draws_in_chunks(engine, cal.x)
     d_test = draws_in_chunks(engine, check.x) if check is not None else None
     data_info: dict[str, Any] = {
@@ -230,7 +236,8 @@ def _calibrate(b: Bundle, cal: Cases, check: Cases | None, floor_x: np.ndarray |
 
     if m.task == "classification":
         s_cal = summarise("classification", d_cal, m.interval_level, m.target)
-        sc_cal, ok_cal = score_values(s_cal, score), s_cal.prediction == cal.y
+        sc_cal, out_cal = served.ranking(s_cal, cal.x)
+        ok_cal = s_cal.prediction == cal.y
         figures["calibration_split"] = classification_metrics(s_cal.mean_probs, cal.y, sc_cal)
         # the plots show the check when there is one, else the calibration cases (said in the report)
         if check is not None:
@@ -240,11 +247,12 @@ def _calibrate(b: Bundle, cal: Cases, check: Cases | None, floor_x: np.ndarray |
             s_v, y_v, sc_v = s_cal, cal.y, sc_cal
         ok_v = s_v.prediction == y_v
         try:
+            ranked = np.where(out_cal, np.inf, sc_cal)  # the served rule as one number
             if target_accuracy is not None:
-                choice = select_for_accuracy(sc_cal, ok_cal, target_accuracy, round(1.0 - confidence, 12),
+                choice = select_for_accuracy(ranked, ok_cal, target_accuracy, round(1.0 - confidence, 12),
                                              max_abstain=max_abstain, method=method)
             else:
-                choice = select_for_abstain(sc_cal, float(target_abstain), ok_cal)
+                choice = select_for_abstain(ranked, float(target_abstain), ok_cal)
         except CalibrationInfeasible as exc:
             figures.update(status="infeasible", message=exc.message, notes=notes,
                            test=classification_metrics(s_v.mean_probs, y_v, sc_v) if check is not None else None)
@@ -254,7 +262,10 @@ def _calibrate(b: Bundle, cal: Cases, check: Cases | None, floor_x: np.ndarray |
                     split="test" if check is not None else "calibration"))
             raise
         record = calibration_record(choice, score=score, data=data_info)
-        test = classification_metrics(s_v.mean_probs, y_v, sc_v, choice.threshold) if check is not None else None
+        record["achieved"].update(_support_share(out_cal, sc_cal > choice.threshold))
+        test = classification_metrics(s_v.mean_probs, y_v, sc_v) if check is not None else None
+        if test is not None:
+            test["at_threshold"] = _served_figures(served, choice.threshold, s_v, check.x, ok_v)
         record["test"] = test["at_threshold"] if test else None
         if choice.accuracy_bound is not None:
             record["batch"] = {
@@ -270,22 +281,23 @@ def _calibrate(b: Bundle, cal: Cases, check: Cases | None, floor_x: np.ndarray |
     else:
         coverage = m.interval_level if coverage is None else float(coverage)
         choice, record, test, plots, new_target, sc_cal = _regression(
-            b, engine, cal, check, floor_x, d_cal, d_test, coverage,
+            b, engine, served, cal, check, floor_x, d_cal, d_test, coverage,
             DEFAULT_REGRESSION_ABSTAIN if target_abstain is None else float(target_abstain), score, unit, data_info)
         figures["calibration_split"] = record.pop("_calibration_metrics")
         raw["target"] = new_target
         raw["interval_level"] = coverage
 
     record["notes"] = list(notes)
-    checksum = _write(b, raw, _manifest_records(raw, score, choice, record, sc_cal, cal.x, m.inputs))
+    checksum = _write(b, raw, _manifest_records(raw, score, choice, record, sc_cal, support))
+    verdicts = _check_served(b.path, cal.x, d_cal, choice)
     model["checksum"] = checksum
     figures.update(status="calibrated", calibration=record, test=test, curve=list(choice.curve), notes=notes)
     report_path = str(write_report(report, figures, plots)) if report else None
     return CalibrationOutcome(record=record, checksum=checksum, report=report_path, figures=figures,
-                              notes=tuple(notes))
+                              notes=tuple(notes), verdicts=verdicts)
 
 
-def _regression(b: Bundle, engine: Engine, cal: Cases, check: Cases | None, floor_x: np.ndarray | None,
+def _regression(b: Bundle, engine: Engine, served: ServedRule, cal: Cases, check: Cases | None, floor_x: np.ndarray | None,
                 d_cal: np.ndarray, d_test: np.ndarray | None, level: float, target_abstain: float,
                 score: str, unit: str, data_info: dict[str, Any]) -> tuple[Any, ...]:
     """Split conformal with the aleatoric floor; returns (choice, record, test, plots, new target, scores)."""
@@ -299,8 +311,8 @@ def _regression(b: Bundle, engine: Engine, cal: Cases, check: Cases | None, floo
     q = conformal_scale(cal.y, raw_cal.mean, sd_cal, 1.0 - level)
     new_target = {**base, "conformal_q": q, "conformal_level": level, "aleatoric_floor": floor}
     s_cal = summarise("regression", d_cal, level, new_target)
-    sc_cal = score_values(s_cal, score)
-    choice = select_for_abstain(sc_cal, target_abstain)
+    sc_cal, out_cal = served.ranking(s_cal, cal.x)
+    choice = select_for_abstain(np.where(out_cal, np.inf, sc_cal), target_abstain)
     v_cases, d_v = (check, d_test) if check is not None else (cal, d_cal)
     raw_v = summarise("regression", d_v, level, base)  # the model's own interval, before conformal
     s_v = summarise("regression", d_v, level, new_target)
@@ -314,10 +326,12 @@ def _regression(b: Bundle, engine: Engine, cal: Cases, check: Cases | None, floo
                  "aleatoric_floor_rule": f"quantile {FLOOR_QUANTILE:g} of the per-case aleatoric variance on "
                                          f"{floor_from} ({len(fx)} cases), target units squared"}
     record = calibration_record(choice, score=score, data=data_info, conformal=conformal)
+    record["achieved"].update(_support_share(out_cal, sc_cal > choice.threshold))
     test = None
     if check is not None:
-        test = regression_metrics(check.y, s_v.mean, s_v.lower, s_v.upper, score_values(s_v, score),
-                                  choice.threshold)
+        test = regression_metrics(check.y, s_v.mean, s_v.lower, s_v.upper)
+        inside = (check.y >= s_v.lower) & (check.y <= s_v.upper)
+        test["at_threshold"] = _served_figures(served, choice.threshold, s_v, check.x, inside, check.y - s_v.mean)
         record["test"] = test["at_threshold"] | {"coverage": test["coverage"], "coverage_before": before}
     else:
         record["test"] = None
@@ -331,7 +345,7 @@ def _regression(b: Bundle, engine: Engine, cal: Cases, check: Cases | None, floo
 
 
 def _manifest_records(raw: dict[str, Any], score: str, choice: ThresholdChoice, record: dict[str, Any],
-                      scores: np.ndarray, x_cal: np.ndarray, inputs: Any) -> dict[str, Any]:
+                      scores: np.ndarray, support: dict[str, Any] | None) -> dict[str, Any]:
     """Every manifest record ``demur calibrate`` writes, assembled in this one place.
 
     Returns the updated sections (``decision``, ``drift_reference``, and ``support``: the
@@ -344,9 +358,54 @@ def _manifest_records(raw: dict[str, Any], score: str, choice: ThresholdChoice, 
     drift = dict(drift) if isinstance(drift, dict) else {}
     drift["score"] = score_reference(score, scores)
     sections: dict[str, Any] = {"decision": dec, "drift_reference": drift}
-    if raw.get("support"):
-        sections["support"] = recalibrated(raw["support"], inputs, x_cal)
+    if support is not None:
+        sections["support"] = support
     return sections
+
+
+def _served_rule(m: Any, score: str, support: dict[str, Any] | None) -> ServedRule:
+    """The rule the bundle will serve, its threshold still open: the support check as it will be
+    written (re-set on the calibration rows) and ``score``. The one rule object
+    (serve/core/decision.py): calibrate certifies exactly what the server runs."""
+    check = support_from_manifest(SimpleNamespace(raw={"support": support}, inputs=m.inputs)) if support else None
+    return ServedRule(DecisionRule(score, 0.0, "calibrated"), check)
+
+
+def _support_share(outside: np.ndarray, above: np.ndarray) -> dict[str, Any]:
+    """The served rule's abstentions split by cause: outside the training data (the support
+    check, whatever the score) and, of the rest, on the score."""
+    n = max(len(outside), 1)
+    return {"outside_training_data": int(outside.sum()), "outside_rate": float(outside.sum() / n),
+            "abstain_on_score": int((above & ~outside).sum())}
+
+
+def _served_figures(served: ServedRule, threshold: float, summary: Any, x: np.ndarray, good: np.ndarray,
+                    err: np.ndarray | None = None) -> dict[str, Any]:
+    """The served rule at ``threshold`` on held-out cases: abstain rate (support check counted
+    separately) and, on accepted cases, accuracy (``good`` = correct) or coverage and RMSE."""
+    v = ServedRule(dataclasses.replace(served.rule, threshold=threshold), served.support).decide(summary, x)
+    keep = ~v.abstain
+    out: dict[str, Any] = {"threshold": float(threshold), "abstain_rate": float(v.abstain.mean()),
+                           "accepted": int(keep.sum()),
+                           **_support_share(v.outside if v.outside is not None else np.zeros(len(keep), bool),
+                                            v.score > threshold)}
+    if err is None:
+        out["accuracy_accepted"] = float(good[keep].mean()) if keep.any() else None
+    else:
+        out["coverage_accepted"] = float(good[keep].mean()) if keep.any() else None
+        out["rmse_accepted"] = float(np.sqrt(np.mean(err[keep] ** 2))) if keep.any() else None
+    return out
+
+
+def _check_served(path: Path, x: np.ndarray, draws: np.ndarray, choice: ThresholdChoice) -> Verdicts:
+    """The rewritten bundle's served rule (``ServedRule.from_manifest``, as the server builds it)
+    must accept exactly the calibration cases the choice counted; else nothing certified is served."""
+    m = load_bundle(path).manifest
+    v = ServedRule.from_manifest(m).decide(summarise(m.task, draws, m.interval_level, m.target), x)
+    if int((~v.abstain).sum()) != choice.accepted:
+        raise RuntimeError(f"the served rule accepts {int((~v.abstain).sum())} calibration cases; calibrate counted "
+                           f"{choice.accepted}: a bug in demur, please report it")
+    return v
 
 
 def _write(b: Bundle, raw: dict[str, Any], sections: dict[str, Any]) -> str:

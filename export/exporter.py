@@ -46,6 +46,7 @@ import secrets
 import shutil
 import sys
 import tempfile
+import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -372,6 +373,7 @@ def _write_checked_graphs(model: Any, root: Path, kind: str, draws: int, seed: i
     manifest's ``graphs`` section and the sampling ``DrawNetwork``."""
     from demur.export.draws import DrawNetwork
     from demur.export.graphs import export_graph
+    from demur.export.shared import SharedComputationNotice
 
     shape = tuple(int(d) for d in spec["shape"])
     x_std = ((ref[:PARITY_ROWS] - np.asarray(spec["center"])) / np.asarray(spec["scale"]))
@@ -384,7 +386,11 @@ def _write_checked_graphs(model: Any, root: Path, kind: str, draws: int, seed: i
         path = root / f"{graph}.onnx"
         export_graph(net, path, name=graph)
         _check_parity(net, path, x_std, seed, graph)
-        section[graph] = {"file": path.name, "draws": net.S, **({"seed": seed} if graph != "means" else {})}
+        section[graph] = {"file": path.name, "draws": net.S, **({"seed": seed} if graph != "means" else {}),
+                          "computation": net.computation}
+        if net.fell_back:  # the graph is right, but the whole network runs S times per case: say so
+            warnings.warn(f"the {graph} graph runs the whole network once per draw, not the draw-free part once: "
+                          f"{net.computation.split(': ', 1)[-1]}", SharedComputationNotice, stacklevel=3)
         main_net = main_net or net
     return section, main_net
 

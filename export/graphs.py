@@ -113,12 +113,15 @@ def _culprit(net: DrawNetwork, x: torch.Tensor, exc: Exception) -> GraphBuildErr
         for mod_name, mod in member.named_modules():
             if not list(mod.children()) and mod_name:
                 hooks.append(mod.register_forward_pre_hook(record(mod_name)))
+    # the per-draw forward calls every module the user wrote (the traced one inlines their forwards)
+    plan, net._plan = net._plan, None
     try:
         with torch.no_grad():
             net(x, *(torch.ones(s.shape) for s in net.noise))
     except Exception as run_exc:  # the forward itself fails in torch: that is the message to show
         message = f"{type(run_exc).__name__}: {run_exc}"
     finally:
+        net._plan = plan
         for h in hooks:
             h.remove()
     for mod_name, mod, args in seen:

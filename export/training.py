@@ -98,7 +98,7 @@ import torch.nn.functional as F
 from torch import nn
 
 from demur.serve.core.drift import feature_reference
-from demur.serve.offline.calibration import expected_calibration_error
+from demur.serve.offline.metrics import expected_calibration_error
 
 from demur.export.datasets import Dataset
 from demur.export.checkpoints import CHECKPOINT_FILE, CHECKPOINT_FORMAT, CHECKPOINT_VERSION, save_checkpoint

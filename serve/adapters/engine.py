@@ -269,8 +269,8 @@ class Engine:
                 draws=int(self.bundle.manifest.graphs[kind].draws),
                 seed=seed if kind in FRESH_KINDS else None,
                 noise=noise,
-                center=np.asarray(spec.center, dtype=np.float64).reshape(spec.shape),
-                scale=np.asarray(spec.scale, dtype=np.float64).reshape(spec.shape),
+                center=np.asarray(spec.center, dtype=np.float32).reshape(spec.shape),
+                scale=np.asarray(spec.scale, dtype=np.float32).reshape(spec.shape),
             )
         return self
 
@@ -282,11 +282,14 @@ class Engine:
 
     # -- running ------------------------------------------------------------------
     def standardise(self, x_raw: Any) -> np.ndarray:
-        """Raw inputs float[B, *shape] (or [B, F]) -> float32[B, *shape], (x - center) / scale."""
+        """Raw inputs float[B, *shape] (or [B, F]) -> float32[B, *shape], (x - center) / scale.
+
+        In float32 (one conversion of the request's numbers; validated requests already are
+        float32): the graph takes float32, and the support check reads this same array."""
         state = self._loaded()
         spec = self.bundle.manifest.inputs
         try:
-            x = np.asarray(x_raw, dtype=np.float64)  # standardise in float64, hand float32 to the graph
+            x = np.asarray(x_raw, dtype=np.float32)
         except (TypeError, ValueError) as exc:
             raise InvalidInput(f"x must be an array of numbers; got {type(x_raw).__name__} ({exc})", field="x") from exc
         if x.ndim < 1 or x.shape[0] < 1:
@@ -297,7 +300,7 @@ class Engine:
             else:
                 raise InvalidInput(f"x must be [B, {', '.join(map(str, spec.shape))}] (or [B, {spec.size}]); "
                                    f"got {list(x.shape)}", field="x")
-        return np.ascontiguousarray((x - state.center) / state.scale, dtype=np.float32)
+        return (x - state.center) / state.scale   # a new C-contiguous float32 array
 
     def _run(self, session: Any, x_std: np.ndarray, what: str, noise: _Noise | None = None) -> np.ndarray:
         feed = {"x": x_std, **noise.draw()} if noise is not None else {"x": x_std}
@@ -306,8 +309,13 @@ class Engine:
 
     def run(self, x_raw: Any) -> np.ndarray:
         """float[B, *shape] raw inputs -> float32[S, B, K] draws from the chosen graph."""
+        return self.run_standardised(self.standardise(x_raw))
+
+    def run_standardised(self, x_std: np.ndarray) -> np.ndarray:
+        """``standardise``'s output float32[B, *shape] -> float32[S, B, K] (the pipeline keeps
+        ``x_std`` for the support check, so a request is standardised once)."""
         state = self._loaded()
-        return self._run(state.session, self.standardise(x_raw), state.kind, state.noise)
+        return self._run(state.session, x_std, state.kind, state.noise)
 
     # -- description --------------------------------------------------------------
     @property

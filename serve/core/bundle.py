@@ -195,6 +195,20 @@ class DecisionSection:
         ok = isinstance(rate, (int, float)) and not isinstance(rate, bool) and 0.0 <= float(rate) <= 1.0
         return float(rate) if ok else None
 
+    @property
+    def certificate(self) -> tuple[float, float] | None:
+        """(target accuracy of accepted cases, confidence) the calibration certified, or None
+        (uncalibrated, or calibrated for an abstention rate, which certifies no accuracy)."""
+        cal = self.calibration or {}
+        target = (cal.get("target") or {}).get("accuracy") if isinstance(cal.get("target"), dict) else None
+        delta = cal.get("delta")
+        if cal.get("bound") is None or not all(isinstance(v, (int, float)) and not isinstance(v, bool)
+                                               for v in (target, delta)):
+            return None
+        if not (0.0 < float(target) < 1.0 and 0.0 < float(delta) < 1.0):
+            return None
+        return float(target), 1.0 - float(delta)
+
 
 @dataclass(frozen=True)
 class TrainingData:

@@ -4,7 +4,7 @@ Data flows one way::
 
     parsed body -> validation.validate_predict (InputSpec of the live model)
       -> runner(engine, x)             float32[S, B, K]
-      -> summary.summarise -> decision.decide -> render.results
+      -> summary.summarise -> decision.ServedRule.decide -> render.results
       -> review.enqueue(Answered)      one annotation per case, merged into its result
       -> metrics.observe_predict(...)  -> response dicts
 
@@ -35,7 +35,7 @@ import numpy as np
 
 from demur.serve.config import ServeConfig
 from demur.serve.core import render
-from demur.serve.core.decision import DecisionRule, Verdicts, decide, rule_from
+from demur.serve.core.decision import DecisionRule, ServedRule, Verdicts, rule_from
 from demur.serve.core.summary import Summary, summarise
 from demur.serve.core.support import support_from_manifest
 from demur.serve.core.validation import PredictRequest, validate_predict
@@ -63,11 +63,19 @@ class Live:
     Immutable; a roll-out replaces the whole object."""
 
     engine: Any
-    rule: DecisionRule
+    served: ServedRule  # the one rule: support check, then score vs threshold (core/decision.py)
     level: float
     model: dict[str, str]
     loaded_at: float
-    support: Any = None  # demur.serve.core.support.SupportCheck, None for a bundle without one
+
+    @property
+    def rule(self) -> DecisionRule:
+        return self.served.rule
+
+    @property
+    def support(self) -> Any:
+        """The support check (demur.serve.core.support.SupportCheck), None for a bundle without one."""
+        return self.served.support
 
     @property
     def manifest(self) -> Any:
@@ -260,8 +268,8 @@ class Runtime:
         rule = rule_from(manifest, self.config)
         level = float(self.config.interval_level or manifest.interval_level)
         model = render.model_ref(manifest.model_name, manifest.model_version, engine.checksum)
-        live = Live(engine=engine, rule=rule, level=level, model=model, loaded_at=time.time(),
-                    support=support_from_manifest(manifest))
+        live = Live(engine=engine, served=ServedRule(rule, support_from_manifest(manifest)), level=level,
+                    model=model, loaded_at=time.time())
         self._smoke(live)
         return live
 
@@ -276,8 +284,7 @@ class Runtime:
             raise BundleError(
                 f"smoke prediction failed: expected finite draws of shape [S, 1, {k}]; got shape "
                 f"{list(draws.shape)}", field="bundle")
-        decide(summarise(live.manifest.task, draws, live.level, live.manifest.target), live.rule,
-               support=live.support, x_raw=x)
+        live.served.decide(summarise(live.manifest.task, draws, live.level, live.manifest.target), x)
 
     def install(self, engine: Any) -> Live | None:
         """Prepare ``engine`` and make it live; return the model it replaced."""
@@ -319,24 +326,46 @@ class Runtime:
             return live, answers
         req = valid[0][1] if len(valid) == 1 else PredictRequest(
             x=np.concatenate([r.x for _, r in valid]), case_ids=[c for _, r in valid for c in r.case_ids])
+        answered = self.answer_request(req, caller=caller, live=live, started=t0)
+        draw_count = answered.summary.draws
+        start = 0
+        for i, r in valid:
+            answers[i] = {"model": live.model, "results": answered.results[start:start + r.size],
+                          "draws": draw_count, "decision_rule": live.decision_rule}
+            start += r.size
+        return live, answers
+
+    def answer_request(self, req: PredictRequest, *, caller: str | None = None, live: Live | None = None,
+                       started: float | None = None, rendered: bool = True) -> Answered:
+        """Answer cases already validated at their boundary (``answer`` for HTTP bodies,
+        demur.serve.offline.scoring for file rows) with one graph run: engine -> summary ->
+        decision (support check first) -> render -> review hook -> metrics hook. The one
+        place a case is decided, so a file scored offline gets the server's decisions.
+        ``live``: the model to answer with (default: the live one); ``started``: the
+        ``time.perf_counter()`` at which the request arrived, for the metrics.
+        ``rendered=False`` skips the response dicts and with them the review hook, which
+        reads them (``results`` is empty): for the offline scorer without a review queue,
+        which writes its columns from ``summary`` and ``decisions``."""
+        t0 = time.perf_counter() if started is None else started
+        live = live if live is not None else self.slot.live
+        manifest = live.manifest
         t1 = time.perf_counter()
-        draws = live.engine.run(req.x)
+        x_std = live.engine.standardise(req.x)   # once: the graph and the support check read it
+        draws = live.engine.run_standardised(x_std)
         t2 = time.perf_counter()
         if draws.ndim != 3 or draws.shape[1] != req.size:
             raise GraphRunError(f"the graph returned draws of shape {list(draws.shape)} for {req.size} cases")
         summary = summarise(manifest.task, draws, live.level, manifest.target)
-        decisions = decide(summary, live.rule, support=live.support, x_raw=req.x)
-        results = render.results(summary, decisions, live.rule, manifest.labels, req.case_ids)
-        self._annotate(Answered(live, req, summary, decisions, results, caller))
-        draw_count = int(draws.shape[0])
-        start = 0
-        for i, r in valid:
-            answers[i] = {"model": live.model, "results": results[start:start + r.size], "draws": draw_count,
-                          "decision_rule": live.decision_rule}
-            start += r.size
+        decisions = live.served.decide(summary, req.x, x_std)
+        if not rendered:
+            answered = Answered(live, req, summary, decisions, [], caller)
+        else:
+            results = render.results(summary, decisions, live.rule, manifest.labels, req.case_ids)
+            answered = Answered(live, req, summary, decisions, results, caller)
+            self._annotate(answered)
         self.monitor.observe_predict(x_raw=req.x, summary=summary, decisions=decisions,
                                      graph_seconds=t2 - t1, total_seconds=time.perf_counter() - t0)
-        return live, answers
+        return answered
 
     def _annotate(self, answered: Answered) -> None:
         results = answered.results

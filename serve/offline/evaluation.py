@@ -11,7 +11,7 @@ referral  accuracy on the cases kept when the r% most uncertain are referred to 
           overall accuracy at every r); the layout of Filos et al. 2019, "A Systematic
           Comparison of Bayesian Deep Learning Robustness in Diabetic Retinopathy
           Tasks". Plus AURC per ranking (Geifman et al. 2019), accuracy, ECE (15 bins,
-          Guo et al. 2017), NLL and Brier, all from ``demur.serve.offline.calibration``
+          Guo et al. 2017), NLL and Brier, all from ``demur.serve.offline.metrics``
           (one copy of each).
 shift     for built-in shifts of the held-out inputs (``shifted_inputs``), the AUROC of
           each score at telling shifted cases from clean ones (``auroc``: the
@@ -38,7 +38,7 @@ import numpy as np
 from scipy import stats
 
 from demur.serve.core.bundle import SCORE_TASKS
-from demur.serve.offline.calibration import (
+from demur.serve.offline.metrics import (
     REFERRAL_RATES,
     accuracy_at_referral,
     aurc,

@@ -21,7 +21,7 @@ import demur.export.training as training
 from demur.export.datasets import load_dataset
 from demur.export.errors import LayerConfigError
 from demur.export.layers import VariationalLinear, variational_layers
-from demur.serve.offline.calibration import expected_calibration_error
+from demur.serve.offline.metrics import expected_calibration_error
 from demur.export.checkpoints import load_checkpoint
 from demur.export.training import predictive_metrics, standardise_inputs, train
 from demur.serve.cli import main
