@@ -53,7 +53,7 @@ from demur.serve.offline.evaluation import (
     write_evaluation,
 )
 
-from demur.serve.offline.chunked import draws_in_chunks
+from demur.serve.offline.chunked import chunks
 
 from demur.export.cases import (
     builtin_splits,
@@ -83,10 +83,15 @@ def _served(bundle: Bundle, x: np.ndarray, y: np.ndarray, shifts: dict[str, np.n
     support = support_from_manifest(m)
 
     def run(xs: np.ndarray) -> tuple[dict[str, np.ndarray], np.ndarray, np.ndarray]:
-        xs = xs.reshape(-1, *m.inputs.shape)
-        s = summarise(m.task, draws_in_chunks(engine, xs), m.interval_level, m.target)
-        d = decide(s, rule, support=support, x_raw=xs)
-        return scores_of(s.mean_probs, s.mutual_information), ~d.abstain, s.mean_probs
+        probs, mi, accept = [], [], []
+        for xb in chunks(xs.reshape(-1, *m.inputs.shape)):
+            s = summarise(m.task, engine.run(xb), m.interval_level, m.target)
+            d = decide(s, rule, support=support, x_raw=xb)
+            probs.append(s.mean_probs)
+            mi.append(s.mutual_information)
+            accept.append(~d.abstain)
+        p = np.concatenate(probs)
+        return scores_of(p, np.concatenate(mi)), np.concatenate(accept), p
 
     clean, accept, probs = run(x)
     shifted = {name: run(xs)[:2] for name, xs in shifts.items()}
@@ -144,14 +149,13 @@ def _recipe(bundle: Bundle | None) -> dict[str, Any]:
     user's own, or an export from before the record existed."""
     from demur.export.training import DEFAULTS
 
-    t = (bundle.manifest.raw.get("extensions", {}) or {}).get("training", {}) if bundle is not None else {}
-    t = t if isinstance(t, dict) else {}
-    settings, arch = t.get("settings"), t.get("arch")
-    recorded = isinstance(settings, dict) and isinstance(arch, dict) and arch.get("kind") in ("mlp", "conv")
-    chosen = {k: settings[k] for k in DEFAULTS if recorded and k in settings}
-    return {"recorded": recorded, "arch": arch["kind"] if recorded else "mlp",
-            "settings": {**DEFAULTS, **chosen},
-            "seed": int(settings["seed"]) if recorded and isinstance(settings.get("seed"), int) else None}
+    t = bundle.manifest.training if bundle is not None else None
+    settings, arch = (t.settings, t.arch) if t is not None else (None, None)
+    recorded = settings is not None and arch is not None and arch.get("kind") in ("mlp", "conv")
+    chosen = {k: settings[k] for k in DEFAULTS if recorded and settings is not None and k in settings}
+    seed = settings.get("seed") if recorded and settings is not None else None
+    return {"recorded": recorded, "arch": arch["kind"] if recorded and arch is not None else "mlp",
+            "settings": {**DEFAULTS, **chosen}, "seed": int(seed) if isinstance(seed, int) else None}
 
 
 def _baseline(members: list[Any], bundle: Bundle, x: np.ndarray, y: np.ndarray,
@@ -301,7 +305,7 @@ def _recalibrated_like(original: Bundle, held: Bundle, x_cal: np.ndarray, y_cal:
     from demur.export.calibration import calibrate
     from demur.serve.errors import CalibrationInfeasible
 
-    record = original.manifest.raw.get("decision", {}).get("calibration") or {}
+    record = original.manifest.decision.calibration or {}
     goal, score = record.get("target") or {}, record.get("score")
     if "accuracy" in goal:
         options = {"target_accuracy": float(goal["accuracy"]), "max_abstain": float(goal["max_abstain"]),
@@ -315,9 +319,9 @@ def _recalibrated_like(original: Bundle, held: Bundle, x_cal: np.ndarray, y_cal:
     except CalibrationInfeasible as exc:
         return held, f"the exporter's default threshold (calibrating as the bundle was failed: {exc})"
     held = load_bundle(held.path)
-    d = held.manifest.raw["decision"]
+    d = held.manifest.decision
     goal_text = ", ".join(f"{k} {v:g}" for k, v in options.items())
-    return held, (f"{d['score']} > {d['threshold']:.4g}, calibrated as the bundle was ({goal_text}) on the seen "
+    return held, (f"{d.score} > {d.threshold:.4g}, calibrated as the bundle was ({goal_text}) on the seen "
                   "classes' cal split")
 
 

@@ -30,6 +30,7 @@ from werkzeug.exceptions import HTTPException
 
 from demur.serve.adapters.engine import Engine
 from demur.serve.adapters.metrics import Metrics
+from demur.serve.web.metrics_http import install_metrics
 from demur.serve.config import ServeConfig
 from demur.serve.core.bundle import load_bundle
 from demur.serve.core.pipeline import CAUTION, Runtime
@@ -148,7 +149,7 @@ def create_app(
     router = review if isinstance(review, ReviewRouter) else None  # a test may pass a bare ReviewHook
     if router is not None:
         router.install(app, runtime, metrics)
-    metrics.install(app, runtime, router)
+    install_metrics(app, metrics, runtime, router)
     for plugin in plugins:
         plugin.init_app(app)
     install_limits(app, config)
@@ -161,10 +162,7 @@ def create_app(
 
 def _install_errors(app: Flask, runtime: Runtime) -> None:
     def answer(exc: DemurError, headers: list[tuple[str, str]] | None = None) -> Response:
-        try:
-            runtime.metrics.observe_error(status=exc.status, code=exc.code, endpoint=request.endpoint)
-        except Exception:
-            log.exception("metrics hook failed")
+        runtime.monitor.observe_error(status=exc.status, code=exc.code, endpoint=request.endpoint)
         status, extra, data = predict_http.refusal(exc)
         response = Response(data, status=status, mimetype="application/json")
         response.headers.extend([*extra, *(headers or [])])

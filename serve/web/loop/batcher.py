@@ -154,10 +154,7 @@ class Batcher:
         if isinstance(answer, DemurError):
             if answer.status >= 500:
                 log.warning("%s: %s", answer.code, answer.message)
-            try:
-                self.runtime.metrics.observe_error(status=answer.status, code=answer.code, endpoint="predict")
-            except Exception:
-                log.exception("metrics hook failed")
+            self.runtime.monitor.observe_error(status=answer.status, code=answer.code, endpoint="predict")
         self.deliver(conn, req, status, headers, data)
 
     def close(self) -> None:

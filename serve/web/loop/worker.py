@@ -135,10 +135,7 @@ class Front:
                 log.warning("refusing connection from %s: %d open (worker_connections %d); %d refused so far",
                             conn.peer[0] or "-", len(self.connections), self.max_connections,
                             self.refused_connections)
-            try:
-                self.runtime.metrics.observe_connection_refused()  # type: ignore[attr-defined]
-            except Exception:
-                log.exception("metrics hook failed")
+            self.runtime.monitor.observe_connection_refused()
             return False
         self.connections.add(conn)
         return True
@@ -230,10 +227,7 @@ class Front:
             route, verb = "/v1/predict", "POST" if method == b"POST" else "other"
         else:
             route, verb = "other", "other"
-        try:
-            self.runtime.metrics.observe_request(route, verb, status, seconds)  # type: ignore[attr-defined]
-        except Exception:
-            log.exception("metrics hook failed")
+        self.runtime.monitor.observe_request(route, verb, status, seconds)
         self.log_access(client, method, path, status, size, seconds)
 
     def count_refusal(self, path: bytes, status: int, t0: float, size: int, client: str) -> None:
