@@ -39,7 +39,7 @@ import numpy as np
 
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.bundle import Bundle, load_bundle
-from demur.serve.core.decision import decide, rule_from
+from demur.serve.core.decision import ServedRule, rule_from
 from demur.serve.core.summary import summarise
 from demur.serve.core.support import support_from_manifest
 from demur.serve.errors import ConfigError
@@ -72,15 +72,15 @@ def _served(bundle: Bundle, x: np.ndarray, y: np.ndarray, shifts: dict[str, np.n
     """The bundle's tables through the serving path."""
     m = bundle.manifest
     engine = Engine(bundle, graph="auto", seed=engine_seed).load()
-    rule = rule_from(m)
-    support = support_from_manifest(m)
+    served = ServedRule.from_manifest(m)  # the one rule the server decides with
+    rule, support = served.rule, served.support
 
     def run(xs: np.ndarray) -> tuple[dict[str, np.ndarray], np.ndarray, np.ndarray]:
         probs, mi, accept = [], [], []
         for i in range(0, len(xs), _ROWS):
             xb = xs[i:i + _ROWS].reshape(-1, *m.inputs.shape)
             s = summarise(m.task, engine.run(xb), m.interval_level, m.target)
-            d = decide(s, rule, support=support, x_raw=xb)
+            d = served.decide(s, xb)
             probs.append(s.mean_probs)
             mi.append(s.mutual_information)
             accept.append(~d.abstain)
@@ -326,11 +326,14 @@ def _not_fitted(bundle: Bundle, rows: np.ndarray, what: str) -> list[str]:
     if overlap is None:
         return [f"warning: the bundle records no training-row fingerprint, so {what} could not be checked for "
                 "rows the model was trained on"]
-    if overlap.count:
+    if overlap.verdict == "leak":
         first = ", ".join(str(v) for v in np.flatnonzero(overlap.seen)[:8])
-        raise DatasetError(f"{overlap.count} of the {len(rows)} rows of {what} were used to train this model (rows "
-                           f"{first}{' ...' if overlap.count > 8 else ''}); evaluate on rows held out from training",
-                           field=what)
+        raise DatasetError(f"{what}: {overlap.describe()}: clearly more than natural duplication explains, so rows "
+                           f"of the training data are in it (rows {first}{' ...' if overlap.count > 8 else ''}); "
+                           "evaluate on rows held out from training", field=what)
+    if overlap.verdict == "natural":
+        return [f"warning: {what}: {overlap.describe()}; no more than natural duplication of discrete features "
+                "explains, so they are kept"]
     return []
 
 
