@@ -61,7 +61,7 @@ from demur.serve.offline.calibration import (
     batch_spread,
     calibration_record,
     check_feasible,
-    conformal_scale,
+    choose_conformal_score,
     fingerprint,
     select_for_abstain,
     select_for_accuracy,
@@ -324,8 +324,10 @@ def _regression(b: Bundle, engine: Engine, served: ServedRule, cal: Cases, check
     floor = float(np.quantile(summarise("regression", _run(engine, fx), level, base).aleatoric_var, FLOOR_QUANTILE))
     raw_cal = summarise("regression", d_cal, level, base)
     sd_cal = np.sqrt(conformal_variance(raw_cal.epistemic_var, raw_cal.aleatoric_var, floor))
-    q = conformal_scale(cal.y, raw_cal.mean, sd_cal, 1.0 - level)
-    new_target = {**base, "conformal_q": q, "conformal_level": level, "aleatoric_floor": floor}
+    chosen = choose_conformal_score(cal.y, raw_cal.mean, sd_cal, 1.0 - level)
+    q = chosen["q"]
+    new_target = {**base, "conformal_q": q, "conformal_level": level, "aleatoric_floor": floor,
+                  "conformal_score": chosen["score"]}
     s_cal = summarise("regression", d_cal, level, new_target)
     sc_cal, out_cal = served.ranking(s_cal, cal.x)
     choice = select_for_abstain(np.where(out_cal, np.inf, sc_cal), target_abstain)
@@ -333,11 +335,13 @@ def _regression(b: Bundle, engine: Engine, served: ServedRule, cal: Cases, check
     raw_v = summarise("regression", d_v, level, base)  # the model's own interval, before conformal
     s_v = summarise("regression", d_v, level, new_target)
     before = float(np.mean((v_cases.y >= raw_v.lower) & (v_cases.y <= raw_v.upper)))
-    conformal = {"method": "split-conformal, locally weighted (Lei et al. 2018)", "level": level, "q": q,
+    conformal = {"method": f"split-conformal, {chosen['score']} residuals (Lei et al. 2018)", "level": level, "q": q,
+                 "score": chosen["score"], "score_choice": {k: chosen[k] for k in ("choice", "q_rows", "why")},
                  "coverage_cal": float(np.mean((cal.y >= s_cal.lower) & (cal.y <= s_cal.upper))),
                  "model_coverage_before": before,
                  "model_coverage_before_on": "test" if check is not None else "calibration",
-                 "residual": "|y - mean| / sqrt(epistemic_var + max(aleatoric_var, aleatoric_floor))",
+                 "residual": ("|y - mean|" if chosen["score"] == "absolute" else
+                              "|y - mean| / sqrt(epistemic_var + max(aleatoric_var, aleatoric_floor))"),
                  "aleatoric_floor": floor,
                  "aleatoric_floor_rule": f"quantile {FLOOR_QUANTILE:g} of the per-case aleatoric variance on "
                                          f"{floor_from} ({len(fx)} cases), target units squared"}

@@ -41,6 +41,7 @@ non-empty directory there is refused.
 from __future__ import annotations
 
 import argparse
+import csv
 import importlib
 import os
 import secrets
@@ -62,7 +63,7 @@ from demur.serve.adapters.engine import Engine
 from demur.serve.core.summary import summarise
 from demur.serve.core.support import standardisation, support_record
 
-from demur.export.datasets import column_order
+from demur.export.datasets import column_order, read_labelled
 from demur.export.errors import ExportError, GraphBuildError
 
 __all__ = [
@@ -102,7 +103,6 @@ PARITY_TOLERANCE = 1e-4
 
 SUPPORT_SAMPLE = 20_000
 """Training rows kept for the support check (it stores its own smaller sample in the manifest)."""
-"""Input features whose training std is below this get scale 1 (constant features)."""
 
 PARITY_ROWS = 256
 """Reference rows the parity check runs (the first ones)."""
@@ -523,6 +523,10 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     own.add_argument("--labels", help="comma-separated class names in output order (default: 0..K-1)")
     own.add_argument("--shape", help="comma-separated input shape per case, e.g. 1,8,8 (default: [F])")
     own.add_argument("--task", choices=("classification", "regression"), default="classification")
+    own.add_argument("--target-stats", metavar="CENTER,SCALE|data|raw",
+                     help="regression (required): how the model's target was standardised, y_std = (y - CENTER) / "
+                          "SCALE; 'data': the mean and standard deviation (numpy, ddof 0) of the --target column "
+                          "of --data; 'raw': the model predicts the target itself (0,1)")
     p.set_defaults(func=_run)
 
 
@@ -580,9 +584,35 @@ def _export_factory(args: argparse.Namespace, kind: str) -> Bundle:
     x_ref = _csv_rows(args.reference, args.target, names)[0] if args.reference else x_train
     shape = [int(v) for v in args.shape.split(",")] if args.shape else None
     labels = [v.strip() for v in args.labels.split(",")] if args.labels else None
+    target = _target_stats(args, names) if args.task == "regression" else None
     return export_model(model, args.out, inputs=input_spec(x_train, names, shape), labels=labels, task=args.task,
-                        kind=kind, draws=args.draws, reference=x_ref, seed=args.seed,
+                        kind=kind, draws=args.draws, reference=x_ref, seed=args.seed, target=target,
                         name=args.name or func_name, version=args.version or "1")
+
+
+def _target_stats(args: argparse.Namespace, names: Sequence[str]) -> dict[str, Any]:
+    """A regression model's target standardisation from ``--target-stats`` (its graphs give mean and
+    log-variance in standardised units, served as y = center + scale * y_std): refused when absent,
+    since a wrong guess serves every mean and interval on the wrong scale without any error."""
+    how = (args.target_stats or "").strip()
+    try:
+        if how == "raw":
+            return {"center": 0.0, "scale": 1.0, "rule": "raw: the model predicts the target itself"}
+        if how == "data" and args.target:
+            y = np.asarray(read_labelled(args.data, names, args.target).y, dtype=np.float64)
+            center, scale, rule = float(np.mean(y)), float(np.std(y)), (
+                f"data: mean and standard deviation (ddof 0) of {args.target!r} over {len(y)} rows of {args.data}")
+        else:
+            center, scale = (float(v) for v in how.split(","))
+            rule = "given with --target-stats"
+    except ValueError:
+        center, scale, rule = np.nan, np.nan, ""
+    if not (np.isfinite(center) and np.isfinite(scale) and scale > 0):
+        raise ExportError(f"a regression model needs --target-stats: CENTER,SCALE (how its target was standardised "
+                          "for training: y_std = (y - CENTER) / SCALE, SCALE > 0), 'data' with --target COLUMN (the "
+                          "mean and standard deviation of that numeric column of --data) or 'raw' (trained on the "
+                          f"target itself); got {how!r}", field="target_stats")
+    return {"center": center, "scale": scale, "rule": rule}
 
 
 def _csv_rows(path: Path, target: str | None, names: Sequence[str] | None = None) -> tuple[np.ndarray, list[str]]:
@@ -593,7 +623,6 @@ def _csv_rows(path: Path, target: str | None, names: Sequence[str] | None = None
     (``column_order``): read by position, a reference written in another order would be
     judged as out-of-range rows and set the default threshold and the support check wrong.
     """
-    import csv
 
     what = "data" if names is None else "reference"
     try:

@@ -61,6 +61,11 @@ with the normalised residual |y - mean| / sqrt(total_var)); at any other
 level the model's own mixture interval is served. ``interval_method`` says
 which.
 
+Conformal score: ``target.conformal_score`` names the residual the scale q was
+computed on: "normalised" (default: |y - mean| / sd, the interval mean ± q sd
+follows the model's own spread) or "absolute" (|y - mean|: mean ± q, one width
+for every case). ``demur calibrate`` picks the narrower at equal coverage.
+
 Aleatoric floor: the manifest's ``target`` may also carry ``aleatoric_floor``
 (target units squared, written by ``demur calibrate``). The conformal interval
 then uses ``sqrt(epistemic_var + max(aleatoric_var, aleatoric_floor))`` per
@@ -89,6 +94,7 @@ from scipy.special import ndtr, ndtri
 from demur.serve.errors import ConfigError, InvalidInput
 
 __all__ = [
+    "CONFORMAL_SCORES",
     "UNIT",
     "ClassificationSummary",
     "RegressionSummary",
@@ -326,13 +332,16 @@ def regression_summary(
     *,
     conformal_q: float | None = None,
     aleatoric_floor: float | None = None,
+    conformal_score: str = "normalised",
 ) -> RegressionSummary:
     """Summarise ``draws: float[S, B, 2]`` (mean, log-variance; standardised units).
 
     ``conformal_q``, if given, replaces the mixture interval by
     ``mean ± conformal_q * sqrt(epistemic_var + max(aleatoric_var, aleatoric_floor))``
     (``aleatoric_floor`` in target units squared, default none: ``sqrt(total_var)``);
-    see the module docstring. The floor is used only with ``conformal_q``.
+    see the module docstring. The floor is used only with ``conformal_q``. ``conformal_score``
+    "absolute" serves ``mean ± conformal_q`` instead (q in target units; the plain absolute
+    residual, chosen by ``demur calibrate`` when it gives the narrower interval).
     """
     d = _check_draws(draws, k=2)
     level = _check_level(level)
@@ -353,7 +362,10 @@ def regression_summary(
     predictive_entropy = 0.5 * (_LN_2PIE + np.log(total_var))
     mutual_information = np.maximum(predictive_entropy - expected_entropy, 0.0)
 
-    if conformal_q is not None:
+    if conformal_q is not None and conformal_score == "absolute":
+        half = np.full_like(mean, float(conformal_q))
+        lower, upper, method = mean - half, mean + half, "conformal"
+    elif conformal_q is not None:
         half = float(conformal_q) * np.sqrt(conformal_variance(epistemic_var, aleatoric_var, aleatoric_floor))
         lower, upper, method = mean - half, mean + half, "conformal"
     else:
@@ -397,8 +409,21 @@ def summarise(task: str, draws: np.ndarray, level: float, target: Mapping[str, A
             float(target.get("scale", 1.0)),
             conformal_q=float(q) if use_q else None,
             aleatoric_floor=_floor_of(target) if use_q else None,
+            conformal_score=_score_of(target),
         )
     raise ConfigError(f"task must be 'classification' or 'regression'; got '{task}'", field="task")
+
+
+CONFORMAL_SCORES = ("normalised", "absolute")
+"""Conformal residuals a bundle may record (``target.conformal_score``; absent: "normalised")."""
+
+
+def _score_of(target: Mapping[str, Any]) -> str:
+    value = target.get("conformal_score", "normalised")
+    if value not in CONFORMAL_SCORES:
+        raise ConfigError(f"target.conformal_score must be one of {', '.join(CONFORMAL_SCORES)}; got {value!r}",
+                          field="target.conformal_score")
+    return str(value)
 
 
 def _floor_of(target: Mapping[str, Any]) -> float | None:
