@@ -40,9 +40,17 @@ import numpy as np
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.bundle import Bundle, load_bundle
 from demur.serve.core.decision import ServedRule, rule_from
-from demur.serve.core.summary import summarise
+from demur.serve.core.summary import regression_components, summarise
 from demur.serve.core.support import support_from_manifest
 from demur.serve.errors import ConfigError
+from demur.serve.offline.regression import (
+    coverage_table,
+    far_shifts,
+    referral_by_epistemic,
+    regression_scores,
+    regression_shift_row,
+    write_regression_evaluation,
+)
 from demur.serve.offline.evaluation import (
     auroc_difference,
     holdout_row,
@@ -376,8 +384,12 @@ def evaluate(
       row of the class as the unseen ones."""
     b = bundle if isinstance(bundle, Bundle) else load_bundle(bundle)
     m = b.manifest
-    if m.task != "classification":
-        raise ConfigError("demur evaluate measures classifiers; this bundle is a regression model", field="bundle")
+    if m.task == "regression":
+        if baseline or holdout is not None or unseen is not None:
+            raise ConfigError("for a regression bundle demur evaluate gives the scores, coverage, PIT, referral and "
+                              "shift tables; baseline, holdout class and unseen class are for classifiers",
+                              field="baseline" if baseline else "holdout_class" if holdout is not None else "unseen")
+        return _evaluate_regression(b, x, y, out=out, seed=seed, title=title)
     if holdout is not None and unseen is not None:
         raise ConfigError("give either holdout (demur retrains without the class) or unseen (rows of a class "
                           "your model never saw), not both", field="unseen")
@@ -427,6 +439,65 @@ def evaluate(
     if out is not None:
         write_evaluation(out, figures)
     return figures
+
+
+def _evaluate_regression(b: Bundle, x: Any, y: Any, *, out: str | Path | None, seed: int,
+                         title: str) -> dict[str, Any]:
+    """A regression bundle's tables (serve/offline/regression.py) through the serving path: the
+    draws' Gaussian mixture scored against ``y``, the served rule (``ServedRule``) on clean and
+    shifted inputs."""
+    m = b.manifest
+    x, y = labelled_arrays(b, x, y, "x", "y")
+    notes = _not_fitted(b, x, "x")
+    if out is not None and Path(out).exists() and not Path(out).is_dir():
+        raise ConfigError(f"out {str(out)!r} exists and is not a folder; choose another --out", field="out")
+    engine = Engine(b, graph="auto", seed=0).load()
+    served = ServedRule.from_manifest(m)
+
+    def run(xs: np.ndarray) -> tuple[np.ndarray, Any, Any]:
+        xs = xs.reshape(-1, *m.inputs.shape)
+        d = np.concatenate([engine.run(xs[i:i + _ROWS]) for i in range(0, len(xs), _ROWS)], axis=1)
+        s = summarise(m.task, d, m.interval_level, m.target)
+        return d, s, served.decide(s, xs)
+
+    d, s, v = run(x)
+    mu, sd = regression_components(d, float(m.target.get("center", 0.0)), float(m.target.get("scale", 1.0)))
+    spec = m.inputs
+    low, high = np.asarray(spec.low), np.asarray(spec.high)
+    shifts = {**shifted_inputs(x, low=low, high=high, center=np.asarray(spec.center), image_shape=None, seed=seed),
+              **far_shifts(x, low=low, high=high)}
+    clean_width = float(np.mean(s.interval_width))
+    outside = lambda vv: vv.outside if vv.outside is not None else np.zeros(len(vv.abstain), bool)  # noqa: E731
+    rows = {"clean": regression_shift_row(clean_width, s.interval_width, s.epistemic_std, ~v.abstain, outside(v))}
+    for name, xs in shifts.items():
+        _, ss, vv = run(xs)
+        rows[name] = regression_shift_row(clean_width, ss.interval_width, ss.epistemic_std, ~vv.abstain, outside(vv))
+    body = {"scores": regression_scores(mu, sd, y),
+            "coverage": coverage_table(mu, sd, y, (s.lower, s.upper, s.level, s.interval_method)),
+            "referral": referral_by_epistemic(y, s.mean, s.epistemic_var, s.lower, s.upper),
+            "shift": rows, "clean_accepted": float(np.mean(~v.abstain)),
+            "rule": {"score": served.rule.score, "threshold": served.rule.threshold, "source": served.rule.source,
+                     "support": served.support is not None}}
+    figures = {"title": title or f"{m.model_name} v{m.model_version}", "model": m.model_name, "task": "regression",
+               "checksum": b.checksum, "models": {"bundle": body}, "notes": notes}
+    if out is not None:
+        write_regression_evaluation(out, figures)
+    return figures
+
+
+def _print_regression(figures: dict[str, Any]) -> None:
+    body = figures["models"]["bundle"]
+    sc = body["scores"]
+    print(f"{sc['n']} cases: NLL {sc['nll']:.4f} nats, CRPS {sc['crps']:.4g}, RMSE {sc['rmse']:.4g}, MAE "
+          f"{sc['mae']:.4g}; PIT counts {sc['pit']['counts']}")
+    for row in body["coverage"]:
+        print(f"  {row['interval']} {row['level']:.0%}: coverage {row['coverage']:.3f}, mean width "
+              f"{row['mean_width']:.4g}")
+    print("  referred by epistemic variance: " + ", ".join(
+        f"{r['referred']:.0%} RMSE {r['rmse']:.4g}" for r in body["referral"]))
+    print("  shifted inputs (served interval width, x clean; accepted; outside the training data): " + "; ".join(
+        f"{k} {r['mean_width']:.4g} (x{r['width_ratio']:.2f}), {r['accepted']:.2f}, {r['outside_training_data']:.2f}"
+        for k, r in body["shift"].items()))
 
 
 # -- command line ------------------------------------------------------------------
@@ -496,6 +567,15 @@ def _main(args: argparse.Namespace) -> int:
         if not args.unseen.is_file():
             raise DatasetError(f"--unseen must be an existing CSV file; got {str(args.unseen)!r}", field="unseen")
         unseen = read_features(args.unseen, list(m.inputs.names), ignore=[*([target] if target else []), *ignore])
+    if m.task == "regression":
+        figures = evaluate(b, x, y, out=args.out, seed=seed, baseline=args.baseline,
+                           holdout=(args.holdout_class, ds) if args.holdout_class is not None else None,
+                           unseen=unseen)
+        for note in figures["notes"]:
+            print(note)
+        _print_regression(figures)
+        print(f"wrote {args.out / 'index.html'}")
+        return 0
     figures = evaluate(b, x, y, x_train=x_train, y_train=y_train, baseline=args.baseline, out=args.out, seed=seed,
                        holdout=(args.holdout_class, ds) if args.holdout_class is not None else None,
                        unseen=unseen, unseen_label=args.unseen_label or (args.unseen.name if args.unseen else ""))

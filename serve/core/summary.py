@@ -16,7 +16,7 @@ Classification (``K`` logits per draw)
         the BALD decomposition of Houlsby et al. (2011), eq. (1): the mutual
         information between the label and the weights under the S-draw
         posterior sample. It is >= 0 by Jensen's inequality; values at or
-        below 1e-13 x max(H[p̄], 1) can only be float round-off (of order
+        below 16 eps x max(H[p̄], 1) can only be float round-off (of order
         1e-16) and are set to 0, so identical draws (the means graph) give 0.
     ``one_minus_max_prob``  1 - max_k p̄_k                              [B]
 
@@ -102,6 +102,7 @@ __all__ = [
     "classification_summary",
     "conformal_variance",
     "mixture_quantile",
+    "regression_components",
     "regression_summary",
     "summarise",
 ]
@@ -115,9 +116,9 @@ wild draw gives a huge but finite variance instead of an overflow."""
 
 _LN_2PIE = float(np.log(2.0 * np.pi * np.e))
 
-_ROUND_OFF = 1e-13
-"""Classification mutual information at or below this share of max(H[p̄], 1) nats is float
-round-off (float64 sums of the same terms differ by ~1e-16 relative) and is reported as 0."""
+_ROUND_OFF = 16 * float(np.finfo(np.float64).eps)
+"""Classification mutual information at or below this share of max(H[p̄], 1) nats (3.6e-15) is
+float round-off (float64 sums of the same terms differ by ~1e-16 relative) and is reported as 0."""
 
 
 @dataclass(frozen=True)
@@ -324,6 +325,18 @@ def conformal_variance(
     return epistemic_var + np.maximum(aleatoric_var, floor)
 
 
+def regression_components(draws: np.ndarray, target_center: float = 0.0,
+                          target_scale: float = 1.0) -> tuple[np.ndarray, np.ndarray]:
+    """(mu, sd) of each draw's Gaussian in target units, float64[S, B] each, from ``draws:
+    float[S, B, 2]`` (mean, log-variance in standardised units): the predictive law is their
+    equal-weight mixture (``demur evaluate`` scores it: CRPS, NLL, PIT)."""
+    d = np.asarray(draws, dtype=np.float64)
+    scale = float(target_scale)
+    mu = d[:, :, 0] * scale + float(target_center)
+    sd = np.exp(0.5 * np.clip(d[:, :, 1], -_LOG_VAR_LIMIT, _LOG_VAR_LIMIT)) * scale
+    return mu, sd
+
+
 def regression_summary(
     draws: np.ndarray,
     level: float = 0.9,
@@ -348,11 +361,9 @@ def regression_summary(
     scale = float(target_scale)
     if not scale > 0:
         raise ConfigError(f"target scale must be positive; got {target_scale}", field="target.scale")
-    mu = d[:, :, 0] * scale + float(target_center)  # [S, B]
-    log_var_std = np.clip(d[:, :, 1], -_LOG_VAR_LIMIT, _LOG_VAR_LIMIT)
-    sd = np.exp(0.5 * log_var_std) * scale  # [S, B], target units
+    mu, sd = regression_components(d, float(target_center), scale)  # [S, B], target units
     var = sd * sd
-    log_var = log_var_std + 2.0 * np.log(scale)
+    log_var = np.clip(d[:, :, 1], -_LOG_VAR_LIMIT, _LOG_VAR_LIMIT) + 2.0 * np.log(scale)
 
     mean = mu.mean(axis=0)
     epistemic_var = np.mean((mu - mean) ** 2, axis=0)
