@@ -73,3 +73,11 @@ def residual_sequential(seed: int = 0) -> ResidualSequential:
     torch.manual_seed(seed)
     return ResidualSequential(VariationalLinear(64, 10, init_sigma=0.05), nn.Tanh(),
                               VariationalLinear(10, 10, init_sigma=0.05)).eval()
+
+
+def diabetes_regressor(seed: int = 0) -> nn.Sequential:
+    """A user's regression network for load_diabetes' 10 features: mean and log-variance of the
+    standardised target ([B, 2]), one variational hidden layer and a variational head."""
+    torch.manual_seed(seed)
+    return nn.Sequential(VariationalLinear(10, 32, posterior="gaussian", init_sigma=0.05), nn.ReLU(),
+                         VariationalLinear(32, 2, posterior="gaussian", init_sigma=0.05))
