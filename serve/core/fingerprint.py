@@ -23,13 +23,18 @@ OTHER training rows, 1 - N1/N (N1 vectors seen exactly once among N rows), is
 the leave-one-out estimate of the probability that a fresh row from the same
 population matches a training row -- Good's (1953) estimate of the mass of
 already-seen values (Good, "The population frequencies of species", Biometrika
-40). The record keeps N and N1 (counts only). ``training_overlap`` compares the
-observed matches c among m checkable rows with Binomial(m, 1 - N1/N): the
+40). Its own uncertainty counts too: the rate used is the one-sided 95%
+Clopper-Pearson upper bound of N - N1 repeats out of N (scipy.stats.beta.ppf;
+75 training rows without a repeat still allow 3.9%: the iris measurements,
+rounded to 0.1 cm, share vectors although no two of 75 training rows do).
+The record keeps N and N1 (counts only). ``training_overlap`` compares the
+observed matches c among m checkable rows with Binomial(m, that rate): the
 one-sided p-value P(X >= c) (scipy.stats.binom.sf) below ``LEAK_LEVEL`` means
 clearly more matches than natural duplication explains ("leak": calibrate
 refuses); otherwise the matches are natural duplicates ("natural": kept, with
-a warning giving the counts). For continuous features N1 = N, so any match is
-a leak, as before. What it cannot tell: when nearly every vector is common
+a warning giving the counts). For continuous features N1 = N, so a handful of
+copies is only warned about (400 training rows: 1 copy among 175 rows gives
+P = 0.7, 5 copies 0.01) while a file of training rows is refused. What it cannot tell: when nearly every vector is common
 (5 binary features: 1 - N1/N near 1) a copy of the training rows looks like
 fresh rows; a model can then not have memorised more than its cells' labels,
 so the flattery is small. A record written before N1 was kept treats every
@@ -75,8 +80,8 @@ FINGERPRINT_METHOD = "sha256-64 of float32 row bytes, sorted"
 """Names the hashing rule, so a later rule can be told apart from this one."""
 
 LEAK_LEVEL = 1e-3
-"""A file's matches are a leak when P(Binomial(m, 1 - N1/N) >= matches) is below this (our choice:
-on binned load_breast_cancer splits, natural duplicates scored 0.01-0.2, 40 leaked rows < 1e-10)."""
+"""A file's matches are a leak when P(Binomial(m, repeat rate) >= matches) is below this (our choice:
+on binned load_breast_cancer splits natural duplicates scored 0.15-0.93; 200 training rows < 0.01)."""
 
 MAX_ROWS = 1_000_000
 """Most hashes kept in a manifest (8 MB of hashes; about 11 MB of JSON)."""
@@ -124,8 +129,8 @@ class Overlap:
     ``seen``: bool[N], rows whose hash is recorded; ``checkable``: rows whose
     hash falls in the recorded range (all rows unless the training set was
     subsampled); ``estimated``: seen rows scaled to all rows (= ``seen.sum()``
-    when nothing was subsampled); ``repeat_rate``: 1 - N1/N, the chance a fresh row
-    matches a training row (0 when the record predates it); ``expected``: the
+    when nothing was subsampled); ``repeat_rate``: the chance a fresh row matches a
+    training row, the upper 95% bound of 1 - N1/N (0 when the record predates N1); ``expected``: the
     checkable rows times it; ``p_value``: P(Binomial(checkable, repeat_rate) >= count).
     """
 
@@ -176,7 +181,10 @@ def training_overlap(record: dict[str, Any], x: np.ndarray) -> Overlap:
     seen = seen & in_range
     estimated = float(seen.sum()) * (len(h) / checkable) if checkable else 0.0
     rows, single = int(record.get("rows", 0) or 0), record.get("singletons")
-    rate = 1.0 - int(single) / rows if isinstance(single, int) and rows > 0 else 0.0
+    rate = 0.0
+    if isinstance(single, int) and rows > 0:  # upper 95% bound on the repeat rate (N - N1) / N
+        repeats = rows - int(single)
+        rate = 1.0 if repeats >= rows else float(stats.beta.ppf(0.95, repeats + 1, rows - repeats))
     count = int(seen.sum())
     p_value = float(stats.binom.sf(count - 1, checkable, rate)) if count else 1.0
     return Overlap(seen=seen, checkable=checkable, estimated=estimated, repeat_rate=rate,

@@ -301,7 +301,7 @@ def test_training_rows_are_detected_and_refused_or_dropped(tiny_bundle_factory, 
     leaky = write_labelled(tmp_path / "leaky.csv", x, [str(v) for v in y], ds.feature_names, "digit")
     seal = _sha(path)
     with pytest.raises(DatasetError, match=r"calibration data .*: 40 of 399 rows match a training row; natural "
-                                           r"duplication predicts about 0\.0 .* clearly more"):
+                                           r"duplication predicts about \d\.\d .* clearly more"):
         calibrate_file(str(path), str(leaky), target="digit", target_abstain=0.1)
     assert _sha(path) == seal
     out = calibrate_file(str(path), str(leaky), target="digit", target_abstain=0.1, drop_training_rows=True)
