@@ -105,6 +105,7 @@ from demur.serve.errors import CalibrationInfeasible, ConfigError
 __all__ = [
     "DEFAULT_MAX_ABSTAIN",
     "MAX_CANDIDATES",
+    "WIDTH_MARGIN",
     "ThresholdChoice",
     "calibration_record",
     "batch_spread",
@@ -125,6 +126,10 @@ MAX_CANDIDATES = 50
 """Most thresholds searched when targeting an accuracy."""
 
 METHODS = ("fixed_sequence", "bonferroni")
+
+WIDTH_MARGIN = 0.02
+"""The absolute conformal residual replaces the normalised one only when its interval is narrower
+by more than this share (our choice: the adaptive width is worth a hair of mean width)."""
 
 DEFAULT_MAX_ABSTAIN = 0.3
 """Abstention budget when none is given: at most 30% of cases to people (our choice)."""
@@ -449,7 +454,9 @@ def choose_conformal_score(y: np.ndarray, mean: np.ndarray, sd: np.ndarray, alph
     Candidates: "normalised" |y - mean| / sd (interval mean ± q sd) and "absolute" |y - mean|
     (mean ± q). The calibration rows are split by a seeded permutation: on part A (half) each
     candidate's q is the conformal quantile of A, so both cover the same share of A, and the
-    narrower mean width on A wins (ties: normalised); q is then computed on part B alone,
+    narrower mean width on A wins (the absolute one only when narrower by more than
+    ``WIDTH_MARGIN``: the normalised interval follows each case's own spread, widening where the
+    model is unsure, which one width for every case cannot); q is then computed on part B alone,
     which the choice never saw, so mean ± q ... covers a new case with probability >= 1 - alpha
     exactly (Lei et al. 2018; any score fixed before B is seen). With too few rows for both
     parts the normalised score is kept, q on every row, and ``why`` says so.
@@ -472,7 +479,7 @@ def choose_conformal_score(y: np.ndarray, mean: np.ndarray, sd: np.ndarray, alph
         q_a = conformal_scale(y[a], mean[a], scale[a], alpha)
         width[name] = float(np.mean(2.0 * q_a * scale[a]))
         covered[name] = float(np.mean(np.abs(y[a] - mean[a]) <= q_a * scale[a]))
-    pick = "absolute" if width["absolute"] < width["normalised"] else "normalised"
+    pick = "absolute" if width["absolute"] < (1.0 - WIDTH_MARGIN) * width["normalised"] else "normalised"
     return {"score": pick, "q": conformal_scale(y[b], mean[b], scales[pick][b], alpha), "q_rows": int(len(b)),
             "choice": {"rows": int(len(a)), "mean_width": width, "coverage": covered, "seed": seed},
             "why": f"the narrower on {len(a)} rows at equal coverage (widths {width['normalised']:.4g} normalised, "
