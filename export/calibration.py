@@ -303,6 +303,11 @@ def _calibrate(b: Bundle, cal: Cases, check: Cases | None, floor_x: np.ndarray |
         raw["target"] = new_target
         raw["interval_level"] = coverage
 
+    gap = float(np.min(np.abs(sc_cal - choice.threshold)))
+    record["achieved"]["threshold_gap"] = gap  # to the nearest calibration score, score units
+    if gap <= 1e-5 * max(abs(choice.threshold), 1e-12):
+        notes.append(f"warning: a calibration score lies within {gap:.3g} of the threshold, about float32 round-off: "
+                     "that case may be decided either way when it is sent in another batch")
     record["notes"] = list(notes)
     checksum = _write(b, raw, _manifest_records(raw, score, choice, record, sc_cal, support))
     verdicts = _check_served(b.path, cal.x, d_cal, choice)
@@ -474,7 +479,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     check.add_argument("--holdout", type=float, metavar="F", help="set aside this share of --data for the check")
     p.add_argument("--seed", type=int, help="seed of --holdout (default 0), or of a bundled set's split")
     p.add_argument("--drop-training-rows", action="store_true",
-                   help="leave out rows the model was trained on (with a warning) instead of refusing the file")
+                   help="leave out rows clearly copied from the training data (with a warning) instead of refusing "
+                        "the file; natural duplicates of discrete features are kept either way")
     goal = p.add_argument_group("what to guarantee")
     goal.add_argument("--target-accuracy", type=float, metavar="A",
                       help="accepted cases at least A correct in the population (classifiers)")

@@ -508,7 +508,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
         description="Referral, shift and held-out-class tables for a bundle (JSON, PNG plots, index.html).")
     p.add_argument("bundle", metavar="BUNDLE")
     p.add_argument("--data", required=True,
-                   help="a labelled CSV (every row is evaluated; columns by name) or 'digits' (its test split)")
+                   help="a labelled CSV (every row is evaluated; columns by name) or 'digits' / 'diabetes' (its test split)")
     p.add_argument("--target", metavar="COLUMN", help="label column of a CSV (default: the one training used)")
     p.add_argument("--ignore", action="append", metavar="COLUMN",
                    help="a column of --data or --unseen to skip, e.g. an id (repeatable)")
