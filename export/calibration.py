@@ -36,10 +36,8 @@ Examples (the parcel depot's postcode digits)::
 
 from __future__ import annotations
 
-import argparse
 import copy
 import dataclasses
-import sys
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -49,8 +47,8 @@ from typing import Any
 import numpy as np
 
 from demur.serve.adapters.engine import Engine
-from demur.serve.core.bundle import Bundle, load_bundle, write_manifest
-from demur.serve.core.decision import SCORE_TASKS, SCORE_UNITS, DecisionRule, ServedRule, Verdicts, score_values
+from demur.serve.core.bundle import SCORE_TASKS, SCORE_UNITS, Bundle, load_bundle, write_manifest
+from demur.serve.core.decision import DecisionRule, ServedRule, Verdicts, score_values
 from demur.serve.core.drift import score_reference
 from demur.serve.core.summary import conformal_variance, summarise
 from demur.serve.core.support import recalibrated, support_from_manifest
@@ -66,17 +64,22 @@ from demur.serve.offline.calibration import (
     select_for_abstain,
     select_for_accuracy,
 )
+from demur.serve.offline.chunked import draws_in_chunks
 from demur.serve.offline.metrics import classification_metrics, regression_metrics
-from demur.serve.offline.report import ClassificationPlots, RegressionPlots, decision_lines, write_report
+from demur.serve.offline.report import ClassificationPlots, RegressionPlots, write_report
 
-from demur.export.cases import Cases, cases_from_arrays, cases_from_file, hold_out, screen_training_rows
-from demur.export.datasets import BUILTIN, column_order, load_dataset
-from demur.export.errors import DatasetError
+from demur.export.cases import (
+    Cases,
+    builtin_splits,
+    cases_from_arrays,
+    cases_from_file,
+    hold_out,
+    label_column,
+    screen_training_rows,
+)
+from demur.export.datasets import BUILTIN
 
-__all__ = ["BATCH_ROWS", "CalibrationOutcome", "FLOOR_QUANTILE", "calibrate", "calibrate_file", "register"]
-
-BATCH_ROWS = 256
-"""Rows per graph run, bounding memory to about S * 256 * K floats."""
+__all__ = ["CalibrationOutcome", "FLOOR_QUANTILE", "calibrate", "calibrate_file"]
 
 DEFAULT_REGRESSION_ABSTAIN = 0.05
 """Regression abstention target when none is given (5% of cases to people; our choice)."""
@@ -150,49 +153,31 @@ def calibrate_file(bundle: str | Path, data: str, *, target: str | None = None, 
     ``holdout``: instead, set aside this share of ``data`` (seeded by ``seed``, default 0).
     ``options`` are ``calibrate``'s keyword arguments."""
     b = load_bundle(bundle)
-    m = b.manifest
-    _check_goal(m.task, options.get("target_accuracy"), options.get("target_abstain"), options.get("coverage"))
-    trained = (m.raw.get("extensions", {}).get("training", {}) or {}).get("data", {}) or {}
-    target = target or trained.get("target")
+    _check_goal(b.manifest.task, options.get("target_accuracy"), options.get("target_abstain"),
+                options.get("coverage"))
     floor_x, split = None, None
     if str(data) in BUILTIN:
         if holdout is not None:
             raise ConfigError(f"--holdout is for your own file; '{data}' keeps its documented split", field="holdout")
-        same = str(trained.get("source", data)) == str(data)
-        split_seed = int(seed if seed is not None else (trained.get("seed", 0) if same else 0))
-        ds = load_dataset(data, None, seed=split_seed, task=m.task)
-        if m.task == "classification" and tuple(ds.labels) != tuple(m.labels):
-            raise DatasetError(f"data '{data}' has labels {list(ds.labels)}; bundle {b.path} has {list(m.labels)}",
-                               field="data")
-        if ds.n_features != m.inputs.size:
-            raise DatasetError(f"data '{data}' has {ds.n_features} features; bundle {b.path} expects "
-                               f"{m.inputs.size}", field="data")
-        column_order(list(ds.feature_names), list(m.inputs.names), where=f"'{data}'")
+        ds, split_seed = builtin_splits(b, str(data), seed)
         cal = Cases(ds.x_cal, ds.y_cal, f"{data} (cal split, seed {split_seed})", rows=len(ds.y_cal))
         check = Cases(ds.x_test, ds.y_test, f"{data} (test split, seed {split_seed})", rows=len(ds.y_test))
         floor_x = ds.x_val
         split = {"kind": "documented split", "seed": split_seed}
+        if test is not None:
+            check = cases_from_file(b, test, label_column(b, target), ignore)
     else:
-        if target is None:
-            raise ConfigError("a CSV needs --target COLUMN (the label column); the bundle records none",
-                              field="target")
+        target = label_column(b, target)
         cal = cases_from_file(b, data, target, ignore)
         check = cases_from_file(b, test, target, ignore) if test is not None else None
         if holdout is not None:
             if check is not None:
                 raise ConfigError("give --test FILE or --holdout F, not both", field="holdout")
             cal, check, split = hold_out(cal, holdout, 0 if seed is None else int(seed))
-    if test is not None and str(data) in BUILTIN:
-        check = cases_from_file(b, test, target or "", ignore)
     return _calibrate(b, cal, check, floor_x, split=split, **options)
 
 
 # -- the calibration itself -------------------------------------------------------
-
-
-def _run(engine: Engine, x: np.ndarray) -> np.ndarray:
-    parts = [engine.run(x[i:i + BATCH_ROWS]) for i in range(0, len(x), BATCH_ROWS)]
-    return np.concatenate(parts, axis=1)
 
 
 def _check_goal(task: str, target_accuracy: float | None, target_abstain: float | None,
@@ -219,7 +204,6 @@ def _calibrate(b: Bundle, cal: Cases, check: Cases | None, floor_x: np.ndarray |
     if score not in SCORE_TASKS or m.task not in SCORE_TASKS[score]:
         fits = ", ".join(n for n, t in SCORE_TASKS.items() if m.task in t)
         raise ConfigError(f"--score {score} is not defined for {m.task}; use one of: {fits}", field="score")
-    _check_goal(m.task, target_accuracy, target_abstain, coverage)
     if not 0.0 < confidence < 1.0:
         raise ConfigError(f"--confidence must be in (0, 1); got {confidence}", field="confidence")
     screen_training_rows(b, cal, drop_training_rows, "the calibration data")
@@ -235,8 +219,8 @@ def _calibrate(b: Bundle, cal: Cases, check: Cases | None, floor_x: np.ndarray |
     engine = Engine(b, graph=graph, seed=engine_seed).load()
     support = recalibrated(m.raw["support"], m.inputs, cal.x) if m.raw.get("support") else None
     served = _served_rule(m, score, support)
-    d_cal = _run(engine, cal.x)
-    d_test = _run(engine, check.x) if check is not None else None
+    d_cal = draws_in_chunks(engine, cal.x)
+    d_test = draws_in_chunks(engine, check.x) if check is not None else None
     data_info: dict[str, Any] = {
         "source": cal.source, "rows": cal.rows, "n": int(len(cal.y)), "training_rows_dropped": cal.dropped,
         "columns": cal.columns, "sha256": fingerprint(cal.x, cal.y), "split": split,
@@ -326,7 +310,7 @@ def _regression(b: Bundle, engine: Engine, served: ServedRule, cal: Cases, check
     base = {k: v for k, v in m.target.items() if not str(k).startswith("conformal_") and k != "aleatoric_floor"}
     floor_from = "the validation split" if floor_x is not None else "the calibration inputs (labels unused)"
     fx = floor_x if floor_x is not None else cal.x
-    floor = float(np.quantile(summarise("regression", _run(engine, fx), level, base).aleatoric_var, FLOOR_QUANTILE))
+    floor = float(np.quantile(summarise("regression", draws_in_chunks(engine, fx), level, base).aleatoric_var, FLOOR_QUANTILE))
     raw_cal = summarise("regression", d_cal, level, base)
     sd_cal = np.sqrt(conformal_variance(raw_cal.epistemic_var, raw_cal.aleatoric_var, floor))
     chosen = choose_conformal_score(cal.y, raw_cal.mean, sd_cal, 1.0 - level)
@@ -438,66 +422,3 @@ def _write(b: Bundle, raw: dict[str, Any], sections: dict[str, Any]) -> str:
     checksum = write_manifest(b.path, raw)
     load_bundle(b.path)  # the rewritten bundle must verify
     return checksum
-
-
-# -- the command line ---------------------------------------------------------------
-
-
-def _main(args: argparse.Namespace) -> int:
-    out = calibrate_file(
-        args.bundle, args.data, target=args.target, test=args.test, holdout=args.holdout, seed=args.seed,
-        ignore=tuple(args.ignore or ()), target_accuracy=args.target_accuracy, confidence=args.confidence,
-        max_abstain=args.max_abstain, target_abstain=args.target_abstain, coverage=args.coverage,
-        drop_training_rows=args.drop_training_rows, batch=args.batch, score=args.score, method=args.method,
-        graph=args.graph, engine_seed=args.engine_seed, report=args.report,
-    )
-    for note in out.notes:
-        print(note, file=sys.stderr)
-    print(f"demur calibrate: {out.record['n']} calibration cases from {out.record['data']['source']}")
-    for line in decision_lines(out.record):
-        print(f"  {line}")
-    print(f"bundle {args.bundle}: new checksum {out.checksum[:12]}")
-    if out.report:
-        print(f"report: {Path(out.report).parent / 'index.html'}")
-    return 0
-
-
-def register(subparsers: argparse._SubParsersAction) -> None:
-    """Add ``demur calibrate`` (see the module docstring)."""
-    p = subparsers.add_parser(
-        "calibrate",
-        help="choose the abstention threshold on your labelled held-out data, with a guarantee",
-        description=__doc__.split("\n\n")[1] if __doc__ else None,
-    )
-    p.add_argument("bundle", metavar="BUNDLE", help="bundle directory (rewritten in place on success)")
-    p.add_argument("--data", required=True, metavar="FILE",
-                   help="labelled CSV (every row calibrates; columns by name), or 'digits' / 'diabetes'")
-    p.add_argument("--target", metavar="COLUMN", help="label column of the CSV (default: the one training used)")
-    p.add_argument("--ignore", action="append", metavar="COLUMN", help="a CSV column to skip (repeatable)")
-    check = p.add_mutually_exclusive_group()
-    check.add_argument("--test", metavar="FILE2", help="labelled CSV for the independent check")
-    check.add_argument("--holdout", type=float, metavar="F", help="set aside this share of --data for the check")
-    p.add_argument("--seed", type=int, help="seed of --holdout (default 0), or of a bundled set's split")
-    p.add_argument("--drop-training-rows", action="store_true",
-                   help="leave out rows clearly copied from the training data (with a warning) instead of refusing "
-                        "the file; natural duplicates of discrete features are kept either way")
-    goal = p.add_argument_group("what to guarantee")
-    goal.add_argument("--target-accuracy", type=float, metavar="A",
-                      help="accepted cases at least A correct in the population (classifiers)")
-    goal.add_argument("--confidence", type=float, default=0.9, metavar="C",
-                      help="with probability C over the calibration draw (delta = 1 - C; default 0.9)")
-    goal.add_argument("--max-abstain", type=float, default=DEFAULT_MAX_ABSTAIN, metavar="F",
-                      help="abstain on at most this share of cases; the most conservative threshold tested "
-                           f"(default {DEFAULT_MAX_ABSTAIN})")
-    goal.add_argument("--target-abstain", type=float, metavar="R",
-                      help="send this share of cases to people (expected rate <= R)")
-    goal.add_argument("--coverage", type=float, metavar="L",
-                      help="regression: conformal interval coverage (default: the bundle's interval level)")
-    goal.add_argument("--batch", type=int, metavar="N", help="batch size the spread is computed for (default n)")
-    p.add_argument("--score", choices=sorted(SCORE_TASKS), help="decision score (default: the bundle's)")
-    p.add_argument("--method", choices=("fixed_sequence", "bonferroni"), default="fixed_sequence",
-                   help="multiple-testing rule for --target-accuracy (see serve/offline/calibration.py)")
-    p.add_argument("--graph", default="auto", help="graph to run (default: what the server would choose)")
-    p.add_argument("--engine-seed", type=int, default=0, help="sampler graph seed (reproducible runs)")
-    p.add_argument("--report", metavar="DIR", help="write report.json, plots and index.html here")
-    p.set_defaults(func=_main)

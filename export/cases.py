@@ -1,12 +1,12 @@
-"""A user's labelled rows, read and checked once for ``demur calibrate`` and ``demur evaluate``.
+"""A user's labelled cases for a bundle, read and checked once, for ``demur calibrate`` and
+``demur evaluate`` alike.
 
-Cases come from arrays (``cases_from_arrays``: by position, or a table's columns by name) or a
-CSV (``cases_from_file``: columns matched to the bundle's feature names in any order); labels
-are matched to the bundle's class names (class indices accepted only where they cannot be read
-as the wrong class). Every cell is checked finite, errors name the row (or file line) and
-feature. ``screen_training_rows`` runs the leakage check (``demur.serve.core.fingerprint``):
-rows that copy the training data are refused, natural duplicates of discrete features kept
-with a warning.
+Arrays (``cases_from_arrays``: by position, or a table's ``.columns`` by name), a CSV
+(``cases_from_file``: columns matched to the bundle's feature names in any order, labels to
+its class names) or a bundled scikit-learn set (``builtin_splits``: its documented splits,
+with the seed training used). Rows the bundle's training-row fingerprint recognises are
+refused or dropped (``screen_training_rows``), and ``hold_out`` sets a seeded share aside as
+the independent check.
 """
 
 from __future__ import annotations
@@ -22,16 +22,18 @@ from demur.serve.core.bundle import Bundle
 from demur.serve.core.fingerprint import training_overlap
 from demur.serve.errors import ConfigError
 
-from demur.export.datasets import BUILTIN, column_order, read_labelled
-from demur.export.errors import DatasetError
+from demur.export.datasets import BUILTIN, Dataset, column_order, load_dataset, read_labelled
+from demur.export.errors import DatasetError, DatasetNotFound
 
-__all__ = ["Cases", "case_array", "cases_from_arrays", "cases_from_file", "fitted_rows", "hold_out",
-           "labelled_arrays", "labelled_file", "screen_training_rows"]
+__all__ = ["Cases", "builtin_splits", "case_array", "cases_from_arrays", "cases_from_file", "fitted_rows",
+           "hold_out", "label_column", "screen_training_rows"]
 
 
 @dataclass
 class Cases:
-    """Labelled cases in bundle order: x float64[N, F], y class indices or values, lines for messages."""
+    """Labelled cases in a bundle's feature order: ``x`` float64[N, F], ``y`` class indices (or
+    values, regression), ``lines`` their file lines for messages (None for arrays), ``rows`` read,
+    ``dropped`` training rows left out, ``notes`` warnings to print, how ``columns`` were matched."""
 
     x: np.ndarray
     y: np.ndarray
@@ -41,6 +43,7 @@ class Cases:
     dropped: int = 0
     notes: list[str] = field(default_factory=list)
     columns: str = "matched by name"
+
 
 
 def _labels_to_index(bundle: Bundle, y: Any, source: str, lines: np.ndarray | None, what: str) -> np.ndarray:
@@ -128,6 +131,8 @@ def case_array(bundle: Bundle, X: Any, what: str) -> np.ndarray:
 
 
 def cases_from_arrays(bundle: Bundle, X: Any, y: Any, source: str, what: str, field_y: str | None = None) -> Cases:
+    """A user's arrays as ``Cases`` (``case_array`` for ``X``; ``y`` class names as text, class
+    indices 0..K-1, or values); errors name ``what`` / ``field_y``."""
     x = case_array(bundle, X, what)
     field_y = field_y or ("y" if what == "X" else f"{what} labels")
     shape = list(np.shape(y))
@@ -141,17 +146,10 @@ def cases_from_arrays(bundle: Bundle, X: Any, y: Any, source: str, what: str, fi
     return Cases(x, yy, source, rows=len(x), columns="matched by name" if hasattr(X, "columns") else "by position")
 
 
-def labelled_arrays(bundle: Bundle, X: Any, y: Any, what: str, field_y: str) -> tuple[np.ndarray, np.ndarray]:
-    """(x float64[N, F], y class indices or values) from a user's arrays, checked exactly as
-    ``calibrate`` checks its X and y; errors name ``what`` / ``field_y``. ``demur evaluate`` uses it."""
-    cases = cases_from_arrays(bundle, X, y, what, what, field_y=field_y)
-    return cases.x, cases.y
-
-
-def cases_from_file(bundle: Bundle, path: str, target: str, ignore: Sequence[str]) -> Cases:
+def cases_from_file(bundle: Bundle, path: str, target: str, ignore: Sequence[str] = ()) -> Cases:
+    """Every row of a user's labelled CSV: columns matched to the bundle's feature names (any
+    order), labels to its class names; ``DatasetError`` naming the column and line at fault."""
     if not Path(path).is_file():
-        from demur.export.errors import DatasetNotFound
-
         raise DatasetNotFound(f"data must be one of {list(BUILTIN)} or an existing CSV file; got {path!r}",
                               field="data")
     rows = read_labelled(path, list(bundle.manifest.inputs.names), target, ignore=ignore)
@@ -159,15 +157,8 @@ def cases_from_file(bundle: Bundle, path: str, target: str, ignore: Sequence[str
     return Cases(rows.x, y, path, lines=rows.lines, rows=len(rows.x))
 
 
-def labelled_file(bundle: Bundle, path: str, target: str, ignore: Sequence[str] = ()) -> tuple[np.ndarray, np.ndarray]:
-    """Every row of a user's labelled CSV as (x float64[N, F] in the bundle's feature order,
-    y class indices or values), checked exactly as ``demur calibrate`` checks its ``--data``:
-    columns by name, labels by the bundle's class names. ``demur evaluate`` reads a file so."""
-    cases = cases_from_file(bundle, path, target, ignore)
-    return cases.x, cases.y
-
-
 def hold_out(cal: Cases, share: float, seed: int) -> tuple[Cases, Cases, dict[str, Any]]:
+    """Set aside ``share`` of ``cal`` (seeded) as the independent check: (calibration part, check, split record)."""
     if not 0.0 < share < 1.0:
         raise ConfigError(f"--holdout must be a share in (0, 1); got {share}", field="holdout")
     n_test = int(round(share * len(cal.y)))
@@ -233,3 +224,36 @@ def screen_training_rows(bundle: Bundle, cases: Cases, drop: bool, what: str) ->
     cases.notes.append(f"warning: {said}; the {overlap.count} matching rows were left out, {len(cases.y)} rows remain")
     if len(cases.y) < 2:
         raise DatasetError(f"{what}: no rows remain once the training rows are left out", field="data")
+
+
+def label_column(bundle: Bundle, target: str | None) -> str:
+    """The label column of a user's CSV: ``target``, else the one the bundle's training used;
+    ``ConfigError`` when neither is known."""
+    target = target or _trained_on(bundle).get("target")
+    if target is None:
+        raise ConfigError("a CSV needs --target COLUMN (the label column); the bundle records none", field="target")
+    return str(target)
+
+
+def builtin_splits(bundle: Bundle, data: str, seed: int | None) -> tuple[Dataset, int]:
+    """The bundled set ``data`` (one of ``BUILTIN``) cut as training cut it: the split seed is
+    ``seed``, else the one the bundle's training used when it was trained on ``data``, else 0.
+    Its labels and features must be the bundle's (``DatasetError`` otherwise)."""
+    m = bundle.manifest
+    trained = _trained_on(bundle)
+    same = str(trained.get("source", data)) == str(data)
+    split_seed = int(seed if seed is not None else (trained.get("seed", 0) if same else 0))
+    ds = load_dataset(data, None, seed=split_seed, task=m.task)
+    if m.task == "classification" and tuple(ds.labels) != tuple(m.labels):
+        raise DatasetError(f"data '{data}' has labels {list(ds.labels)}; bundle {bundle.path} has {list(m.labels)}",
+                           field="data")
+    if ds.n_features != m.inputs.size:
+        raise DatasetError(f"data '{data}' has {ds.n_features} features; bundle {bundle.path} expects "
+                           f"{m.inputs.size}", field="data")
+    column_order(list(ds.feature_names), list(m.inputs.names), where=f"'{data}'")
+    return ds, split_seed
+
+
+def _trained_on(bundle: Bundle) -> dict[str, Any]:
+    """How the bundle's training data was loaded ({"source", "target", "seed"}), or {}."""
+    return (bundle.manifest.raw.get("extensions", {}).get("training", {}) or {}).get("data", {}) or {}

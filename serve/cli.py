@@ -24,6 +24,7 @@ __all__ = ["build_parser", "main"]
 _BUILTIN = (
     ("serve", "demur.serve.web.server:register"),
     ("status", "demur.serve.offline.status:register"),
+    ("score", "demur.serve.offline.scoring:register"),
 )
 
 

@@ -35,7 +35,6 @@ path (the review queue has its own tests).
 
 from __future__ import annotations
 
-import argparse
 import datetime as _dt
 import json
 import math
@@ -58,13 +57,14 @@ from demur.serve.core.decision import DecisionRule, decide
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.summary import summarise
 
+from demur.export.bench.backbone import backbone_lines, backbone_ratios, backbone_section
 from demur.export.bench.conv import conv_section
 from demur.export.bench.http import CLIENTS, FRONT_RULE, child_env, http_section
 from demur.export.draws import DrawNetwork
 from demur.export.errors import ExportError
 from demur.export.graphs import export_graph
 
-__all__ = ["BENCH_FORMAT", "TARGETS", "format_table", "register", "run_bench"]
+__all__ = ["BENCH_FORMAT", "TARGETS", "format_table", "run_bench", "save_result"]
 
 BENCH_FORMAT = "demur-bench/2"
 
@@ -101,10 +101,13 @@ def _settings(quick: bool) -> dict[str, Any]:
     if quick:
         return {"draws": [32], "batches": [1, 64], "repeats": 3, "budget_s": 0.04, "http_s": 2,
                 "worker_models": [(2, 4, 1, 0.0)], "front_rounds": 1, "rss": True,
-                "conv_draws": 32, "conv_nets": ["small", "large"]}
+                "conv_draws": 32, "conv_nets": ["small", "large"], **_BACKBONE}
     return {"draws": [8, 32, 128], "batches": [1, 64], "repeats": 5, "budget_s": 0.2, "http_s": 6,
             "worker_models": [(2, 4, 1, 0.0), (2, 4, 1, 1.0), (1, 4, 1, 0.0), (1, 4, 2, 0.0), (1, 4, 1, 1.0)],
-            "front_rounds": 2, "rss": True, "conv_draws": 32, "conv_nets": ["small", "large"]}
+            "front_rounds": 2, "rss": True, "conv_draws": 32, "conv_nets": ["small", "large"], **_BACKBONE}
+
+
+_BACKBONE = {"backbone_draws": 32, "backbone_sizes": [32, 224], "backbone_batches": [1, 16]}  # [] skips
 
 
 def _stats(values: list[float]) -> dict[str, float]:
@@ -147,7 +150,7 @@ def _load_model(checkpoint: Path | None) -> tuple[Any, dict[str, Any], bool]:
     from demur.export.layers import build_model
 
     if checkpoint is not None:
-        from demur.export.training import load_checkpoint
+        from demur.export.checkpoints import load_checkpoint
 
         model, meta = load_checkpoint(checkpoint)
         if isinstance(model, list):
@@ -159,27 +162,51 @@ def _load_model(checkpoint: Path | None) -> tuple[Any, dict[str, Any], bool]:
     return build_model("mlp", [64], 10, "radial", hidden=(256, 256), init_sigma=0.05), spec, False
 
 
-def _write(root: Path, plan: _Plan, spec: dict[str, Any], nets: dict[str, DrawNetwork]) -> Bundle:
+def _write(root: Path, plan: _Plan, spec: dict[str, Any], nets: dict[str, DrawNetwork],
+           checked: dict[str, Any] | None = None) -> Bundle:
+    """``checked``: the support record and drift reference a default ``demur export`` writes."""
     root.mkdir(parents=True, exist_ok=True)
     entries = {}
     for kind, net in nets.items():
-        export_graph(net, root / f"{kind}.onnx", name=kind)
+        if not (root / f"{kind}.onnx").exists():
+            export_graph(net, root / f"{kind}.onnx", name=kind)
         entries[kind] = {"file": f"{kind}.onnx", "draws": net.S, "seed": 0}
     return write_bundle(
         root, model_name="bench", model_version="0", task="classification", labels=[str(i) for i in range(10)],
         inputs=spec, posterior={"family": plan.posterior, "params": plan.parameter_count},
         graphs=entries, decision={"score": "mutual_information", "threshold": 10.0},  # never abstain (> ln 10)
+        **(checked or {}),
     )
+
+
+def _default_sections(spec: dict[str, Any]) -> dict[str, Any]:
+    """The support check and drift reference ``demur export`` writes by default (digits rows 0-999 train, 1000-1436 held out)."""
+    from sklearn.datasets import load_digits
+
+    from demur.serve.core.drift import feature_reference
+    from demur.serve.core.support import support_record
+
+    x = load_digits().data.astype(np.float64)
+    return {"support": support_record(x[:1000], x[1000:-360], spec),
+            "drift_reference": {"features": feature_reference(x[:1000])}}
 
 
 def _bundles(model: Any, plan: _Plan, spec: dict[str, Any], draws: list[int], root: Path
              ) -> dict[int, dict[str, Bundle]]:
-    """Per S: one bundle with stacked, sampler, flip and means graphs (export/draws.py, export/graphs.py)."""
+    """Per S: one bundle with stacked, sampler, flip and means graphs (export/draws.py, export/graphs.py)
+    carrying the support check as ``demur export`` writes it ("main"), and the same graphs without
+    it ("unchecked"), for the HTTP section's with/without ratio."""
     out = {}
+    checked = _default_sections(spec)
     for S in draws:
         nets = {kind: DrawNetwork(model, kind, S, seed=S, input_shape=spec["shape"])
                 for kind in ("stacked", "sampler", "flip", "means")}
-        out[S] = {"main": _write(root / f"S{S}", plan, spec, nets)}
+        main = _write(root / f"S{S}", plan, spec, nets, checked)
+        twin = root / f"S{S}-unchecked"
+        twin.mkdir(parents=True, exist_ok=True)
+        for kind in nets:
+            shutil.copyfile(main.graph_path(kind), twin / f"{kind}.onnx")
+        out[S] = {"main": main, "unchecked": _write(twin, plan, spec, nets)}
     return out
 
 
@@ -400,6 +427,15 @@ def _ratios_and_targets(result: dict[str, Any]) -> None:
             ratios["start_to_ready_s_demur"] = statistics.median(c["ready_s"] for c in ready)
         if torch1:
             ratios["start_to_ready_s_torch_loop_server"] = torch1["ready_s"]
+        sup = http.get("support")
+        if sup:
+            v = sup["on_over_off_requests_per_s"]
+            ratios["http_support_on_over_off_one_case_requests_per_s"] = v
+            target("HTTP one-case req/s, support check on / off", ">= 0.85", v, v >= 0.85)
+            on = sup["on"]
+            target("HTTP default export (support on) req/s, 1 case, S=32", ">= 8000", on["requests_per_s"],
+                   on["requests_per_s"] >= 8000)
+            target("HTTP default export (support on) p99 ms", "< 10", on["p99_ms"], on["p99_ms"] < 10)
         fronts = http["fronts"]
         v = fronts["asgi_over_loop_one_case"]
         ratios["http_asgi_over_loop_one_case_requests_per_s"] = v
@@ -408,6 +444,10 @@ def _ratios_and_targets(result: dict[str, Any]) -> None:
             "asgi_over_loop_one_case"])
     v = result["summaries"]["share_of_engine"]
     target("summaries / engine time, B=64 S=32", "< 0.15", v, v < 0.15)
+    more, goals = backbone_ratios(result.get("backbone", []))
+    ratios.update(more)
+    for goal in goals:
+        target(*goal)
     result["ratios"] = ratios
     result["targets"] = targets
 
@@ -456,11 +496,13 @@ def run_bench(*, quick: bool = False, checkpoint: Path | None = None, http: bool
         }
         result["engine"] = _engine_section(model, spec, bundles, xs, cfg, log)
         result["conv"] = conv_section(xs, cfg, root / "conv", _time, log)
+        result["backbone"] = backbone_section(cfg, root / "backbone", _time, log, http) if cfg["backbone_sizes"] else []
         result["summaries"] = _summary_section(bundles, xs, cfg)
         result["memory"] = _memory_section(plan, bundles, model_file, cfg)
         if http:
             S = 32 if 32 in bundles else next(iter(bundles))
-            result["http"] = http_section(bundles[S]["main"], S, xs, model_file, root, cfg, log)
+            result["http"] = http_section(bundles[S]["main"], S, xs, model_file, root, cfg, log,
+                                          unchecked=bundles[S]["unchecked"])
         else:
             result["http"] = {"skipped": "--no-http"}
         result["machine"]["load_average_end"] = list(os.getloadavg())
@@ -539,10 +581,19 @@ def format_table(result: dict[str, Any]) -> str:
                   f"ASGI {asg['many_case_rows_per_s']:.0f} (p99 {asg['many_case_p99_ms']:.1f} ms): "
                   f"ASGI / loop {f['asgi_over_loop_many_case_rows']:.3f}",
                   f"  rule: {f['rule']}; chosen front: {f['chosen']}"]
+        sup = http.get("support")
+        if sup:
+            lines += ["", f"support check cost (the default export vs the same graphs without its support section), "
+                          f"{sup['rounds']} alternated one-case round(s)"]
+            lines += [_http_row(r) + f"  support {r['support']}" for r in sup["runs"]]
+            lines.append(f"  one-case req/s: on {sup['on']['requests_per_s']:.0f} (p99 {sup['on']['p99_ms']:.1f} ms), "
+                         f"off {sup['off']['requests_per_s']:.0f} (p99 {sup['off']['p99_ms']:.1f} ms): on / off "
+                         f"{sup['on_over_off_requests_per_s']:.3f}")
+    lines += backbone_lines(result.get("backbone", []))
     lines += ["", "ratios"]
     for k, v in result["ratios"].items():
         lines.append(f"  {k:<52} {v:10.3f}" if isinstance(v, (int, float)) else f"  {k:<52} {'-':>10}")
-    lines += ["", "targets (issues 8, 12, 16)"]
+    lines += ["", "targets (issues 8, 12, 16, 22)"]
     for t in result["targets"]:
         verdict = "n/a" if t["reached"] is None else "REACHED" if t["reached"] else "NOT reached"
         value = "-" if t["value"] is None else f"{t['value']:.3f}"
@@ -561,33 +612,11 @@ def _http_row(r: dict[str, Any]) -> str:
 
 
 # -- command line ----------------------------------------------------------------------------
-def register(subparsers: argparse._SubParsersAction) -> None:
-    """Add ``demur bench`` to the ``demur`` command."""
-    p = subparsers.add_parser("bench", help="measure demur against the obvious alternatives (prints ratios)",
-                              description="Engine-level and HTTP benchmark on this machine; writes a JSON file "
-                                          "and prints a table. --quick finishes in about a minute.")
-    p.add_argument("--quick", action="store_true", help="fewer repeats, S = 32 only, short HTTP runs")
-    p.add_argument("--checkpoint", type=Path, default=None, help="a trained MLP checkpoint directory "
-                   "(default: the untrained 64-256-256-10 radial MLP)")
-    p.add_argument("--out", type=Path, default=Path("build/bench/bench.json"),
-                   help="JSON result (default build/bench/bench.json; never tracked)")
-    p.add_argument("--table", type=Path, default=None, help="also write the printed table to this file")
-    p.add_argument("--no-http", action="store_true", help="skip the HTTP section")
-    p.add_argument("--workdir", type=Path, default=None, help="keep bundles and server logs here")
-    p.set_defaults(func=_run)
-
-
-def _run(args: argparse.Namespace) -> int:
-    result = run_bench(quick=args.quick, checkpoint=args.checkpoint, http=not args.no_http, workdir=args.workdir,
-                       log=lambda m: print(m, file=sys.stderr, flush=True))
-    args.out.parent.mkdir(parents=True, exist_ok=True)
-    args.out.write_text(json.dumps(result, indent=2, default=_json_default) + "\n")
-    table = format_table(result)
-    print(table)
-    if args.table:
-        args.table.parent.mkdir(parents=True, exist_ok=True)
-        args.table.write_text(table + "\n")
-    return 0
+def save_result(result: dict[str, Any], out: Path) -> Path:
+    """Write ``run_bench``'s result to ``out`` as JSON (NumPy numbers as plain ones, NaN as null)."""
+    out.parent.mkdir(parents=True, exist_ok=True)
+    out.write_text(json.dumps(result, indent=2, default=_json_default) + "\n")
+    return out
 
 
 def _json_default(value: Any) -> Any:

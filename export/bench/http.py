@@ -14,6 +14,9 @@ What is measured (``_http_section``):
   ``(workers, threads, onnxruntime threads, batch wait ms)``, one-case and 64-case requests
   at S = 32; the chosen sizing has the most one-case requests/s (p99 within target, no
   errors) among those within 15% of the best 64-case rows/s;
+* the bundle is what ``demur export`` writes by default: with its support check (and drift
+  reference); with the chosen sizing, the same graphs without the support section, alternated
+  one-case rounds, give the check's cost as a ratio (``support``);
 * with the chosen sizing: the flip graph; the maintained ASGI server (export/bench/asgi.py:
   uvicorn with httptools under gunicorn's process management, an asyncio batcher, the Flask
   app through a WSGI adapter) against the loop front, alternated in ``front_rounds`` rounds,
@@ -48,8 +51,8 @@ import numpy as np
 from demur.export.errors import ExportError
 from demur.serve.core.bundle import Bundle
 
-__all__ = ["CLIENTS", "FRONT_RULE", "MODEL_ENV", "WRK", "baseline_model", "child_env", "http_section",
-           "torch_app"]
+__all__ = ["CLIENTS", "FRONT_RULE", "MODEL_ENV", "WRK", "baseline_model", "body_cost", "child_env",
+           "http_section", "torch_app"]
 
 WRK = "/usr/bin/wrk"
 CLIENTS = 32
@@ -131,10 +134,11 @@ def _group_cpu_s(pgid: int) -> float:
     return total / os.sysconf("SC_CLK_TCK")
 
 
-def _measured(url: str, body: bytes, seconds: int, workdir: Path, pgid: int) -> dict[str, Any]:
+def _measured(url: str, body: bytes, seconds: int, workdir: Path, pgid: int, ctype: str = "application/json",
+              clients: int = CLIENTS) -> dict[str, Any]:
     """A wrk run plus the CPU it cost (server group and wrk) per request; see the module docstring."""
     cpu0, kids0 = _group_cpu_s(pgid), resource.getrusage(resource.RUSAGE_CHILDREN)
-    r = _wrk(url, body, seconds, workdir)
+    r = _wrk(url, body, seconds, workdir, ctype, clients)
     cpu1, kids1 = _group_cpu_s(pgid), resource.getrusage(resource.RUSAGE_CHILDREN)
     n = max(1, r["requests"])
     server = (cpu1 - cpu0) / n
@@ -152,12 +156,18 @@ def _lua_string(text: str) -> str:
     return f"[{'=' * level}[{text}]{'=' * level}]"
 
 
-def _wrk(url: str, body: bytes, seconds: int, workdir: Path) -> dict[str, Any]:
-    """One wrk run (1 thread, CLIENTS connections, keep-alive): requests/s, p50, p99, non-2xx."""
+def _lua_bytes(data: bytes) -> str:
+    """``data`` as a Lua string of decimal escapes (binary-safe: long brackets rewrite line ends)."""
+    return '"' + "".join(f"\\{b}" for b in data) + '"'
+
+
+def _wrk(url: str, body: bytes, seconds: int, workdir: Path, ctype: str = "application/json",
+         clients: int = CLIENTS) -> dict[str, Any]:
+    """One wrk run (1 thread, ``clients`` connections, keep-alive): requests/s, p50, p99, non-2xx."""
     script = workdir / "post.lua"
-    script.write_text(f'wrk.method = "POST"\nwrk.headers["Content-Type"] = "application/json"\n'
-                      f"wrk.body = {_lua_string(body.decode())}\n")
-    out = subprocess.run([WRK, "-t1", f"-c{CLIENTS}", f"-d{seconds}s", "--timeout", "30s", "--latency", "-s",
+    text = _lua_string(body.decode()) if ctype == "application/json" else _lua_bytes(body)
+    script.write_text(f'wrk.method = "POST"\nwrk.headers["Content-Type"] = "{ctype}"\nwrk.body = {text}\n')
+    out = subprocess.run([WRK, "-t1", f"-c{clients}", f"-d{seconds}s", "--timeout", "30s", "--latency", "-s",
                           str(script), url],
                          capture_output=True, text=True, timeout=seconds + 60)
     text = out.stdout
@@ -259,11 +269,11 @@ class _Runner:
         return r
 
     def demur(self, front: str, workers: int, threads: int, ort: int, wait_ms: float, graph: str,
-              B: int) -> dict[str, Any]:
+              B: int, bundle: Bundle | None = None) -> dict[str, Any]:
         port = _free_port()
         data = self.workdir / f"data-{port}"
         if front == "loop":
-            argv = _loop_argv(self.bundle, port, workers, threads, ort, graph, data)
+            argv = _loop_argv(bundle or self.bundle, port, workers, threads, ort, graph, data)
             env = child_env(DEMUR_BATCH_WAIT_MS=str(wait_ms))
         else:  # the candidate batches what arrived in one loop pass: a wait of 0
             data.mkdir(parents=True, exist_ok=True)
@@ -321,9 +331,28 @@ def _fronts(run: _Runner, sizing: tuple[int, int, int, float], rounds: int) -> d
             "chosen": chosen}
 
 
+def _support_cost(run: _Runner, sizing: tuple[int, int, int, float], unchecked: Bundle,
+                  rounds: int) -> dict[str, Any]:
+    """One-case stacked requests/s of the default bundle (support check on) and of the same graphs
+    without the support section, alternated in ``rounds`` rounds; medians and their ratio."""
+    w, t, o, wait = sizing
+    runs: dict[str, list[dict[str, Any]]] = {"on": [], "off": []}
+    for i in range(rounds):
+        for which in (("on", "off") if i % 2 == 0 else ("off", "on")):
+            r = run.demur("loop", w, t, o, wait, "stacked", 1, bundle=None if which == "on" else unchecked)
+            r["support"] = which
+            runs[which].append(r)
+    med = {k: {m: float(statistics.median(r[m] for r in v))
+               for m in ("requests_per_s", "p99_ms", "server_cpu_ms_per_request")} for k, v in runs.items()}
+    off = med["off"]["requests_per_s"]
+    return {"rounds": rounds, "runs": runs["on"] + runs["off"], "on": med["on"], "off": med["off"],
+            "on_over_off_requests_per_s": med["on"]["requests_per_s"] / off if off > 0 else float("nan")}
+
+
 def http_section(bundle: Bundle, S: int, xs: np.ndarray, model_file: Path, workdir: Path, cfg: dict[str, Any],
-                 log: Callable[[str], None]) -> dict[str, Any]:
-    """Every HTTP measurement of one run (module docstring); ``bundle`` holds stacked and flip at S."""
+                 log: Callable[[str], None], unchecked: Bundle | None = None) -> dict[str, Any]:
+    """Every HTTP measurement of one run (module docstring); ``bundle`` holds stacked and flip at S
+    with the support check a default export carries; ``unchecked``: the same graphs without it."""
     if not os.access(WRK, os.X_OK):
         return {"skipped": f"{WRK} not found (apt-get install wrk)"}
     run = _Runner(bundle, xs, workdir, cfg["http_s"], log)
@@ -349,6 +378,8 @@ def http_section(bundle: Bundle, S: int, xs: np.ndarray, model_file: Path, workd
     section["cases"] += [best, run.demur("loop", w, t, o, wait, "flip", 1), batches[pick],
                          run.demur("loop", w, t, o, wait, "flip", 64)]
     section["fronts"] = _fronts(run, (w, t, o, wait), cfg["front_rounds"])
+    if unchecked is not None:
+        section["support"] = _support_cost(run, (w, t, o, wait), unchecked, max(2, cfg["front_rounds"]))
     xs_file = workdir / "cases.npy"
     np.save(xs_file, xs[:64])
     section["engine_same_cores"] = {
@@ -356,6 +387,28 @@ def http_section(bundle: Bundle, S: int, xs: np.ndarray, model_file: Path, workd
         "rows_per_s": {g: _parallel_rows(bundle, g, xs_file, 64, w, o, cfg["http_s"]) for g in ("stacked", "flip")}}
     section["cases"] += [run.torch(model_file, S, w, t, B) for B in (1, 64)]
     return section
+
+
+def body_cost(bundle: Bundle, bodies: dict[str, tuple[bytes, str]], workdir: Path, seconds: int,
+              log: Callable[[str], None], clients: int = 4, rounds: int = 2) -> list[dict[str, Any]]:
+    """One-case requests to ``demur serve`` as it starts by default (2 workers on 2 cores), each
+    body of ``bodies`` (label -> (bytes, Content-Type)) in alternated rounds on one server:
+    requests/s, p99, server CPU per request. ``clients`` connections: few, for a slow graph."""
+    port = _free_port()
+    argv = [sys.executable, "-m", "demur.serve.cli", "serve", str(bundle.path), "--host", "127.0.0.1", "--port",
+            str(port), "--data-dir", str(workdir / f"data-{port}")]
+    rows = []
+    with _server(argv, child_env(), port, workdir / "servers.log") as (_ready, pgid):
+        url = f"http://127.0.0.1:{port}/v1/predict"
+        for i in range(rounds):
+            for label, (body, ctype) in (list(bodies.items()) if i % 2 == 0 else list(bodies.items())[::-1]):
+                _wrk(url, body, 1, workdir, ctype, clients)  # warm-up
+                r = _measured(url, body, seconds, workdir, pgid, ctype, clients)
+                r.update({"body": label, "bytes": len(body), "clients": clients, "round": i})
+                rows.append(r)
+                log(f"  http one case {label:>14} {len(body) / 1e3:9.1f} kB {r['requests_per_s']:8.1f} req/s p99 "
+                    f"{r['p99_ms']:.1f} ms; server CPU {r['server_cpu_ms_per_request']:.2f} ms/req")
+    return rows
 
 
 # -- the baseline server ---------------------------------------------------------------------

@@ -49,31 +49,12 @@ from typing import Any
 
 import numpy as np
 
-from demur.serve.core.bundle import SCORES
+from demur.serve.core.bundle import SCORE_TASKS, SCORE_UNITS, SCORES
 from demur.serve.errors import ConfigError
 from demur.serve.core.summary import Summary
 from demur.serve.core.support import SupportCheck, support_from_manifest
 
-__all__ = ["SCORE_TASKS", "SCORE_UNITS", "DecisionRule", "ServedRule", "Verdicts", "decide", "rule_from",
-           "score_values"]
-
-SCORE_TASKS: dict[str, tuple[str, ...]] = {
-    "mutual_information": ("classification", "regression"),
-    "predictive_entropy": ("classification", "regression"),
-    "one_minus_max_prob": ("classification",),
-    "interval_width": ("regression",),
-    "epistemic_std": ("regression",),
-}
-"""Which tasks each score is defined for."""
-
-SCORE_UNITS: dict[str, str] = {
-    "mutual_information": "nats",
-    "predictive_entropy": "nats",
-    "one_minus_max_prob": "",
-    "interval_width": "target units",
-    "epistemic_std": "target units",
-}
-
+__all__ = ["DecisionRule", "ServedRule", "Verdicts", "decide", "rule_from", "score_values"]
 
 @dataclass(frozen=True)
 class DecisionRule:
@@ -126,9 +107,9 @@ def score_values(summary: Summary, name: str) -> np.ndarray:
 
 
 def decide(summary: Summary, rule: DecisionRule, *, support: SupportCheck | None = None,
-           x_raw: np.ndarray | None = None) -> Verdicts:
-    """``ServedRule(rule, support).decide(summary, x_raw)``: kept for callers that hold the two apart."""
-    return ServedRule(rule, support).decide(summary, x_raw)
+           x_raw: np.ndarray | None = None, x_std: np.ndarray | None = None) -> Verdicts:
+    """``ServedRule(rule, support).decide(summary, x_raw, x_std)``: kept for callers that hold the two apart."""
+    return ServedRule(rule, support).decide(summary, x_raw, x_std)
 
 
 @dataclass(frozen=True)
@@ -149,13 +130,15 @@ class ServedRule:
         """The rule in force for a bundle's manifest (``rule_from``) with its support check."""
         return cls(rule_from(manifest, config), support_from_manifest(manifest))
 
-    def outside(self, x_raw: np.ndarray | None, n: int) -> tuple[np.ndarray, list[str | None]]:
-        """(bool[n] outside the training data, reason per case or None); all inside without a check."""
+    def outside(self, x_raw: np.ndarray | None, n: int,
+                x_std: np.ndarray | None = None) -> tuple[np.ndarray, list[str | None]]:
+        """(bool[n] outside the training data, reason per case or None); all inside without a check.
+        ``x_std``: the same cases standardised as the graph saw them (float32), if at hand."""
         if self.support is None:
             return np.zeros(n, dtype=bool), [None] * n
         if x_raw is None or len(x_raw) != n:
             raise ValueError("a rule with a support check needs the raw inputs of every case (x_raw)")
-        checked = self.support.check(x_raw)
+        checked = self.support.check(x_raw, x_std)
         return np.asarray(checked.outside, dtype=bool), list(checked.reason)
 
     def ranking(self, summary: Summary, x_raw: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
@@ -164,9 +147,11 @@ class ServedRule:
         score = score_values(summary, self.rule.score)
         return score, self.outside(x_raw, len(score))[0]
 
-    def decide(self, summary: Summary, x_raw: np.ndarray | None = None) -> Verdicts:
+    def decide(self, summary: Summary, x_raw: np.ndarray | None = None,
+               x_std: np.ndarray | None = None) -> Verdicts:
         """Apply the rule to every case of ``summary``; ``x_raw`` float[B, *shape] are the raw
-        inputs (before standardisation), needed when there is a support check."""
+        inputs (before standardisation), needed when there is a support check; ``x_std`` the
+        engine's standardised copy, so the check does not standardise again."""
         rule = self.rule
         score = score_values(summary, rule.score)
         abstain = score > rule.threshold
@@ -178,7 +163,7 @@ class ServedRule:
         ]
         if self.support is None:
             return Verdicts(score=score, abstain=abstain, reason=reason)
-        outside, why = self.outside(x_raw, len(score))
+        outside, why = self.outside(x_raw, len(score), x_std)
         reason = [f"{w}; {r}" if w else r for w, r in zip(why, reason)]
         return Verdicts(score=score, abstain=abstain | outside, reason=reason, outside=outside)
 

@@ -277,28 +277,50 @@ class Runtime:
             return live, answers
         req = valid[0][1] if len(valid) == 1 else PredictRequest(
             x=np.concatenate([r.x for _, r in valid]), case_ids=[c for _, r in valid for c in r.case_ids])
+        answered = self.answer_request(req, caller=caller, live=live, started=t0)
+        rule = {"score": live.rule.score, "threshold": live.rule.threshold, "source": live.rule.source}
+        draw_count = answered.summary.draws
+        start = 0
+        for i, r in valid:
+            answers[i] = {"model": live.model, "results": answered.results[start:start + r.size],
+                          "draws": draw_count, "decision_rule": rule}
+            start += r.size
+        return live, answers
+
+    def answer_request(self, req: PredictRequest, *, caller: str | None = None, live: Live | None = None,
+                       started: float | None = None, rendered: bool = True) -> Answered:
+        """Answer cases already validated at their boundary (``answer`` for HTTP bodies,
+        demur.serve.offline.scoring for file rows) with one graph run: engine -> summary ->
+        decision (support check first) -> render -> review hook -> metrics hook. The one
+        place a case is decided, so a file scored offline gets the server's decisions.
+        ``live``: the model to answer with (default: the live one); ``started``: the
+        ``time.perf_counter()`` at which the request arrived, for the metrics.
+        ``rendered=False`` skips the response dicts and with them the review hook, which
+        reads them (``results`` is empty): for the offline scorer without a review queue,
+        which writes its columns from ``summary`` and ``decisions``."""
+        t0 = time.perf_counter() if started is None else started
+        live = live if live is not None else self.slot.live
+        manifest = live.manifest
         t1 = time.perf_counter()
-        draws = live.engine.run(req.x)
+        x_std = live.engine.standardise(req.x)   # once: the graph and the support check read it
+        draws = live.engine.run_standardised(x_std)
         t2 = time.perf_counter()
         if draws.ndim != 3 or draws.shape[1] != req.size:
             raise GraphRunError(f"the graph returned draws of shape {list(draws.shape)} for {req.size} cases")
         summary = summarise(manifest.task, draws, live.level, manifest.target)
-        decisions = live.served.decide(summary, req.x)
-        results = render.results(summary, decisions, live.rule, manifest.labels, req.case_ids)
-        self._annotate(Answered(live, req, summary, decisions, results, caller))
-        rule = {"score": live.rule.score, "threshold": live.rule.threshold, "source": live.rule.source}
-        draw_count = int(draws.shape[0])
-        start = 0
-        for i, r in valid:
-            answers[i] = {"model": live.model, "results": results[start:start + r.size], "draws": draw_count,
-                          "decision_rule": rule}
-            start += r.size
+        decisions = live.served.decide(summary, req.x, x_std)
+        if not rendered:
+            answered = Answered(live, req, summary, decisions, [], caller)
+        else:
+            results = render.results(summary, decisions, live.rule, manifest.labels, req.case_ids)
+            answered = Answered(live, req, summary, decisions, results, caller)
+            self._annotate(answered)
         try:
             self.metrics.observe_predict(x_raw=req.x, summary=summary, decisions=decisions,
                                          graph_seconds=t2 - t1, total_seconds=time.perf_counter() - t0)
         except Exception:  # metrics must never cost an answer
             log.exception("metrics hook failed")
-        return live, answers
+        return answered
 
     def _annotate(self, answered: Answered) -> None:
         results = answered.results

@@ -62,7 +62,7 @@ from __future__ import annotations
 
 import base64
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -110,6 +110,10 @@ REASON = "outside_training_data"
 """The reason code of a support abstention (the metric label too)."""
 
 _CONSTANT = 1e-12
+
+_ROUNDING = 1e-5
+"""Past-the-bound distance (scale units) below which a standardised float32 value counts as on the
+bound: float32 standardisation moves a value by ~1e-7 relative, far less than this."""
 
 
 def standardisation(x: np.ndarray, *, shared_units: bool = False) -> tuple[np.ndarray, np.ndarray]:
@@ -167,7 +171,12 @@ class SupportResult:
 @dataclass(frozen=True)
 class SupportCheck:
     """The manifest's support record, ready to test cases. ``sample``: float32[N, F] standardised
-    training inputs; ``threshold`` on the k-NN distance; ``low/high/margin`` raw units."""
+    training inputs; ``threshold`` on the k-NN distance; ``low/high/margin`` raw units.
+
+    Per request the check costs one [B, F] x [F, N] float32 matrix product and a partial sort:
+    the sample's squared norms and the range bounds in standardised units are computed once,
+    here, and the sample is never copied per call. Pass the graph's standardised input
+    (``x_std``, the engine's) so the case is standardised once per request."""
 
     names: tuple[str, ...]
     low: np.ndarray
@@ -179,42 +188,66 @@ class SupportCheck:
     neighbours: int
     threshold: float
     record: dict[str, Any]
+    _pre: dict[str, np.ndarray] = field(default_factory=dict, init=False, repr=False, compare=False)
 
-    def distance(self, x_raw: np.ndarray) -> np.ndarray:
-        """k-NN distance of each case to the training sample, float64[B] (standardised units)."""
-        z = (np.asarray(x_raw, dtype=np.float64).reshape(len(x_raw), -1) - self.center) / self.scale
-        s = self.sample
-        d2 = (z * z).sum(axis=1)[:, None] - 2.0 * (z @ s.T) + (s * s).sum(axis=1)[None, :]
-        k = min(self.neighbours, s.shape[0])
+    def __post_init__(self) -> None:
+        sample = np.ascontiguousarray(self.sample, dtype=np.float32)
+        object.__setattr__(self, "sample", sample)
+        self._pre.update(
+            sq=np.einsum("ij,ij->i", sample, sample),                                   # float32[N]
+            center=self.center.astype(np.float32).ravel(), scale=self.scale.astype(np.float32).ravel(),
+            lo=(((self.low - self.margin) - self.center) / self.scale).astype(np.float32),
+            hi=(((self.high + self.margin) - self.center) / self.scale).astype(np.float32),
+        )
+
+    def standardised(self, x_raw: np.ndarray) -> np.ndarray:
+        """float32[B, F]: (x - center) / scale, in float32 (the engine's standardisation)."""
+        x = np.asarray(x_raw, dtype=np.float32).reshape(len(x_raw), -1)
+        return (x - self._pre["center"]) / self._pre["scale"]
+
+    def _z(self, x_raw: np.ndarray, x_std: np.ndarray | None) -> np.ndarray:
+        if x_std is None:
+            return self.standardised(x_raw)
+        return np.asarray(x_std, dtype=np.float32).reshape(len(x_std), -1)
+
+    def distance(self, x_raw: np.ndarray, x_std: np.ndarray | None = None) -> np.ndarray:
+        """k-NN distance of each case to the training sample, float64[B] (standardised units);
+        ``x_std``: the same cases already standardised (skips standardising them again)."""
+        z = self._z(x_raw, x_std)
+        d2 = np.einsum("ij,ij->i", z, z)[:, None] - 2.0 * (z @ self.sample.T) + self._pre["sq"][None, :]
+        k = min(self.neighbours, self.sample.shape[0])
         kth = np.partition(d2, k - 1, axis=1)[:, k - 1]
-        return np.sqrt(np.maximum(kth, 0.0))
+        return np.sqrt(np.maximum(kth, 0.0)).astype(np.float64)
 
-    def scores(self, x_raw: np.ndarray) -> np.ndarray:
+    def scores(self, x_raw: np.ndarray, x_std: np.ndarray | None = None) -> np.ndarray:
         """The nonconformity score: the k-NN distance, +inf where the range check fails."""
-        x = np.asarray(x_raw, dtype=np.float64).reshape(len(x_raw), -1)
-        d = self.distance(x)
-        return np.where(self._excess(x).max(axis=1, initial=0.0) > 0, np.inf, d)
+        z = self._z(x_raw, x_std)
+        d = self.distance(x_raw, z)
+        return np.where(self._excess(z).max(axis=1, initial=0.0) > 0, np.inf, d)
 
-    def _excess(self, x: np.ndarray) -> np.ndarray:
-        """How far each feature lies past its range plus margin, in scale units (0 inside)."""
-        below = (self.low - self.margin) - x
-        above = x - (self.high + self.margin)
-        return np.maximum(np.maximum(below, above), 0.0) / self.scale
+    def _excess(self, z: np.ndarray) -> np.ndarray:
+        """How far each standardised feature lies past its range plus margin, in scale units (0 inside;
+        a float32 rounding step at the bound counts as inside)."""
+        past = np.maximum(self._pre["lo"] - z, z - self._pre["hi"])
+        return np.where(past > _ROUNDING, past, 0.0)
 
-    def check(self, x_raw: np.ndarray) -> SupportResult:
-        """Test every case of ``x_raw`` (float[B, *shape], raw units)."""
-        x = np.asarray(x_raw, dtype=np.float64).reshape(len(x_raw), -1)
-        excess = self._excess(x)
+    def check(self, x_raw: np.ndarray, x_std: np.ndarray | None = None) -> SupportResult:
+        """Test every case of ``x_raw`` (float[B, *shape], raw units; ``x_std`` the same cases
+        standardised, as the engine fed them to the graph)."""
+        x = np.asarray(x_raw).reshape(len(x_raw), -1)
+        z = self._z(x_raw, x_std)
+        excess = self._excess(z)
         worst = excess.argmax(axis=1) if x.shape[1] else np.zeros(len(x), dtype=np.int64)
         ranged = excess[np.arange(len(x)), worst] > 0 if x.shape[1] else np.zeros(len(x), dtype=bool)
-        dist = self.distance(x)
+        dist = self.distance(x_raw, z)
         far = dist > self.threshold
         reasons: list[str | None] = []
         for i in range(len(x)):
             if ranged[i]:
                 j = int(worst[i])
-                side = "above" if x[i, j] > self.high[j] else "below"
-                reasons.append(f"{REASON}: feature {self.names[j]} = {x[i, j]:.4g} {side} training range "
+                value = float(x[i, j])
+                side = "above" if value > self.high[j] else "below"
+                reasons.append(f"{REASON}: feature {self.names[j]} = {value:.4g} {side} training range "
                                f"{self.low[j]:.4g}-{self.high[j]:.4g}")
             elif far[i]:
                 reasons.append(f"{REASON}: distance to training data {dist[i]:.4g} > {self.threshold:.4g}")

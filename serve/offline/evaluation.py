@@ -38,6 +38,7 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
+from demur.serve.core.bundle import SCORE_TASKS
 from demur.serve.offline.metrics import (
     REFERRAL_RATES,
     accuracy_at_referral,
@@ -51,8 +52,8 @@ from demur.serve.offline.report import CAUTION, _json_safe, _plt
 __all__ = ["FAR_SHIFTS", "NOISE_SD", "SCORE_NAMES", "auroc", "auroc_difference", "auroc_standard_error",
            "holdout_row", "referral_table", "scores_of", "shift_row", "shifted_inputs", "write_evaluation"]
 
-SCORE_NAMES = ("mutual_information", "predictive_entropy", "one_minus_max_prob")
-"""The rankings compared (larger = less sure)."""
+SCORE_NAMES = tuple(name for name, tasks in SCORE_TASKS.items() if "classification" in tasks)
+"""The rankings compared: every classification score of the bundle format (larger = less sure)."""
 
 FAR_SHIFTS = ("scale_x3", "inversion", "rotation", "uniform_noise", "blank", "saturated")
 """Shifts far from any training input: the served rule should accept (almost) none of them."""

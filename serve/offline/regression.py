@@ -45,8 +45,8 @@ from demur.serve.offline.metrics import REFERRAL_RATES
 from demur.serve.offline.report import CAUTION, _json_safe, _plt
 
 __all__ = ["COVERAGE_LEVELS", "PIT_BINS", "coverage_table", "crps_gaussian", "crps_mixture", "far_shifts",
-           "nll_mixture", "pit_values", "referral_by_epistemic", "regression_scores", "regression_shift_row",
-           "write_regression_evaluation"]
+           "nll_mixture", "pit_values", "referral_by_epistemic", "regression_lines", "regression_scores",
+           "regression_shift_row", "write_regression_evaluation"]
 
 COVERAGE_LEVELS = (0.5, 0.8, 0.9, 0.95)
 """Central interval levels whose coverage is reported."""
@@ -151,6 +151,22 @@ def regression_shift_row(clean_width: float, width: np.ndarray, epistemic_std: n
     return {"mean_width": w, "width_ratio": w / clean_width if clean_width > 0 else float("nan"),
             "epistemic_std": float(np.mean(epistemic_std)), "accepted": float(np.mean(accepted)),
             "outside_training_data": float(np.mean(outside))}
+
+
+def regression_lines(figures: Mapping[str, Any]) -> list[str]:
+    """``demur evaluate``'s regression tables in a few printed lines."""
+    body = figures["models"]["bundle"]
+    sc = body["scores"]
+    lines = [f"{sc['n']} cases: NLL {sc['nll']:.4f} nats, CRPS {sc['crps']:.4g}, RMSE {sc['rmse']:.4g}, MAE "
+             f"{sc['mae']:.4g}; PIT counts {sc['pit']['counts']}"]
+    lines += [f"  {r['interval']} {r['level']:.0%}: coverage {r['coverage']:.3f}, mean width {r['mean_width']:.4g}"
+              for r in body["coverage"]]
+    lines.append("  referred by epistemic variance: " + ", ".join(
+        f"{r['referred']:.0%} RMSE {r['rmse']:.4g}" for r in body["referral"]))
+    lines.append("  shifted inputs (served interval width, x clean; accepted; outside the training data): " + "; ".join(
+        f"{k} {r['mean_width']:.4g} (x{r['width_ratio']:.2f}), {r['accepted']:.2f}, {r['outside_training_data']:.2f}"
+        for k, r in body["shift"].items()))
+    return lines
 
 
 def _table(rows: list[Mapping[str, Any]], keys: list[str]) -> str:

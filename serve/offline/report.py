@@ -29,7 +29,7 @@ from typing import Any
 
 import numpy as np
 
-from demur.serve.core.decision import SCORE_UNITS
+from demur.serve.core.bundle import SCORE_UNITS
 from demur.serve.offline.metrics import ECE_BINS, reliability_bins, risk_coverage
 
 __all__ = ["CAUTION", "ClassificationPlots", "RegressionPlots", "decision_lines", "write_report"]

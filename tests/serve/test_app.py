@@ -286,7 +286,7 @@ def test_unexpected_errors_are_500_without_traceback(app: Any, caplog: Any) -> N
     def explode(x: Any) -> Any:
         raise KeyError("secret internals")
 
-    runtime.slot.live.engine.run = explode
+    runtime.slot.live.engine.run = runtime.slot.live.engine.run_standardised = explode
     r = _post(client, {"cases": _rows(1)})
     assert r.status_code == 500
     err = _error_of(r)
@@ -296,7 +296,7 @@ def test_unexpected_errors_are_500_without_traceback(app: Any, caplog: Any) -> N
     def graph_fails(x: Any) -> Any:
         raise GraphRunError("onnxruntime failed to run the stacked graph: boom", field="graph")
 
-    runtime.slot.live.engine.run = graph_fails
+    runtime.slot.live.engine.run = runtime.slot.live.engine.run_standardised = graph_fails
     r = _post(client, {"cases": _rows(1)})
     assert r.status_code == 500 and _error_of(r)["code"] == "graph_run_failed"
 

@@ -11,7 +11,7 @@ import subprocess
 import sys
 from pathlib import Path
 
-COMMANDS = ("serve", "status", "train", "export", "calibrate", "evaluate", "bench")
+COMMANDS = ("serve", "status", "score", "train", "export", "calibrate", "evaluate", "bench")
 
 
 def _demur(*args: str, cwd: Path) -> subprocess.CompletedProcess[str]:

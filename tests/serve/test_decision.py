@@ -88,7 +88,7 @@ class _Outside:
     def __init__(self, flags):
         self.flags = np.asarray(flags, dtype=bool)
 
-    def check(self, x_raw):
+    def check(self, x_raw, x_std=None):
         from demur.serve.core.support import SupportResult
 
         return SupportResult(outside=self.flags[: len(x_raw)], distance=np.zeros(len(x_raw)),

@@ -21,7 +21,8 @@ from demur.serve.cli import build_parser
 
 TINY = {"draws": [4], "batches": [1, 2], "repeats": 1, "budget_s": 0.0, "rss": False,
         "http_s": 1, "worker_models": [(1, 2, 1, 0.0)], "front_rounds": 1, "conv_draws": 4,
-        "conv_nets": ["small"]}
+        "conv_nets": ["small"], "backbone_draws": 4, "backbone_sizes": [32], "backbone_batches": [1, 2],
+        "backbone_width": 4}
 
 
 @pytest.fixture(scope="module")
@@ -53,6 +54,13 @@ def test_tiny_run_has_every_section(tiny_result: dict[str, Any]) -> None:
     assert {(e["mode"], e["batch"]) for e in conv["engine"]} == {(m, b) for m in ("stacked", "flip") for b in (1, 2)}
     assert all(e["draws"] == 4 and e["latency_ms"]["median"] > 0 for e in conv["engine"])
     assert {m["mode"] for m in conv["memory"]} == {"stacked", "flip"}
+    (bll,) = r["backbone"]
+    assert bll["input"] == [3, 32, 32] and bll["draws"] == 4
+    modes = {(row["mode"], row["batch"]) for row in bll["rows"]}
+    assert modes == {(m, b) for m in ("stacked", "sampler", "flip", "means", "stacked per draw (before)")
+                     for b in (1, 2)}
+    assert all(row["over_deterministic"] > 0 for row in bll["rows"])
+    assert all(v.startswith("shared") for k, v in bll["computation"].items() if k != "means")
     json.dumps(r)  # serialisable as written to bench.json
 
 
@@ -61,6 +69,7 @@ def test_ratios_and_targets_are_named(tiny_result: dict[str, Any]) -> None:
     assert "flip_over_stacked_S4_B1" in ratios and "torch_loop_over_stacked_S4_B1" in ratios
     assert "summary_share_of_engine_B64_S32" in ratios
     assert "conv_small_flip_over_stacked_S4_B1" in ratios and "memory_file_over_params_conv_small_flip_S4" in ratios
+    assert "backbone_3x32x32_stacked_over_deterministic_S4_B2" in ratios
     names = [t["name"] for t in tiny_result["targets"]]
     assert "summaries / engine time, B=64 S=32" in names
     assert any(n.startswith("conv small") and "flip latency" in n for n in names)
@@ -71,7 +80,8 @@ def test_ratios_and_targets_are_named(tiny_result: dict[str, Any]) -> None:
 
 def test_table_prints_every_engine_row(tiny_result: dict[str, Any]) -> None:
     table = format_table(tiny_result)
-    assert "engine level" in table and "targets (issues 8, 12, 16)" in table and "conv nets" in table
+    assert "engine level" in table and "targets (issues 8, 12, 16, 22)" in table and "conv nets" in table
+    assert "Bayesian last layers" in table
     assert table.count("\n") > len(tiny_result["engine"])
 
 
