@@ -78,6 +78,7 @@ from demur.export.cases import (
     screen_training_rows,
 )
 from demur.export.datasets import BUILTIN
+from demur.export.recertification import is_review_export, recertify_file
 
 __all__ = ["CalibrationOutcome", "FLOOR_QUANTILE", "calibrate", "calibrate_file"]
 
@@ -151,7 +152,12 @@ def calibrate_file(bundle: str | Path, data: str, *, target: str | None = None, 
     """``demur calibrate``: ``data`` is a CSV path (every row calibrates) or a bundled set
     (its documented cal split; the test split is the check). ``test``: a CSV for the check;
     ``holdout``: instead, set aside this share of ``data`` (seeded by ``seed``, default 0).
-    ``options`` are ``calibrate``'s keyword arguments."""
+    ``options`` are ``calibrate``'s keyword arguments. A review export (``GET
+    /v1/reviews/export?format=csv``) as ``data`` recertifies the served rule from its audit
+    items instead (export/recertification.py)."""
+    if str(data) not in BUILTIN and is_review_export(data):  # the review export, as it is
+        return recertify_file(bundle, data, test=test, holdout=holdout, seed=seed, ignore=tuple(ignore),
+                              target=None if target in (None, "label") else target, **options)
     b = load_bundle(bundle)
     _check_goal(b.manifest.task, options.get("target_accuracy"), options.get("target_abstain"),
                 options.get("coverage"))

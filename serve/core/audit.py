@@ -26,7 +26,7 @@ enter the certificate test; their "model would have been right" share is reporte
 referral saves.
 
 Pure numpy/scipy: tested against scipy.stats.binomtest and a simulation of the false-alarm
-rate (tests/serve/test_audit.py).
+rate (tests/serve/core/test_audit.py).
 """
 
 from __future__ import annotations

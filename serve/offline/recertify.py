@@ -28,7 +28,7 @@ Method, and why:
    held-out file, is biased: abstentions are over-represented, so its abstention rate is far
    too high and its accepted-accuracy figures at thresholds above ``t0`` mix a census with a
    sample. ``naive_estimates`` computes it so the simulation in
-   tests/serve/test_recertify.py can show the bias against known truth.
+   tests/serve/offline/test_recertify.py can show the bias against known truth.
 """
 
 from __future__ import annotations

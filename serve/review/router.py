@@ -239,7 +239,8 @@ class ReviewRouter:
         view = self._view(answered.live)
         x = answered.request.x
         now = time.time()
-        items = [self._item(kind, answered.results[i], case_ids[i], x[i], model, view, now) for i, kind in chosen]
+        items = [self._item(kind, answered.results[i], case_ids[i], x[i], model, view, now,
+                            inclusion=self.audit_fraction if kind == "audit" else 1.0) for i, kind in chosen]
         abstained = [(i, item) for (i, kind), item in zip(chosen, items) if kind == "abstain"]
         try:
             if time.monotonic() < self._skip_until:
@@ -417,13 +418,16 @@ class ReviewRouter:
 
     @staticmethod
     def _item(kind: str, result: dict[str, Any], case_id: str | None, x: np.ndarray, model: dict[str, str],
-              view: dict[str, Any], now: float) -> NewItem:
+              view: dict[str, Any], now: float, *, inclusion: float) -> NewItem:
         task = view["task"]
         # The float32 values the model saw, in their shortest round-trip form (0.3, not 0.30000001192092896).
         case = {"values": [float(v) for v in np.asarray(x, dtype=np.float32).ravel().astype(str)],
                 "shape": view["shape"], **{k: view[k] for k in ("kind", "grid", "names", "low", "high") if k in view}}
         summary = {k: result.get(k) for k in ("mean", "interval", "uncertainty", "score", "threshold", "reason")}
         summary["task"] = task
+        # the chance this case was sent to people (audit_fraction for audits, 1 for abstentions):
+        # the inclusion weight recertification needs (demur.serve.offline.recertify)
+        summary["inclusion"] = float(inclusion)
         if "variance" in result:
             summary["variance"] = result["variance"]
         if view.get("labels"):

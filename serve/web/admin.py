@@ -61,7 +61,7 @@ from typing import Any
 
 from demur.serve.core.bundle import load_bundle
 from demur.serve.config import ServeConfig
-from demur.serve.errors import BundleError, Conflict, DemurError, InvalidInput, SmokeFailed
+from demur.serve.errors import BundleError, Conflict, DemurError, InvalidInput, NotFound, SmokeFailed
 
 __all__ = [
     "ADMIN_EXTENSION",
@@ -474,6 +474,13 @@ def install_admin(app: Any, config: ServeConfig, *, bundle_path: str | None = No
         if unknown:
             raise InvalidInput(f"unknown key '{unknown[0]}'; the body takes only 'bundle'", field=unknown[0])
         path = confine(state.config, body.get("bundle"))
+        try:
+            found = path.is_dir()
+        except OSError:  # a name the file system cannot hold (too long, ...): no such bundle either
+            found = False
+        if not found:
+            raise NotFound(f"no bundle directory '{str(body.get('bundle'))[:200]}' in the bundles directory "
+                           f"{bundle_root(state.config)}", field="bundle")
         result = roll_out(app, path)
         return jsonify({
             "model": result.current,

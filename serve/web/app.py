@@ -37,6 +37,7 @@ from demur.serve.errors import DemurError, PayloadTooLarge
 from demur.serve.review.router import ReviewRouter
 from demur.serve.web import predict_http
 from demur.serve.web.admin import install_admin
+from demur.serve.web.apidoc import bound_document
 from demur.serve.web.auth import AUTH_EXTENSION, TokenSet
 from demur.serve.web.limits import install_limits
 
@@ -133,8 +134,8 @@ def create_app(
         return json_response({"status": "ready", "model": live.model, "draws": live.engine.draws})
 
     @app.get("/openapi.json")
-    def openapi_document() -> Response:
-        return Response(openapi, mimetype="application/json")
+    def openapi_document() -> Response:  # the file bound to the model serving (serve/web/apidoc.py)
+        return Response(bound_document(openapi, runtime.slot.current, config.max_cases), mimetype="application/json")
 
     _install_errors(app, runtime)
 

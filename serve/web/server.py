@@ -79,7 +79,7 @@ def register(subparsers: Any) -> None:
 
 
 _FLAG_FIELDS = ("host", "port", "workers", "threads", "trusted_proxies", "score", "threshold", "interval_level", "graph",
-                "ort_intra_threads", "max_cases", "max_body_bytes", "seed", "data_dir", "review_store")
+                "ort_intra_threads", "max_cases", "max_body_bytes", "seed", "data_dir", "review_store", "review_order")
 
 
 def _main(args: argparse.Namespace) -> int:

@@ -156,9 +156,16 @@ def test_a_sealed_but_unrunnable_graph_fails_the_smoke_prediction(bundles: dict[
     assert _predict_version(client) == "1"
 
 
-def test_missing_bundle_is_404_like_named_error(bundles: dict[str, Path]) -> None:
-    r = _app(bundles).test_client().post("/v1/admin/model", json={"bundle": "no-such"}, headers=ADMIN)
-    assert r.status_code == 422 and r.get_json()["error"]["code"] == "bundle_not_found"
+def test_missing_bundle_is_404_naming_the_field(bundles: dict[str, Path]) -> None:
+    """No such directory is a 404 (the API document: a state the client can mend, not a schema
+    violation); a name the file system cannot hold is no such directory either, never a 500."""
+    client = _app(bundles).test_client()
+    for name in ("no-such", "x" * 5000, "\u1e70" * 300):
+        r = client.post("/v1/admin/model", json={"bundle": name}, headers=ADMIN)
+        assert r.status_code in (404, 400), (name[:20], r.get_json())
+        assert r.get_json()["error"]["field"] == "bundle"
+    r = client.post("/v1/admin/model", json={"bundle": "no-such"}, headers=ADMIN)
+    assert r.status_code == 404 and r.get_json()["error"]["code"] == "not_found"
 
 
 def test_in_flight_request_finishes_on_the_model_it_started_with(bundles: dict[str, Path]) -> None:

@@ -21,7 +21,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from tests.serve.test_server import Server, _call, _rows, _start
+from tests.serve.web.test_server import Server, _call, _rows, _start
 
 SOCKET_TIMEOUT_S = 15.0
 

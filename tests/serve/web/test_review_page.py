@@ -19,7 +19,7 @@ import pytest
 pytestmark = [pytest.mark.browser]
 
 CHROMIUM = Path("/usr/bin/chromium")
-ARTIFACTS = Path(__file__).resolve().parents[2] / "test-artifacts"
+ARTIFACTS = Path(__file__).resolve().parents[3] / "test-artifacts"
 ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
         "--disable-component-update", "--disable-sync", "--no-first-run"]
 TOKEN = "desk-token-browser"

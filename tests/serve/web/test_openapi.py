@@ -14,6 +14,8 @@ import json
 import re
 from typing import Any
 
+import pytest
+
 from jsonschema import Draft202012Validator
 
 from demur.serve.web.app import OPENAPI_PATH
@@ -74,7 +76,49 @@ def test_contract_routes_present() -> None:
         assert route in documented
 
 
-def test_served_document_is_the_file(client: Any) -> None:
+def test_served_document_is_the_file_bound_to_the_live_model(client: Any) -> None:
+    """Only the places marked x-demur-bound differ (serve/web/apidoc.py)."""
     r = client.get("/openapi.json")
     assert r.status_code == 200 and r.mimetype == "application/json"
-    assert r.get_data() == OPENAPI_PATH.read_bytes()
+    served = r.get_json()
+    bound = ("Case", "ReviewDecision", "PredictRequest")
+    assert {k: v for k, v in served["components"]["schemas"].items() if k not in bound} == {
+        k: v for k, v in DOC["components"]["schemas"].items() if k not in bound}
+    assert served["paths"] == DOC["paths"]
+    assert served["components"]["schemas"]["PredictRequest"]["properties"]["cases"]["maxItems"] >= 1
+    assert served["components"]["schemas"]["ReviewDecision"]["required"] == ["label"]
+    assert len(served["components"]["schemas"]["ReviewDecision"]["properties"]["label"]["enum"]) == 10
+
+
+def _validator(document: dict[str, Any], name: str) -> Draft202012Validator:
+    """A validator for one component schema of ``document``, its $refs resolved in it."""
+    from referencing import Registry, Resource
+
+    registry = Registry().with_resource("urn:demur", Resource.opaque(document))
+    schema = {"$ref": f"urn:demur#/components/schemas/{name}"}
+    return Draft202012Validator(schema, registry=registry)
+
+
+@pytest.mark.parametrize("which", ["flat", "conv"])
+def test_the_bound_case_schema_allows_exactly_what_the_server_accepts(
+        which: str, client: Any, image_client: Any) -> None:
+    """The served document is the contract: each body it allows gets 200, each it forbids a 4xx.
+    Bodies from issue 20's findings plus each accepted form (jsonschema's Draft 2020-12 validator)."""
+    c = client if which == "flat" else image_client
+    doc = c.get("/openapi.json").get_json()
+    check = _validator(doc, "PredictRequest")
+    names = [f"px_r{r}c{col}" for r in range(8) for col in range(8)]
+    grid = [[float(r + col) for col in range(8)] for r in range(8)]
+    bodies = [
+        {"cases": [[1.0] * 64]}, {"cases": [grid]}, {"cases": [[grid]]}, {"cases": [dict.fromkeys(names, 2.0)]},
+        {"cases": [[1.0] * 64], "case_ids": None}, {"cases": [[1.0] * 64], "case_ids": ["parcel-1"]},
+        {"cases": [[None]]}, {"cases": [[1.0] * 63]}, {"cases": [[True] * 64]}, {"cases": [["1"] * 64]},
+        {"cases": [[1e39] * 64]}, {"cases": [dict.fromkeys(names[:-1], 2.0)]},
+        {"cases": [{**dict.fromkeys(names, 2.0), "extra": 1.0}]}, {"cases": []}, {"cases": [[1.0] * 64], "x": 1},
+        {"cases": [[1.0] * 64], "case_ids": ["a\x00b"]}, {"cases": [[1.0] * 64], "case_ids": [""]},
+    ]
+    for body in bodies:
+        allowed = check.is_valid(body)
+        status = c.post("/v1/predict", json=body).status_code
+        assert (status == 200) == allowed, (body if len(str(body)) < 300 else str(body)[:300], allowed, status)
+        assert status < 500

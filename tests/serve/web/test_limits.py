@@ -1,7 +1,7 @@
 """serve/web/limits.py: security headers, body cap and debug off on every Flask response.
 
 References: the security headers are common practice (OWASP secure-headers project,
-values from memory). Admission (503 + Retry-After) is tests/serve/test_predict_http.py.
+values from memory). Admission (503 + Retry-After) is tests/serve/web/test_predict_http.py.
 """
 
 from __future__ import annotations

@@ -325,3 +325,55 @@ def test_reviewer_text_is_checked_at_the_boundary(client: Any, body: dict[str, A
                     content_type="application/json")
     assert r.status_code == 400 and r.json["error"]["field"] == "skip[1]"
     assert client.get("/v1/reviews?after=%00", headers=R1).json["error"]["field"] == "after"
+
+
+# -- issue 20: where the API document and the code disagreed --------------------------------------
+
+
+@pytest.mark.parametrize("query", ["/v1/reviews?status=", "/v1/reviews?limit=", "/v1/reviews?kind=",
+                                   "/v1/reviews?after=", "/v1/reviews/export?format=&limit=1",
+                                   "/v1/reviews/export?limit="])
+def test_an_empty_query_value_is_refused_naming_it(client: Any, query: str) -> None:
+    """The document's enums and integers allow no empty value (allowEmptyValue: false)."""
+    r = client.get(query, headers=R1)
+    assert r.status_code == 400, r.json
+    assert r.json["error"]["field"] == query.split("?")[1].split("=")[0]
+
+
+def test_options_on_claim_advertises_only_what_the_document_lists(client: Any) -> None:
+    r = client.open("/v1/reviews/claim", method="OPTIONS")
+    allowed = {m.strip() for m in r.headers["Allow"].split(",")}
+    assert "GET" not in allowed and "POST" in allowed
+    for word in ("summary", "export"):
+        allowed = {m.strip() for m in client.open(f"/v1/reviews/{word}", method="OPTIONS").headers["Allow"].split(",")}
+        assert "POST" not in allowed and "GET" in allowed
+
+
+def test_an_empty_decision_is_refused_and_the_document_says_so(app: Any, client: Any) -> None:
+    [rid] = [r["review_id"] for r in _predict(client, [_digit(5)], ["d-1"])]
+    client.post("/v1/reviews/claim", headers=R1)
+    r = client.post(f"/v1/reviews/{rid}/decision", json={}, headers=R1)
+    assert r.status_code == 400 and r.json["error"]["field"] == "label"
+    served = client.get("/openapi.json").get_json()["components"]["schemas"]["ReviewDecision"]
+    assert served["required"] == ["label"]  # the document forbids {} too
+    r = client.post(f"/v1/reviews/{rid}/decision", json={"label": "3", "note": None}, headers=R1)
+    assert r.status_code == 200, r.json  # a null note is no note, as the document says
+
+
+def test_case_ids_null_is_no_ids_and_another_length_is_refused(client: Any) -> None:
+    r = client.post("/v1/predict", json={"cases": [_digit(1)], "case_ids": None}, headers=SORTER)
+    assert r.status_code == 200 and r.json["results"][0]["case_id"] is None
+    r = client.post("/v1/predict", json={"cases": [_digit(1)], "case_ids": ["a", "b"]}, headers=SORTER)
+    assert r.status_code == 400 and r.json["error"]["field"] == "case_ids"
+    described = client.get("/openapi.json").get_json()["components"]["schemas"]["PredictRequest"]
+    assert "exactly one entry per case" in described["properties"]["case_ids"]["description"]
+
+
+def test_a_reused_case_id_with_other_inputs_is_queued_and_the_answer_says_so(app: Any, client: Any) -> None:
+    [first] = _predict(client, [_digit(1)], ["reuse-1"])
+    [second] = _predict(client, [_digit(2)], ["reuse-1"])
+    [third] = _predict(client, [_digit(1)], ["reuse-1"])
+    assert second["review_id"] != first["review_id"]
+    assert second["review"] == {"queued": True, "case_id_reused": True, "reason": second["review"]["reason"]}
+    assert third["review_id"] == first["review_id"]  # same id, same inputs: the same item
+    assert _router(app).store.get(second["review_id"]).case["values"] == _digit(2)

@@ -40,7 +40,7 @@ from demur.serve.errors import ReviewStoreUnavailable
 from demur.serve.adapters.metrics import SCORE_BUCKETS, Metrics
 from tests._processes import supervised
 
-ROOT = Path(__file__).resolve().parents[2]
+ROOT = Path(__file__).resolve().parents[3]
 
 
 # -- helpers --------------------------------------------------------------------------

@@ -29,7 +29,7 @@ from demur.serve.web.app import OPENAPI_PATH
 from demur.serve.cli import build_parser
 from demur.serve.web.server import ACCESS_LOG_FORMAT, gunicorn_options
 
-ROOT = Path(__file__).resolve().parents[2]
+ROOT = Path(__file__).resolve().parents[3]
 DOC = json.loads(OPENAPI_PATH.read_text())
 READY_WAIT_S = 90.0
 STOP_WAIT_S = 30.0

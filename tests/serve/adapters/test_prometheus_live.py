@@ -26,11 +26,11 @@ import pytest
 import yaml
 
 from tests._processes import supervised
-from tests.serve.test_metrics import demur_server, free_port, http
+from tests.serve.adapters.test_metrics import demur_server, free_port, http
 
 pytestmark = pytest.mark.prometheus
 
-PROM_DIR = Path(__file__).resolve().parents[2] / "deploy" / "prometheus"
+PROM_DIR = Path(__file__).resolve().parents[3] / "deploy" / "prometheus"
 DRIFT_WINDOW = 300
 
 

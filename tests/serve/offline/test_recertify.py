@@ -1,6 +1,6 @@
 """Recertification from reviewed cases (serve/offline/recertify.py): a simulation with known truth.
 
-The population design (as tests/serve/test_calibration.py uses for calibrate): a large
+The population design (as tests/serve/offline/test_calibration.py uses for calibrate): a large
 population with a known score law and a known chance of error given the score; the server's
 rule refers every case above t0 (all queued, inclusion 1) and audits each accepted case with
 probability f. Truth is computed on the population; each reviewed sample is drawn from it.
