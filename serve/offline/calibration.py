@@ -47,7 +47,7 @@ Threshold choice -- three ways
        is paid. Caveat, stated plainly: the fixed-sequence family-wise proof is for
        thresholds fixed in advance; ours sit at fixed RANKS, so each bound is exact
        but the sequence's control is measured, not proved: tests/serve/
-       test_calibration.py resamples calibration sets from a pool and counts how
+       offline/test_calibration.py resamples calibration sets from a pool and counts how
        often the pool's accepted accuracy falls below A (population design).
    ``"bonferroni"``: every candidate bounded at level delta / m, the largest
        certified one kept (selective classification with guaranteed risk, Geifman
