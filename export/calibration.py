@@ -308,15 +308,17 @@ def _calibrate(b: Bundle, cal: Cases, check: Cases | None, floor_x: np.ndarray |
                               notes=tuple(notes), verdicts=verdicts)
 
 
-def _regression(b: Bundle, engine: Engine, served: ServedRule, cal: Cases, check: Cases | None, floor_x: np.ndarray | None,
-                d_cal: np.ndarray, d_test: np.ndarray | None, level: float, target_abstain: float,
+def _regression(b: Bundle, engine: Engine, served: ServedRule, cal: Cases, check: Cases | None,
+                floor_x: np.ndarray | None, d_cal: np.ndarray, d_test: np.ndarray | None, level: float,
+                target_abstain: float,
                 score: str, unit: str, data_info: dict[str, Any]) -> tuple[Any, ...]:
     """Split conformal with the aleatoric floor; returns (choice, record, test, plots, new target, scores)."""
     m = b.manifest
     base = {k: v for k, v in m.target.items() if not str(k).startswith("conformal_") and k != "aleatoric_floor"}
     floor_from = "the validation split" if floor_x is not None else "the calibration inputs (labels unused)"
     fx = floor_x if floor_x is not None else cal.x
-    floor = float(np.quantile(summarise("regression", draws_in_chunks(engine, fx), level, base).aleatoric_var, FLOOR_QUANTILE))
+    floor_summary = summarise("regression", draws_in_chunks(engine, fx), level, base)
+    floor = float(np.quantile(floor_summary.aleatoric_var, FLOOR_QUANTILE))
     raw_cal = summarise("regression", d_cal, level, base)
     sd_cal = np.sqrt(conformal_variance(raw_cal.epistemic_var, raw_cal.aleatoric_var, floor))
     chosen = choose_conformal_score(cal.y, raw_cal.mean, sd_cal, 1.0 - level)

@@ -34,10 +34,10 @@ clearly more matches than natural duplication explains ("leak": calibrate
 refuses); otherwise the matches are natural duplicates ("natural": kept, with
 a warning giving the counts). For continuous features N1 = N, so a handful of
 copies is only warned about (400 training rows: 1 copy among 175 rows gives
-P = 0.7, 5 copies 0.01) while a file of training rows is refused. What it cannot tell: when nearly every vector is common
-(5 binary features: 1 - N1/N near 1) a copy of the training rows looks like
-fresh rows; a model can then not have memorised more than its cells' labels,
-so the flattery is small. A record written before N1 was kept treats every
+P = 0.7, 5 copies 0.01) while a file of training rows is refused. What it
+cannot tell: when nearly every vector is common (5 binary features: 1 - N1/N
+near 1) a copy of the training rows looks like fresh rows; a model can then not
+have memorised more than its cells' labels, so the flattery is small. A record written before N1 was kept treats every
 match as a leak.
 
 Size: 8 bytes per training row (about 11 bytes in the JSON). Above

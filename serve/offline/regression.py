@@ -98,7 +98,8 @@ def regression_scores(mu: np.ndarray, sd: np.ndarray, y: np.ndarray) -> dict[str
     mean = np.asarray(mu, dtype=np.float64).mean(axis=0)
     pit = pit_values(mu, sd, y)
     counts = np.histogram(pit, bins=PIT_BINS, range=(0.0, 1.0))[0]
-    return {"n": int(len(y)), "nll": float(nll_mixture(mu, sd, y).mean()), "crps": float(crps_mixture(mu, sd, y).mean()),
+    return {"n": int(len(y)), "nll": float(nll_mixture(mu, sd, y).mean()),
+            "crps": float(crps_mixture(mu, sd, y).mean()),
             "rmse": float(np.sqrt(np.mean((y - mean) ** 2))), "mae": float(np.mean(np.abs(y - mean))),
             "pit": {"bins": PIT_BINS, "counts": counts.tolist(),
                     "chi2_p": float(stats.chisquare(counts).pvalue) if len(y) >= 5 * PIT_BINS else None}}
