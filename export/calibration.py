@@ -59,7 +59,7 @@ from demur.serve.offline.calibration import (
     batch_spread,
     calibration_record,
     check_feasible,
-    conformal_scale,
+    choose_conformal_score,
     fingerprint,
     select_for_abstain,
     select_for_accuracy,
@@ -293,6 +293,11 @@ def _calibrate(b: Bundle, cal: Cases, check: Cases | None, floor_x: np.ndarray |
         raw["target"] = new_target
         raw["interval_level"] = coverage
 
+    gap = float(np.min(np.abs(sc_cal - choice.threshold)))
+    record["achieved"]["threshold_gap"] = gap  # to the nearest calibration score, score units
+    if gap <= 1e-5 * max(abs(choice.threshold), 1e-12):
+        notes.append(f"warning: a calibration score lies within {gap:.3g} of the threshold, about float32 round-off: "
+                     "that case may be decided either way when it is sent in another batch")
     record["notes"] = list(notes)
     checksum = _write(b, raw, _manifest_records(raw, score, choice, record, sc_cal, support))
     verdicts = _check_served(b.path, cal.x, d_cal, choice)
@@ -303,19 +308,23 @@ def _calibrate(b: Bundle, cal: Cases, check: Cases | None, floor_x: np.ndarray |
                               notes=tuple(notes), verdicts=verdicts)
 
 
-def _regression(b: Bundle, engine: Engine, served: ServedRule, cal: Cases, check: Cases | None, floor_x: np.ndarray | None,
-                d_cal: np.ndarray, d_test: np.ndarray | None, level: float, target_abstain: float,
+def _regression(b: Bundle, engine: Engine, served: ServedRule, cal: Cases, check: Cases | None,
+                floor_x: np.ndarray | None, d_cal: np.ndarray, d_test: np.ndarray | None, level: float,
+                target_abstain: float,
                 score: str, unit: str, data_info: dict[str, Any]) -> tuple[Any, ...]:
     """Split conformal with the aleatoric floor; returns (choice, record, test, plots, new target, scores)."""
     m = b.manifest
     base = {k: v for k, v in m.target.items() if not str(k).startswith("conformal_") and k != "aleatoric_floor"}
     floor_from = "the validation split" if floor_x is not None else "the calibration inputs (labels unused)"
     fx = floor_x if floor_x is not None else cal.x
-    floor = float(np.quantile(summarise("regression", draws_in_chunks(engine, fx), level, base).aleatoric_var, FLOOR_QUANTILE))
+    floor_summary = summarise("regression", draws_in_chunks(engine, fx), level, base)
+    floor = float(np.quantile(floor_summary.aleatoric_var, FLOOR_QUANTILE))
     raw_cal = summarise("regression", d_cal, level, base)
     sd_cal = np.sqrt(conformal_variance(raw_cal.epistemic_var, raw_cal.aleatoric_var, floor))
-    q = conformal_scale(cal.y, raw_cal.mean, sd_cal, 1.0 - level)
-    new_target = {**base, "conformal_q": q, "conformal_level": level, "aleatoric_floor": floor}
+    chosen = choose_conformal_score(cal.y, raw_cal.mean, sd_cal, 1.0 - level)
+    q = chosen["q"]
+    new_target = {**base, "conformal_q": q, "conformal_level": level, "aleatoric_floor": floor,
+                  "conformal_score": chosen["score"]}
     s_cal = summarise("regression", d_cal, level, new_target)
     sc_cal, out_cal = served.ranking(s_cal, cal.x)
     choice = select_for_abstain(np.where(out_cal, np.inf, sc_cal), target_abstain)
@@ -323,11 +332,13 @@ def _regression(b: Bundle, engine: Engine, served: ServedRule, cal: Cases, check
     raw_v = summarise("regression", d_v, level, base)  # the model's own interval, before conformal
     s_v = summarise("regression", d_v, level, new_target)
     before = float(np.mean((v_cases.y >= raw_v.lower) & (v_cases.y <= raw_v.upper)))
-    conformal = {"method": "split-conformal, locally weighted (Lei et al. 2018)", "level": level, "q": q,
+    conformal = {"method": f"split-conformal, {chosen['score']} residuals (Lei et al. 2018)", "level": level, "q": q,
+                 "score": chosen["score"], "score_choice": {k: chosen[k] for k in ("choice", "q_rows", "why")},
                  "coverage_cal": float(np.mean((cal.y >= s_cal.lower) & (cal.y <= s_cal.upper))),
                  "model_coverage_before": before,
                  "model_coverage_before_on": "test" if check is not None else "calibration",
-                 "residual": "|y - mean| / sqrt(epistemic_var + max(aleatoric_var, aleatoric_floor))",
+                 "residual": ("|y - mean|" if chosen["score"] == "absolute" else
+                              "|y - mean| / sqrt(epistemic_var + max(aleatoric_var, aleatoric_floor))"),
                  "aleatoric_floor": floor,
                  "aleatoric_floor_rule": f"quantile {FLOOR_QUANTILE:g} of the per-case aleatoric variance on "
                                          f"{floor_from} ({len(fx)} cases), target units squared"}

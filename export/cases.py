@@ -190,30 +190,38 @@ def fitted_rows(bundle: Bundle, x: np.ndarray, what: str, *, field: str) -> Any:
 
 
 def screen_training_rows(bundle: Bundle, cases: Cases, drop: bool, what: str) -> None:
-    """Refuse (or ``drop``, with a note in ``cases.notes``) rows the bundle's training-row
-    fingerprint recognises: a model is right more often on rows it has fitted."""
+    """The leakage check (``demur.serve.core.fingerprint``): matches with the training rows that
+    natural duplication explains are kept with a warning giving the counts; clearly more is
+    refused, or with ``drop`` the matching rows are left out, with a note."""
     overlap = fitted_rows(bundle, cases.x, what, field="data")
     if overlap is None:
         cases.notes.append(f"warning: bundle {bundle.path} records no training-row fingerprint, so {what} could "
                            "not be checked for rows the model was trained on")
         return
-    if not overlap.count:
+    if overlap.verdict == "none":
         return
     where = (f"lines {', '.join(str(v) for v in cases.lines[overlap.seen][:8])}" if cases.lines is not None
              else f"rows {', '.join(str(v) for v in np.flatnonzero(overlap.seen)[:8])}")
-    said = (f"{overlap.count} of the {len(cases.y)} rows of {what} ({cases.source}) were used to train this model "
-            f"({where}{' ...' if overlap.count > 8 else ''})")
+    counts = f"{what} ({cases.source}): {overlap.describe()}"
     if overlap.checkable < len(cases.y):
-        said += f"; about {overlap.estimated:.0f} in all (the fingerprint keeps a subsample of the training rows)"
+        counts += f"; about {overlap.estimated:.0f} in all (the fingerprint keeps a subsample of the training rows)"
+    if overlap.verdict == "natural":
+        cases.notes.append(f"warning: {counts}. That is no more than rows drawn apart from the training data share "
+                           "with it when features are discrete (different people, same values), so they are kept"
+                           + ("; --drop-training-rows leaves out only rows clearly copied from training, and these "
+                              "are not" if drop else ""))
+        return
+    said = (f"{counts}: clearly more than natural duplication explains, so rows of the training data are in it "
+            f"({where}{' ...' if overlap.count > 8 else ''})")
     if not drop:
         raise DatasetError(f"{said}. A model is right more often on rows it has fitted, so a threshold calibrated on "
                            "them certifies an accuracy new cases will not see. Calibrate on rows held out from "
-                           "training, or pass --drop-training-rows to leave them out", field="data")
+                           "training, or pass --drop-training-rows to leave the matching rows out", field="data")
     keep = ~overlap.seen
     cases.x, cases.y = cases.x[keep], cases.y[keep]
     cases.lines = cases.lines[keep] if cases.lines is not None else None
     cases.dropped = overlap.count
-    cases.notes.append(f"warning: {said}; they were left out, {len(cases.y)} rows remain")
+    cases.notes.append(f"warning: {said}; the {overlap.count} matching rows were left out, {len(cases.y)} rows remain")
     if len(cases.y) < 2:
         raise DatasetError(f"{what}: no rows remain once the training rows are left out", field="data")
 

@@ -142,6 +142,10 @@ def register_export(subparsers: _Subparsers) -> None:
     own.add_argument("--labels", help="comma-separated class names in output order (default: 0..K-1)")
     own.add_argument("--shape", help="comma-separated input shape per case, e.g. 1,8,8 (default: [F])")
     own.add_argument("--task", choices=("classification", "regression"), default="classification")
+    own.add_argument("--target-stats", metavar="CENTER,SCALE|data|raw",
+                     help="regression (required): how the model's target was standardised, y_std = (y - CENTER) / "
+                          "SCALE; 'data': the mean and standard deviation (numpy, ddof 0) of the --target column "
+                          "of --data; 'raw': the model predicts the target itself (0,1)")
     p.set_defaults(func=_export)
 
 
@@ -157,7 +161,8 @@ def _export(args: argparse.Namespace) -> int:
             args.factory, args.weights, args.data, args.out, target=args.target, reference=args.reference,
             shape=[int(v) for v in args.shape.split(",")] if args.shape else None,
             labels=[v.strip() for v in args.labels.split(",")] if args.labels else None, task=args.task,
-            kind=kind, draws=args.draws, seed=args.seed, name=args.name, version=args.version)
+            kind=kind, draws=args.draws, seed=args.seed, name=args.name, version=args.version,
+            target_stats=args.target_stats)
     elif args.checkpoint is not None:
         bundle = export_bundle(args.checkpoint, args.out, kind=kind, draws=args.draws, seed=args.seed,
                                name=args.name, version=args.version)
@@ -192,7 +197,8 @@ def register_calibrate(subparsers: _Subparsers) -> None:
     check.add_argument("--holdout", type=float, metavar="F", help="set aside this share of --data for the check")
     p.add_argument("--seed", type=int, help="seed of --holdout (default 0), or of a bundled set's split")
     p.add_argument("--drop-training-rows", action="store_true",
-                   help="leave out rows the model was trained on (with a warning) instead of refusing the file")
+                   help="leave out rows clearly copied from the training data (with a warning) instead of refusing "
+                        "the file; natural duplicates of discrete features are kept either way")
     goal = p.add_argument_group("what to guarantee")
     goal.add_argument("--target-accuracy", type=float, metavar="A",
                       help="accepted cases at least A correct in the population (classifiers)")
@@ -248,7 +254,8 @@ def register_evaluate(subparsers: _Subparsers) -> None:
         description="Referral, shift and held-out-class tables for a bundle (JSON, PNG plots, index.html).")
     p.add_argument("bundle", metavar="BUNDLE")
     p.add_argument("--data", required=True,
-                   help="a labelled CSV (every row is evaluated; columns by name) or 'digits' (its test split)")
+                   help="a labelled CSV (every row is evaluated; columns by name) or 'digits' / 'diabetes' (its "
+                        "test split)")
     p.add_argument("--target", metavar="COLUMN", help="label column of a CSV (default: the one training used)")
     p.add_argument("--ignore", action="append", metavar="COLUMN",
                    help="a column of --data or --unseen to skip, e.g. an id (repeatable)")
@@ -276,6 +283,11 @@ def _evaluate(args: argparse.Namespace) -> int:
                             holdout_class=args.holdout_class, unseen=args.unseen, unseen_label=args.unseen_label)
     for note in figures["notes"]:
         print(note)
+    if figures.get("task") == "regression":  # its own tables (serve/offline/regression.py)
+        from demur.serve.offline.regression import regression_lines
+
+        print("\n".join(regression_lines(figures)) + f"\nwrote {args.out / 'index.html'}")
+        return 0
     for name, body in figures["models"].items():
         ref = body["referral"]
         acc10 = ref["rankings"].get("mutual_information", ref["rankings"]["one_minus_max_prob"])

@@ -39,10 +39,18 @@ import numpy as np
 
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.bundle import Bundle, load_bundle
-from demur.serve.core.decision import decide, rule_from
-from demur.serve.core.summary import summarise
+from demur.serve.core.decision import ServedRule, rule_from
+from demur.serve.core.summary import regression_components, summarise
 from demur.serve.core.support import support_from_manifest
 from demur.serve.errors import ConfigError
+from demur.serve.offline.regression import (
+    coverage_table,
+    far_shifts,
+    referral_by_epistemic,
+    regression_scores,
+    regression_shift_row,
+    write_regression_evaluation,
+)
 from demur.serve.offline.evaluation import (
     auroc_difference,
     holdout_row,
@@ -53,7 +61,7 @@ from demur.serve.offline.evaluation import (
     write_evaluation,
 )
 
-from demur.serve.offline.chunked import chunks
+from demur.serve.offline.chunked import chunks, draws_in_chunks
 
 from demur.export.cases import (
     builtin_splits,
@@ -79,14 +87,14 @@ def _served(bundle: Bundle, x: np.ndarray, y: np.ndarray, shifts: dict[str, np.n
     """The bundle's tables through the serving path."""
     m = bundle.manifest
     engine = Engine(bundle, graph="auto", seed=engine_seed).load()
-    rule = rule_from(m)
-    support = support_from_manifest(m)
+    served = ServedRule.from_manifest(m)  # the one rule the server decides with
+    rule, support = served.rule, served.support
 
     def run(xs: np.ndarray) -> tuple[dict[str, np.ndarray], np.ndarray, np.ndarray]:
         probs, mi, accept = [], [], []
         for xb in chunks(xs.reshape(-1, *m.inputs.shape)):
             s = summarise(m.task, engine.run(xb), m.interval_level, m.target)
-            d = decide(s, rule, support=support, x_raw=xb)
+            d = served.decide(s, xb)
             probs.append(s.mean_probs)
             mi.append(s.mutual_information)
             accept.append(~d.abstain)
@@ -332,11 +340,14 @@ def _not_fitted(bundle: Bundle, rows: np.ndarray, what: str) -> list[str]:
     if overlap is None:
         return [f"warning: the bundle records no training-row fingerprint, so {what} could not be checked for "
                 "rows the model was trained on"]
-    if overlap.count:
+    if overlap.verdict == "leak":
         first = ", ".join(str(v) for v in np.flatnonzero(overlap.seen)[:8])
-        raise DatasetError(f"{overlap.count} of the {len(rows)} rows of {what} were used to train this model (rows "
-                           f"{first}{' ...' if overlap.count > 8 else ''}); evaluate on rows held out from training",
-                           field=what)
+        raise DatasetError(f"{what}: {overlap.describe()}: clearly more than natural duplication explains, so rows "
+                           f"of the training data are in it (rows {first}{' ...' if overlap.count > 8 else ''}); "
+                           "evaluate on rows held out from training", field=what)
+    if overlap.verdict == "natural":
+        return [f"warning: {what}: {overlap.describe()}; no more than natural duplication of discrete features "
+                "explains, so they are kept"]
     return []
 
 
@@ -378,6 +389,10 @@ def evaluate(
       that class (only for a bundle exported from a ``demur train`` checkpoint) and uses every
       row of the class as the unseen ones."""
     b = bundle if isinstance(bundle, Bundle) else load_bundle(bundle)
+    if b.manifest.task == "regression":
+        _regression_options(baseline, holdout is not None, unseen is not None)
+        cases = cases_from_arrays(b, x, y, "x", "x", field_y="y")
+        return _evaluate_regression(b, cases.x, cases.y, out=out, seed=seed, title=title)
     retrain = _refused_early(b, holdout[0] if holdout is not None else None, unseen is not None, out)
     cases = cases_from_arrays(b, x, y, "x", "x", field_y="y")
     train = None
@@ -401,6 +416,15 @@ def evaluate_file(bundle: str | Path, data: str, *, out: str | Path, target: str
     from; ``unseen``: a CSV of rows of a class the model was trained without. Rows are read and
     checked once (``demur.export.cases``, as calibrate reads them); returns ``evaluate``'s figures."""
     b = load_bundle(bundle)
+    if b.manifest.task == "regression":
+        _regression_options(baseline, holdout_class is not None, unseen is not None)
+        if str(data) in BUILTIN:
+            ds, split_seed = builtin_splits(b, str(data), seed)
+            x, y = ds.x_test, ds.y_test
+        else:
+            cases = cases_from_file(b, str(data), label_column(b, target), list(ignore))
+            x, y, split_seed = cases.x, cases.y, int(seed or 0)
+        return _evaluate_regression(b, x, y, out=out, seed=split_seed, title="")
     retrain = _refused_early(b, holdout_class, unseen is not None, out)
     ignore = list(ignore)
     if str(data) in BUILTIN:
@@ -485,4 +509,55 @@ def _tables(b: Bundle, x: np.ndarray, y: np.ndarray, train: tuple[np.ndarray, np
                "checksum": b.checksum, "models": models, "notes": notes}
     if out is not None:
         write_evaluation(out, figures)
+    return figures
+
+
+def _regression_options(baseline: bool, holdout: bool, unseen: bool) -> None:
+    """Refuse, by name, what ``demur evaluate`` offers classifiers only."""
+    if baseline or holdout or unseen:
+        raise ConfigError("for a regression bundle demur evaluate gives the scores, coverage, PIT, referral and "
+                          "shift tables; baseline, holdout class and unseen class are for classifiers",
+                          field="baseline" if baseline else "holdout_class" if holdout else "unseen")
+
+
+def _evaluate_regression(b: Bundle, x: np.ndarray, y: np.ndarray, *, out: str | Path | None, seed: int,
+                         title: str) -> dict[str, Any]:
+    """A regression bundle's tables (serve/offline/regression.py) through the serving path: the
+    draws' Gaussian mixture scored against ``y``, the served rule (``ServedRule``) on clean and
+    shifted inputs."""
+    m = b.manifest
+    notes = _not_fitted(b, x, "x")
+    if out is not None and Path(out).exists() and not Path(out).is_dir():
+        raise ConfigError(f"out {str(out)!r} exists and is not a folder; choose another --out", field="out")
+    engine = Engine(b, graph="auto", seed=0).load()
+    served = ServedRule.from_manifest(m)
+
+    def run(xs: np.ndarray) -> tuple[np.ndarray, Any, Any]:
+        xs = xs.reshape(-1, *m.inputs.shape)
+        d = draws_in_chunks(engine, xs)
+        s = summarise(m.task, d, m.interval_level, m.target)
+        return d, s, served.decide(s, xs)
+
+    d, s, v = run(x)
+    mu, sd = regression_components(d, float(m.target.get("center", 0.0)), float(m.target.get("scale", 1.0)))
+    spec = m.inputs
+    low, high = np.asarray(spec.low), np.asarray(spec.high)
+    shifts = {**shifted_inputs(x, low=low, high=high, center=np.asarray(spec.center), image_shape=None, seed=seed),
+              **far_shifts(x, low=low, high=high)}
+    clean_width = float(np.mean(s.interval_width))
+    outside = lambda vv: vv.outside if vv.outside is not None else np.zeros(len(vv.abstain), bool)  # noqa: E731
+    rows = {"clean": regression_shift_row(clean_width, s.interval_width, s.epistemic_std, ~v.abstain, outside(v))}
+    for name, xs in shifts.items():
+        _, ss, vv = run(xs)
+        rows[name] = regression_shift_row(clean_width, ss.interval_width, ss.epistemic_std, ~vv.abstain, outside(vv))
+    body = {"scores": regression_scores(mu, sd, y),
+            "coverage": coverage_table(mu, sd, y, (s.lower, s.upper, s.level, s.interval_method)),
+            "referral": referral_by_epistemic(y, s.mean, s.epistemic_var, s.lower, s.upper),
+            "shift": rows, "clean_accepted": float(np.mean(~v.abstain)),
+            "rule": {"score": served.rule.score, "threshold": served.rule.threshold, "source": served.rule.source,
+                     "support": served.support is not None}}
+    figures = {"title": title or f"{m.model_name} v{m.model_version}", "model": m.model_name, "task": "regression",
+               "checksum": b.checksum, "models": {"bundle": body}, "notes": notes}
+    if out is not None:
+        write_regression_evaluation(out, figures)
     return figures

@@ -71,7 +71,7 @@ from demur.serve.core.summary import summarise
 from demur.serve.core.support import standardisation, support_record
 from demur.serve.offline.chunked import chunks
 
-from demur.export.datasets import read_features, read_training_columns
+from demur.export.datasets import read_features, read_labelled, read_training_columns
 from demur.export.errors import ExportError, GraphBuildError
 
 __all__ = [
@@ -89,6 +89,7 @@ __all__ = [
     "export_factory",
     "export_model",
     "input_spec",
+    "target_standardisation",
 ]
 
 EXPORT_KINDS = tuple(kind for kind in GRAPH_KINDS if kind != "means")
@@ -111,7 +112,6 @@ PARITY_TOLERANCE = 1e-4
 
 SUPPORT_SAMPLE = 20_000
 """Training rows kept for the support check (it stores its own smaller sample in the manifest)."""
-"""Input features whose training std is below this get scale 1 (constant features)."""
 
 PARITY_ROWS = 256
 """Reference rows the parity check runs (the first ones)."""
@@ -503,12 +503,14 @@ def export_factory(factory: str, weights: str | Path, data: str | Path, out: str
                    target: str | None = None, reference: str | Path | None = None,
                    shape: Sequence[int] | None = None, labels: Sequence[str] | None = None,
                    task: str = "classification", kind: str = "stacked", draws: int = DEFAULT_DRAWS,
-                   seed: int | None = None, name: str | None = None, version: str | None = None) -> Bundle:
+                   seed: int | None = None, name: str | None = None, version: str | None = None,
+                   target_stats: str | None = None) -> Bundle:
     """``demur export --factory pkg.mod:fn --weights W --data train.csv``: build the module the
     ``factory`` ("MODULE:FUNCTION", imported as ``python -m`` would, from the current folder)
     returns, load its ``weights`` (a state_dict, or a list of them for an ensemble; read with
     ``weights_only=True``), take the input spec from the training rows ``data`` (CSV: every column
-    but ``target``, in file order) and export it (``reference``: held-out rows matched by name)."""
+    but ``target``, in file order) and export it (``reference``: held-out rows matched by name).
+    A regression module needs ``target_stats`` (``target_standardisation``)."""
     import torch
 
     module_name, _, func_name = factory.partition(":")
@@ -538,6 +540,35 @@ def export_factory(factory: str, weights: str | Path, data: str | Path, out: str
         member.eval()
     x_train, names = read_training_columns(data, target)
     x_ref = read_features(reference, names, ignore=[target] if target else ()) if reference else x_train
+    stats = target_standardisation(target_stats, data, target, names) if task == "regression" else None
     return export_model(model, out, inputs=input_spec(x_train, names, shape), labels=labels, task=task,
                         kind=kind, draws=draws, reference=x_ref, seed=seed, name=name or func_name,
-                        version=version or "1")
+                        version=version or "1", target=stats)
+
+
+def target_standardisation(how: str | None, data: str | Path, target: str | None,
+                           names: Sequence[str]) -> dict[str, Any]:
+    """A regression model's target standardisation, ``demur export --target-stats``: "CENTER,SCALE"
+    (trained on (y - CENTER) / SCALE), "data" (the mean and standard deviation, ddof 0, of the
+    ``target`` column of ``data``) or "raw" (trained on y itself). Its graphs give mean and
+    log-variance in standardised units, served as y = center + scale * y_std, so there is no
+    default: a wrong guess would serve every mean and interval on the wrong scale without error."""
+    how = (how or "").strip()
+    try:
+        if how == "raw":
+            return {"center": 0.0, "scale": 1.0, "rule": "raw: the model predicts the target itself"}
+        if how == "data" and target:
+            y = np.asarray(read_labelled(data, names, target).y, dtype=np.float64)
+            center, scale, rule = float(np.mean(y)), float(np.std(y)), (
+                f"data: mean and standard deviation (ddof 0) of {target!r} over {len(y)} rows of {data}")
+        else:
+            center, scale = (float(v) for v in how.split(","))
+            rule = "given with --target-stats"
+    except ValueError:
+        center, scale, rule = np.nan, np.nan, ""
+    if not (np.isfinite(center) and np.isfinite(scale) and scale > 0):
+        raise ExportError(f"a regression model needs --target-stats: CENTER,SCALE (how its target was standardised "
+                          "for training: y_std = (y - CENTER) / SCALE, SCALE > 0), 'data' with --target COLUMN (the "
+                          "mean and standard deviation of that numeric column of --data) or 'raw' (trained on the "
+                          f"target itself); got {how!r}", field="target_stats")
+    return {"center": center, "scale": scale, "rule": rule}

@@ -31,7 +31,6 @@ import warnings
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 import onnx
 import torch
 from torch import nn

@@ -16,7 +16,7 @@ Classification (``K`` logits per draw)
         the BALD decomposition of Houlsby et al. (2011), eq. (1): the mutual
         information between the label and the weights under the S-draw
         posterior sample. It is >= 0 by Jensen's inequality; values at or
-        below 1e-13 x max(H[p̄], 1) can only be float round-off (of order
+        below 16 eps x max(H[p̄], 1) can only be float round-off (of order
         1e-16) and are set to 0, so identical draws (the means graph) give 0.
     ``one_minus_max_prob``  1 - max_k p̄_k                              [B]
 
@@ -61,6 +61,11 @@ with the normalised residual |y - mean| / sqrt(total_var)); at any other
 level the model's own mixture interval is served. ``interval_method`` says
 which.
 
+Conformal score: ``target.conformal_score`` names the residual the scale q was
+computed on: "normalised" (default: |y - mean| / sd, the interval mean ± q sd
+follows the model's own spread) or "absolute" (|y - mean|: mean ± q, one width
+for every case). ``demur calibrate`` picks the narrower at equal coverage.
+
 Aleatoric floor: the manifest's ``target`` may also carry ``aleatoric_floor``
 (target units squared, written by ``demur calibrate``). The conformal interval
 then uses ``sqrt(epistemic_var + max(aleatoric_var, aleatoric_floor))`` per
@@ -89,6 +94,7 @@ from scipy.special import ndtr, ndtri
 from demur.serve.errors import ConfigError, InvalidInput
 
 __all__ = [
+    "CONFORMAL_SCORES",
     "UNIT",
     "ClassificationSummary",
     "RegressionSummary",
@@ -96,6 +102,7 @@ __all__ = [
     "classification_summary",
     "conformal_variance",
     "mixture_quantile",
+    "regression_components",
     "regression_summary",
     "summarise",
 ]
@@ -109,9 +116,9 @@ wild draw gives a huge but finite variance instead of an overflow."""
 
 _LN_2PIE = float(np.log(2.0 * np.pi * np.e))
 
-_ROUND_OFF = 1e-13
-"""Classification mutual information at or below this share of max(H[p̄], 1) nats is float
-round-off (float64 sums of the same terms differ by ~1e-16 relative) and is reported as 0."""
+_ROUND_OFF = 16 * float(np.finfo(np.float64).eps)
+"""Classification mutual information at or below this share of max(H[p̄], 1) nats (3.6e-15) is
+float round-off (float64 sums of the same terms differ by ~1e-16 relative) and is reported as 0."""
 
 
 @dataclass(frozen=True)
@@ -318,6 +325,18 @@ def conformal_variance(
     return epistemic_var + np.maximum(aleatoric_var, floor)
 
 
+def regression_components(draws: np.ndarray, target_center: float = 0.0,
+                          target_scale: float = 1.0) -> tuple[np.ndarray, np.ndarray]:
+    """(mu, sd) of each draw's Gaussian in target units, float64[S, B] each, from ``draws:
+    float[S, B, 2]`` (mean, log-variance in standardised units): the predictive law is their
+    equal-weight mixture (``demur evaluate`` scores it: CRPS, NLL, PIT)."""
+    d = np.asarray(draws, dtype=np.float64)
+    scale = float(target_scale)
+    mu = d[:, :, 0] * scale + float(target_center)
+    sd = np.exp(0.5 * np.clip(d[:, :, 1], -_LOG_VAR_LIMIT, _LOG_VAR_LIMIT)) * scale
+    return mu, sd
+
+
 def regression_summary(
     draws: np.ndarray,
     level: float = 0.9,
@@ -326,24 +345,25 @@ def regression_summary(
     *,
     conformal_q: float | None = None,
     aleatoric_floor: float | None = None,
+    conformal_score: str = "normalised",
 ) -> RegressionSummary:
     """Summarise ``draws: float[S, B, 2]`` (mean, log-variance; standardised units).
 
     ``conformal_q``, if given, replaces the mixture interval by
     ``mean ± conformal_q * sqrt(epistemic_var + max(aleatoric_var, aleatoric_floor))``
     (``aleatoric_floor`` in target units squared, default none: ``sqrt(total_var)``);
-    see the module docstring. The floor is used only with ``conformal_q``.
+    see the module docstring. The floor is used only with ``conformal_q``. ``conformal_score``
+    "absolute" serves ``mean ± conformal_q`` instead (q in target units; the plain absolute
+    residual, chosen by ``demur calibrate`` when it gives the narrower interval).
     """
     d = _check_draws(draws, k=2)
     level = _check_level(level)
     scale = float(target_scale)
     if not scale > 0:
         raise ConfigError(f"target scale must be positive; got {target_scale}", field="target.scale")
-    mu = d[:, :, 0] * scale + float(target_center)  # [S, B]
-    log_var_std = np.clip(d[:, :, 1], -_LOG_VAR_LIMIT, _LOG_VAR_LIMIT)
-    sd = np.exp(0.5 * log_var_std) * scale  # [S, B], target units
+    mu, sd = regression_components(d, float(target_center), scale)  # [S, B], target units
     var = sd * sd
-    log_var = log_var_std + 2.0 * np.log(scale)
+    log_var = np.clip(d[:, :, 1], -_LOG_VAR_LIMIT, _LOG_VAR_LIMIT) + 2.0 * np.log(scale)
 
     mean = mu.mean(axis=0)
     epistemic_var = np.mean((mu - mean) ** 2, axis=0)
@@ -353,7 +373,10 @@ def regression_summary(
     predictive_entropy = 0.5 * (_LN_2PIE + np.log(total_var))
     mutual_information = np.maximum(predictive_entropy - expected_entropy, 0.0)
 
-    if conformal_q is not None:
+    if conformal_q is not None and conformal_score == "absolute":
+        half = np.full_like(mean, float(conformal_q))
+        lower, upper, method = mean - half, mean + half, "conformal"
+    elif conformal_q is not None:
         half = float(conformal_q) * np.sqrt(conformal_variance(epistemic_var, aleatoric_var, aleatoric_floor))
         lower, upper, method = mean - half, mean + half, "conformal"
     else:
@@ -397,8 +420,21 @@ def summarise(task: str, draws: np.ndarray, level: float, target: Mapping[str, A
             float(target.get("scale", 1.0)),
             conformal_q=float(q) if use_q else None,
             aleatoric_floor=_floor_of(target) if use_q else None,
+            conformal_score=_score_of(target),
         )
     raise ConfigError(f"task must be 'classification' or 'regression'; got '{task}'", field="task")
+
+
+CONFORMAL_SCORES = ("normalised", "absolute")
+"""Conformal residuals a bundle may record (``target.conformal_score``; absent: "normalised")."""
+
+
+def _score_of(target: Mapping[str, Any]) -> str:
+    value = target.get("conformal_score", "normalised")
+    if value not in CONFORMAL_SCORES:
+        raise ConfigError(f"target.conformal_score must be one of {', '.join(CONFORMAL_SCORES)}; got {value!r}",
+                          field="target.conformal_score")
+    return str(value)
 
 
 def _floor_of(target: Mapping[str, Any]) -> float | None:

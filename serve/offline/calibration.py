@@ -47,7 +47,7 @@ Threshold choice -- three ways
        is paid. Caveat, stated plainly: the fixed-sequence family-wise proof is for
        thresholds fixed in advance; ours sit at fixed RANKS, so each bound is exact
        but the sequence's control is measured, not proved: tests/serve/
-       test_calibration.py resamples calibration sets from a pool and counts how
+       offline/test_calibration.py resamples calibration sets from a pool and counts how
        often the pool's accepted accuracy falls below A (population design).
    ``"bonferroni"``: every candidate bounded at level delta / m, the largest
        certified one kept (selective classification with guaranteed risk, Geifman
@@ -73,7 +73,8 @@ Threshold choice -- three ways
    (the split-conformal quantile argument; Lei et al. 2018, and Vovk et al.
    2005 for the exchangeability lemma).
 
-3. Regression intervals (``conformal_scale``): split conformal prediction
+3. Regression intervals (``conformal_scale``; the residual chosen by width,
+   ``choose_conformal_score``, below): split conformal prediction
    with locally weighted residuals (Lei, G'Sell, Rinaldo, Tibshirani &
    Wasserman 2018, JASA, Section 5.2): R_i = |y_i - mean_i| / sd_i with sd the
    model's predictive standard deviation sqrt(epistemic + max(aleatoric,
@@ -104,11 +105,13 @@ from demur.serve.errors import CalibrationInfeasible, ConfigError
 __all__ = [
     "DEFAULT_MAX_ABSTAIN",
     "MAX_CANDIDATES",
+    "WIDTH_MARGIN",
     "ThresholdChoice",
     "calibration_record",
     "batch_spread",
     "candidate_ranks",
     "check_feasible",
+    "choose_conformal_score",
     "conformal_scale",
     "error_upper_bound",
     "fingerprint",
@@ -123,6 +126,10 @@ MAX_CANDIDATES = 50
 """Most thresholds searched when targeting an accuracy."""
 
 METHODS = ("fixed_sequence", "bonferroni")
+
+WIDTH_MARGIN = 0.02
+"""The absolute conformal residual replaces the normalised one only when its interval is narrower
+by more than this share (our choice: the adaptive width is worth a hair of mean width)."""
 
 DEFAULT_MAX_ABSTAIN = 0.3
 """Abstention budget when none is given: at most 30% of cases to people (our choice)."""
@@ -437,6 +444,46 @@ def conformal_scale(y: np.ndarray, mean: np.ndarray, sd: np.ndarray, alpha: floa
     r = np.sort(r.ravel())
     k = _finite_sample_rank(len(r), 1.0 - alpha, f"a {1 - alpha:.4g} conformal interval")
     return float(r[k - 1])
+
+
+def choose_conformal_score(y: np.ndarray, mean: np.ndarray, sd: np.ndarray, alpha: float, *,
+                           seed: int = 0) -> dict[str, Any]:
+    """The conformal residual that gives the narrower interval, and its scale q, with the
+    split-conformal guarantee kept exact.
+
+    Candidates: "normalised" |y - mean| / sd (interval mean ± q sd) and "absolute" |y - mean|
+    (mean ± q). The calibration rows are split by a seeded permutation: on part A (half) each
+    candidate's q is the conformal quantile of A, so both cover the same share of A, and the
+    narrower mean width on A wins (the absolute one only when narrower by more than
+    ``WIDTH_MARGIN``: the normalised interval follows each case's own spread, widening where the
+    model is unsure, which one width for every case cannot); q is then computed on part B alone,
+    which the choice never saw, so mean ± q ... covers a new case with probability >= 1 - alpha
+    exactly (Lei et al. 2018; any score fixed before B is seen). With too few rows for both
+    parts the normalised score is kept, q on every row, and ``why`` says so.
+    Returns {"score", "q", "q_rows", "choice": {...} or None, "why"}.
+    """
+    y, mean, sd = (np.asarray(a, dtype=np.float64).ravel() for a in (y, mean, sd))
+    alpha = _check_fraction("alpha", alpha)
+    n = len(y)
+    need = math.ceil((1.0 - alpha) / alpha - 1e-12)  # fewest rows whose rank ceil((n+1)(1-alpha)) <= n
+    half = n // 2
+    if half < need or n - half < need:
+        return {"score": "normalised", "q": conformal_scale(y, mean, sd, alpha), "q_rows": n, "choice": None,
+                "why": f"{n} calibration rows are too few to choose the score on one half and set q on the other "
+                       f"(each needs >= {need} at level {1 - alpha:.4g}): normalised residuals, q on every row"}
+    perm = np.random.default_rng(seed).permutation(n)
+    a, b = perm[:half], perm[half:]
+    scales = {"normalised": sd, "absolute": np.ones_like(sd)}
+    width, covered = {}, {}
+    for name, scale in scales.items():
+        q_a = conformal_scale(y[a], mean[a], scale[a], alpha)
+        width[name] = float(np.mean(2.0 * q_a * scale[a]))
+        covered[name] = float(np.mean(np.abs(y[a] - mean[a]) <= q_a * scale[a]))
+    pick = "absolute" if width["absolute"] < (1.0 - WIDTH_MARGIN) * width["normalised"] else "normalised"
+    return {"score": pick, "q": conformal_scale(y[b], mean[b], scales[pick][b], alpha), "q_rows": int(len(b)),
+            "choice": {"rows": int(len(a)), "mean_width": width, "coverage": covered, "seed": seed},
+            "why": f"the narrower on {len(a)} rows at equal coverage (widths {width['normalised']:.4g} normalised, "
+                   f"{width['absolute']:.4g} absolute); q set on the other {len(b)} rows, which the choice never saw"}
 
 
 # --------------------------------------------------------------------------- record

@@ -256,7 +256,9 @@ def decision_lines(record: Mapping[str, Any]) -> list[str]:
             f"probability {_chance(low['below'])}")
     conformal = record.get("conformal")
     if conformal:
-        lines.append(f"intervals: conformal scale q = {conformal['q']:.4g} for {conformal['level']:.0%} coverage; "
+        lines.append(f"intervals: conformal scale q = {conformal['q']:.4g} on {conformal.get('score', 'normalised')} "
+                     f"residuals for {conformal['level']:.0%} coverage"
+                     + (f" ({conformal['score_choice']['why']})" if conformal.get("score_choice") else "") + "; "
                      f"before the correction the model's own {conformal['level']:.0%} interval covered "
                      f"{_pct(conformal['model_coverage_before'])} of the {conformal['model_coverage_before_on']} "
                      "cases")

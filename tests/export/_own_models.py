@@ -62,6 +62,13 @@ def residual_sequential(seed: int = 0) -> ResidualSequential:
                               VariationalLinear(10, 10, init_sigma=0.05)).eval()
 
 
+def diabetes_regressor(seed: int = 0) -> nn.Sequential:
+    """A user's regression network for load_diabetes' 10 features: mean and log-variance of the
+    standardised target ([B, 2]), one variational hidden layer and a variational head."""
+    torch.manual_seed(seed)
+    return nn.Sequential(VariationalLinear(10, 32, posterior="gaussian", init_sigma=0.05), nn.ReLU(),
+                         VariationalLinear(32, 2, posterior="gaussian", init_sigma=0.05))
+
 class FrozenBackbone(nn.Module):
     """A deterministic conv backbone for 1x8x8 digits: conv, batch norm, ReLU, a residual conv, pool,
     a linear feature layer (a user's trained network, frozen)."""

@@ -300,13 +300,14 @@ def test_training_rows_are_detected_and_refused_or_dropped(tiny_bundle_factory, 
     y = np.concatenate([ds.y_cal, ds.y_train[:40]])
     leaky = write_labelled(tmp_path / "leaky.csv", x, [str(v) for v in y], ds.feature_names, "digit")
     seal = _sha(path)
-    with pytest.raises(DatasetError, match=r"40 of the 399 rows of the calibration data .* were used to train"):
+    with pytest.raises(DatasetError, match=r"calibration data .*: 40 of 399 rows match a training row; natural "
+                                           r"duplication predicts about \d\.\d .* clearly more"):
         calibrate_file(str(path), str(leaky), target="digit", target_abstain=0.1)
     assert _sha(path) == seal
     out = calibrate_file(str(path), str(leaky), target="digit", target_abstain=0.1, drop_training_rows=True)
     assert out.record["n"] == 359 and out.record["data"]["rows"] == 399
     assert out.record["data"]["training_rows_dropped"] == 40
-    assert any("40 of the 399 rows" in n and "left out" in n for n in out.notes)
+    assert any("40 of 399 rows" in n and "40 matching rows were left out" in n for n in out.notes)
 
 
 def test_array_api_returns_the_record_and_checks_with_test_arrays(tiny_bundle_factory, copy_bundle, tmp_path):
@@ -360,7 +361,7 @@ def test_demo_file_path_at_the_demo_target(demo_bundle, demo_dataset, copy_bundl
     train_csv = write_labelled(tmp_path / "train.csv", ds.x_train[:50], [str(v) for v in ds.y_train[:50]],
                                ds.feature_names, "digit")
     assert main(["calibrate", str(path), "--data", str(train_csv), "--target-abstain", "0.1"]) != 0
-    assert "50 of the 50 rows" in capsys.readouterr().err
+    assert "50 of 50 rows match a training row" in capsys.readouterr().err
 
 
 def test_integer_labels_are_refused_when_the_labels_are_numbers_that_are_not_indices(tmp_path):

@@ -181,7 +181,7 @@ def test_evaluate_refuses_training_rows_and_an_out_that_is_a_file(small_trained_
     from demur.serve.errors import DemurError
 
     ds = load_dataset("digits")
-    with pytest.raises(DemurError, match="used to train") as info:
+    with pytest.raises(DemurError, match="rows of the training data are in it") as info:
         evaluate(small_trained_bundle, ds.x_train[:50], ds.y_train[:50])
     assert info.value.field == "x"
     (tmp_path / "file").write_text("x")

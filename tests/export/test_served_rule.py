@@ -81,6 +81,11 @@ def test_server_decides_every_calibration_case_as_calibrate_did(kind, demo_bundl
     assert rec["achieved"]["outside_training_data"] == int(v.outside.sum())
     bundle = load_bundle(path)
     threshold = bundle.manifest.decision.threshold
+    # the abstention alert's baseline (demur_calibrated_abstain_ratio) is the served rule's rate
+    from demur.serve.adapters.metrics import calibrated_abstain_ratio
+    from demur.serve.core.decision import rule_from
+
+    assert calibrated_abstain_ratio(bundle.manifest, rule_from(bundle.manifest)) == pytest.approx(v.abstain.mean())
     assert not np.any(np.isclose(v.score, threshold, rtol=1e-6, atol=0)), "threshold on a calibration score"
     client = _client(bundle, graph, tmp_path / "demur-data")
     for batch in BATCHES:

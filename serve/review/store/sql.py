@@ -21,7 +21,7 @@ import json
 import random
 import threading
 import time
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Sequence
 from typing import Any
 
 from demur.serve.core.audit import AuditTally

@@ -16,7 +16,6 @@ import time
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 import pytest
 from sklearn.datasets import load_digits
 

@@ -24,6 +24,7 @@ from demur.serve.review.store import sql as store_sql
 from demur.serve.errors import ConfigError, Conflict, NotFound, ReviewItemRejected, ReviewStoreUnavailable
 from demur.serve.review.store import (
     SCHEMA_VERSION,
+    NewItem,
     PostgresStore,
     ReviewStore,
     SqliteStore,
