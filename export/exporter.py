@@ -72,8 +72,10 @@ __all__ = [
     "EXPORT_KINDS",
     "INTERVAL_LEVEL",
     "PARITY_TOLERANCE",
+    "SUPPORT_CHOICES",
     "SUPPORT_SAMPLE",
     "TrainingRows",
+    "training_data_statement",
     "training_rows",
     "THRESHOLD_QUANTILE",
     "Inputs",
@@ -100,6 +102,8 @@ INTERVAL_LEVEL = 0.9
 
 PARITY_TOLERANCE = 1e-4
 """Largest allowed |onnx - torch| / max(|torch|, 1) over every draw, case and output."""
+
+SUPPORT_CHOICES = ("rows", "centroids", "none")  # what the support check stores (serve/core/support.py)
 
 SUPPORT_SAMPLE = 20_000
 """Training rows kept for the support check (it stores its own smaller sample in the manifest)."""
@@ -208,6 +212,7 @@ def export_model(
     seed: int | None = None,
     target: Mapping[str, float] | None = None,
     extensions: Mapping[str, Any] | None = None,
+    support: str = "rows",
 ) -> Bundle:
     """Write a verified bundle for ``model`` at ``out``; see the module docstring for what is checked.
 
@@ -223,7 +228,8 @@ def export_model(
     score reference (None: 64 cases uniform over the training range, a
     placeholder until ``demur calibrate``). ``seed``: the stacked draws and
     the recorded seed of fresh-draw graphs (None: a random one, recorded).
-    ``extensions``: extra manifest sections kept verbatim.
+    ``extensions``: extra manifest sections kept verbatim. ``support``: what the support check stores
+    (``SUPPORT_CHOICES``; "none": no check); ``extensions.training_data`` lists what the manifest holds.
     """
     from demur.export.graphs import SEED_MODULUS
 
@@ -236,6 +242,8 @@ def export_model(
     if isinstance(model, (list, tuple)) and kind != "stacked":
         raise ExportError(f"a deep ensemble (a list of modules) has its draws fixed at export: export it with "
                           f"kind='stacked'; got '{kind}'", field="kind")
+    if support not in SUPPORT_CHOICES:
+        raise ExportError(f"support must be one of {', '.join(SUPPORT_CHOICES)}; got {support!r}", field="support")
     seed = secrets.randbelow(SEED_MODULUS) if seed is None else int(seed) % SEED_MODULUS
     spec_in = inputs if isinstance(inputs, Inputs) else Inputs(spec=dict(inputs))
     spec = dict(spec_in.spec)
@@ -279,9 +287,10 @@ def export_model(
         }
         # The support check's threshold needs held-out in-distribution rows: without a
         # reference there is none to set it on, and the bundle says it carries no check.
-        support = (support_record(spec_in.training.sample, ref, spec)
-                   if spec_in.training is not None and not placeholder else None)
-        write_bundle(tmp, decision=decision, drift_reference=drift, support=support, **fields)
+        check = (support_record(spec_in.training.sample, ref, spec, summary=support)
+                 if spec_in.training is not None and not placeholder and support != "none" else None)
+        fields["extensions"]["training_data"] = training_data_statement(fields, drift, check)
+        write_bundle(tmp, decision=decision, drift_reference=drift, support=check, **fields)
         load_bundle(tmp)  # verify the finished directory before it becomes visible
         _swap_into_place(tmp, out)
     except BaseException:
@@ -315,6 +324,20 @@ def _manifest_extras(net: Any, model: Any, extensions: Mapping[str, Any] | None,
     if training is not None:
         ext["training_rows"] = training.fingerprint  # calibrate's leakage check
     return {"posterior": posterior, "extensions": ext}
+
+
+def training_data_statement(fields: Mapping[str, Any], drift: Mapping[str, Any],
+                            check: Mapping[str, Any] | None) -> list[dict[str, str]]:
+    """The manifest's ``extensions.training_data``: what it holds derived from the training inputs."""
+    items = [("inputs.center, inputs.scale, inputs.low, inputs.high", "per-feature mean, floored standard "
+              "deviation, minimum and maximum of the training inputs")]
+    if drift.get("features"):
+        items.append(("drift_reference.features", "per-feature quantile bin edges and bin shares of the training inputs"))
+    if "training_rows" in fields["extensions"]:
+        items.append(("extensions.training_rows", "64-bit hashes of the training rows (calibrate's leakage check): no "
+                      "row can be rebuilt from them, but they confirm whether a given row was trained on"))
+    items.append(("support.sample", check["stored"]["note"]) if check is not None else ("support", "none: no check"))
+    return [{"where": where, "what": what} for where, what in items]
 
 
 def _reference_rows(reference: Any, spec: Mapping[str, Any], size: int) -> tuple[np.ndarray, bool]:
@@ -437,6 +460,7 @@ def export_bundle(
     seed: int | None = None,
     name: str | None = None,
     version: str | None = None,
+    support: str = "rows",
 ) -> Bundle:
     """Turn the ``demur train`` checkpoint in ``checkpoint_dir`` into a bundle (through ``export_model``).
 
@@ -454,7 +478,7 @@ def export_bundle(
                                   training=training_rows(dataset.x_train)),
         labels=list(meta["labels"]), task=meta["task"], target=meta.get("target"), kind=kind, draws=draws,
         seed=seed, reference=dataset.x_val, name=name or str(meta.get("name", Path(checkpoint_dir).name)),
-        version=version or "1",
+        version=version or "1", support=support,
         # settings + arch let `demur evaluate --holdout-class` retrain the same network the same way
         extensions={"training": {"metrics": meta.get("metrics", {}), "data": data,
                                  "settings": meta.get("training", {}), "arch": meta.get("arch", {})}},
@@ -517,6 +541,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     p.add_argument("--seed", type=int, default=None, help="seed of the stacked draws / recorded sampler seed")
     p.add_argument("--name", default=None, help="model name (default: the checkpoint's, or the factory's)")
     p.add_argument("--version", default=None, help="model version (default: 1)")
+    p.add_argument("--support", choices=SUPPORT_CHOICES, default="rows",
+                   help="what the support check stores: rows (default; with the stored centre and scale they give "
+                        "back raw training rows), centroids (k-means, each the mean of >= 5 rows), none (no check)")
     own = p.add_argument_group("your own module")
     own.add_argument("--factory", metavar="MODULE:FUNCTION",
                      help="importable function returning the untrained torch module (a list: a deep ensemble)")
@@ -538,7 +565,7 @@ def _run(args: argparse.Namespace) -> int:
         bundle = _export_factory(args, kind)
     elif args.checkpoint is not None:
         bundle = export_bundle(args.checkpoint, args.out, kind=kind, draws=args.draws, seed=args.seed,
-                               name=args.name, version=args.version)
+                               name=args.name, version=args.version, support=args.support)
     else:
         raise ExportError("give a checkpoint DIR from 'demur train', or --factory MODULE:FUNCTION with --weights "
                           "and --data for your own module", field="checkpoint")
@@ -588,7 +615,7 @@ def _export_factory(args: argparse.Namespace, kind: str) -> Bundle:
     labels = [v.strip() for v in args.labels.split(",")] if args.labels else None
     return export_model(model, args.out, inputs=input_spec(x_train, names, shape), labels=labels, task=args.task,
                         kind=kind, draws=args.draws, reference=x_ref, seed=args.seed,
-                        name=args.name or func_name, version=args.version or "1")
+                        name=args.name or func_name, version=args.version or "1", support=args.support)
 
 
 def _csv_rows(path: Path, target: str | None, names: Sequence[str] | None = None) -> tuple[np.ndarray, list[str]]:
