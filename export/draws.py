@@ -64,6 +64,8 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
+from demur.serve.core.bundle import GRAPH_KINDS, noise_law
+
 from demur.export.errors import GraphBuildError
 from demur.export.layers import VariationalConv2d, VariationalLayer, VariationalLinear, sample_network
 from demur.export.shared import NotShareable, SharedPlan, plan_shared
@@ -81,7 +83,7 @@ __all__ = [
     "static_shape",
 ]
 
-DRAW_KINDS = ("stacked", "sampler", "flip", "means")
+DRAW_KINDS = GRAPH_KINDS
 """Graph kinds a ``DrawNetwork`` can run."""
 
 FAMILIES = ("gaussian", "radial", "ensemble", "mc_dropout")
@@ -103,7 +105,7 @@ class NoiseInput:
 
     @property
     def law(self) -> str:
-        return self.name.split(".")[0]
+        return noise_law(self.name)
 
 
 class Feed:

@@ -29,9 +29,9 @@ Example::
 
 from __future__ import annotations
 
-import argparse
 import dataclasses
 import tempfile
+from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
@@ -53,16 +53,23 @@ from demur.serve.offline.evaluation import (
     write_evaluation,
 )
 
-from demur.export.datasets import BUILTIN, column_order, load_dataset, read_features
-from demur.export.errors import DatasetError
-from demur.export.calibration import case_array, fitted_rows, labelled_arrays, labelled_file
+from demur.serve.offline.chunked import draws_in_chunks
 
-__all__ = ["ENSEMBLE_MEMBERS", "HOLDOUT_ROWS", "UNSEEN_ROWS", "evaluate", "register"]
+from demur.export.cases import (
+    builtin_splits,
+    case_array,
+    cases_from_arrays,
+    cases_from_file,
+    fitted_rows,
+    label_column,
+)
+from demur.export.datasets import BUILTIN, read_features
+from demur.export.errors import DatasetError
+
+__all__ = ["ENSEMBLE_MEMBERS", "HOLDOUT_ROWS", "UNSEEN_ROWS", "evaluate", "evaluate_file"]
 
 ENSEMBLE_MEMBERS = 5
 """Members of the ensemble baseline."""
-
-_ROWS = 256
 
 _SCORES = "_unseen_scores"
 
@@ -76,16 +83,10 @@ def _served(bundle: Bundle, x: np.ndarray, y: np.ndarray, shifts: dict[str, np.n
     support = support_from_manifest(m)
 
     def run(xs: np.ndarray) -> tuple[dict[str, np.ndarray], np.ndarray, np.ndarray]:
-        probs, mi, accept = [], [], []
-        for i in range(0, len(xs), _ROWS):
-            xb = xs[i:i + _ROWS].reshape(-1, *m.inputs.shape)
-            s = summarise(m.task, engine.run(xb), m.interval_level, m.target)
-            d = decide(s, rule, support=support, x_raw=xb)
-            probs.append(s.mean_probs)
-            mi.append(s.mutual_information)
-            accept.append(~d.abstain)
-        p = np.concatenate(probs)
-        return scores_of(p, np.concatenate(mi)), np.concatenate(accept), p
+        xs = xs.reshape(-1, *m.inputs.shape)
+        s = summarise(m.task, draws_in_chunks(engine, xs), m.interval_level, m.target)
+        d = decide(s, rule, support=support, x_raw=xs)
+        return scores_of(s.mean_probs, s.mutual_information), ~d.abstain, s.mean_probs
 
     clean, accept, probs = run(x)
     shifted = {name: run(xs)[:2] for name, xs in shifts.items()}
@@ -239,7 +240,8 @@ def _retrainable(bundle: Bundle, label: str) -> tuple[str, dict[str, Any]]:
     return family, recipe
 
 
-def _holdout(bundle: Bundle, label: str, data: Any, seed: int, baseline: bool) -> dict[str, dict[str, Any]]:
+def _holdout(bundle: Bundle, label: str, data: Any, seed: int, baseline: bool,
+             retrain: tuple[str, dict[str, Any]]) -> dict[str, dict[str, Any]]:
     """Retrain the bundle's network the way it was trained, without ``label``; the AUROC of each
     score for every row of that class (none was trained on) against the seen classes' test rows.
 
@@ -250,7 +252,7 @@ def _holdout(bundle: Bundle, label: str, data: Any, seed: int, baseline: bool) -
     from demur.export.training import train, train_ensemble
 
     m = bundle.manifest
-    family, recipe = _retrainable(bundle, label)
+    family, recipe = retrain  # _retrainable's answer, checked before anything ran
     k = m.labels.index(label)
     splits = ("train", "val", "cal", "test")
     keep = {f"{a}_{s}": getattr(data, f"{a}_{s}")[getattr(data, f"y_{s}") != k]
@@ -372,29 +374,85 @@ def evaluate(
       that class (only for a bundle exported from a ``demur train`` checkpoint) and uses every
       row of the class as the unseen ones."""
     b = bundle if isinstance(bundle, Bundle) else load_bundle(bundle)
-    m = b.manifest
-    if m.task != "classification":
-        raise ConfigError("demur evaluate measures classifiers; this bundle is a regression model", field="bundle")
-    if holdout is not None and unseen is not None:
-        raise ConfigError("give either holdout (demur retrains without the class) or unseen (rows of a class "
-                          "your model never saw), not both", field="unseen")
-    if holdout is not None:
-        _retrainable(b, str(holdout[0]))
-    x, y = labelled_arrays(b, x, y, "x", "y")
+    retrain = _refused_early(b, holdout[0] if holdout is not None else None, unseen is not None, out)
+    cases = cases_from_arrays(b, x, y, "x", "x", field_y="y")
     train = None
     if baseline:
         if x_train is None or y_train is None:
             raise ConfigError("baseline needs the training split (x_train, y_train)", field="baseline")
-        train = labelled_arrays(b, x_train, y_train, "x_train", "y_train")
+        fit = cases_from_arrays(b, x_train, y_train, "x_train", "x_train", field_y="y_train")
+        train = (fit.x, fit.y)
     u = case_array(b, unseen, "unseen") if unseen is not None else None
+    return _tables(b, cases.x, cases.y, train, u, baseline=baseline, out=out, seed=seed, title=title,
+                   holdout=holdout, retrain=retrain, unseen_label=unseen_label)
+
+
+def evaluate_file(bundle: str | Path, data: str, *, out: str | Path, target: str | None = None,
+                  ignore: Sequence[str] = (), seed: int | None = None, baseline: bool = False,
+                  train: str | Path | None = None, holdout_class: str | None = None,
+                  unseen: str | Path | None = None, unseen_label: str | None = None) -> dict[str, Any]:
+    """``demur evaluate``: ``data`` is a labelled CSV (every row is evaluated, as calibrate uses
+    every row; ``target`` its label column) or a bundled set (its test split, cut with the seed
+    training used); ``train``: with a CSV and ``baseline``, the labelled rows the baselines learn
+    from; ``unseen``: a CSV of rows of a class the model was trained without. Rows are read and
+    checked once (``demur.export.cases``, as calibrate reads them); returns ``evaluate``'s figures."""
+    b = load_bundle(bundle)
+    retrain = _refused_early(b, holdout_class, unseen is not None, out)
+    ignore = list(ignore)
+    if str(data) in BUILTIN:
+        ds, split_seed = builtin_splits(b, str(data), seed)
+        target = target or ds.target
+        x, y, fit = ds.x_test, ds.y_test, (ds.x_train, ds.y_train)
+    else:  # the user's own held-out file: every row is evaluated, as calibrate uses every row
+        target = label_column(b, target)
+        if holdout_class is not None:
+            raise ConfigError("--holdout-class retrains on the bundled set's training split, which a held-out CSV "
+                              "does not give; use --data digits, or for a class your model never saw --unseen FILE",
+                              field="holdout_class")
+        if baseline and train is None:
+            raise ConfigError("--baseline trains plain networks, so with a CSV it needs your training rows: "
+                              "--train FILE (labelled, columns by name)", field="baseline")
+        cases = cases_from_file(b, str(data), target, ignore)
+        x, y, ds, split_seed = cases.x, cases.y, None, int(seed or 0)
+        fitted = cases_from_file(b, str(train), target, ignore) if baseline else None
+        fit = (fitted.x, fitted.y) if fitted is not None else None
+    u = None
+    if unseen is not None:
+        if not Path(unseen).is_file():
+            raise DatasetError(f"--unseen must be an existing CSV file; got {str(unseen)!r}", field="unseen")
+        u = read_features(unseen, list(b.manifest.inputs.names), ignore=[*([target] if target else []), *ignore])
+    return _tables(b, x, y, fit if baseline else None, u, baseline=baseline, out=out, seed=split_seed, title="",
+                   holdout=(holdout_class, ds) if holdout_class is not None else None, retrain=retrain,
+                   unseen_label=unseen_label or (Path(unseen).name if unseen is not None else ""))
+
+
+def _refused_early(b: Bundle, holdout_class: str | None, has_unseen: bool,
+                   out: str | Path | None) -> tuple[str, dict[str, Any]] | None:
+    """Everything refused before a row is read: a regression bundle, both ways of an unseen
+    class, an ``out`` that is a file, and a ``holdout_class`` demur cannot retrain (its
+    ``_retrainable`` answer is returned, so it is worked out once)."""
+    if b.manifest.task != "classification":
+        raise ConfigError("demur evaluate measures classifiers; this bundle is a regression model", field="bundle")
+    if holdout_class is not None and has_unseen:
+        raise ConfigError("give either holdout (demur retrains without the class) or unseen (rows of a class "
+                          "your model never saw), not both", field="unseen")
+    if out is not None and Path(out).exists() and not Path(out).is_dir():
+        raise ConfigError(f"out {str(out)!r} exists and is not a folder; choose another --out", field="out")
+    return _retrainable(b, str(holdout_class)) if holdout_class is not None else None
+
+
+def _tables(b: Bundle, x: np.ndarray, y: np.ndarray, train: tuple[np.ndarray, np.ndarray] | None,
+            u: np.ndarray | None, *, baseline: bool, out: str | Path | None, seed: int, title: str,
+            holdout: tuple[str, Any] | None, retrain: tuple[str, dict[str, Any]] | None,
+            unseen_label: str) -> dict[str, Any]:
+    """``evaluate``'s tables on rows already checked (x float64[N, F], y class indices)."""
+    m = b.manifest
     notes = _not_fitted(b, x, "x") + (_not_fitted(b, u, "unseen") if u is not None else [])
     if u is not None:
         both = len({r.tobytes() for r in x} & {r.tobytes() for r in u})
         if both:
             notes.append(f"warning: {both} of the {len(u)} unseen rows are also in x: the unseen class should be "
                          "one the model never saw, and x the classes it knows")
-    if out is not None and Path(out).exists() and not Path(out).is_dir():
-        raise ConfigError(f"out {str(out)!r} exists and is not a folder; choose another --out", field="out")
     spec = m.inputs
     shifts = shifted_inputs(x, low=np.asarray(spec.low), high=np.asarray(spec.high), center=np.asarray(spec.center),
                             image_shape=_image_shape(spec), seed=seed)
@@ -416,102 +474,11 @@ def evaluate(
         for name, row in _unseen_rows(models, label=unseen_label or "unseen", n_unseen=len(u), n_seen=len(x),
                                       rows=UNSEEN_ROWS, score=rule_from(m).score).items():
             models[name]["holdout"] = row
-    if holdout is not None:
-        for name, row in _holdout(b, holdout[0], holdout[1], seed, baseline).items():
+    if holdout is not None and retrain is not None:
+        for name, row in _holdout(b, holdout[0], holdout[1], seed, baseline, retrain).items():
             models[name]["holdout"] = row
     figures = {"title": title or f"{m.model_name} v{m.model_version}", "model": m.model_name,
                "checksum": b.checksum, "models": models, "notes": notes}
     if out is not None:
         write_evaluation(out, figures)
     return figures
-
-
-# -- command line ------------------------------------------------------------------
-def register(subparsers: argparse._SubParsersAction) -> None:
-    """Add ``demur evaluate`` to the ``demur`` command."""
-    p = subparsers.add_parser(
-        "evaluate", help="measure whether the abstention flag is worth having, on labelled held-out data",
-        description="Referral, shift and held-out-class tables for a bundle (JSON, PNG plots, index.html).")
-    p.add_argument("bundle", metavar="BUNDLE")
-    p.add_argument("--data", required=True,
-                   help="a labelled CSV (every row is evaluated; columns by name) or 'digits' (its test split)")
-    p.add_argument("--target", metavar="COLUMN", help="label column of a CSV (default: the one training used)")
-    p.add_argument("--ignore", action="append", metavar="COLUMN",
-                   help="a column of --data or --unseen to skip, e.g. an id (repeatable)")
-    p.add_argument("--seed", type=int, help="split seed (default: the one training used)")
-    p.add_argument("--out", required=True, type=Path, help="folder for evaluation.json, plots, index.html")
-    p.add_argument("--baseline", action="store_true",
-                   help=f"also train a deterministic network and a {ENSEMBLE_MEMBERS}-member ensemble")
-    p.add_argument("--train", metavar="FILE", type=Path,
-                   help="with a CSV --data and --baseline: the labelled training rows the baselines learn from")
-    p.add_argument("--holdout-class", metavar="LABEL",
-                   help="retrain the bundle's network without this class (a bundle from `demur train`) and measure "
-                        "how every row of it is flagged")
-    p.add_argument("--unseen", metavar="FILE", type=Path,
-                   help="CSV of rows of a class your model was trained without (columns by name; the --target "
-                        "column and --ignore columns are skipped): how they are flagged, for any model")
-    p.add_argument("--unseen-label", metavar="NAME", help="what to call that class on the page (default: the file's name)")
-    p.set_defaults(func=_main)
-
-
-def _main(args: argparse.Namespace) -> int:
-    b = load_bundle(args.bundle)
-    m = b.manifest
-    if args.holdout_class is not None:
-        _retrainable(b, args.holdout_class)
-    if args.out.exists() and not args.out.is_dir():
-        raise ConfigError(f"--out {str(args.out)!r} exists and is not a folder; choose another", field="out")
-    trained = (m.raw.get("extensions", {}).get("training", {}) or {}).get("data", {}) or {}
-    target = args.target or trained.get("target")
-    ignore = list(args.ignore or [])
-    if str(args.data) in BUILTIN:
-        same = str(trained.get("source", args.data)) == str(args.data)
-        seed = int(args.seed if args.seed is not None else (trained.get("seed", 0) if same else 0))
-        ds = load_dataset(args.data, None, seed=seed, task=m.task)
-        column_order(list(ds.feature_names), list(m.inputs.names), where=f"'{args.data}'")
-        if m.task == "classification" and tuple(ds.labels) != tuple(m.labels):
-            raise DatasetError(f"data '{args.data}' has labels {list(ds.labels)}; bundle {b.path} has "
-                               f"{list(m.labels)}", field="data")
-        x, y, x_train, y_train = ds.x_test, ds.y_test, ds.x_train, ds.y_train
-    else:  # the user's own held-out file: every row is evaluated, as calibrate uses every row
-        if target is None:
-            raise ConfigError("a CSV needs --target COLUMN (the label column); the bundle records none",
-                              field="target")
-        if args.holdout_class is not None:
-            raise ConfigError("--holdout-class retrains on the bundled set's training split, which a held-out CSV "
-                              "does not give; use --data digits, or for a class your model never saw --unseen FILE",
-                              field="holdout_class")
-        if args.baseline and args.train is None:
-            raise ConfigError("--baseline trains plain networks, so with a CSV it needs your training rows: "
-                              "--train FILE (labelled, columns by name)", field="baseline")
-        x, y = labelled_file(b, args.data, target, ignore)
-        x_train, y_train = labelled_file(b, str(args.train), target, ignore) if args.baseline else (None, None)
-        ds = None
-        seed = int(args.seed or 0)
-    unseen = None
-    if args.unseen is not None:
-        if not args.unseen.is_file():
-            raise DatasetError(f"--unseen must be an existing CSV file; got {str(args.unseen)!r}", field="unseen")
-        unseen = read_features(args.unseen, list(m.inputs.names), ignore=[*([target] if target else []), *ignore])
-    figures = evaluate(b, x, y, x_train=x_train, y_train=y_train, baseline=args.baseline, out=args.out, seed=seed,
-                       holdout=(args.holdout_class, ds) if args.holdout_class is not None else None,
-                       unseen=unseen, unseen_label=args.unseen_label or (args.unseen.name if args.unseen else ""))
-    for note in figures["notes"]:
-        print(note)
-    for name, body in figures["models"].items():
-        ref = body["referral"]
-        acc10 = ref["rankings"].get("mutual_information", ref["rankings"]["one_minus_max_prob"])
-        far = {s: row["accepted"] for s, row in body["shift"].items()}
-        print(f"{name}: accuracy {ref['accuracy']:.4f}, at 10% referred {acc10['accuracy_at_referral']['0.10']:.4f}; "
-              f"clean accepted {body['clean_accepted']:.3f}; shifted accepted "
-              + ", ".join(f"{s} {v:.3f}" for s, v in far.items())
-              + (f"; unseen class ({body['holdout']['n']} rows) AUROC "
-                 + ", ".join(f"{k} {v:.3f} (se {body['holdout']['auroc_se'][k]:.3f})"
-                             for k, v in body["holdout"]["auroc"].items()) if body.get("holdout") else ""))
-        versus = (body.get("holdout") or {}).get("against_deterministic")
-        if versus:
-            print(f"  unseen class, {versus['score']} against the deterministic network's max-probability on the "
-                  f"same cases: AUROC difference {versus['difference']:+.4f} (se {versus['standard_error']:.4f}, "
-                  f"p = {versus['p_value']:.3f}, DeLong et al. 1988)")
-    print(f"wrote {args.out / 'index.html'}")
-    return 0

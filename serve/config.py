@@ -21,11 +21,16 @@ from dataclasses import dataclass, fields
 from pathlib import Path
 from typing import Any, get_args, get_type_hints
 
+from demur.serve.core.bundle import GRAPH_KINDS
 from demur.serve.errors import ConfigError
 
-__all__ = ["ENV_PREFIX", "ServeConfig", "build_config", "worker_count"]
+__all__ = ["ENV_PREFIX", "GRAPH_CHOICES", "ServeConfig", "build_config", "worker_count"]
 
 ENV_PREFIX = "DEMUR_"
+
+GRAPH_CHOICES = ("auto", *GRAPH_KINDS)
+"""Values of the ``graph`` setting: a bundle graph kind, or ``auto`` (the sampler graph if the
+bundle has one, else the stacked draws; serve/adapters/engine.py)."""
 
 DEFAULT_HOST = "127.0.0.1"
 DEFAULT_PORT = 8600
@@ -200,8 +205,8 @@ def _check(cfg: ServeConfig) -> None:
     except ValueError:
         raise ConfigError(f"trusted_proxies must be comma-separated IP addresses; got {cfg.trusted_proxies!r}",
                           field="trusted_proxies") from None
-    if cfg.graph not in ("auto", "stacked", "sampler", "flip", "means"):
-        raise ConfigError(f"graph must be auto, stacked, sampler, flip or means; got '{cfg.graph}'", field="graph")
+    if cfg.graph not in GRAPH_CHOICES:
+        raise ConfigError(f"graph must be one of {', '.join(GRAPH_CHOICES)}; got '{cfg.graph}'", field="graph")
     if not 0.0 <= cfg.audit_fraction <= 1.0:
         raise ConfigError(f"audit_fraction must be in [0, 1]; got {cfg.audit_fraction}", field="audit_fraction")
     if cfg.interval_level is not None and not 0.0 < cfg.interval_level < 1.0:

@@ -35,7 +35,6 @@ path (the review queue has its own tests).
 
 from __future__ import annotations
 
-import argparse
 import datetime as _dt
 import json
 import math
@@ -65,7 +64,7 @@ from demur.export.draws import DrawNetwork
 from demur.export.errors import ExportError
 from demur.export.graphs import export_graph
 
-__all__ = ["BENCH_FORMAT", "TARGETS", "format_table", "register", "run_bench"]
+__all__ = ["BENCH_FORMAT", "TARGETS", "format_table", "run_bench", "save_result"]
 
 BENCH_FORMAT = "demur-bench/2"
 
@@ -151,7 +150,7 @@ def _load_model(checkpoint: Path | None) -> tuple[Any, dict[str, Any], bool]:
     from demur.export.layers import build_model
 
     if checkpoint is not None:
-        from demur.export.training import load_checkpoint
+        from demur.export.checkpoints import load_checkpoint
 
         model, meta = load_checkpoint(checkpoint)
         if isinstance(model, list):
@@ -613,33 +612,11 @@ def _http_row(r: dict[str, Any]) -> str:
 
 
 # -- command line ----------------------------------------------------------------------------
-def register(subparsers: argparse._SubParsersAction) -> None:
-    """Add ``demur bench`` to the ``demur`` command."""
-    p = subparsers.add_parser("bench", help="measure demur against the obvious alternatives (prints ratios)",
-                              description="Engine-level and HTTP benchmark on this machine; writes a JSON file "
-                                          "and prints a table. --quick finishes in about a minute.")
-    p.add_argument("--quick", action="store_true", help="fewer repeats, S = 32 only, short HTTP runs")
-    p.add_argument("--checkpoint", type=Path, default=None, help="a trained MLP checkpoint directory "
-                   "(default: the untrained 64-256-256-10 radial MLP)")
-    p.add_argument("--out", type=Path, default=Path("build/bench/bench.json"),
-                   help="JSON result (default build/bench/bench.json; never tracked)")
-    p.add_argument("--table", type=Path, default=None, help="also write the printed table to this file")
-    p.add_argument("--no-http", action="store_true", help="skip the HTTP section")
-    p.add_argument("--workdir", type=Path, default=None, help="keep bundles and server logs here")
-    p.set_defaults(func=_run)
-
-
-def _run(args: argparse.Namespace) -> int:
-    result = run_bench(quick=args.quick, checkpoint=args.checkpoint, http=not args.no_http, workdir=args.workdir,
-                       log=lambda m: print(m, file=sys.stderr, flush=True))
-    args.out.parent.mkdir(parents=True, exist_ok=True)
-    args.out.write_text(json.dumps(result, indent=2, default=_json_default) + "\n")
-    table = format_table(result)
-    print(table)
-    if args.table:
-        args.table.parent.mkdir(parents=True, exist_ok=True)
-        args.table.write_text(table + "\n")
-    return 0
+def save_result(result: dict[str, Any], out: Path) -> Path:
+    """Write ``run_bench``'s result to ``out`` as JSON (NumPy numbers as plain ones, NaN as null)."""
+    out.parent.mkdir(parents=True, exist_ok=True)
+    out.write_text(json.dumps(result, indent=2, default=_json_default) + "\n")
+    return out
 
 
 def _json_default(value: Any) -> Any:

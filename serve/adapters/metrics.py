@@ -103,6 +103,7 @@ from prometheus_client import values as _prom_values
 from prometheus_client.core import GaugeMetricFamily, InfoMetricFamily, Metric
 from prometheus_client.multiprocess import MultiProcessCollector, mark_process_dead
 
+from demur.serve.adapters.audit_metrics import AuditCollector, Certificate
 from demur.serve.config import ServeConfig
 from demur.serve.core.drift import DriftMonitor
 from demur.serve.errors import DemurError
@@ -189,6 +190,8 @@ class Metrics:
         self._model: dict[str, str] = {}
         self._rule: Any = None
         self._calibrated_ratio: float | None = None
+        self._certificate: Certificate | None = None
+        self._audit = AuditCollector(self._audit_tallies, lambda: self._certificate)
         self._drift: DriftMonitor | None = None
         self._feature_names: list[str] = []
         self._published_at = -float("inf")
@@ -292,9 +295,18 @@ class Metrics:
             self._drift = DriftMonitor(ref, self.config.drift_window) if ref else None
             self._feature_names = list(m.inputs.names)
             self._calibrated_ratio = calibrated_abstain_ratio(m, rule)
+            # the certificate covers the calibrated rule only: none for an overridden threshold or score
+            same_rule = rule.threshold == m.decision.threshold and rule.score == m.decision.score
+            cert = m.decision.certificate if m.task == "classification" and same_rule else None
+            self._certificate = None if cert is None else Certificate(bundle.checksum, *cert)
         if not self.multiprocess_dir:  # (the client cannot clear labels in multiprocess mode)
             self.feature_psi.clear()
         self.refresh()
+
+    def _audit_tallies(self) -> list[Any]:
+        """The shared store's per-model audit tallies (none without a review router)."""
+        store = getattr(self._review, "store", None)
+        return [] if store is None else list(store.audit_tallies())
 
     def _bind_from_runtime(self, rule: Any = None) -> None:
         """Bind to the app's live model (after ``init_app``); no-op before one is live."""
@@ -595,6 +607,7 @@ class _StateCollector:
             for status, n in sorted(depths.items()):
                 q.add_metric([str(status)], float(n))
             yield q
+        yield from m._audit.collect()
 
 
 def _family_sum(families: Iterable[Metric], name: str) -> float:

@@ -4,7 +4,7 @@ Data flows one way::
 
     parsed body -> validation.validate_predict (InputSpec of the live model)
       -> runner(engine, x)             float32[S, B, K]
-      -> summary.summarise -> decision.decide -> render.results
+      -> summary.summarise -> decision.ServedRule.decide -> render.results
       -> review.enqueue(Answered)      one annotation per case, merged into its result
       -> metrics.observe_predict(...)  -> response dicts
 
@@ -34,7 +34,7 @@ import numpy as np
 
 from demur.serve.config import ServeConfig
 from demur.serve.core import render
-from demur.serve.core.decision import DecisionRule, Verdicts, decide, rule_from
+from demur.serve.core.decision import DecisionRule, ServedRule, Verdicts, rule_from
 from demur.serve.core.summary import Summary, summarise
 from demur.serve.core.support import support_from_manifest
 from demur.serve.core.validation import PredictRequest, validate_predict
@@ -62,11 +62,19 @@ class Live:
     Immutable; a roll-out replaces the whole object."""
 
     engine: Any
-    rule: DecisionRule
+    served: ServedRule  # the one rule: support check, then score vs threshold (core/decision.py)
     level: float
     model: dict[str, str]
     loaded_at: float
-    support: Any = None  # demur.serve.core.support.SupportCheck, None for a bundle without one
+
+    @property
+    def rule(self) -> DecisionRule:
+        return self.served.rule
+
+    @property
+    def support(self) -> Any:
+        """The support check (demur.serve.core.support.SupportCheck), None for a bundle without one."""
+        return self.served.support
 
     @property
     def manifest(self) -> Any:
@@ -211,8 +219,8 @@ class Runtime:
         rule = rule_from(manifest, self.config)
         level = float(self.config.interval_level or manifest.interval_level)
         model = render.model_ref(manifest.model_name, manifest.model_version, engine.checksum)
-        live = Live(engine=engine, rule=rule, level=level, model=model, loaded_at=time.time(),
-                    support=support_from_manifest(manifest))
+        live = Live(engine=engine, served=ServedRule(rule, support_from_manifest(manifest)), level=level,
+                    model=model, loaded_at=time.time())
         self._smoke(live)
         return live
 
@@ -227,8 +235,7 @@ class Runtime:
             raise BundleError(
                 f"smoke prediction failed: expected finite draws of shape [S, 1, {k}]; got shape "
                 f"{list(draws.shape)}", field="bundle")
-        decide(summarise(live.manifest.task, draws, live.level, live.manifest.target), live.rule,
-               support=live.support, x_raw=x)
+        live.served.decide(summarise(live.manifest.task, draws, live.level, live.manifest.target), x)
 
     def install(self, engine: Any) -> Live | None:
         """Prepare ``engine`` and make it live; return the model it replaced."""
@@ -277,7 +284,7 @@ class Runtime:
         if draws.ndim != 3 or draws.shape[1] != req.size:
             raise GraphRunError(f"the graph returned draws of shape {list(draws.shape)} for {req.size} cases")
         summary = summarise(manifest.task, draws, live.level, manifest.target)
-        decisions = decide(summary, live.rule, support=live.support, x_raw=req.x, x_std=x_std)
+        decisions = live.served.decide(summary, req.x, x_std)
         results = render.results(summary, decisions, live.rule, manifest.labels, req.case_ids)
         self._annotate(Answered(live, req, summary, decisions, results, caller))
         rule = {"score": live.rule.score, "threshold": live.rule.threshold, "source": live.rule.source}

@@ -149,9 +149,12 @@ def standardisation(x: np.ndarray, *, shared_units: bool = False) -> tuple[np.nd
 
 
 def conformal_threshold(scores: np.ndarray, alpha: float) -> tuple[float, float]:
-    """(threshold, false-alarm bound): the ceil((n+1)(1-alpha))-th smallest of the n held-out
+    """(threshold, false-alarm bound): the ceil((n+1)(1-alpha))-th smallest s_(k) of the n held-out
     ``scores`` and 1 - k/(n+1), the bound on P(new in-distribution score > threshold).
-    With too few scores for ``alpha`` the largest is used (bound 1/(n+1))."""
+    With too few scores for ``alpha`` the largest is used (bound 1/(n+1)). The threshold is
+    written midway between s_(k) and the next larger score (0.1% above s_(k) when there is
+    none), never on a held-out case's own distance: a distance recomputed in another batch
+    (float32 inputs, BLAS blocking) differs in its last bits and must not change sides."""
     if not 0.0 < alpha < 1.0:
         raise ConfigError(f"alpha must be in (0, 1); got {alpha}", field="alpha")
     s = np.sort(np.asarray(scores, dtype=np.float64).ravel())
@@ -159,7 +162,10 @@ def conformal_threshold(scores: np.ndarray, alpha: float) -> tuple[float, float]
     if n < 1:
         raise ConfigError("the support threshold needs held-out cases; got none", field="x_heldout")
     k = min(n, math.ceil((n + 1) * (1.0 - alpha) - 1e-12))
-    return float(s[k - 1]), 1.0 - k / (n + 1)
+    kth = float(s[k - 1])
+    above = s[s > kth]
+    threshold = kth + 0.5 * (float(above[0]) - kth) if len(above) and np.isfinite(above[0]) else kth * 1.001 + 1e-12
+    return threshold, 1.0 - k / (n + 1)
 
 
 @dataclass(frozen=True)

@@ -11,7 +11,7 @@ referral  accuracy on the cases kept when the r% most uncertain are referred to 
           overall accuracy at every r); the layout of Filos et al. 2019, "A Systematic
           Comparison of Bayesian Deep Learning Robustness in Diabetic Retinopathy
           Tasks". Plus AURC per ranking (Geifman et al. 2019), accuracy, ECE (15 bins,
-          Guo et al. 2017), NLL and Brier, all from ``demur.serve.offline.calibration``
+          Guo et al. 2017), NLL and Brier, all from ``demur.serve.offline.metrics``
           (one copy of each).
 shift     for built-in shifts of the held-out inputs (``shifted_inputs``), the AUROC of
           each score at telling shifted cases from clean ones (``auroc``: the
@@ -38,7 +38,8 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
-from demur.serve.offline.calibration import (
+from demur.serve.core.bundle import SCORE_TASKS
+from demur.serve.offline.metrics import (
     REFERRAL_RATES,
     accuracy_at_referral,
     aurc,
@@ -51,8 +52,8 @@ from demur.serve.offline.report import CAUTION, _json_safe, _plt
 __all__ = ["FAR_SHIFTS", "NOISE_SD", "SCORE_NAMES", "auroc", "auroc_difference", "auroc_standard_error",
            "holdout_row", "referral_table", "scores_of", "shift_row", "shifted_inputs", "write_evaluation"]
 
-SCORE_NAMES = ("mutual_information", "predictive_entropy", "one_minus_max_prob")
-"""The rankings compared (larger = less sure)."""
+SCORE_NAMES = tuple(name for name, tasks in SCORE_TASKS.items() if "classification" in tasks)
+"""The rankings compared: every classification score of the bundle format (larger = less sure)."""
 
 FAR_SHIFTS = ("scale_x3", "inversion", "rotation", "uniform_noise", "blank", "saturated")
 """Shifts far from any training input: the served rule should accept (almost) none of them."""

@@ -29,8 +29,8 @@ from typing import Any
 
 import numpy as np
 
-from demur.serve.core.decision import SCORE_UNITS
-from demur.serve.offline.calibration import ECE_BINS, reliability_bins, risk_coverage
+from demur.serve.core.bundle import SCORE_UNITS
+from demur.serve.offline.metrics import ECE_BINS, reliability_bins, risk_coverage
 
 __all__ = ["CAUTION", "ClassificationPlots", "RegressionPlots", "decision_lines", "write_report"]
 
@@ -262,8 +262,13 @@ def decision_lines(record: Mapping[str, Any]) -> list[str]:
     ach, score = record["achieved"], str(record["score"]).replace("_", " ")
     unit = f" {SCORE_UNITS[record['score']]}" if SCORE_UNITS.get(record["score"]) else ""
     bound = record.get("bound")
-    first = (f"abstain when {score} > {record['threshold']:.4g}{unit}: {_pct(ach['abstain_rate'])} of the "
-             f"{record['n']} calibration cases go to a person")
+    first = (f"abstain when {score} > {record['threshold']:.4g}{unit} or the case is outside the training data: "
+             f"{_pct(ach['abstain_rate'])} of the {record['n']} calibration cases go to a person")
+    if "outside_training_data" in ach:
+        first += (f" ({ach['outside_training_data']} by the support check, {ach['abstain_on_score']} on the score; "
+                  f"the served rule's figures)")
+    if ach.get("accuracy") is not None:
+        first += f"; accepted accuracy {ach['accuracy']:.4f}"
     if bound:
         first += (f"; accepted cases are at least {_pct(bound['accuracy_lower'])} correct with "
                   f"{record['confidence']:.0%} confidence ({record['method']})")

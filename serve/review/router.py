@@ -21,8 +21,15 @@ result says::
     {"review": {"queued": false, "spooled": true, "pending_review_id": "...",
                 "reason": "the review store is unavailable; ..."}}
 
-``pending_review_id`` is the id the item will have once the replayer has
-moved it into the store. ``failures`` counts abstained cases the store did
+``pending_review_id`` resolves once the replayer has moved the item into the
+store: it is the item's own id, or, when the same case (case id, model checksum,
+inputs) reached the store meanwhile under another id, an alias of that item
+(``GET /v1/reviews/<id>`` answers either way; serve/review/store/__init__.py).
+
+Idempotency is keyed by the case, not only its id: the same case id with the same
+inputs gives the same item (a retried request); the same case id with *other* inputs
+is queued as a new item and the answer says so:
+``{"review_id": ..., "review": {"queued": true, "case_id_reused": true, "reason": ...}}``. ``failures`` counts abstained cases the store did
 not take at once (``on_failure(n)`` is called too; the app wires it to the
 metrics' ``review_enqueue_failed``). After a failure the store is not tried
 on the request path again until the replayer finds it answering (at most
@@ -93,6 +100,8 @@ NOT_QUEUED = {
 ACCURACY_LEVEL = 0.95
 _MAX_CALLERS = 10_000
 _DESCRIBE_TTL_S = 5.0
+_REUSED = ("this case id was queued before for this model with other inputs; these inputs are a new "
+           "review item (send a new case id for a new case)")
 _UNAVAILABLE = ("the review store is unavailable; the case is kept in this server's spool and will be "
                 "queued when the store answers again")
 
@@ -235,11 +244,12 @@ class ReviewRouter:
         try:
             if time.monotonic() < self._skip_until:
                 raise ReviewStoreUnavailable("the review store failed recently; waiting for the replayer")
-            ids = self.store.enqueue(items)
+            outcomes = self.store.enqueue_items(items)
         except Exception as exc:
             self._store_down(exc)
             return self._fallback(items, abstained, notes)
-        by_item = dict(zip((it.id for it in items), ids))
+        ids = [None if e is None else e.id for e in outcomes]
+        by_item = dict(zip((it.id for it in items), outcomes))
         rejected = sum(1 for rid in ids if rid is None)
         n_abstained = sum(1 for _, it in abstained if by_item[it.id] is not None)
         with self._lock:
@@ -248,8 +258,14 @@ class ReviewRouter:
                 1 for it in items if it.kind == "audit" and by_item[it.id] is None)
             self._pending += len(items) - rejected
         for i, item in abstained:
-            rid = by_item[item.id]
-            notes[i] = {"review_id": rid} if rid is not None else _not_queued("rejected")
+            done = by_item[item.id]
+            if done is None:
+                notes[i] = _not_queued("rejected")
+            elif done.reused:
+                notes[i] = {"review_id": done.id, "review": {"queued": True, "case_id_reused": True,
+                                                             "reason": _REUSED}}
+            else:
+                notes[i] = {"review_id": done.id}
         if rejected:
             self._event("rejected", rejected)
         return notes

@@ -33,7 +33,7 @@ import sys
 from typing import Any
 
 from demur.serve.core.bundle import load_bundle
-from demur.serve.config import ServeConfig, build_config, worker_count
+from demur.serve.config import GRAPH_CHOICES, ServeConfig, build_config, worker_count
 from demur.serve.core.decision import rule_from
 
 __all__ = ["ACCESS_LOG_FORMAT", "app_from_environment", "build_app", "gunicorn_options", "register", "serve"]
@@ -64,7 +64,7 @@ def register(subparsers: Any) -> None:
     p.add_argument("--score", help="decision score, overriding the bundle's (needs --threshold)")
     p.add_argument("--threshold", type=float, help="abstain when the score is above this")
     p.add_argument("--interval-level", type=float, help="interval level in (0, 1), default the bundle's")
-    p.add_argument("--graph", choices=("auto", "stacked", "sampler", "flip", "means"), help="graph kind to run")
+    p.add_argument("--graph", choices=GRAPH_CHOICES, help="graph kind to run")
     p.add_argument("--ort-threads", type=int, dest="ort_intra_threads", help="onnxruntime threads per session")
     p.add_argument("--max-cases", type=int, help="most cases per request (default 1024)")
     p.add_argument("--max-body-bytes", type=int, help="largest request body (default 8 MiB)")

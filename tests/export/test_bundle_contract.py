@@ -88,7 +88,7 @@ def exported(request, tiny_bundle_factory):
         task, kind, posterior, arch = what
         bundle = tiny_bundle_factory(task=task, kind=kind, posterior=posterior, arch=arch)
         return bundle, tiny_bundle_factory.models[bundle.path]
-    from demur.export.training import load_checkpoint
+    from demur.export.checkpoints import load_checkpoint
 
     bundle = request.getfixturevalue(what)
     checkpoint = request.getfixturevalue("diabetes_checkpoint" if what.startswith("diabetes") else "demo_checkpoint")

@@ -146,12 +146,15 @@ class SwitchStore:
         self.lease_s = inner.lease_s
 
     def enqueue(self, items: Any) -> list[str | None]:
+        return [None if e is None else e.id for e in self.enqueue_items(items)]
+
+    def enqueue_items(self, items: Any) -> list[Any]:
         from demur.serve.errors import ReviewStoreUnavailable
 
         self.calls += 1
         if self.down:
             raise ReviewStoreUnavailable("connection refused (test)")
-        return self.inner.enqueue(items)
+        return self.inner.enqueue_items(items)
 
     def __getattr__(self, name: str) -> Any:
         from demur.serve.errors import ReviewStoreUnavailable

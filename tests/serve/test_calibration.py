@@ -22,21 +22,23 @@ from sklearn.linear_model import BayesianRidge
 from sklearn.metrics import brier_score_loss, log_loss
 
 from demur.serve.offline.calibration import (
-    accuracy_at_referral,
-    aurc,
-    brier_score,
     batch_spread,
     calibration_record,
     candidate_ranks,
     conformal_scale,
     error_upper_bound,
-    expected_calibration_error,
     fingerprint,
     minimum_rows,
-    negative_log_likelihood,
-    risk_coverage,
     select_for_abstain,
     select_for_accuracy,
+)
+from demur.serve.offline.metrics import (
+    accuracy_at_referral,
+    aurc,
+    brier_score,
+    expected_calibration_error,
+    negative_log_likelihood,
+    risk_coverage,
 )
 from demur.serve.errors import CalibrationInfeasible, ConfigError
 from demur.serve.core.summary import regression_summary
@@ -114,15 +116,19 @@ def test_risk_coverage_and_aurc_worked_example():
 
 
 def test_abstain_quantile_rank_and_finite_sample_rate():
-    """Rank ceil((n+1)(1-r)) (Lei et al. 2018 / Vovk et al. 2005); for uniform scores the
-    expected abstention 1 - E[U_(k)] = 1 - k/(n+1) (Beta(k, n+1-k) mean), which must be <= r."""
+    """Rank ceil((n+1)(1-r)) (Lei et al. 2018 / Vovk et al. 2005), the threshold written midway
+    to the next score; for uniform scores the expected abstention of the served threshold is
+    1 - E[(U_(k) + U_(k+1)) / 2] = 1 - (k + 1/2)/(n+1) (Beta(k, n+1-k) means), which must be <= r."""
     n, r = 99, 0.05
     k = math.ceil((n + 1) * (1 - r))
     rng = np.random.default_rng(4)
     s = rng.random(n)
-    assert select_for_abstain(s, r).threshold == np.sort(s)[k - 1]
+    srt = np.sort(s)
+    ch = select_for_abstain(s, r)
+    assert ch.threshold == pytest.approx((srt[k - 1] + srt[k]) / 2) and srt[k - 1] < ch.threshold < srt[k]
+    assert ch.accepted == k
     thresholds = np.array([select_for_abstain(rng.random(n), r).threshold for _ in range(4000)])
-    expected = 1 - k / (n + 1)
+    expected = 1 - (k + 0.5) / (n + 1)
     assert expected <= r + 1e-12
     # Monte Carlo: standard error of the mean of (1 - t) is about 0.0003 here; 5e-3 is > 10 SE.
     assert abs(np.mean(1 - thresholds) - expected) < 5e-3
@@ -452,3 +458,24 @@ def test_conformal_coverage_and_out_of_range_width_on_diabetes_bundle(diabetes_b
     assert mean_cov >= 1 - alpha - 0.02
     assert outside.mutual_information.mean() > 10 * inside.mutual_information.mean()
     assert outside.epistemic_std.mean() > inside.epistemic_std.mean()
+
+
+def test_thresholds_sit_midway_between_two_calibration_scores_and_support_cases_always_abstain():
+    """The written threshold is strictly between the last accepted and the first refused score
+    (never on one), and +inf (a case the support check puts outside) abstains at every candidate."""
+    from demur.serve.offline.calibration import threshold_between
+
+    rng = np.random.default_rng(8)
+    s, c = _simulate(rng, 1500)
+    s[:30] = np.inf  # 2% outside the training data
+    ch = select_for_accuracy(s, c, 0.93, 0.1, max_abstain=0.3)
+    finite = np.sort(s[np.isfinite(s)])
+    below, above = finite[finite < ch.threshold], s[s > ch.threshold]
+    assert ch.threshold == pytest.approx((below.max() + np.min(above)) / 2)
+    assert int(np.sum(s <= ch.threshold)) == ch.accepted and not np.isinf(s[s <= ch.threshold]).any()
+    q = select_for_abstain(s, 0.05)
+    assert np.sum(s > q.threshold) / len(s) <= 0.05 and np.isfinite(q.threshold)
+    with pytest.raises(CalibrationInfeasible, match="support check alone"):
+        select_for_abstain(s, 0.01)
+    assert threshold_between(1.0, np.inf) > 1.0 and threshold_between(-np.inf, 2.0) < 2.0
+    assert threshold_between(0.25, 0.5) == 0.375

@@ -80,3 +80,37 @@ def test_rule_from_bundle_and_config_override():
         rule_from(plain, ServeConfig(score="predictive_entropy"))
     with pytest.raises(ConfigError, match="not defined for classification"):
         rule_from(plain, ServeConfig(score="interval_width", threshold=1.0))
+
+
+class _Outside:
+    """A support check double: case i is outside iff flags[i] (the real check: test_support.py)."""
+
+    def __init__(self, flags):
+        self.flags = np.asarray(flags, dtype=bool)
+
+    def check(self, x_raw, x_std=None):
+        from demur.serve.core.support import SupportResult
+
+        return SupportResult(outside=self.flags[: len(x_raw)], distance=np.zeros(len(x_raw)),
+                             reason=["outside_training_data: test" if f else None for f in self.flags[: len(x_raw)]])
+
+
+def test_served_rule_is_support_first_then_score_and_ranks_as_one_number():
+    """ServedRule: an outside case abstains whatever its score, reason first; ``ranking`` as
+    np.where(outside, inf, score) <= threshold reproduces ``decide``'s accept flags exactly."""
+    from demur.serve.core.decision import ServedRule
+
+    rng = np.random.default_rng(3)
+    s = classification_summary(rng.normal(scale=3, size=(16, 6, 10)), 0.9)
+    flags = [True, False, False, True, False, False]
+    t = float(np.median(s.mutual_information))
+    served = ServedRule(DecisionRule("mutual_information", t, "calibrated"), _Outside(flags))
+    v = served.decide(s, np.zeros((6, 64)))
+    np.testing.assert_array_equal(v.outside, flags)
+    np.testing.assert_array_equal(v.abstain, np.asarray(flags) | (s.mutual_information > t))
+    assert v.reason[0].startswith("outside_training_data") and v.cause[0] == "outside_training_data"
+    score, outside = served.ranking(s, np.zeros((6, 64)))
+    np.testing.assert_array_equal(np.where(outside, np.inf, score) <= t, ~v.abstain)
+    with pytest.raises(ValueError, match="raw inputs"):
+        served.decide(s, None)
+    assert decide(s, served.rule, support=served.support, x_raw=np.zeros((6, 64))).abstain.tolist() == v.abstain.tolist()

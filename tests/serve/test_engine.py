@@ -115,10 +115,11 @@ def test_two_engines_without_a_seed_draw_different_streams(tiny_bundle_factory) 
 
 
 def test_reseed_rule_matches_the_exporter() -> None:
-    """serve/ cannot import export/, so the seed rule lives twice; this keeps them in step."""
+    """The engine reseeds a graph by the bundle format's one seed rule (``node_seed``), the rule
+    older exporters wrote sampler graphs by."""
     import onnx
 
-    from demur.export.graphs import node_seed
+    from demur.serve.core.bundle import node_seed
 
     from tests.serve._legacy_graphs import legacy_sampler_graph
 

@@ -3,7 +3,7 @@
 References: AUROC against sklearn.metrics.roc_auc_score (ties and +inf scores included);  its
 standard error (DeLong et al. 1988) against the spread of roc_auc_score over repeated
 binormal samples;
-accuracy at referral and AURC as defined in serve/offline/calibration.py (Geifman et al.
+accuracy at referral and AURC as defined in serve/offline/metrics.py (Geifman et al.
 2019), recomputed by hand; the digits are scikit-learn's bundled load_digits.
 """
 

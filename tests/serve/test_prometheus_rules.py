@@ -69,26 +69,41 @@ def test_every_alert_is_tested_firing_and_not_firing() -> None:
                 (fired if exp else quiet).add(case["alertname"])
                 # the instances that must stay quiet are absent from the expected alerts
                 if exp:
-                    assert all(a["exp_labels"].get("instance") == "a" for a in exp)
+                    assert all("a" in (a["exp_labels"].get("instance"), a["exp_labels"].get("model_checksum")) for a in exp)
                     quiet.add(case["alertname"])  # b/c series in the same group are expected not to fire
     assert set(alerts) <= fired, f"alerts never shown firing: {set(alerts) - fired}"
     assert set(alerts) <= quiet
 
 
-def test_rules_name_only_metrics_the_server_exports(tiny_bundle_factory: Any) -> None:
-    # every demur_* name in an alert expression must exist in serve/adapters/metrics.py's exposition
+def test_rules_name_only_metrics_the_server_exports(tiny_bundle_factory: Any, copy_bundle: Any) -> None:
+    # every demur_* name in an alert expression must exist in serve/adapters/metrics.py's exposition,
+    # for a bundle whose calibration certified an accuracy (the audit series need a certificate)
+    import json
+
     from prometheus_client import CollectorRegistry
 
     from demur.serve.web.app import create_app
     from demur.serve.config import ServeConfig
     from demur.serve.adapters.engine import Engine
     from demur.serve.adapters.metrics import Metrics
+    from demur.serve.core.audit import AuditTally
+    from demur.serve.core.bundle import load_bundle, write_manifest
 
-    bundle = tiny_bundle_factory(task="classification", kind="stacked", draws=8)
+    path = copy_bundle(tiny_bundle_factory(task="classification", kind="stacked", draws=8))
+    raw = json.loads((path / "manifest.json").read_text())
+    raw["decision"]["calibration"] = {"method": "fixed_sequence", "target": {"accuracy": 0.9, "max_abstain": 0.3},
+                                      "delta": 0.1, "bound": {"accuracy_lower": 0.91}}
+    write_manifest(path, raw)
+    bundle = load_bundle(path)
     config = ServeConfig(bundle=str(bundle.path), seed=0)
+
+    class Store:
+        def audit_tallies(self) -> list[AuditTally]:
+            return [AuditTally(bundle.checksum, audit_decided=10, audit_agree=9)]
 
     class Review:
         max_pending = 50_000
+        store = Store()
 
         def queue_depths(self) -> dict[str, int]:
             return {"pending": 0}

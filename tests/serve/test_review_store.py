@@ -20,18 +20,18 @@ import psycopg
 import psycopg_pool
 import pytest
 
-from demur.serve.review import store as review_store
+from demur.serve.review.store import sql as store_sql
 from demur.serve.errors import ConfigError, Conflict, NotFound, ReviewItemRejected, ReviewStoreUnavailable
 from demur.serve.review.store import (
     SCHEMA_VERSION,
     PostgresStore,
     ReviewStore,
     SqliteStore,
-    _postgres_errors,
-    _sqlite_errors,
     new_id,
     open_store,
 )
+from demur.serve.review.store.postgres import postgres_errors as _postgres_errors
+from demur.serve.review.store.sqlite import sqlite_errors as _sqlite_errors
 from tests.serve._review_helpers import PG_URL, Clock, free_port, item, pg_schema, require_postgres, with_schema
 
 LEASE_S = 60.0
@@ -209,6 +209,28 @@ def test_agreement_counts_label_matches_and_interval_coverage(store: ReviewStore
     stats = store.agreement()
     assert stats["audit"] == {"decided": 5, "labelled": 3, "agree": 2, "valued": 2, "covered": 1}
     assert stats["abstain"] == {"decided": 1, "labelled": 1, "agree": 1, "valued": 0, "covered": 0}
+
+
+def test_audit_tallies_per_model(store: ReviewStore) -> None:
+    """The audit series' source: per model checksum and kind, decided items with a label or a
+    value and how many the model had right; pending items are not counted."""
+    store.enqueue([item("audit", prediction="7", checksum="m1") for _ in range(3)]
+                  + [item("abstain", prediction="1", checksum="m1") for _ in range(2)]
+                  + [item("audit", prediction="4", checksum="m2")]
+                  + [item("audit", prediction="2.5", interval=(1.0, 4.0), task="regression", checksum="m3")]
+                  + [item("audit", prediction="7", checksum="m1")])  # stays pending
+    # FIFO claim order is the enqueue order: m1 audits, m1 abstentions, m2, m3 (the last m1 audit stays)
+    for verdict in ["7", "7", "3", "1", "5", "4", 3.0]:
+        got = store.claim_next("r")
+        if isinstance(verdict, float):
+            store.decide(got.id, "r", value=verdict)
+        else:
+            store.decide(got.id, "r", label=verdict)
+    tallies = {t.model_checksum: t for t in store.audit_tallies()}
+    assert (tallies["m1"].audit_decided, tallies["m1"].audit_agree) == (3, 2)
+    assert (tallies["m1"].abstain_decided, tallies["m1"].abstain_model_right) == (2, 1)
+    assert (tallies["m2"].audit_decided, tallies["m2"].audit_agree) == (1, 1)
+    assert (tallies["m3"].audit_decided, tallies["m3"].audit_agree) == (1, 1)
 
 
 def test_threads_claim_each_item_exactly_once(store: ReviewStore) -> None:
@@ -402,7 +424,7 @@ def test_unstorable_items_are_set_aside_and_the_rest_stored(store: ReviewStore) 
 def test_driver_data_errors_are_rejections_not_outages(store: ReviewStore, monkeypatch: pytest.MonkeyPatch) -> None:
     """Past the pre-check, the driver's own refusal (psycopg: DataError for a NUL and
     UnicodeEncodeError for a surrogate; sqlite3: UnicodeEncodeError) sets the item aside too."""
-    monkeypatch.setattr(review_store, "unstorable", lambda it: None)
+    monkeypatch.setattr(store_sql, "unstorable", lambda it: None)
     batch = [item(client_case_id="ok-a"), item(client_case_id="\ud800y"), item(client_case_id="ok-b")]
     ids = store.enqueue(batch)
     assert ids[1] is None and ids[0] == batch[0].id and ids[2] == batch[2].id
@@ -420,17 +442,17 @@ def test_a_version_1_store_is_migrated(backend: tuple[str, str], clock: Clock) -
     kind, url = backend
     old = open_store(url, lease_s=LEASE_S, clock=clock)
     [rid] = old.enqueue([item(client_case_id="from-v1")])
-    with old._op(write=True) as cur:  # put it back to version 1
-        cur.execute(old._q("DROP TABLE {rejected}"))
-        cur.execute(old._q("DELETE FROM {version}"))
-        cur.execute(old._q("INSERT INTO {version} (version) VALUES (1)"))
+    with old._tx(write=True) as cur:  # put it back to version 1
+        cur.execute(old.sql("DROP TABLE {rejected}"))
+        cur.execute(old.sql("DELETE FROM {version}"))
+        cur.execute(old.sql("INSERT INTO {version} (version) VALUES (1)"))
     old.close()
     new = open_store(url, lease_s=LEASE_S, clock=clock)
     try:
         assert new.get(rid).client_case_id == "from-v1"
         assert new.enqueue([item(client_case_id="\ud800")]) == [None] and new.rejected_count() == 1
-        with new._op(write=False) as cur:
-            cur.execute(new._q("SELECT version FROM {version}"))
+        with new._tx(write=False) as cur:
+            cur.execute(new.sql("SELECT version FROM {version}"))
             assert cur.fetchall() == [(SCHEMA_VERSION,)]
     finally:
         new.close()

@@ -84,3 +84,37 @@ def test_demur_status_unreachable_server_is_a_clear_error(capsys: pytest.Capture
         port = s.getsockname()[1]
     assert main(["status", "--url", f"http://127.0.0.1:{port}", "--timeout", "2"]) == 2
     assert f"cannot read http://127.0.0.1:{port}/metrics" in capsys.readouterr().err
+
+
+def test_status_prints_the_served_models_audit_line() -> None:
+    """The audit line reads the served model's audit series only (another checksum's are ignored)."""
+    from demur.serve.offline.status import read_status, render_status
+
+    text = "\n".join([
+        '# TYPE demur_model_info gauge',
+        'demur_model_info{name="depot-digits",version="1",checksum="abc"} 1',
+        '# TYPE demur_audit_decided_cases gauge',
+        'demur_audit_decided_cases{model_checksum="abc"} 40',
+        'demur_audit_decided_cases{model_checksum="old"} 999',
+        '# TYPE demur_audit_agreements gauge',
+        'demur_audit_agreements{model_checksum="abc"} 39',
+        '# TYPE demur_certified_accuracy gauge',
+        'demur_certified_accuracy{model_checksum="abc"} 0.98',
+        '# TYPE demur_audit_accuracy_lower_bound gauge',
+        'demur_audit_accuracy_lower_bound{model_checksum="abc"} 0.9',
+        '# TYPE demur_audit_evidence_nats gauge',
+        'demur_audit_evidence_nats{model_checksum="abc"} -0.5',
+        '# TYPE demur_audit_evidence_threshold_nats gauge',
+        'demur_audit_evidence_threshold_nats{model_checksum="abc"} 4.6',
+        '# TYPE demur_abstentions_decided_cases gauge',
+        'demur_abstentions_decided_cases{model_checksum="abc"} 10',
+        '# TYPE demur_abstentions_model_right_cases gauge',
+        'demur_abstentions_model_right_cases{model_checksum="abc"} 6',
+        '',
+    ])
+    status = read_status(text)
+    assert status["audit"]["decided"] == 40 and status["audit"]["agree"] == 39
+    out = render_status(status)
+    assert "39 of 40 audited accepted cases" in out
+    assert "no evidence against the certificate" in out
+    assert "right on 6 of 10 decided abstentions" in out

@@ -89,10 +89,10 @@ def test_knn_distance_matches_sklearn() -> None:
 
 def test_conformal_rank_and_small_samples() -> None:
     s = np.arange(1.0, 201.0)  # n = 200, alpha 0.05: rank ceil(201 * 0.95) = 191
-    t, bound = conformal_threshold(s, 0.05)
-    assert t == 191.0 and bound == pytest.approx(1 - 191 / 201)
-    t, bound = conformal_threshold(s[:50], 0.01)  # too few for 1%: the largest, bound 1/51
-    assert t == 50.0 and bound == pytest.approx(1 / 51)
+    t, bound = conformal_threshold(s, 0.05)  # written midway to the next distance, never on one
+    assert t == 191.5 and bound == pytest.approx(1 - 191 / 201)
+    t, bound = conformal_threshold(s[:50], 0.01)  # too few for 1%: the largest (0.1% above it), bound 1/51
+    assert t == pytest.approx(50.05) and t > 50.0 and bound == pytest.approx(1 / 51)
 
 
 @pytest.mark.slow
