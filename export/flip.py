@@ -95,19 +95,23 @@ from demur.export.draws import Feed, NoiseInput, _Mode, static_shape
 from demur.export.errors import GraphBuildError
 from demur.export.layers import VariationalConv2d, VariationalLayer
 
-__all__ = ["DEFAULT_RANK", "FlipDraws"]
+__all__ = ["DEFAULT_RANK", "FULL_RANK", "FlipDraws"]
 
 DEFAULT_RANK = 16
 """M of the rank-M sign base; see the module docstring for the measurement behind it."""
+
+FULL_RANK = 0
+"""``rank`` value for a full-rank base: every base entry an iid N(0, 1) fed per call."""
 
 
 class FlipDraws(_Mode):
     """One variational layer's Flipout draws over a draw-carrying batch [S*B, ...] (module docstring)."""
 
     def __init__(self, feed: Feed, index: int, layer: VariationalLayer, S: int, rank: int = DEFAULT_RANK) -> None:
-        if rank < 2 or rank % 2:
+        if rank != FULL_RANK and (rank < 2 or rank % 2):
             raise GraphBuildError(f"rank must be an even integer >= 2 (its chi radii are sums of rank/2 "
-                                  f"chi-square(2) terms); got {rank}", field="rank")
+                                  f"chi-square(2) terms), or {FULL_RANK} for a full-rank base; got {rank}",
+                                  field="rank")
         self.feed, self.S, self.M = feed, int(S), int(rank)
         self.conv = isinstance(layer, VariationalConv2d)
         self.radial = layer.posterior == "radial"
@@ -115,8 +119,12 @@ class FlipDraws(_Mode):
         self.out, self.in_c = int(shape[0]), int(shape[1])
         self.cols = math.prod(shape[1:])
         self.names = {k: f"{k}.L{index}" for k in ("signs.flip", "signs.base", "normals", "uniforms")}
-        n_normals = self.M + self.out + (2 * self.S if self.radial else 0)
+        self.k = self.out * self.cols if self.M == FULL_RANK else self.M   # normals before the bias's
+        n_normals = self.k + self.out + (2 * self.S if self.radial else 0)
         self.noise = (
+            NoiseInput(self.names["signs.flip"], (self.S, self.in_c + self.out)),
+            NoiseInput(self.names["normals"], (n_normals,)),
+        ) if self.M == FULL_RANK else (
             NoiseInput(self.names["signs.flip"], (self.S, self.in_c + self.out)),
             NoiseInput(self.names["signs.base"], (self.cols + self.out, self.M)),
             NoiseInput(self.names["normals"], (n_normals,)),
@@ -129,23 +137,26 @@ class FlipDraws(_Mode):
 
     def _base(self) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor, torch.Tensor]:
         """(D [*w], d_b [out], r_w [S], r_b [S]): the call's base with sigma folded in; radii 1 for gaussian."""
-        M, out, cols = self.M, self.out, self.cols
-        base = self.feed[self.names["signs.base"]]
+        M, out, cols, k = self.M, self.out, self.cols, self.k
         normals = self.feed[self.names["normals"]]
-        v_t, u_t = base[:cols], base[cols:]                                      # [cols, M], [out, M]
-        g = normals[:M]
-        g = g / torch.linalg.vector_norm(g)
-        chi = torch.sqrt(-2.0 * torch.log(self.feed[self.names["uniforms"]]).sum(dim=1))   # [max(out, cols)]
-        if out >= cols:
-            u_t = u_t * chi[:out, None]
+        if M == FULL_RANK:
+            eps = normals[:k].reshape(out, cols)                                  # iid N(0, 1), fresh per call
         else:
-            v_t = v_t * chi[:cols, None]
-        eps = torch.matmul(u_t * g, v_t.transpose(0, 1)) / math.sqrt(M)          # [out, cols]
-        eps_b = normals[M:M + out]
+            base = self.feed[self.names["signs.base"]]
+            v_t, u_t = base[:cols], base[cols:]                                  # [cols, M], [out, M]
+            g = normals[:M]
+            g = g / torch.linalg.vector_norm(g)
+            chi = torch.sqrt(-2.0 * torch.log(self.feed[self.names["uniforms"]]).sum(dim=1))  # [max(out, cols)]
+            if out >= cols:
+                u_t = u_t * chi[:out, None]
+            else:
+                v_t = v_t * chi[:cols, None]
+            eps = torch.matmul(u_t * g, v_t.transpose(0, 1)) / math.sqrt(M)      # [out, cols]
+        eps_b = normals[k:k + out]
         if not self.radial:
             one = torch.ones(self.S)
             return self.sigma_w * eps.reshape(self.shape), self.sigma_b * eps_b, one, one
-        radii = normals[M + out:]
+        radii = normals[k + out:]
         r_w = radii[:self.S] / torch.linalg.vector_norm(eps)    # dividing S radii, not out * cols entries
         r_b = radii[self.S:]
         d_b = self.sigma_b * eps_b / torch.linalg.vector_norm(eps_b)
