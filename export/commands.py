@@ -110,7 +110,7 @@ def _train(args: argparse.Namespace) -> int:
 # -- demur export ---------------------------------------------------------------------
 def register_export(subparsers: _Subparsers) -> None:
     """Add ``demur export`` to the ``demur`` command."""
-    from demur.export.exporter import DEFAULT_DRAWS
+    from demur.export.exporter import DEFAULT_DRAWS, SUPPORT_CHOICES
 
     p = subparsers.add_parser(
         "export",
@@ -130,6 +130,9 @@ def register_export(subparsers: _Subparsers) -> None:
     p.add_argument("--seed", type=int, default=None, help="seed of the stacked draws / recorded sampler seed")
     p.add_argument("--name", default=None, help="model name (default: the checkpoint's, or the factory's)")
     p.add_argument("--version", default=None, help="model version (default: 1)")
+    p.add_argument("--support", choices=SUPPORT_CHOICES, default="rows",
+                   help="what the support check stores: rows (default; with the stored centre and scale they give "
+                        "back raw training rows), centroids (k-means, each the mean of >= 5 rows), none (no check)")
     own = p.add_argument_group("your own module")
     own.add_argument("--factory", metavar="MODULE:FUNCTION",
                      help="importable function returning the untrained torch module (a list: a deep ensemble)")
@@ -162,10 +165,10 @@ def _export(args: argparse.Namespace) -> int:
             shape=[int(v) for v in args.shape.split(",")] if args.shape else None,
             labels=[v.strip() for v in args.labels.split(",")] if args.labels else None, task=args.task,
             kind=kind, draws=args.draws, seed=args.seed, name=args.name, version=args.version,
-            target_stats=args.target_stats)
+            target_stats=args.target_stats, support=args.support)
     elif args.checkpoint is not None:
         bundle = export_bundle(args.checkpoint, args.out, kind=kind, draws=args.draws, seed=args.seed,
-                               name=args.name, version=args.version)
+                               name=args.name, version=args.version, support=args.support)
     else:
         raise ExportError("give a checkpoint DIR from 'demur train', or --factory MODULE:FUNCTION with --weights "
                           "and --data for your own module", field="checkpoint")

@@ -309,7 +309,10 @@ class DrawNetwork(nn.Module):
     x float32[B, *input_shape] (standardised) returns float32[S, B, K].
 
     ``noise`` lists the inputs after ``x`` in order. The user's module is deep-copied and put
-    in eval mode; the original is left alone.
+    in eval mode; the original is left alone. ``shared`` (default): the draw-free part runs once
+    per call (export/shared.py; ``computation`` says how the graph computes, ``fell_back`` if the
+    forward could not be shared); False: the whole network once per draw. ``flip_rank``: the
+    flip graph's base rank (export/flip.py; ``FULL_RANK`` for a full-rank base).
 
     Example::
 
@@ -319,11 +322,13 @@ class DrawNetwork(nn.Module):
     """
 
     def __init__(self, model: nn.Module | Sequence[nn.Module], kind: str, draws: int, *, seed: int,
-                 input_shape: Sequence[int], task: str = "classification", shared: bool = True) -> None:
+                 input_shape: Sequence[int], task: str = "classification", shared: bool = True,
+                 flip_rank: int | None = None) -> None:
         super().__init__()
         if kind not in DRAW_KINDS:
             raise GraphBuildError(f"kind must be one of {', '.join(DRAW_KINDS)}; got '{kind}'", field="kind")
         self.kind, self.task, self.feed = kind, task, Feed()
+        self.flip_rank = flip_rank  # the flip graph's base rank (export/flip.py); None: its default
         self.input_shape = tuple(int(d) for d in input_shape)
         self.ensemble = isinstance(model, (list, tuple, nn.ModuleList))
         members = [_as_module(m, i) for i, m in enumerate(model)] if self.ensemble else [_as_module(model, None)]
@@ -407,7 +412,8 @@ class DrawNetwork(nn.Module):
             elif kind == "sampler":
                 lay._draw_mode = _Fresh(self.feed, i, lay, S)
             else:
-                lay._draw_mode = FlipDraws(self.feed, i, lay, S)
+                lay._draw_mode = (FlipDraws(self.feed, i, lay, S) if self.flip_rank is None
+                                  else FlipDraws(self.feed, i, lay, S, rank=self.flip_rank))
         if self.family != "mc_dropout" or kind == "means":
             return  # dropout in a variational network (or in the means graph) stays off: eval mode
         if kind == "flip":

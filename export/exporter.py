@@ -80,8 +80,10 @@ __all__ = [
     "EXPORT_KINDS",
     "INTERVAL_LEVEL",
     "PARITY_TOLERANCE",
+    "SUPPORT_CHOICES",
     "SUPPORT_SAMPLE",
     "TrainingRows",
+    "training_data_statement",
     "training_rows",
     "THRESHOLD_QUANTILE",
     "Inputs",
@@ -109,6 +111,8 @@ INTERVAL_LEVEL = 0.9
 
 PARITY_TOLERANCE = 1e-4
 """Largest allowed |onnx - torch| / max(|torch|, 1) over every draw, case and output."""
+
+SUPPORT_CHOICES = ("rows", "centroids", "none")  # what the support check stores (serve/core/support.py)
 
 SUPPORT_SAMPLE = 20_000
 """Training rows kept for the support check (it stores its own smaller sample in the manifest)."""
@@ -216,6 +220,7 @@ def export_model(
     seed: int | None = None,
     target: Mapping[str, float] | None = None,
     extensions: Mapping[str, Any] | None = None,
+    support: str = "rows",
 ) -> Bundle:
     """Write a verified bundle for ``model`` at ``out``; see the module docstring for what is checked.
 
@@ -231,7 +236,8 @@ def export_model(
     score reference (None: 64 cases uniform over the training range, a
     placeholder until ``demur calibrate``). ``seed``: the stacked draws and
     the recorded seed of fresh-draw graphs (None: a random one, recorded).
-    ``extensions``: extra manifest sections kept verbatim.
+    ``extensions``: extra manifest sections kept verbatim. ``support``: what the support check stores
+    (``SUPPORT_CHOICES``; "none": no check); ``extensions.training_data`` lists what the manifest holds.
     """
     if kind not in EXPORT_KINDS:
         raise ExportError(f"kind must be one of {', '.join(EXPORT_KINDS)}; got '{kind}'", field="kind")
@@ -242,6 +248,8 @@ def export_model(
     if isinstance(model, (list, tuple)) and kind != "stacked":
         raise ExportError(f"a deep ensemble (a list of modules) has its draws fixed at export: export it with "
                           f"kind='stacked'; got '{kind}'", field="kind")
+    if support not in SUPPORT_CHOICES:
+        raise ExportError(f"support must be one of {', '.join(SUPPORT_CHOICES)}; got {support!r}", field="support")
     seed = secrets.randbelow(SEED_MODULUS) if seed is None else int(seed) % SEED_MODULUS
     spec_in = inputs if isinstance(inputs, Inputs) else Inputs(spec=dict(inputs))
     spec = dict(spec_in.spec)
@@ -285,9 +293,10 @@ def export_model(
         }
         # The support check's threshold needs held-out in-distribution rows: without a
         # reference there is none to set it on, and the bundle says it carries no check.
-        support = (support_record(spec_in.training.sample, ref, spec)
-                   if spec_in.training is not None and not placeholder else None)
-        write_bundle(tmp, decision=decision, drift_reference=drift, support=support, **fields)
+        check = (support_record(spec_in.training.sample, ref, spec, summary=support)
+                 if spec_in.training is not None and not placeholder and support != "none" else None)
+        fields["extensions"]["training_data"] = training_data_statement(fields, drift, check)
+        write_bundle(tmp, decision=decision, drift_reference=drift, support=check, **fields)
         load_bundle(tmp)  # verify the finished directory before it becomes visible
         _swap_into_place(tmp, out)
     except BaseException:
@@ -321,6 +330,20 @@ def _manifest_extras(net: Any, model: Any, extensions: Mapping[str, Any] | None,
     if training is not None:
         ext["training_rows"] = training.fingerprint  # calibrate's leakage check
     return {"posterior": posterior, "extensions": ext}
+
+
+def training_data_statement(fields: Mapping[str, Any], drift: Mapping[str, Any],
+                            check: Mapping[str, Any] | None) -> list[dict[str, str]]:
+    """The manifest's ``extensions.training_data``: what it holds derived from the training inputs."""
+    items = [("inputs.center, inputs.scale, inputs.low, inputs.high", "per-feature mean, floored standard "
+              "deviation, minimum and maximum of the training inputs")]
+    if drift.get("features"):
+        items.append(("drift_reference.features", "per-feature quantile bin edges and bin shares of the training inputs"))
+    if "training_rows" in fields["extensions"]:
+        items.append(("extensions.training_rows", "64-bit hashes of the training rows (calibrate's leakage check): no "
+                      "row can be rebuilt from them, but they confirm whether a given row was trained on"))
+    items.append(("support.sample", check["stored"]["note"]) if check is not None else ("support", "none: no check"))
+    return [{"where": where, "what": what} for where, what in items]
 
 
 def _reference_rows(reference: Any, spec: Mapping[str, Any], size: int) -> tuple[np.ndarray, bool]:
@@ -443,6 +466,7 @@ def export_bundle(
     seed: int | None = None,
     name: str | None = None,
     version: str | None = None,
+    support: str = "rows",
 ) -> Bundle:
     """Turn the ``demur train`` checkpoint in ``checkpoint_dir`` into a bundle (through ``export_model``).
 
@@ -460,7 +484,7 @@ def export_bundle(
                                   training=training_rows(dataset.x_train)),
         labels=list(meta["labels"]), task=meta["task"], target=meta.get("target"), kind=kind, draws=draws,
         seed=seed, reference=dataset.x_val, name=name or str(meta.get("name", Path(checkpoint_dir).name)),
-        version=version or "1",
+        version=version or "1", support=support,
         # settings + arch let `demur evaluate --holdout-class` retrain the same network the same way
         extensions={"training": {"metrics": meta.get("metrics", {}), "data": data,
                                  "settings": meta.get("training", {}), "arch": meta.get("arch", {})}},
@@ -504,7 +528,7 @@ def export_factory(factory: str, weights: str | Path, data: str | Path, out: str
                    shape: Sequence[int] | None = None, labels: Sequence[str] | None = None,
                    task: str = "classification", kind: str = "stacked", draws: int = DEFAULT_DRAWS,
                    seed: int | None = None, name: str | None = None, version: str | None = None,
-                   target_stats: str | None = None) -> Bundle:
+                   target_stats: str | None = None, support: str = "rows") -> Bundle:
     """``demur export --factory pkg.mod:fn --weights W --data train.csv``: build the module the
     ``factory`` ("MODULE:FUNCTION", imported as ``python -m`` would, from the current folder)
     returns, load its ``weights`` (a state_dict, or a list of them for an ensemble; read with
@@ -543,7 +567,7 @@ def export_factory(factory: str, weights: str | Path, data: str | Path, out: str
     stats = target_standardisation(target_stats, data, target, names) if task == "regression" else None
     return export_model(model, out, inputs=input_spec(x_train, names, shape), labels=labels, task=task,
                         kind=kind, draws=draws, reference=x_ref, seed=seed, name=name or func_name,
-                        version=version or "1", target=stats)
+                        version=version or "1", target=stats, support=support)
 
 
 def target_standardisation(how: str | None, data: str | Path, target: str | None,

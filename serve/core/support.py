@@ -71,8 +71,10 @@ from demur.serve.errors import ConfigError, ManifestInvalid
 
 __all__ = [
     "ALPHA",
+    "CENTROIDS",
     "IMAGE_SCALE_FLOOR",
     "MAX_SAMPLE",
+    "MIN_CLUSTER_ROWS",
     "NEIGHBOURS",
     "RANGE_MARGIN",
     "REASON",
@@ -80,6 +82,7 @@ __all__ = [
     "SupportCheck",
     "SupportResult",
     "conformal_threshold",
+    "kmeans_centroids",
     "recalibrated",
     "standardisation",
     "support_from_manifest",
@@ -105,6 +108,13 @@ IMAGE_SCALE_FLOOR = 0.3
 
 TABULAR_SCALE_FLOOR = 0.05
 """Tabular scale floor, as a share of the feature's training range (our choice, a rule of thumb)."""
+
+CENTROIDS = 256
+"""Most k-means centroids stored by ``summary="centroids"`` (our choice; measured in the README's
+support-check section against raw rows on the digits' shift table)."""
+
+MIN_CLUSTER_ROWS = 5
+"""Fewest training rows a stored centroid averages (our choice: a centroid is never a row)."""
 
 REASON = "outside_training_data"
 """The reason code of a support abstention (the metric label too)."""
@@ -260,6 +270,37 @@ class SupportCheck:
         return {"checked": True, **{k: v for k, v in self.record.items() if k not in ("sample", "margin")}}
 
 
+def kmeans_centroids(z: np.ndarray, k: int, *, min_rows: int = MIN_CLUSTER_ROWS, seed: int = 0,
+                     iterations: int = 30) -> np.ndarray:
+    """Centroids float32[m, F] of the clusters of at least ``min_rows`` rows among the k that
+    Lloyd's k-means finds in ``z`` float[N, F] (k-means++ seeding, Arthur & Vassilvitskii 2007);
+    m <= k. Each centroid is the mean of ``min_rows`` or more rows, never one row itself."""
+    z = np.asarray(z, dtype=np.float64)
+    rng = np.random.default_rng(seed)
+    k = max(1, min(int(k), len(z) // max(1, min_rows)))
+    sq = np.einsum("ij,ij->i", z, z)
+    chosen = [int(rng.integers(len(z)))]
+    d2 = np.maximum(sq - 2.0 * z @ z[chosen[0]] + sq[chosen[0]], 0.0)
+    for _ in range(1, k):
+        i = int(rng.choice(len(z), p=d2 / d2.sum())) if d2.sum() > 0 else int(rng.integers(len(z)))
+        chosen.append(i)
+        d2 = np.minimum(d2, np.maximum(sq - 2.0 * z @ z[i] + sq[i], 0.0))
+    centres = z[chosen].copy()
+    labels = np.full(len(z), -1)
+    for _ in range(iterations):
+        new = np.argmin(sq[:, None] - 2.0 * z @ centres.T + np.einsum("ij,ij->i", centres, centres)[None], axis=1)
+        if np.array_equal(new, labels):
+            break
+        labels = new
+        counts = np.bincount(labels, minlength=len(centres))
+        sums = np.zeros_like(centres)
+        np.add.at(sums, labels, z)
+        filled = counts > 0
+        centres[filled] = sums[filled] / counts[filled, None]
+    counts = np.bincount(labels, minlength=len(centres))
+    return centres[counts >= min_rows].astype(np.float32)
+
+
 def support_record(
     x_train: np.ndarray,
     x_heldout: np.ndarray,
@@ -269,10 +310,20 @@ def support_record(
     neighbours: int = NEIGHBOURS,
     max_sample: int = MAX_SAMPLE,
     seed: int = 0,
+    summary: str = "rows",
 ) -> dict[str, Any]:
     """The manifest's ``support`` section: fit on raw ``x_train`` float[N, F], threshold on raw
     held-out ``x_heldout`` float[M, F] that training never saw. ``inputs`` is the input spec
-    (names, center, scale, low, high; the same standardisation the model uses)."""
+    (names, center, scale, low, high; the same standardisation the model uses).
+
+    ``summary``: what is stored of the training rows. ``"rows"``: up to ``max_sample``
+    standardised rows (with ``inputs.center`` and ``inputs.scale`` they give back the raw rows),
+    the distance is to the ``neighbours``-th nearest; ``"centroids"``: up to ``CENTROIDS``
+    k-means centroids, each the mean of at least ``MIN_CLUSTER_ROWS`` standardised rows, the
+    distance is to the nearest. The split-conformal false-alarm bound holds for either (it
+    needs only a score fixed before the held-out rows are seen)."""
+    if summary not in ("rows", "centroids"):
+        raise ConfigError(f"summary must be 'rows' or 'centroids'; got {summary!r}", field="support")
     x = np.asarray(x_train, dtype=np.float64).reshape(len(x_train), -1)
     center = np.asarray(inputs["center"], dtype=np.float64)
     scale = np.asarray(inputs["scale"], dtype=np.float64)
@@ -281,9 +332,23 @@ def support_record(
     if len(x) > max_sample:
         x = x[np.sort(np.random.default_rng(seed).choice(len(x), max_sample, replace=False))]
     sample = ((x - center) / scale).astype(np.float32)
+    if summary == "centroids":
+        sample = kmeans_centroids(sample, CENTROIDS, seed=seed)
+        neighbours = 1
+        stored = {"kind": "centroids", "count": int(len(sample)), "min_rows_each": MIN_CLUSTER_ROWS,
+                  "of_rows": int(len(x)),
+                  "note": f"k-means centroids of standardised training rows, each the mean of at least "
+                          f"{MIN_CLUSTER_ROWS} rows: no training row is stored, but a centroid shows what a group "
+                          "of training inputs looks like (no formal privacy guarantee)"}
+    else:
+        stored = {"kind": "rows", "count": int(len(sample)),
+                  "note": "standardised training rows: with inputs.center and inputs.scale they give back the raw "
+                          "training rows"}
     record: dict[str, Any] = {
-        "method": f"range check (margin {RANGE_MARGIN:g} scale units) and {neighbours}-nearest-neighbour "
-                  "distance in standardised units; split-conformal threshold",
+        "method": f"range check (margin {RANGE_MARGIN:g} scale units) and {neighbours}-nearest-"
+                  f"{'centroid' if summary == 'centroids' else 'neighbour'} distance in standardised units; "
+                  "split-conformal threshold",
+        "stored": stored,
         "neighbours": int(neighbours),
         "range_margin": RANGE_MARGIN,
         "margin": [float(v) for v in RANGE_MARGIN * scale],

@@ -157,10 +157,15 @@ def test_noise_inputs_follow_their_laws(tiny_bundle_factory) -> None:
     uniforms: in (0, 1] and kstest against uniform. Over 20 calls of the tiny flip graph."""
     from scipy import stats
 
+    from demur.serve.adapters.engine import _Noise
+
     engine = Engine(tiny_bundle_factory(kind="flip"), seed=3).load()
     noise = engine._loaded().noise
     assert noise is not None
-    assert {name.split(".")[0] for name, _, _ in noise.inputs} == {"signs", "normals", "uniforms"}
+    # the flip graph's full-rank base (export/flip.py) feeds signs and normals; uniforms are MC
+    # dropout's law (export/draws.py, uniforms.D{j}): added here with a shape of that form
+    assert {name.split(".")[0] for name, _, _ in noise.inputs} == {"signs", "normals"}
+    noise = _Noise([*noise.inputs, ("uniforms.D0", "uniforms", (8, 1, 16))], seed=3)
     pooled: dict[str, list[np.ndarray]] = {"signs": [], "normals": [], "uniforms": []}
     for _ in range(20):
         feed = noise.draw()
