@@ -35,7 +35,6 @@ import os
 import threading
 import time
 from collections.abc import Sequence
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -44,10 +43,10 @@ import numpy as np
 from demur.serve.config import ServeConfig
 from demur.serve.core.bundle import load_bundle
 from demur.serve.errors import BundleError, ConfigError
-from demur.serve.offline.scoring import DEFAULT_CHUNK_ROWS, Scorer, output_columns
+from demur.serve.offline.scoring import DEFAULT_CHUNK_ROWS, Scorer, ScoreReport, output_columns
 from demur.serve.offline.tables import arrow_rows, arrow_table
 
-__all__ = ["CLUSTER_EXTRA", "ClusterReport", "score_frame", "score_partition", "score_to_parquet"]
+__all__ = ["CLUSTER_EXTRA", "score_frame", "score_partition", "score_to_parquet"]
 
 CLUSTER_EXTRA = "pip install 'demur[cluster]'"
 
@@ -164,26 +163,9 @@ def _write(frame: Any, number: int, out: str, config: ServeConfig, checksum: str
             int((decisions == "invalid").sum()))
 
 
-@dataclass(frozen=True)
-class ClusterReport:
-    """What a cluster run wrote: partitions, row counts by decision, seconds, rows/s."""
-
-    partitions: int
-    rows: int
-    accepted: int
-    abstained: int
-    invalid: int
-    seconds: float
-    out: str
-
-    @property
-    def rows_per_s(self) -> float:
-        return self.rows / self.seconds if self.seconds > 0 else float("inf")
-
-
 def score_to_parquet(data: Any, bundle: str | os.PathLike[str], out: str | os.PathLike[str], *,
                      id_column: str | None = None, config: ServeConfig | None = None,
-                     client: Any = None) -> ClusterReport:
+                     client: Any = None) -> ScoreReport:
     """Score ``data`` (a Dask DataFrame, or a Parquet / CSV path the workers can read) with
     ``bundle`` on the Dask cluster of ``client`` (default: the current client), writing
     one Parquet file per partition into the directory ``out``. Files ``part-*.parquet``
@@ -211,5 +193,5 @@ def score_to_parquet(data: Any, bundle: str | os.PathLike[str], out: str | os.Pa
     for partial in target.glob(".part-*.partial-*"):  # left by a worker that died while writing
         partial.unlink(missing_ok=True)
     rows, acc, abst, inv = (int(sum(c[k] for c in counts)) for k in range(4))
-    return ClusterReport(partitions=len(parts), rows=rows, accepted=acc, abstained=abst, invalid=inv,
-                         seconds=time.perf_counter() - t0, out=str(target))
+    return ScoreReport(rows=rows, accepted=acc, abstained=abst, invalid=inv, queued=0,
+                       seconds=time.perf_counter() - t0, out=str(target), partitions=len(parts))

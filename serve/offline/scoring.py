@@ -211,7 +211,8 @@ def _review_note(result: dict[str, Any]) -> tuple[str | None, bool]:
 
 @dataclass(frozen=True)
 class ScoreReport:
-    """What a run did: row counts by decision, review items queued, seconds, rows/s."""
+    """What a run did: row counts by decision, review items queued, seconds, rows/s; the
+    output file (or, on a cluster, the directory of its ``partitions`` files)."""
 
     rows: int
     accepted: int
@@ -220,6 +221,7 @@ class ScoreReport:
     queued: int
     seconds: float
     out: str
+    partitions: int = 1
 
     @property
     def rows_per_s(self) -> float:
@@ -261,6 +263,10 @@ def score_file(config: ServeConfig, data: str | os.PathLike[str], out: str | os.
                 counts[name] += c
             if bar is not None:
                 bar.update(sum(counts.values()))
+        if not sum(counts.values()):  # a header and no rows: an output with its header and no rows
+            columns, valid = scorer.score(Rows(row=np.zeros(0, dtype=np.int64), x=np.zeros((0, 0)), bad=[],
+                                               ids=[] if id_column else None))
+            writer.write(columns, valid, scorer.columns)
         writer.commit()
     except BaseException:
         writer.abort()
