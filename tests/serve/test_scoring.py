@@ -310,3 +310,29 @@ def test_a_file_with_a_header_and_no_rows_gives_an_empty_output(tiny_bundle_fact
     assert report.rows == 0 and _read(out) == []
     if suffix == ".parquet":
         assert pq.read_schema(out).names == list(output_columns(bundle.manifest, "parcel_id"))
+
+
+def test_with_a_queue_an_id_the_store_cannot_hold_makes_its_row_invalid(tiny_bundle_factory: Any,
+                                                                        tmp_path: Path) -> None:
+    """The server refuses such case ids with a 400 naming the field; a file row gets the reason."""
+    from demur.serve.offline.scoring import _review_router
+
+    bundle = tiny_bundle_factory(task="classification", kind="stacked", draws=8)
+    names = list(bundle.manifest.inputs.names)
+    data = tmp_path / "parcels.csv"
+    x = load_digits().data[:4]
+    with data.open("w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh)
+        w.writerow(["parcel_id", *names])
+        for cid, row in zip(["ok-1", "nul\x00here", "x" * 201, ""], x):
+            w.writerow([cid, *row.tolist()])
+    config = ServeConfig(bundle=str(bundle.path), seed=0, review_store=f"sqlite:///{tmp_path / 'q.sqlite3'}")
+    router = _review_router(config)
+    try:
+        score_file(config, data, tmp_path / "scored.csv", id_column="parcel_id", review=router)
+    finally:
+        router.close()
+    rows = _read(tmp_path / "scored.csv")
+    assert [r["decision"] == "invalid" for r in rows] == [False, True, True, False]
+    assert rows[1]["reason"].startswith("row 2: 'parcel_id' holds the NUL character, U+0000 at position 3")
+    assert rows[2]["reason"] == "row 3: 'parcel_id' must have 1 to 200 characters; got 201"
