@@ -336,3 +336,27 @@ def test_with_a_queue_an_id_the_store_cannot_hold_makes_its_row_invalid(tiny_bun
     assert [r["decision"] == "invalid" for r in rows] == [False, True, True, False]
     assert rows[1]["reason"].startswith("row 2: 'parcel_id' holds the NUL character, U+0000 at position 3")
     assert rows[2]["reason"] == "row 3: 'parcel_id' must have 1 to 200 characters; got 201"
+
+
+def test_progress_line_only_when_asked(tiny_bundle_factory: Any, tmp_path: Path, capsys: Any) -> None:
+    """The CLI asks for it only on a terminal (``sys.stderr.isatty()``); the line shows the
+    share of the file read and rows/s, redrawn in place."""
+    from demur.serve.offline.scoring import _Progress
+
+    class Reader:
+        total_rows, total_bytes = 200, None
+
+        def done(self) -> int:
+            return 50
+
+    bar = _Progress(Reader())
+    bar._last -= 1.0  # as if the last redraw were a second ago
+    bar.update(50)
+    bar.close()
+    assert capsys.readouterr().err.startswith("\rdemur score:  25.0% 50 rows (")
+    bundle = tiny_bundle_factory(task="classification", kind="stacked", draws=8)
+    data = tmp_path / "parcels.csv"
+    _digits_csv(data, list(bundle.manifest.inputs.names), 10, breakage=False)
+    score_file(ServeConfig(bundle=str(bundle.path), seed=0), data, tmp_path / "o.csv", id_column="parcel_id",
+               ignore=["depot"])
+    assert capsys.readouterr().err == ""
