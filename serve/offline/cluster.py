@@ -34,7 +34,8 @@ from __future__ import annotations
 import os
 import threading
 import time
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -46,7 +47,7 @@ from demur.serve.errors import BundleError, ConfigError
 from demur.serve.offline.scoring import DEFAULT_CHUNK_ROWS, Scorer, ScoreReport, output_columns
 from demur.serve.offline.tables import arrow_rows, arrow_table
 
-__all__ = ["CLUSTER_EXTRA", "score_frame", "score_partition", "score_to_parquet"]
+__all__ = ["CLUSTER_EXTRA", "connect", "score_frame", "score_partition", "score_to_parquet"]
 
 CLUSTER_EXTRA = "pip install 'demur[cluster]'"
 
@@ -78,6 +79,33 @@ def _scorer(config: ServeConfig, checksum: str, id_column: str | None) -> Scorer
                                   field="bundle")
             _SCORERS[key] = scorer
     return scorer
+
+
+@contextmanager
+def connect(address: str) -> Iterator[Any]:
+    """A Dask client for ``address``: ``tcp://host:port`` (an existing scheduler) or
+    ``local:N`` (a cluster of N worker processes on this machine, one thread each, on
+    127.0.0.1; closed on exit)."""
+    _dask()
+    from dask.distributed import Client, LocalCluster
+
+    if address.startswith("local:"):
+        try:
+            workers = int(address[len("local:"):])
+        except ValueError:
+            workers = 0
+        if workers < 1:
+            raise ConfigError(f"--cluster local:N needs a number of workers N >= 1; got {address!r}", field="cluster")
+        with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
+                          dashboard_address=None) as local, Client(local) as client:
+            yield client
+        return
+    try:
+        client = Client(address, timeout=30)
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise ConfigError(f"cannot reach the Dask scheduler at {address!r}: {exc}", field="cluster") from None
+    with client:
+        yield client
 
 
 def score_partition(frame: Any, number: int, config: ServeConfig, checksum: str,

@@ -147,3 +147,24 @@ def test_csv_on_the_cluster_reads_cells_as_text_so_a_bad_cell_is_a_bad_row(clust
     bad = [r for r in table.to_pylist() if r["decision"] == "invalid"]
     assert [r["reason"] for r in bad] == [f"partition 1 row 3 column '{names[5]}' holds 'seven'; expected a number"]
     assert sorted(table.column("parcel_id").to_pylist()) == sorted(f"p{p}-{i}" for p in range(2) for i in range(30))
+
+
+def test_cli_scores_on_a_local_cluster(tiny_bundle_factory: Any, tmp_path: Path, capsys: Any) -> None:
+    from demur.serve.cli import main
+
+    bundle = tiny_bundle_factory(task="classification", kind="stacked", draws=8)
+    names = list(bundle.manifest.inputs.names)
+    x = load_digits().data[:50]
+    (tmp_path / "in").mkdir()
+    cols = {n: pa.array(x[:, j]) for j, n in enumerate(names)} | {"parcel_id": pa.array(range(50))}
+    pq.write_table(pa.table(cols), tmp_path / "in" / "parcels.parquet")
+    out = tmp_path / "scored"
+    assert main(["score", str(bundle.path), "--data", str(tmp_path / "in"), "--out", str(out), "--id", "parcel_id",
+                 "--cluster", "local:1"]) == 0
+    assert "50 rows" in capsys.readouterr().err
+    assert pq.read_table(out).column("parcel_id").to_pylist() == list(range(50))
+    assert main(["score", str(bundle.path), "--data", "x", "--out", "y", "--cluster", "local:zero"]) == 1
+    assert "local:N needs a number of workers" in capsys.readouterr().err
+    assert main(["score", str(bundle.path), "--data", "x", "--out", "y", "--cluster", "local:1",
+                 "--enqueue", "sqlite:///q.sqlite3"]) == 1
+    assert "--enqueue works on one machine only" in capsys.readouterr().err
