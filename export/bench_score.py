@@ -166,7 +166,7 @@ def _cluster_row(bundle: Path, parts: Path, out: Path, workers: int, rows: int, 
     from demur.serve.offline.cluster import score_to_parquet
 
     with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
-                      dashboard_address=None) as cluster, Client(cluster) as client:
+                      dashboard_address="127.0.0.1:0") as cluster, Client(cluster) as client:
         score_to_parquet(str(parts), bundle, out, id_column="case_id", client=client)  # warm: workers load
 
         def run() -> float:

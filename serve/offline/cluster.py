@@ -97,7 +97,7 @@ def connect(address: str) -> Iterator[Any]:
         if workers < 1:
             raise ConfigError(f"--cluster local:N needs a number of workers N >= 1; got {address!r}", field="cluster")
         with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
-                          dashboard_address=None) as local, Client(local) as client:
+                          dashboard_address="127.0.0.1:0") as local, Client(local) as client:
             yield client
         return
     try:

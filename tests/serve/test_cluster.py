@@ -53,7 +53,7 @@ def _write_parts(root: Path, names: list[str]) -> list[str]:
 def cluster() -> Any:
     """One local cluster for the module (the killed worker's nanny starts a new process)."""
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                                  dashboard_address=None) as local, distributed.Client(local) as client:
+                                  dashboard_address="127.0.0.1:0") as local, distributed.Client(local) as client:
         yield client
 
 
@@ -121,6 +121,11 @@ def test_score_frame_is_a_lazy_dask_frame(cluster: Any, tiny_bundle_factory: Any
     done = scored.compute()
     assert len(done) == 100 and done["parcel_id"].tolist() == list(range(100))
     assert set(done["decision"]) <= {"accept", "abstain"}
+    # each worker process loaded the bundle once, however many partitions it scored
+    loaded = cluster.run(lambda: [key[1:] for key in __import__("demur.serve.offline.cluster",
+                                                                fromlist=["_SCORERS"])._SCORERS])
+    per_worker = [sum(1 for key in keys if key[0].bundle == str(bundle.path)) for keys in loaded.values()]
+    assert max(per_worker) == 1
 
 
 def test_csv_on_the_cluster_reads_cells_as_text_so_a_bad_cell_is_a_bad_row(cluster: Any, tiny_bundle_factory: Any,
