@@ -12,8 +12,8 @@ Public calls, for your own model and your own data::
     evaluate("build/bundle", X_test, y_test, out="build/evaluation")
 """
 
-from demur.export.appraisal import evaluate
+from demur.export.evaluation import evaluate
 from demur.export.exporter import Inputs, export_model, input_spec
-from demur.export.holdout import calibrate
+from demur.export.calibration import calibrate
 
 __all__ = ["Inputs", "calibrate", "evaluate", "export_model", "input_spec"]

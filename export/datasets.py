@@ -43,6 +43,7 @@ __all__ = [
     "load_dataset",
     "read_features",
     "read_labelled",
+    "read_training_columns",
     "split_indices",
     "write_labelled",
 ]
@@ -392,6 +393,19 @@ def read_features(path: str | Path, names: Sequence[str], *, ignore: Sequence[st
     path = Path(path)
     header, body = _read_rows(path)
     return _cells(header, body, column_order(header, names, ignore=ignore, where=str(path)), path)
+
+
+def read_training_columns(path: str | Path, target: str | None) -> tuple[np.ndarray, list[str]]:
+    """Every column of a CSV with a header but ``target``, in file order: float64[N, F] and the
+    column names (``demur export --data``: a user's training rows define the model's inputs,
+    so there are no names to match yet; later files are read by name with ``read_features``)."""
+    path = Path(path)
+    header, body = _read_rows(path)
+    cols = [i for i, h in enumerate(header) if h != target]
+    if target is not None and len(cols) == len(header):
+        raise TargetColumnMissing(f"--target {target!r} is not a column of {path}; columns are {header}",
+                                  field="target")
+    return _cells(header, body, cols, path), [header[i] for i in cols]
 
 
 def _cells(header: Sequence[str], body: Sequence[tuple[int, Sequence[str]]], cols: Sequence[int],

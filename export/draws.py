@@ -64,8 +64,11 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
+from demur.serve.core.bundle import GRAPH_KINDS, noise_law
+
 from demur.export.errors import GraphBuildError
 from demur.export.layers import VariationalConv2d, VariationalLayer, VariationalLinear, sample_network
+from demur.export.shared import NotShareable, SharedPlan, plan_shared
 
 __all__ = [
     "DRAW_KINDS",
@@ -80,13 +83,17 @@ __all__ = [
     "static_shape",
 ]
 
-DRAW_KINDS = ("stacked", "sampler", "flip", "means")
+DRAW_KINDS = GRAPH_KINDS
 """Graph kinds a ``DrawNetwork`` can run."""
 
 FAMILIES = ("gaussian", "radial", "ensemble", "mc_dropout")
 """What a bundle's set of draws is (the manifest's ``posterior.family``)."""
 
 _DROPOUTS = (nn.Dropout, nn.Dropout2d)
+
+SHARED_TOLERANCE = 1e-4
+"""Largest relative difference (to max(|value|, 1)) between the shared and the per-draw forward in
+torch before the shared one is used: the exporter's parity tolerance."""
 
 
 @dataclass(frozen=True)
@@ -98,7 +105,7 @@ class NoiseInput:
 
     @property
     def law(self) -> str:
-        return self.name.split(".")[0]
+        return noise_law(self.name)
 
 
 class Feed:
@@ -163,6 +170,9 @@ class _Mode:
 
     noise: tuple[NoiseInput, ...] = ()
     S: int = 1
+    entering = False
+    """Set by export/shared.py while the layer is called on a draw-free batch [B, ...] (where draws
+    enter); a mode with ``run_plain`` then takes that batch as it is."""
 
     def weights(self, layer: VariationalLayer) -> tuple[torch.Tensor, torch.Tensor]:
         raise NotImplementedError
@@ -170,6 +180,22 @@ class _Mode:
     def run(self, layer: VariationalLayer, x: torch.Tensor) -> torch.Tensor:
         w, b = self.weights(layer)
         return apply_draws(layer, x, w, b, self.S)
+
+
+def _plain_draws(layer: VariationalLayer, x: torch.Tensor, w_cat: torch.Tensor, b_cat: torch.Tensor,
+                 S: int) -> torch.Tensor:
+    """S weight sets on a draw-free batch x [B, ...] -> [S*B, ...] draw-major, as ONE matmul or
+    convolution with the sets side by side (``w_cat``: linear [in, S*out], conv [S*out, in, k, k];
+    ``b_cat`` [S*out]): each weight is read once, and x is never repeated S times."""
+    if isinstance(layer, VariationalConv2d):
+        y = F.conv2d(x, w_cat, b_cat, stride=layer.stride, padding=layer.padding)     # [B, S*out, H, W]
+        h, w = static_shape(y.shape[2:])
+        return y.reshape(-1, S, layer.out_channels, h, w).transpose(0, 1).reshape(-1, layer.out_channels, h, w)
+    assert isinstance(layer, VariationalLinear)
+    case = static_shape(x.shape[1:-1])
+    y = torch.matmul(x, w_cat) + b_cat                                                # [B, ..., S*out]
+    y = y.reshape(-1, S, layer.out_features).transpose(0, 1)                          # [S, B*..., out]
+    return y.reshape(-1, *case, layer.out_features)
 
 
 class _Fixed(_Mode):
@@ -185,9 +211,21 @@ class _Fixed(_Mode):
         return self.w, self.b
 
     def run(self, layer: VariationalLayer, x: torch.Tensor) -> torch.Tensor:
+        if self.entering:
+            return self.run_plain(layer, x)
         if isinstance(layer, VariationalLinear) and self.w_t is not None:
             return _linear_draws(layer, x, self.w_t, self.b, self.S)
         return apply_draws(layer, x, self.w, self.b, self.S)
+
+    def run_plain(self, layer: VariationalLayer, x: torch.Tensor) -> torch.Tensor:
+        """The S stored sets on a draw-free batch [B, ...] (export/shared.py calls it where draws enter)."""
+        if not hasattr(self, "_cat"):   # built once, stored as the graph's constant in the layout it reads
+            if isinstance(layer, VariationalLinear):
+                w_cat = self.w_t.permute(1, 0, 2).reshape(layer.in_features, -1).contiguous()
+            else:
+                w_cat = self.w.flatten(0, 1).contiguous()
+            self._cat = (w_cat, self.b.flatten().contiguous())
+        return _plain_draws(layer, x, *self._cat, self.S)
 
 
 class _Fresh(_Mode):
@@ -216,6 +254,18 @@ class _Fresh(_Mode):
                 eps = (flat / torch.linalg.vector_norm(flat, dim=1, keepdim=True) * r).reshape(eps.shape)
             out.append(self.mu[part] + self.sigma[part] * eps)
         return out[0], out[1]
+
+
+    def run(self, layer: VariationalLayer, x: torch.Tensor) -> torch.Tensor:
+        if self.entering:
+            return self.run_plain(layer, x)
+        return super().run(layer, x)
+
+    def run_plain(self, layer: VariationalLayer, x: torch.Tensor) -> torch.Tensor:
+        """This call's S weight sets on a draw-free batch [B, ...], side by side in one matmul/conv."""
+        w, b = self.weights(layer)
+        w_cat = w.permute(2, 0, 1).reshape(w.shape[2], -1) if isinstance(layer, VariationalLinear) else w.flatten(0, 1)
+        return _plain_draws(layer, x, w_cat, b.flatten(), self.S)
 
 
 class _Single(_Mode):
@@ -269,7 +319,7 @@ class DrawNetwork(nn.Module):
     """
 
     def __init__(self, model: nn.Module | Sequence[nn.Module], kind: str, draws: int, *, seed: int,
-                 input_shape: Sequence[int], task: str = "classification") -> None:
+                 input_shape: Sequence[int], task: str = "classification", shared: bool = True) -> None:
         super().__init__()
         if kind not in DRAW_KINDS:
             raise GraphBuildError(f"kind must be one of {', '.join(DRAW_KINDS)}; got '{kind}'", field="kind")
@@ -279,7 +329,8 @@ class DrawNetwork(nn.Module):
         members = [_as_module(m, i) for i, m in enumerate(model)] if self.ensemble else [_as_module(model, None)]
         if self.ensemble and len(members) < 2:
             raise GraphBuildError(f"a deep ensemble needs at least 2 members; got {len(members)}", field="model")
-        self.members = nn.ModuleList(copy.deepcopy(m).eval() for m in members)
+        # one deepcopy of all members, so a module they share (a frozen backbone) stays one object
+        self.members = nn.ModuleList(m.eval() for m in copy.deepcopy(members))
         self.layers = [lay for m in self.members for lay in m.modules() if isinstance(lay, VariationalLayer)]
         self.family = self._family()
         if int(draws) < 1:
@@ -301,6 +352,15 @@ class DrawNetwork(nn.Module):
         self.noise: tuple[NoiseInput, ...] = tuple(
             n for part in [*(lay._draw_mode for lay in self.layers), *self.dropouts] for n in part.noise)
         self.eval()
+        self._plan: SharedPlan | None = None
+        self.computation = "one pass (the posterior means)" if self.S == 1 and not self.ensemble else ""
+        """How the graph computes (the manifest's ``graphs.<kind>.computation``): shared, or per
+        draw with the reason the shared forward was not used."""
+        self.fell_back = False
+        if shared and not self.computation:
+            self._share()
+        elif not self.computation:
+            self.computation = "per draw: shared computation switched off"
 
     # -- construction ---------------------------------------------------------------------
     def _family(self) -> str:
@@ -367,6 +427,40 @@ class DrawNetwork(nn.Module):
             setattr(parent, attr, sub)
             self.dropouts.append(sub)
 
+    def _is_source(self, module: nn.Module) -> bool:
+        """Does ``module`` make S > 1 draws (a variational layer or MC dropout in this graph)?"""
+        if isinstance(module, DropoutDraws):
+            return module.S > 1
+        mode = getattr(module, "_draw_mode", None)
+        return isinstance(module, VariationalLayer) and mode is not None and mode.S > 1
+
+    def _share(self) -> None:
+        """Plan the shared computation (export/shared.py) and check it against the per-draw forward
+        in torch on two random cases and random noise; on any refusal run per draw and say why."""
+        try:
+            self._plan = plan_shared(list(self.members), self._is_source)
+            gen = torch.Generator().manual_seed(0)
+            x = torch.randn((2, *self.input_shape), generator=gen)
+            noise = [torch.from_numpy(v) for v in draw_noise(self.noise, np.random.default_rng(0)).values()]
+            with torch.no_grad():
+                got = self(x, *noise)
+                plan, self._plan = self._plan, None
+                want = self(x, *noise)
+                self._plan = plan
+            rel = float(((got - want).abs() / want.abs().clamp_min(1.0)).max()) if want.numel() else 0.0
+            if got.shape != want.shape or not rel <= SHARED_TOLERANCE:
+                raise NotShareable(f"the shared forward differs from the per-draw forward (largest relative "
+                                   f"difference {rel:.3g}); the forward may mix the cases of a batch")
+            self.computation = plan.describe()
+        except NotShareable as exc:
+            self._plan, self.fell_back = None, True
+            self.computation = f"per draw (the whole network runs S times): {exc}"
+        except Exception as exc:  # the user's forward raised on the shared path: today's path still works
+            self._plan, self.fell_back = None, True
+            first = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
+            self.computation = (f"per draw (the whole network runs S times): the shared forward raised "
+                                f"{type(exc).__name__}: {first}")
+
     def train(self, mode: bool = True) -> DrawNetwork:
         """Always eval: batch norm must use its running statistics (per row, so draws never mix),
         and ``torch.onnx.export`` restores the mode it found after exporting."""
@@ -375,6 +469,13 @@ class DrawNetwork(nn.Module):
     # -- running ----------------------------------------------------------------------------
     def forward(self, x: torch.Tensor, *noise: torch.Tensor) -> torch.Tensor:
         self.feed.values = {spec.name: value for spec, value in zip(self.noise, noise)}
+        if self._plan is not None:
+            fan = self.per_member if self.ensemble else self.S
+            ys = self._plan.run(x, fan)
+            for y in ys:
+                _check_output(y)
+            out = torch.cat([y.reshape(fan, -1, *static_shape(y.shape[1:])) for y in ys])
+            return _ensemble_mean(out, self.task) if self.ensemble and self.kind == "means" else out
         if self.ensemble:
             P = self.per_member
             xs = x if P == 1 else x.repeat(P, *[1] * (x.dim() - 1))                 # [P*B, ...], draw-major
@@ -385,7 +486,7 @@ class DrawNetwork(nn.Module):
                 outs.append(y.reshape(P, -1, int(y.shape[-1])))  # int sizes: one constant-shape Reshape
             out = torch.cat(outs)                                                   # [M*P, B, K]
             return _ensemble_mean(out, self.task) if self.kind == "means" else out
-        xs = x.repeat(self.S, *[1] * (x.dim() - 1))                         # [S*B, ...], draw-major
+        xs = x if self.S == 1 else x.repeat(self.S, *[1] * (x.dim() - 1))   # [S*B, ...], draw-major
         y = self.members[0](xs)
         _check_output(y)
         return y.reshape(self.S, -1, *static_shape(y.shape[1:]))

@@ -40,13 +40,13 @@ non-empty directory there is refused.
 
 from __future__ import annotations
 
-import argparse
 import importlib
 import os
 import secrets
 import shutil
 import sys
 import tempfile
+import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -54,15 +54,24 @@ from typing import Any
 
 import numpy as np
 
-from demur.serve.core.bundle import MANIFEST, Bundle, load_bundle, write_bundle
+from demur.serve.core.bundle import (
+    FRESH_KINDS,
+    GRAPH_KINDS,
+    MANIFEST,
+    SEED_MODULUS,
+    Bundle,
+    load_bundle,
+    write_bundle,
+)
 from demur.serve.core.decision import score_values
 from demur.serve.core.drift import feature_reference, score_reference
 from demur.serve.core.fingerprint import training_fingerprint
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.summary import summarise
 from demur.serve.core.support import standardisation, support_record
+from demur.serve.offline.chunked import chunks
 
-from demur.export.datasets import column_order
+from demur.export.datasets import read_features, read_training_columns
 from demur.export.errors import ExportError, GraphBuildError
 
 __all__ = [
@@ -77,12 +86,12 @@ __all__ = [
     "THRESHOLD_QUANTILE",
     "Inputs",
     "export_bundle",
+    "export_factory",
     "export_model",
     "input_spec",
-    "register",
 ]
 
-EXPORT_KINDS = ("stacked", "sampler", "flip")
+EXPORT_KINDS = tuple(kind for kind in GRAPH_KINDS if kind != "means")
 """Sampling graphs ``export_model`` can write (the means graph always comes along)."""
 
 DEFAULT_DRAWS = 32
@@ -224,8 +233,6 @@ def export_model(
     the recorded seed of fresh-draw graphs (None: a random one, recorded).
     ``extensions``: extra manifest sections kept verbatim.
     """
-    from demur.export.graphs import SEED_MODULUS
-
     if kind not in EXPORT_KINDS:
         raise ExportError(f"kind must be one of {', '.join(EXPORT_KINDS)}; got '{kind}'", field="kind")
     if not isinstance(draws, int) or isinstance(draws, bool) or draws < 1:
@@ -366,6 +373,7 @@ def _write_checked_graphs(model: Any, root: Path, kind: str, draws: int, seed: i
     manifest's ``graphs`` section and the sampling ``DrawNetwork``."""
     from demur.export.draws import DrawNetwork
     from demur.export.graphs import export_graph
+    from demur.export.shared import SharedComputationNotice
 
     shape = tuple(int(d) for d in spec["shape"])
     x_std = ((ref[:PARITY_ROWS] - np.asarray(spec["center"])) / np.asarray(spec["scale"]))
@@ -378,7 +386,11 @@ def _write_checked_graphs(model: Any, root: Path, kind: str, draws: int, seed: i
         path = root / f"{graph}.onnx"
         export_graph(net, path, name=graph)
         _check_parity(net, path, x_std, seed, graph)
-        section[graph] = {"file": path.name, "draws": net.S, **({"seed": seed} if graph != "means" else {})}
+        section[graph] = {"file": path.name, "draws": net.S, **({"seed": seed} if graph != "means" else {}),
+                          "computation": net.computation}
+        if net.fell_back:  # the graph is right, but the whole network runs S times per case: say so
+            warnings.warn(f"the {graph} graph runs the whole network once per draw, not the draw-free part once: "
+                          f"{net.computation.split(': ', 1)[-1]}", SharedComputationNotice, stacklevel=3)
         main_net = main_net or net
     return section, main_net
 
@@ -437,7 +449,7 @@ def export_bundle(
     The validation split is the reference; ``name``/``version`` default to the checkpoint's name and "1".
     """
     from demur.export.datasets import load_dataset
-    from demur.export.training import load_checkpoint
+    from demur.export.checkpoints import load_checkpoint
 
     model, meta = load_checkpoint(checkpoint_dir)
     data = meta.get("data", {})
@@ -464,13 +476,10 @@ def _check_target(out: Path) -> None:
 def _reference_scores(bundle: Bundle, x_raw: np.ndarray) -> np.ndarray:
     """Decision scores of held-out raw inputs, computed as the server would (float64[N])."""
     m = bundle.manifest
-    seed = next((m.graphs[k].seed for k in ("sampler", "flip") if k in m.graphs), None)
+    seed = next((m.graphs[k].seed for k in FRESH_KINDS if k in m.graphs), None)
     engine = Engine(bundle, graph="auto", seed=seed).load()
-    out = []
-    for start in range(0, len(x_raw), 256):
-        summary = summarise(m.task, engine.run(x_raw[start:start + 256]), m.interval_level, m.target)
-        out.append(score_values(summary, DEFAULT_SCORE))
-    return np.concatenate(out)
+    return np.concatenate([score_values(summarise(m.task, engine.run(xb), m.interval_level, m.target),
+                                        DEFAULT_SCORE) for xb in chunks(x_raw)])
 
 
 def _swap_into_place(tmp: Path, out: Path) -> None:
@@ -490,80 +499,31 @@ def _swap_into_place(tmp: Path, out: Path) -> None:
         shutil.rmtree(old, ignore_errors=True)
 
 
-# -- command line -------------------------------------------------------------
-def register(subparsers: argparse._SubParsersAction) -> None:
-    """Add ``demur export`` to the ``demur`` command."""
-    p = subparsers.add_parser(
-        "export",
-        help="turn a training checkpoint, or your own torch module, into a bundle (ONNX graphs + manifest)",
-        description="Export DIR/checkpoint.pt (from 'demur train'), or your own module: --factory "
-                    "pkg.module:function builds it, --weights loads its state_dict (torch.load with "
-                    "weights_only=True), --data gives the training rows (CSV, --target names the label column).",
-    )
-    p.add_argument("checkpoint", type=Path, metavar="DIR", nargs="?", help="output directory of 'demur train'")
-    p.add_argument("--out", required=True, type=Path, help="bundle directory to write")
-    p.add_argument("--draws", type=int, default=DEFAULT_DRAWS, help=f"weight draws S (default {DEFAULT_DRAWS})")
-    graph = p.add_mutually_exclusive_group()
-    graph.add_argument("--sampler", action="store_true",
-                       help="write the sampler graph (fresh draws per request) instead of stacked draws")
-    graph.add_argument("--flip", action="store_true",
-                       help="write the flip graph (fresh sign-flipped draws per request at close to stacked cost)")
-    p.add_argument("--seed", type=int, default=None, help="seed of the stacked draws / recorded sampler seed")
-    p.add_argument("--name", default=None, help="model name (default: the checkpoint's, or the factory's)")
-    p.add_argument("--version", default=None, help="model version (default: 1)")
-    own = p.add_argument_group("your own module")
-    own.add_argument("--factory", metavar="MODULE:FUNCTION",
-                     help="importable function returning the untrained torch module (a list: a deep ensemble)")
-    own.add_argument("--weights", type=Path, help="state_dict saved with torch.save (a list of them for an ensemble)")
-    own.add_argument("--data", type=Path, help="training rows (CSV with a header) for the input spec; its "
-                                               "columns, in file order, are the model's inputs")
-    own.add_argument("--target", help="label column of --data / --reference (excluded from the inputs)")
-    own.add_argument("--reference", type=Path, help="held-out rows (CSV, the same columns in any order) for "
-                                                    "the parity check and the default threshold (default: --data)")
-    own.add_argument("--labels", help="comma-separated class names in output order (default: 0..K-1)")
-    own.add_argument("--shape", help="comma-separated input shape per case, e.g. 1,8,8 (default: [F])")
-    own.add_argument("--task", choices=("classification", "regression"), default="classification")
-    p.set_defaults(func=_run)
-
-
-def _run(args: argparse.Namespace) -> int:
-    kind = "flip" if args.flip else "sampler" if args.sampler else "stacked"
-    if args.factory:
-        bundle = _export_factory(args, kind)
-    elif args.checkpoint is not None:
-        bundle = export_bundle(args.checkpoint, args.out, kind=kind, draws=args.draws, seed=args.seed,
-                               name=args.name, version=args.version)
-    else:
-        raise ExportError("give a checkpoint DIR from 'demur train', or --factory MODULE:FUNCTION with --weights "
-                          "and --data for your own module", field="checkpoint")
-    m = bundle.manifest
-    sizes = ", ".join(f"{k}.onnx {bundle.graph_path(k).stat().st_size / 1e6:.2f} MB" for k in m.graphs)
-    print(f"wrote {bundle.path}: {m.model_name} v{m.model_version} ({m.posterior['family']}), {kind} graph with "
-          f"{m.graphs[kind].draws} draws ({sizes}); default threshold {m.decision.score} > "
-          f"{m.decision.threshold:.4f} (uncalibrated); checksum {bundle.checksum[:12]}")
-    return 0
-
-
-def _export_factory(args: argparse.Namespace, kind: str) -> Bundle:
-    """``demur export --factory pkg.mod:fn --weights W --data train.csv``: build, load, export."""
+def export_factory(factory: str, weights: str | Path, data: str | Path, out: str | Path, *,
+                   target: str | None = None, reference: str | Path | None = None,
+                   shape: Sequence[int] | None = None, labels: Sequence[str] | None = None,
+                   task: str = "classification", kind: str = "stacked", draws: int = DEFAULT_DRAWS,
+                   seed: int | None = None, name: str | None = None, version: str | None = None) -> Bundle:
+    """``demur export --factory pkg.mod:fn --weights W --data train.csv``: build the module the
+    ``factory`` ("MODULE:FUNCTION", imported as ``python -m`` would, from the current folder)
+    returns, load its ``weights`` (a state_dict, or a list of them for an ensemble; read with
+    ``weights_only=True``), take the input spec from the training rows ``data`` (CSV: every column
+    but ``target``, in file order) and export it (``reference``: held-out rows matched by name)."""
     import torch
 
-    if args.weights is None or args.data is None:
-        raise ExportError("--factory needs --weights (the trained state_dict) and --data (the training rows)",
-                          field="weights" if args.weights is None else "data")
-    module_name, _, func_name = args.factory.partition(":")
+    module_name, _, func_name = factory.partition(":")
     if os.getcwd() not in sys.path and "" not in sys.path:  # as `python -m` does: your package beside you
         sys.path.insert(0, os.getcwd())
     try:
-        factory = getattr(importlib.import_module(module_name), func_name)
+        build = getattr(importlib.import_module(module_name), func_name)
     except (ImportError, AttributeError, ValueError) as exc:
-        raise ExportError(f"--factory must name an importable MODULE:FUNCTION; got {args.factory!r} ({exc}); "
+        raise ExportError(f"--factory must name an importable MODULE:FUNCTION; got {factory!r} ({exc}); "
                           "run from the folder holding MODULE, or put it on PYTHONPATH", field="factory") from exc
-    model = factory()
+    model = build()
     try:
-        state = torch.load(args.weights, map_location="cpu", weights_only=True)
+        state = torch.load(weights, map_location="cpu", weights_only=True)
     except Exception as exc:  # torch raises UnpicklingError, RuntimeError, EOFError...
-        raise ExportError(f"{args.weights} is not a state_dict torch.load(weights_only=True) can read: {exc}",
+        raise ExportError(f"{weights} is not a state_dict torch.load(weights_only=True) can read: {exc}",
                           field="weights") from exc
     members = model if isinstance(model, (list, tuple)) else [model]
     states = state if isinstance(state, (list, tuple)) else [state]
@@ -576,42 +536,8 @@ def _export_factory(args: argparse.Namespace, kind: str) -> Bundle:
         except (RuntimeError, KeyError, TypeError) as exc:
             raise ExportError(f"--weights do not fit the module the factory built: {exc}", field="weights") from exc
         member.eval()
-    x_train, names = _csv_rows(args.data, args.target)
-    x_ref = _csv_rows(args.reference, args.target, names)[0] if args.reference else x_train
-    shape = [int(v) for v in args.shape.split(",")] if args.shape else None
-    labels = [v.strip() for v in args.labels.split(",")] if args.labels else None
-    return export_model(model, args.out, inputs=input_spec(x_train, names, shape), labels=labels, task=args.task,
-                        kind=kind, draws=args.draws, reference=x_ref, seed=args.seed,
-                        name=args.name or func_name, version=args.version or "1")
-
-
-def _csv_rows(path: Path, target: str | None, names: Sequence[str] | None = None) -> tuple[np.ndarray, list[str]]:
-    """Numeric feature columns of a CSV with a header (``target`` dropped): float64[N, F], names.
-
-    Without ``names`` (``--data``) the file's columns, in file order, are the model's inputs.
-    With ``names`` (``--reference``) the columns are matched to them by name, in any order
-    (``column_order``): read by position, a reference written in another order would be
-    judged as out-of-range rows and set the default threshold and the support check wrong.
-    """
-    import csv
-
-    what = "data" if names is None else "reference"
-    try:
-        with open(path, newline="", encoding="utf-8") as fh:
-            rows = list(csv.reader(fh))
-    except OSError as exc:
-        raise ExportError(f"cannot read {path}: {exc}", field=what) from exc
-    if len(rows) < 2:
-        raise ExportError(f"{path} needs a header and at least one row; got {len(rows)} line(s)", field=what)
-    header = rows[0]
-    if names is not None:
-        keep = column_order(header, list(names), ignore=[target] if target else (), where=f"--reference {path}")
-    else:
-        keep = [i for i, h in enumerate(header) if h != target]
-        if target is not None and len(keep) == len(header):
-            raise ExportError(f"--target {target!r} is not a column of {path}", field="target")
-    try:
-        x = np.array([[float(row[i]) for i in keep] for row in rows[1:]], dtype=np.float64)
-    except (ValueError, IndexError) as exc:
-        raise ExportError(f"{path}: every feature cell must be a number ({exc})", field=what) from exc
-    return x, [header[i] for i in keep]
+    x_train, names = read_training_columns(data, target)
+    x_ref = read_features(reference, names, ignore=[target] if target else ()) if reference else x_train
+    return export_model(model, out, inputs=input_spec(x_train, names, shape), labels=labels, task=task,
+                        kind=kind, draws=draws, reference=x_ref, seed=seed, name=name or func_name,
+                        version=version or "1")

@@ -19,9 +19,9 @@ The one place torch's export exceptions become ours: ``GraphBuildError``
 naming the layer (found by exporting each leaf module alone on the input it
 saw) and torch's message, never a raw traceback.
 
-``node_seed`` / ``SEED_MODULUS`` are the seed rule of the random nodes in
-sampler graphs written by earlier versions of demur; the engine still
-reseeds such graphs at load time by the same rule (serve/adapters/engine.py).
+The seed rule of the random nodes in sampler graphs written by earlier versions
+of demur is the bundle format's (``node_seed``, ``SEED_MODULUS`` in
+serve/core/bundle.py); the engine still reseeds such graphs at load by it.
 """
 
 from __future__ import annotations
@@ -39,19 +39,10 @@ from torch import nn
 from demur.export.draws import DrawNetwork
 from demur.export.errors import GraphBuildError
 
-__all__ = ["OPSET", "SEED_MODULUS", "export_graph", "node_seed"]
+__all__ = ["OPSET", "export_graph"]
 
 OPSET = 17
 """ONNX opset of every graph (onnxruntime >= 1.14 runs it)."""
-
-SEED_MODULUS = 1 << 24
-"""Seeds are kept below 2**24, where float32 (RandomNormal's ``seed`` attribute) is exact."""
-
-
-def node_seed(base: int, index: int) -> float:
-    """Seed attribute of the ``index``-th random node for a graph seeded with ``base`` (older bundles)."""
-    return float((int(base) + 7919 * int(index)) % SEED_MODULUS)
-
 
 def _export(module: nn.Module, args: tuple[torch.Tensor, ...], names: list[str] | None,
             dynamic: dict[str, dict[int, str]] | None) -> bytes:
@@ -122,12 +113,15 @@ def _culprit(net: DrawNetwork, x: torch.Tensor, exc: Exception) -> GraphBuildErr
         for mod_name, mod in member.named_modules():
             if not list(mod.children()) and mod_name:
                 hooks.append(mod.register_forward_pre_hook(record(mod_name)))
+    # the per-draw forward calls every module the user wrote (the traced one inlines their forwards)
+    plan, net._plan = net._plan, None
     try:
         with torch.no_grad():
             net(x, *(torch.ones(s.shape) for s in net.noise))
     except Exception as run_exc:  # the forward itself fails in torch: that is the message to show
         message = f"{type(run_exc).__name__}: {run_exc}"
     finally:
+        net._plan = plan
         for h in hooks:
             h.remove()
     for mod_name, mod, args in seen:

@@ -1,4 +1,4 @@
-"""ELBO training of a variational network, its checkpoint, and ``demur train``.
+"""ELBO training of a variational network (``demur train``; its flags: export/commands.py).
 
 The loss per mini-batch is the negative ELBO per training example::
 
@@ -84,7 +84,6 @@ Python use (the test fixtures do this)::
 
 from __future__ import annotations
 
-import argparse
 import json
 import math
 import sys
@@ -99,15 +98,15 @@ import torch.nn.functional as F
 from torch import nn
 
 from demur.serve.core.drift import feature_reference
-from demur.serve.offline.calibration import expected_calibration_error
+from demur.serve.offline.metrics import expected_calibration_error
 
-from demur.export.datasets import Dataset, load_dataset
-from demur.export.errors import CheckpointError, LayerConfigError, TrainingError
+from demur.export.datasets import Dataset
+from demur.export.checkpoints import CHECKPOINT_FILE, CHECKPOINT_FORMAT, CHECKPOINT_VERSION, save_checkpoint
+from demur.export.errors import LayerConfigError, TrainingError
+from demur.export.exporter import input_spec
 from demur.export.layers import ARCHITECTURES, POSTERIORS, build_model, total_kl, variational_layers
 
 __all__ = [
-    "CHECKPOINT_FORMAT",
-    "CHECKPOINT_VERSION",
     "DEFAULTS",
     "EVAL_DRAWS",
     "KL_WARMUP",
@@ -115,20 +114,15 @@ __all__ = [
     "SCALE_FLOOR",
     "TrainResult",
     "elbo_optimiser",
-    "evaluate",
     "kl_weight",
-    "load_checkpoint",
     "predict_draws",
-    "register",
+    "predictive_metrics",
     "standardise_inputs",
     "summary_line",
     "total_kl",
     "train",
     "train_ensemble",
 ]
-
-CHECKPOINT_FORMAT = "demur-checkpoint"
-CHECKPOINT_VERSION = 1
 
 KL_WEIGHT = 1.0
 """Default temperature on the KL term (1.0 = the plain ELBO); see the module docstring."""
@@ -174,15 +168,13 @@ class TrainResult:
 
     @property
     def checkpoint_path(self) -> Path | None:
-        return None if self.out is None else self.out / "checkpoint.pt"
+        return None if self.out is None else self.out / CHECKPOINT_FILE
 
 
 # -- inputs -------------------------------------------------------------------
 def _input_spec(ds: Dataset, arch: str) -> dict[str, Any]:
     """The bundle's input spec for ``ds`` (the public ``input_spec``: floored standardisation,
     training range); a conv net sees the image shape."""
-    from demur.export.exporter import input_spec  # the exporter imports this module's checkpoints
-
     shape = list(ds.image_shape) if arch == "conv" and ds.image_shape is not None else [ds.n_features]
     return input_spec(ds.x_train, names=list(ds.feature_names), shape=shape,
                       kind="image" if ds.image_shape is not None else "tabular").spec
@@ -205,7 +197,7 @@ def predict_draws(model: nn.Module, x: torch.Tensor, S: int = EVAL_DRAWS, chunk:
     return torch.stack(out)
 
 
-def evaluate(
+def predictive_metrics(
     draws: torch.Tensor, y: np.ndarray, task: str, target: dict[str, float] | None = None
 ) -> dict[str, float]:
     """Metrics of the Monte-Carlo predictive from ``draws``: float32[S, B, K].
@@ -325,13 +317,12 @@ def _write_ensemble(results: list[TrainResult], out: Path, seed: int) -> None:
         xt = torch.from_numpy(standardise_inputs(first.meta["inputs"], x))
         with torch.no_grad():
             draws = torch.cat([predict_draws(r.model, xt, S=per) for r in results])
-        metrics[split] = evaluate(draws, y, first.meta["task"], first.meta["target"])
+        metrics[split] = predictive_metrics(draws, y, first.meta["task"], first.meta["target"])
     meta = {**first.meta, "name": f"{first.meta['name']}-x{len(results)}", "members": len(results),
             "metrics": metrics, "member_metrics": [r.metrics for r in results],
             "training": {**first.meta["training"], "seed": int(seed),
                          "member_seeds": [int(r.meta["training"]["seed"]) for r in results]}}
-    out.mkdir(parents=True, exist_ok=True)
-    torch.save({**meta, "state_dict": [r.model.state_dict() for r in results]}, out / "checkpoint.pt")
+    save_checkpoint(out, meta, [r.model.state_dict() for r in results])
     record = {k: meta[k] for k in ("name", "arch", "task", "labels", "data", "training", "metrics", "members")}
     (out / "training.json").write_text(json.dumps(record, indent=2) + "\n")
 
@@ -400,7 +391,7 @@ def _fit(
         model.eval()
         row = {"epoch": epoch + 1, "nll": sums["nll"], "kl_per_example": sums["kl"] / n, "beta": beta}
         if (epoch + 1) % 10 == 0 or epoch + 1 == h["epochs"]:
-            val = evaluate(predict_draws(model, x_va, S=8), dataset.y_val, task, target)
+            val = predictive_metrics(predict_draws(model, x_va, S=8), dataset.y_val, task, target)
             row.update({f"val_{k}": v for k, v in val.items()})
             bar.set_postfix({k: round(v, 4) for k, v in row.items() if k in ("nll", "val_accuracy", "val_rmse")})
         history.append(row)
@@ -417,7 +408,7 @@ def _fit(
     }
     for split in ("val", "test"):
         x, y = dataset.split(split)
-        metrics[split] = evaluate(predict_draws(model, tensors(x, y)[0]), y, task, target)
+        metrics[split] = predictive_metrics(predict_draws(model, tensors(x, y)[0]), y, task, target)
     metrics["sigma"] = _sigma_summary(model)
 
     settings = {k: (list(v) if isinstance(v, tuple) else v) for k, v in h.items()}
@@ -445,8 +436,7 @@ def _fit(
     out_dir = None
     if out is not None:
         out_dir = Path(out)
-        out_dir.mkdir(parents=True, exist_ok=True)
-        torch.save({**meta, "state_dict": model.state_dict()}, out_dir / "checkpoint.pt")
+        save_checkpoint(out_dir, meta, model.state_dict())
         record = {k: meta[k] for k in ("name", "arch", "task", "labels", "data", "training", "metrics")}
         (out_dir / "training.json").write_text(json.dumps({**record, "history": history}, indent=2) + "\n")
     return TrainResult(model=model, meta=meta, metrics=metrics, out=out_dir, dataset=dataset)
@@ -480,123 +470,6 @@ def _sigma_summary(model: nn.Module) -> dict[str, float]:
         parts = [t.flatten() for m in variational_layers(model) for t in (m.weight_sigma, m.bias_sigma)]
         sig = torch.cat(parts)
     return {"median": float(sig.median()), "max": float(sig.max()), "min": float(sig.min())}
-
-
-# -- checkpoint -----------------------------------------------------------------
-def load_checkpoint(directory: Path | str) -> tuple[nn.Sequential | list[nn.Sequential], dict[str, Any]]:
-    """Rebuild the trained model (eval mode) and its metadata from ``DIR/checkpoint.pt``; an
-    ensemble checkpoint (``members``, ``train_ensemble``) gives the list of its members.
-
-    Reads with ``torch.load(weights_only=True)``: nothing but tensors and
-    plain containers is unpickled. ``meta`` is the checkpoint without ``state_dict``.
-    """
-    path = Path(directory)
-    if path.is_dir():
-        path = path / "checkpoint.pt"
-    if not path.is_file():
-        raise CheckpointError(f"no checkpoint at {path}: expected the output directory of 'demur train'",
-                              field="checkpoint")
-    try:
-        raw = torch.load(path, map_location="cpu", weights_only=True)
-    except Exception as exc:  # torch raises UnpicklingError, RuntimeError, EOFError...
-        raise CheckpointError(f"{path} is not a readable demur checkpoint: {exc}", field="checkpoint") from exc
-    if not isinstance(raw, dict) or raw.get("format") != CHECKPOINT_FORMAT:
-        got = raw.get("format") if isinstance(raw, dict) else type(raw).__name__
-        raise CheckpointError(f"{path}: format must be {CHECKPOINT_FORMAT!r}; got {got!r}", field="format")
-    if raw.get("version") != CHECKPOINT_VERSION:
-        raise CheckpointError(
-            f"{path}: checkpoint version {raw.get('version')!r} is not supported; expected {CHECKPOINT_VERSION}",
-            field="version",
-        )
-    meta = {k: v for k, v in raw.items() if k != "state_dict"}
-    arch = meta["arch"]
-    outputs = len(meta["labels"]) if meta["task"] == "classification" else 2
-    states = raw.get("state_dict")
-    ensemble = "members" in meta
-    if ensemble and (not isinstance(states, list) or len(states) != meta["members"] or len(states) < 2):
-        got = len(states) if isinstance(states, list) else type(states).__name__
-        raise CheckpointError(f"{path}: an ensemble checkpoint of {meta['members']} members needs as many "
-                              f"state_dicts (at least 2); got {got}", field="state_dict")
-    models = []
-    for state in (states if ensemble else [states]):
-        model = build_model(
-            arch["kind"], meta["inputs"]["shape"], outputs, arch["posterior"], prior_scale=arch["prior_scale"],
-            hidden=arch["hidden"], channels=arch["channels"], init_sigma=arch.get("init_sigma", 1e-3),
-        )
-        try:
-            model.load_state_dict(state)
-        except (RuntimeError, KeyError, TypeError, AttributeError) as exc:
-            raise CheckpointError(f"{path}: weights do not fit the recorded architecture: {exc}",
-                                  field="state_dict") from exc
-        models.append(model.eval())
-    return (models if ensemble else models[0]), meta
-
-
-# -- command line -----------------------------------------------------------------
-def register(subparsers: argparse._SubParsersAction) -> None:
-    """Add ``demur train`` to the ``demur`` command."""
-    p = subparsers.add_parser(
-        "train",
-        help="train a variational network (digits demo, diabetes, or a CSV) and write a checkpoint",
-        description="Train a variational network by ELBO and write DIR/checkpoint.pt and DIR/training.json.",
-    )
-    p.add_argument("--data", default="digits",
-                   help="'digits' (postcode digits demo), 'diabetes', or a CSV path (default: digits)")
-    p.add_argument("--target", help="the label column of a CSV")
-    p.add_argument("--task", choices=("classification", "regression"), help="force the task of a CSV target")
-    p.add_argument("--posterior", choices=POSTERIORS, default="radial")
-    p.add_argument("--arch", choices=ARCHITECTURES, default="mlp")
-    p.add_argument("--out", required=True, type=Path, help="output directory")
-    p.add_argument("--epochs", type=int, default=DEFAULTS["epochs"])
-    p.add_argument("--seed", type=int, default=0)
-    p.add_argument("--prior-scale", type=float, default=DEFAULTS["prior_scale"])
-    p.add_argument("--lr", type=float, default=DEFAULTS["lr"], help="Adam step size of the means")
-    p.add_argument("--rho-lr", type=float, default=DEFAULTS["rho_lr"],
-                   help=f"Adam step size of the sigma parameters (default {DEFAULTS['rho_lr']})")
-    p.add_argument("--init-spread", type=float, default=DEFAULTS["init_spread"],
-                   help=f"initial posterior sd of each weight (default {DEFAULTS['init_spread']})")
-    p.add_argument("--batch-size", type=int, default=DEFAULTS["batch_size"])
-    p.add_argument("--kl-weight", type=float, default=DEFAULTS["kl_weight"],
-                   help=f"temper the KL term (1 = plain ELBO; default {DEFAULTS['kl_weight']})")
-    p.add_argument("--kl-warmup", type=float, default=DEFAULTS["kl_warmup"],
-                   help="fraction of steps over which the KL weight ramps up from 0")
-    p.add_argument("--hidden", type=_int_list, default=DEFAULTS["hidden"], help="MLP widths, e.g. 256,256")
-    p.add_argument("--channels", type=_int_list, default=DEFAULTS["channels"], help="conv channels, e.g. 16,32")
-    p.add_argument("--threads", type=int, default=DEFAULTS["threads"])
-    p.add_argument("--members", type=int, default=1,
-                   help="train this many networks (seeds SEED*M .. SEED*M+M-1) into one ensemble checkpoint; "
-                        "exported, each member gives S // M draws of its own posterior (default 1)")
-    p.add_argument("--progress", action=argparse.BooleanOptionalAction, default=None,
-                   help="show a progress bar (default: when stderr is a terminal)")
-    p.set_defaults(func=_run)
-
-
-def _int_list(text: str) -> tuple[int, ...]:
-    try:
-        values = tuple(int(v) for v in text.split(",") if v.strip())
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected comma-separated integers such as 256,256; got {text!r}") from None
-    if not values or min(values) < 1:
-        raise argparse.ArgumentTypeError(f"expected positive integers; got {text!r}")
-    return values
-
-
-def _run(args: argparse.Namespace) -> int:
-    ds = load_dataset(args.data, args.target, seed=args.seed, task=args.task)
-    options = dict(arch=args.arch, posterior=args.posterior, epochs=args.epochs, seed=args.seed, out=args.out,
-                   lr=args.lr, rho_lr=args.rho_lr, init_spread=args.init_spread,
-                   batch_size=args.batch_size, prior_scale=args.prior_scale, kl_weight=args.kl_weight,
-                   kl_warmup=args.kl_warmup, hidden=args.hidden, channels=args.channels, threads=args.threads)
-    if args.members == 1:
-        print(summary_line(train(ds, progress=args.progress, **options)))
-        return 0
-    results = train_ensemble(ds, args.members, **options)
-    for r in results:
-        print("  member " + summary_line(r))
-    t = json.loads((Path(args.out) / "training.json").read_text())["metrics"]["test"]
-    print(f"ensemble of {args.members} ({args.posterior}), test split: "
-          + ", ".join(f"{k} {v:.4g}" for k, v in t.items()) + f" -> {Path(args.out) / 'checkpoint.pt'}")
-    return 0
 
 
 def summary_line(result: TrainResult) -> str:

@@ -1,7 +1,8 @@
-"""One human-review round trip against a running demur server (stdlib only).
+"""A human-review round against a running demur server (stdlib only).
 
-Claims the next waiting case, draws the 8x8 digit in the terminal, shows the
-model's view, keys a label, then exports the decided cases as JSON lines.
+Claims the waiting cases one by one (``DEMUR_REVIEW_COUNT``, default 1), draws the first 8x8
+digit in the terminal, shows the model's view, keys a label, then exports the decided cases
+as JSON lines.
 
 In real use a person at the depot looks at the digit and keys what they read.
 The demo has no person, so it keys the digit recorded in the sample's case id
@@ -46,35 +47,52 @@ def draw(values: list[float]) -> str:
 
 
 def main() -> int:
-    status, raw = call("POST", "/v1/reviews/claim", {})
-    if status != 200:
-        print(f"  claim failed: HTTP {status}: {raw.decode(errors='replace')}")
-        return 1
-    body = json.loads(raw)
-    item = body.get("item")
-    if not item:
-        print("  nothing waiting for review")
-        return 0
-    case = item.get("case") or {}
-    values = case.get("values") if isinstance(case, dict) else case
-    print(f"  claimed {item['id']} (client case {item.get('client_case_id')}, kind {item.get('kind')})")
-    if values and len(values) == 64:
-        print(draw([float(v) for v in values]))
-    summary = item.get("summary") or {}
-    print(f"  model's view: predicts {item.get('prediction')}, "
-          f"MI {summary.get('uncertainty', {}).get('mutual_information', float('nan')):.4f} nats (advice only)")
-    match = re.search(r"digit(\d)", str(item.get("client_case_id") or ""))
-    label = match.group(1) if match else str(item.get("prediction"))
-    status, raw = call("POST", f"/v1/reviews/{item['id']}/decision",
-                       {"label": label, "note": "demo: keyed from the sample's known digit"})
-    print(f"  keyed label {label}: HTTP {status}")
+    count = int(os.environ.get("DEMUR_REVIEW_COUNT", "1"))
+    keyed = {"audit": 0, "abstain": 0}
+    for n in range(count):
+        done = review_one(show=n == 0)
+        if done is None:
+            break
+        keyed[done] += 1
+    print(f"  keyed {sum(keyed.values())} case(s): {keyed['abstain']} referred by the model, {keyed['audit']} "
+          "audit samples of accepted parcels")
     status, raw = call("GET", "/v1/reviews/export?format=jsonl")
     lines = [ln for ln in raw.decode().splitlines() if ln.strip()]
-    print(f"  export: {len(lines)} decided case(s) ready for retraining")
+    print(f"  export: {len(lines)} decided case(s) ready for recalibration and retraining")
     status, raw = call("GET", "/v1/reviews/summary")
     if status == 200:
         print(f"  queue: {json.loads(raw).get('counts')}")
     return 0
+
+
+def review_one(show: bool) -> str | None:
+    """Claim, (show,) key; return the item's kind, or None when nothing waits."""
+    status, raw = call("POST", "/v1/reviews/claim", {})
+    if status != 200:
+        raise SystemExit(f"  claim failed: HTTP {status}: {raw.decode(errors='replace')}")
+    body = json.loads(raw)
+    item = body.get("item")
+    if not item:
+        print("  nothing more waiting for review")
+        return None
+    case = item.get("case") or {}
+    values = case.get("values") if isinstance(case, dict) else case
+    summary = item.get("summary") or {}
+    if show:
+        print(f"  claimed {item['id']} (client case {item.get('client_case_id')}, kind {item.get('kind')})")
+        if values and len(values) == 64:
+            print(draw([float(v) for v in values]))
+        print(f"  model's view: predicts {item.get('prediction')}, "
+              f"MI {summary.get('uncertainty', {}).get('mutual_information', float('nan')):.4f} nats (advice only)")
+    match = re.search(r"digit(\d)", str(item.get("client_case_id") or ""))
+    label = match.group(1) if match else str(item.get("prediction"))
+    status, raw = call("POST", f"/v1/reviews/{item['id']}/decision",
+                       {"label": label, "note": "demo: keyed from the sample's known digit"})
+    if status != 200:
+        raise SystemExit(f"  decision failed: HTTP {status}: {raw.decode(errors='replace')}")
+    if show:
+        print(f"  keyed label {label}")
+    return str(item.get("kind"))
 
 
 if __name__ == "__main__":

@@ -21,11 +21,16 @@ from dataclasses import dataclass, fields
 from pathlib import Path
 from typing import Any, get_args, get_type_hints
 
+from demur.serve.core.bundle import GRAPH_KINDS
 from demur.serve.errors import ConfigError
 
-__all__ = ["ENV_PREFIX", "ServeConfig", "build_config", "worker_count"]
+__all__ = ["ENV_PREFIX", "GRAPH_CHOICES", "ServeConfig", "build_config", "worker_count"]
 
 ENV_PREFIX = "DEMUR_"
+
+GRAPH_CHOICES = ("auto", *GRAPH_KINDS)
+"""Values of the ``graph`` setting: a bundle graph kind, or ``auto`` (the sampler graph if the
+bundle has one, else the stacked draws; serve/adapters/engine.py)."""
 
 DEFAULT_HOST = "127.0.0.1"
 DEFAULT_PORT = 8600
@@ -77,6 +82,7 @@ class ServeConfig:
     data_dir: str = "demur-data"
     review_store: str = ""  # "" -> sqlite:///<data_dir>/reviews.sqlite3 ; or postgresql://...
     review_lease_s: float = DEFAULT_LEASE_S
+    review_order: str = "oldest"  # or "most_uncertain": audits first, then abstentions by mutual information
     audit_fraction: float = 0.01
     spool_replay_s: float = 5.0
     review_max_pending: int = DEFAULT_MAX_PENDING  # ceiling on pending review items; 0: none
@@ -200,11 +206,14 @@ def _check(cfg: ServeConfig) -> None:
     except ValueError:
         raise ConfigError(f"trusted_proxies must be comma-separated IP addresses; got {cfg.trusted_proxies!r}",
                           field="trusted_proxies") from None
-    if cfg.graph not in ("auto", "stacked", "sampler", "flip", "means"):
-        raise ConfigError(f"graph must be auto, stacked, sampler, flip or means; got '{cfg.graph}'", field="graph")
+    if cfg.graph not in GRAPH_CHOICES:
+        raise ConfigError(f"graph must be one of {', '.join(GRAPH_CHOICES)}; got '{cfg.graph}'", field="graph")
     if not 0.0 <= cfg.audit_fraction <= 1.0:
         raise ConfigError(f"audit_fraction must be in [0, 1]; got {cfg.audit_fraction}", field="audit_fraction")
     if cfg.interval_level is not None and not 0.0 < cfg.interval_level < 1.0:
         raise ConfigError(f"interval_level must be in (0, 1); got {cfg.interval_level}", field="interval_level")
+    if cfg.review_order not in ("oldest", "most_uncertain"):
+        raise ConfigError(f"review_order must be 'oldest' or 'most_uncertain'; got {cfg.review_order!r}",
+                          field="review_order")
     if cfg.batch_wait_ms < 0 or cfg.request_timeout_s <= 0 or cfg.review_lease_s <= 0:
         raise ConfigError("batch_wait_ms must be >= 0; request_timeout_s and review_lease_s > 0", field="timing")

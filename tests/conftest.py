@@ -149,7 +149,7 @@ def copy_bundle(tmp_path: Path) -> Callable[[Any], Path]:
 
 
 # -- trained models ---------------------------------------------------------------
-_TRAINING_SOURCES = ("export/layers.py", "export/training.py", "export/datasets.py")
+_TRAINING_SOURCES = ("export/layers.py", "export/training.py", "export/checkpoints.py", "export/datasets.py")
 
 
 def _checkpoint_cache(request: pytest.FixtureRequest) -> Path | None:

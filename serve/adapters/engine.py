@@ -57,20 +57,22 @@ from typing import Any, TypeVar
 import numpy as np
 import onnxruntime as ort
 
-from demur.serve.core.bundle import Bundle, Manifest
+from demur.serve.core.bundle import (
+    FRESH_KINDS,
+    NOISE_LAWS,
+    SEED_MODULUS,
+    Bundle,
+    Manifest,
+    node_seed,
+    noise_law,
+)
+from demur.serve.config import GRAPH_CHOICES
 from demur.serve.errors import ChecksumMismatch, ConfigError, GraphRunError, InvalidInput, NotLoaded, UnsupportedFormat
 
-__all__ = ["GRAPH_CHOICES", "Engine", "reseed_graph"]
+__all__ = ["Engine", "reseed_graph"]
 
-GRAPH_CHOICES = ("auto", "stacked", "sampler", "means", "flip")
-"""Values for ``Engine(graph=...)``."""
 
 _RANDOM_OPS = ("RandomNormal", "RandomNormalLike", "RandomUniform", "RandomUniformLike", "Multinomial")
-_SEED_MODULUS = 1 << 24  # the seed attribute is float32: integers below 2**24 are exact
-_SEED_STRIDE = 7919      # same rule as demur.export.graphs.node_seed (kept in step by a test)
-_SAMPLING_KINDS = ("sampler", "flip")  # graphs with random nodes, reseeded at load
-
-_NOISE_LAWS = ("signs", "normals", "uniforms")  # graph inputs besides x that the engine fills, by name prefix
 _SIGN_BYTES = np.where(np.unpackbits(np.arange(256, dtype=np.uint8)[:, None], axis=1), -1.0, 1.0).astype(np.float32)
 """float32[256, 8]: row b is the 8 bits of byte b as +-1 (a uniform byte gives 8 uniform signs)."""
 
@@ -97,9 +99,8 @@ def _guard(what: str, fn: Callable[[], _T]) -> _T:
 def reseed_graph(data: bytes, seed: int) -> tuple[bytes, int]:
     """Rewrite the seed of every random node of a serialised ONNX model; return (bytes, nodes changed).
 
-    Node ``i`` (in graph order) gets ``(seed + 7919 * i) mod 2**24``, the rule
-    ``demur.export.graphs.node_seed`` uses at export, so distinct nodes keep distinct
-    streams. Needs the ``onnx`` package (only for graphs that sample).
+    Node ``i`` (in graph order) gets ``node_seed(seed, i)``, the bundle format's seed rule
+    (serve/core/bundle.py) the exporter wrote them by, so distinct nodes keep distinct streams. Needs the ``onnx`` package (only for graphs that sample).
     """
     import onnx  # only sampler graphs need it; stacked bundles run without
 
@@ -108,7 +109,7 @@ def reseed_graph(data: bytes, seed: int) -> tuple[bytes, int]:
     for node in model.graph.node:
         if node.op_type not in _RANDOM_OPS:
             continue
-        value = float((int(seed) + _SEED_STRIDE * changed) % _SEED_MODULUS)
+        value = node_seed(seed, changed)
         for attr in node.attribute:
             if attr.name == "seed":
                 attr.f = value
@@ -124,7 +125,7 @@ class _Noise:
 
     def __init__(self, inputs: list[tuple[str, str, tuple[int, ...]]], seed: int | None) -> None:
         self.inputs = inputs                                   # (name, law, shape), in graph order
-        self.counts = dict.fromkeys(_NOISE_LAWS, 0)
+        self.counts = dict.fromkeys(NOISE_LAWS, 0)
         self._parts: list[tuple[str, str, int, int, tuple[int, ...]]] = []  # name, law, start, end, shape
         for name, law, shape in inputs:
             size = int(np.prod(shape))
@@ -139,12 +140,12 @@ class _Noise:
         for arg in session.get_inputs():
             if arg.name == "x":
                 continue
-            law = arg.name.split(".")[0]
+            law = noise_law(arg.name)
             shape = tuple(arg.shape)
-            if law not in _NOISE_LAWS or arg.type != "tensor(float)" or not all(isinstance(d, int) for d in shape):
+            if law not in NOISE_LAWS or arg.type != "tensor(float)" or not all(isinstance(d, int) for d in shape):
                 raise UnsupportedFormat(
                     f"the {kind} graph has an input '{arg.name}' ({arg.type}, shape {list(shape)}) that this engine "
-                    f"cannot fill: noise inputs are float32 of fixed shape named {', '.join(_NOISE_LAWS)}; re-export "
+                    f"cannot fill: noise inputs are float32 of fixed shape named {', '.join(NOISE_LAWS)}; re-export "
                     "the bundle with this version of demur", field=f"graphs.{kind}")
             found.append((arg.name, law, shape))
         return cls(found, seed) if found else None
@@ -246,7 +247,7 @@ class Engine:
 
     def _session(self, kind: str, seed: int | None) -> Any:
         data = self._read(kind)
-        if seed is not None and kind in _SAMPLING_KINDS:
+        if seed is not None and kind in FRESH_KINDS:
             data, _ = reseed_graph(data, seed)
         return _guard(f"open the {kind} graph",
                       lambda: ort.InferenceSession(data, sess_options=self._options(),
@@ -257,19 +258,19 @@ class Engine:
         with self._lock:
             kind = self._choose()
             seed = self.seed
-            if kind in _SAMPLING_KINDS and seed is None:
-                seed = int.from_bytes(os.urandom(4), "little") % _SEED_MODULUS
+            if kind in FRESH_KINDS and seed is None:
+                seed = int.from_bytes(os.urandom(4), "little") % SEED_MODULUS
             session = self._session(kind, seed)
-            noise = _Noise.of(session, kind, seed if kind in _SAMPLING_KINDS else None)
+            noise = _Noise.of(session, kind, seed if kind in FRESH_KINDS else None)
             spec = self.bundle.manifest.inputs
             self._state = _Loaded(
                 kind=kind,
                 session=session,
                 draws=int(self.bundle.manifest.graphs[kind].draws),
-                seed=seed if kind in _SAMPLING_KINDS else None,
+                seed=seed if kind in FRESH_KINDS else None,
                 noise=noise,
-                center=np.asarray(spec.center, dtype=np.float64).reshape(spec.shape),
-                scale=np.asarray(spec.scale, dtype=np.float64).reshape(spec.shape),
+                center=np.asarray(spec.center, dtype=np.float32).reshape(spec.shape),
+                scale=np.asarray(spec.scale, dtype=np.float32).reshape(spec.shape),
             )
         return self
 
@@ -281,11 +282,14 @@ class Engine:
 
     # -- running ------------------------------------------------------------------
     def standardise(self, x_raw: Any) -> np.ndarray:
-        """Raw inputs float[B, *shape] (or [B, F]) -> float32[B, *shape], (x - center) / scale."""
+        """Raw inputs float[B, *shape] (or [B, F]) -> float32[B, *shape], (x - center) / scale.
+
+        In float32 (one conversion of the request's numbers; validated requests already are
+        float32): the graph takes float32, and the support check reads this same array."""
         state = self._loaded()
         spec = self.bundle.manifest.inputs
         try:
-            x = np.asarray(x_raw, dtype=np.float64)  # standardise in float64, hand float32 to the graph
+            x = np.asarray(x_raw, dtype=np.float32)
         except (TypeError, ValueError) as exc:
             raise InvalidInput(f"x must be an array of numbers; got {type(x_raw).__name__} ({exc})", field="x") from exc
         if x.ndim < 1 or x.shape[0] < 1:
@@ -296,7 +300,7 @@ class Engine:
             else:
                 raise InvalidInput(f"x must be [B, {', '.join(map(str, spec.shape))}] (or [B, {spec.size}]); "
                                    f"got {list(x.shape)}", field="x")
-        return np.ascontiguousarray((x - state.center) / state.scale, dtype=np.float32)
+        return (x - state.center) / state.scale   # a new C-contiguous float32 array
 
     def _run(self, session: Any, x_std: np.ndarray, what: str, noise: _Noise | None = None) -> np.ndarray:
         feed = {"x": x_std, **noise.draw()} if noise is not None else {"x": x_std}
@@ -305,8 +309,13 @@ class Engine:
 
     def run(self, x_raw: Any) -> np.ndarray:
         """float[B, *shape] raw inputs -> float32[S, B, K] draws from the chosen graph."""
+        return self.run_standardised(self.standardise(x_raw))
+
+    def run_standardised(self, x_std: np.ndarray) -> np.ndarray:
+        """``standardise``'s output float32[B, *shape] -> float32[S, B, K] (the pipeline keeps
+        ``x_std`` for the support check, so a request is standardised once)."""
         state = self._loaded()
-        return self._run(state.session, self.standardise(x_raw), state.kind, state.noise)
+        return self._run(state.session, x_std, state.kind, state.noise)
 
     # -- description --------------------------------------------------------------
     @property

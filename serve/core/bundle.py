@@ -45,14 +45,26 @@ from demur.serve.errors import BundleError, BundleNotFound, ChecksumMismatch, Ma
 __all__ = [
     "FORMAT_NAME",
     "FORMAT_VERSION",
+    "FRESH_KINDS",
     "GRAPH_KINDS",
+    "NOISE_LAWS",
     "SCORES",
+    "SCORE_TASKS",
+    "SCORE_UNITS",
+    "SEED_MODULUS",
+    "SEED_STRIDE",
     "Bundle",
     "DecisionSection",
+    "FingerprintSection",
     "GraphEntry",
     "InputSpec",
     "Manifest",
+    "SupportSection",
+    "TrainingData",
+    "TrainingSection",
     "load_bundle",
+    "node_seed",
+    "noise_law",
     "sha256_file",
     "write_bundle",
     "write_manifest",
@@ -69,8 +81,54 @@ the graph per call; means: the deterministic graph of the posterior means
 (S = 1); flip: Flipout sign flips on a fresh low-rank base per call, its noise
 fed by the engine (export/flip.py)."""
 
-SCORES = ("mutual_information", "predictive_entropy", "one_minus_max_prob", "interval_width", "epistemic_std")
-"""Decision scores a bundle may name (see serve/core/decision.py for their meaning)."""
+FRESH_KINDS = ("sampler", "flip")
+"""The graph kinds that draw fresh weights on every call (their random nodes are reseeded at load)."""
+
+NOISE_LAWS = ("signs", "normals", "uniforms")
+"""Laws of the noise inputs a graph may take besides ``x``, filled afresh by the engine on
+every call: ``signs`` uniform +-1, ``normals`` N(0, 1), ``uniforms`` uniform on (0, 1]. An
+input's law is its name before the first dot (``noise_law``)."""
+
+SEED_MODULUS = 1 << 24
+"""Seeds of random nodes stay below 2**24, where float32 (RandomNormal's ``seed`` attribute) is exact."""
+
+SEED_STRIDE = 7919
+"""Node ``i`` of a graph seeded with ``base`` gets ``(base + SEED_STRIDE * i) mod SEED_MODULUS``
+(``node_seed``): distinct nodes keep distinct streams. The exporter wrote sampler graphs by
+this rule; the engine reseeds them by it at load."""
+
+SCORE_TASKS: dict[str, tuple[str, ...]] = {
+    "mutual_information": ("classification", "regression"),
+    "predictive_entropy": ("classification", "regression"),
+    "one_minus_max_prob": ("classification",),
+    "interval_width": ("regression",),
+    "epistemic_std": ("regression",),
+}
+"""Decision scores a bundle may name, and the tasks each is defined for (their meaning:
+serve/core/decision.py; larger always means "less sure")."""
+
+SCORES = tuple(SCORE_TASKS)
+"""Decision scores a bundle may name."""
+
+SCORE_UNITS: dict[str, str] = {
+    "mutual_information": "nats",
+    "predictive_entropy": "nats",
+    "one_minus_max_prob": "",
+    "interval_width": "target units",
+    "epistemic_std": "target units",
+}
+"""The unit of each score, for reports and metric help."""
+
+
+def noise_law(name: str) -> str:
+    """The law of a graph's noise input ``name``: the part before the first dot (``signs.flip.L0`` -> signs)."""
+    return name.split(".")[0]
+
+
+def node_seed(base: int, index: int) -> float:
+    """Seed attribute of the ``index``-th random node of a graph seeded with ``base`` (``SEED_STRIDE``)."""
+    return float((int(base) + SEED_STRIDE * int(index)) % SEED_MODULUS)
+
 
 Task = Literal["classification", "regression"]
 
@@ -128,6 +186,73 @@ class DecisionSection:
     threshold: float
     calibration: dict[str, Any] | None = None
 
+    @property
+    def expected_abstain_rate(self) -> float | None:
+        """The abstention rate the calibration record states (``achieved.abstain_rate``, in
+        [0, 1]), or None for an uncalibrated bundle or a record without one."""
+        achieved = (self.calibration or {}).get("achieved")
+        rate = achieved.get("abstain_rate") if isinstance(achieved, dict) else None
+        ok = isinstance(rate, (int, float)) and not isinstance(rate, bool) and 0.0 <= float(rate) <= 1.0
+        return float(rate) if ok else None
+
+    @property
+    def certificate(self) -> tuple[float, float] | None:
+        """(target accuracy of accepted cases, confidence) the calibration certified, or None
+        (uncalibrated, or calibrated for an abstention rate, which certifies no accuracy)."""
+        cal = self.calibration or {}
+        target = (cal.get("target") or {}).get("accuracy") if isinstance(cal.get("target"), dict) else None
+        delta = cal.get("delta")
+        if cal.get("bound") is None or not all(isinstance(v, (int, float)) and not isinstance(v, bool)
+                                               for v in (target, delta)):
+            return None
+        if not (0.0 < float(target) < 1.0 and 0.0 < float(delta) < 1.0):
+            return None
+        return float(target), 1.0 - float(delta)
+
+
+@dataclass(frozen=True)
+class TrainingData:
+    """How the training rows were loaded (``extensions.training.data``): ``source`` ("digits",
+    "diabetes" or a CSV path), its label column ``target`` and the split ``seed``."""
+
+    source: str
+    target: str | None
+    seed: int
+
+
+@dataclass(frozen=True)
+class TrainingSection:
+    """``extensions.training``, written when a ``demur train`` checkpoint is exported: the
+    checkpoint's ``metrics``, its ``data`` record, the training ``settings`` and the ``arch``
+    (kind, widths, posterior), so ``demur evaluate --holdout-class`` can retrain the same
+    network the same way. ``settings`` / ``arch`` are None when not recorded."""
+
+    data: TrainingData | None
+    settings: dict[str, Any] | None
+    arch: dict[str, Any] | None
+    metrics: dict[str, Any]
+
+
+@dataclass(frozen=True)
+class SupportSection:
+    """The ``support`` section: the support check's record (serve/core/support.py builds the
+    check from ``record``, and refuses a malformed one); ``threshold`` on the k-NN distance,
+    standardised units (None when the record has no number there)."""
+
+    threshold: float | None
+    record: dict[str, Any] = field(repr=False)
+
+
+@dataclass(frozen=True)
+class FingerprintSection:
+    """``extensions.training_rows``: the training rows' fingerprint (hashes only,
+    serve/core/fingerprint.py reads ``record``), for calibrate's and evaluate's leakage check;
+    ``rows``: how many training rows were hashed."""
+
+    method: str
+    rows: int
+    record: dict[str, Any] = field(repr=False)
+
 
 @dataclass(frozen=True)
 class Manifest:
@@ -147,6 +272,9 @@ class Manifest:
     drift_reference: dict[str, Any]
     target: dict[str, float]
     raw: dict[str, Any] = field(repr=False, compare=False, default_factory=dict)
+    training: TrainingSection | None = field(default=None, repr=False)
+    support: SupportSection | None = field(default=None, repr=False)
+    fingerprint: FingerprintSection | None = field(default=None, repr=False)
 
     @property
     def outputs(self) -> int:
@@ -287,6 +415,10 @@ def _parse(raw: dict[str, Any]) -> Manifest:
         threshold=float(_need(dec, "threshold", (int, float), "decision.")),
         calibration=dec.get("calibration"),
     )
+    extensions = raw.get("extensions") or {}
+    if not isinstance(extensions, dict):
+        raise ManifestInvalid(f"manifest 'extensions' must be an object; got {type(extensions).__name__}",
+                              field="extensions")
     level = float(raw.get("interval_level", 0.9))
     if not 0.0 < level < 1.0:
         raise ManifestInvalid(f"interval_level must be in (0, 1); got {level}", field="interval_level")
@@ -304,7 +436,48 @@ def _parse(raw: dict[str, Any]) -> Manifest:
         drift_reference=dict(raw.get("drift_reference", {})),
         target=dict(raw.get("target", {"center": 0.0, "scale": 1.0})),
         raw=raw,
+        training=_training(extensions.get("training")),
+        support=_support(raw.get("support")),
+        fingerprint=_fingerprint(extensions.get("training_rows")),
     )
+
+
+def _training(t: Any) -> TrainingSection | None:
+    if t is None:
+        return None
+    if not isinstance(t, dict):
+        raise ManifestInvalid(f"manifest 'extensions.training' must be an object; got {type(t).__name__}",
+                              field="extensions.training")
+    d = t.get("data")
+    data = None
+    if isinstance(d, dict) and d:
+        target = d.get("target")
+        data = TrainingData(source=str(d.get("source", "")), target=None if target is None else str(target),
+                            seed=int(d.get("seed", 0)))
+    settings, arch, metrics = t.get("settings"), t.get("arch"), t.get("metrics")
+    return TrainingSection(data=data, settings=dict(settings) if isinstance(settings, dict) else None,
+                           arch=dict(arch) if isinstance(arch, dict) else None,
+                           metrics=dict(metrics) if isinstance(metrics, dict) else {})
+
+
+def _support(record: Any) -> SupportSection | None:
+    if not record:
+        return None
+    if not isinstance(record, dict):
+        raise ManifestInvalid(f"manifest 'support' must be an object; got {type(record).__name__}", field="support")
+    threshold = record.get("threshold")  # checked, with the rest of the record, where the check is built
+    number = isinstance(threshold, (int, float)) and not isinstance(threshold, bool)
+    return SupportSection(threshold=float(threshold) if number else None, record=record)
+
+
+def _fingerprint(record: Any) -> FingerprintSection | None:
+    if record is None:
+        return None
+    if not isinstance(record, dict):
+        raise ManifestInvalid(f"manifest 'extensions.training_rows' must be an object; got "
+                              f"{type(record).__name__}", field="extensions.training_rows")
+    return FingerprintSection(method=str(record.get("method", "")), rows=int(record.get("rows", 0) or 0),
+                              record=record)
 
 
 def load_bundle(path: str | os.PathLike[str], *, verify: bool = True) -> Bundle:

@@ -25,10 +25,18 @@ The threshold comes from the bundle's decision section (set by ``demur
 calibrate``) unless the server configuration overrides it; every decision
 carries which score, threshold and source were used and a one-line reason.
 
+One rule object decides everywhere: ``ServedRule`` (the support check, then the
+score against the threshold) is what the server (serve/core/pipeline.py), ``demur
+calibrate``, ``demur evaluate`` and offline scoring call, so a figure printed offline
+is the figure served. ``demur calibrate`` places the threshold strictly between two
+calibration scores (midway in the gap, serve/offline/calibration.py), never on one: a
+score recomputed in another batch differs in its last float32 bits and must not
+change sides.
+
 Example::
 
-    rule = DecisionRule("mutual_information", 0.15, "calibrated")
-    d = decide(summary, rule)
+    served = ServedRule.from_manifest(bundle.manifest)        # rule + the bundle's support check
+    d = served.decide(summary, x_raw)                         # x_raw: float[B, *shape], raw units
     d.abstain      # bool[B]
     d.reason[0]    # 'mutual_information 0.412 nats > threshold 0.150'
 """
@@ -41,30 +49,12 @@ from typing import Any
 
 import numpy as np
 
-from demur.serve.core.bundle import SCORES
+from demur.serve.core.bundle import SCORE_TASKS, SCORE_UNITS, SCORES
 from demur.serve.errors import ConfigError
 from demur.serve.core.summary import Summary
-from demur.serve.core.support import SupportCheck
+from demur.serve.core.support import SupportCheck, support_from_manifest
 
-__all__ = ["SCORE_TASKS", "SCORE_UNITS", "DecisionRule", "Verdicts", "decide", "rule_from", "score_values"]
-
-SCORE_TASKS: dict[str, tuple[str, ...]] = {
-    "mutual_information": ("classification", "regression"),
-    "predictive_entropy": ("classification", "regression"),
-    "one_minus_max_prob": ("classification",),
-    "interval_width": ("regression",),
-    "epistemic_std": ("regression",),
-}
-"""Which tasks each score is defined for."""
-
-SCORE_UNITS: dict[str, str] = {
-    "mutual_information": "nats",
-    "predictive_entropy": "nats",
-    "one_minus_max_prob": "",
-    "interval_width": "target units",
-    "epistemic_std": "target units",
-}
-
+__all__ = ["DecisionRule", "ServedRule", "Verdicts", "decide", "rule_from", "score_values"]
 
 @dataclass(frozen=True)
 class DecisionRule:
@@ -117,25 +107,65 @@ def score_values(summary: Summary, name: str) -> np.ndarray:
 
 
 def decide(summary: Summary, rule: DecisionRule, *, support: SupportCheck | None = None,
-           x_raw: np.ndarray | None = None) -> Verdicts:
-    """Apply ``rule`` to every case of ``summary``; with ``support`` (and the raw inputs
-    ``x_raw``: float[B, *shape], before standardisation) a case outside the training data
-    abstains too, its reason first."""
-    score = score_values(summary, rule.score)
-    abstain = score > rule.threshold
-    unit = SCORE_UNITS[rule.score]
-    unit = f" {unit}" if unit else ""
-    reason = [
-        f"{rule.score} {v:.4g}{unit} {'>' if a else '<='} threshold {rule.threshold:.4g}"
-        for v, a in zip(score.tolist(), abstain.tolist())
-    ]
-    if support is None:
-        return Verdicts(score=score, abstain=abstain, reason=reason)
-    if x_raw is None or len(x_raw) != len(score):
-        raise ValueError("decide with a support check needs the raw inputs of every case (x_raw)")
-    checked = support.check(x_raw)
-    reason = [f"{why}; {r}" if why else r for why, r in zip(checked.reason, reason)]
-    return Verdicts(score=score, abstain=abstain | checked.outside, reason=reason, outside=checked.outside)
+           x_raw: np.ndarray | None = None, x_std: np.ndarray | None = None) -> Verdicts:
+    """``ServedRule(rule, support).decide(summary, x_raw, x_std)``: kept for callers that hold the two apart."""
+    return ServedRule(rule, support).decide(summary, x_raw, x_std)
+
+
+@dataclass(frozen=True)
+class ServedRule:
+    """The rule a bundle serves: the support check first (a case outside the training data
+    abstains whatever its score, reason first), then abstain iff score > threshold.
+
+    The one object every path decides with: the server, ``demur calibrate`` (which certifies
+    exactly this rule), ``demur evaluate`` and offline scoring. ``support`` None: a bundle
+    exported without a support record, decided on the score alone.
+    """
+
+    rule: DecisionRule
+    support: SupportCheck | None = None
+
+    @classmethod
+    def from_manifest(cls, manifest: Any, config: Any = None) -> ServedRule:
+        """The rule in force for a bundle's manifest (``rule_from``) with its support check."""
+        return cls(rule_from(manifest, config), support_from_manifest(manifest))
+
+    def outside(self, x_raw: np.ndarray | None, n: int,
+                x_std: np.ndarray | None = None) -> tuple[np.ndarray, list[str | None]]:
+        """(bool[n] outside the training data, reason per case or None); all inside without a check.
+        ``x_std``: the same cases standardised as the graph saw them (float32), if at hand."""
+        if self.support is None:
+            return np.zeros(n, dtype=bool), [None] * n
+        if x_raw is None or len(x_raw) != n:
+            raise ValueError("a rule with a support check needs the raw inputs of every case (x_raw)")
+        checked = self.support.check(x_raw, x_std)
+        return np.asarray(checked.outside, dtype=bool), list(checked.reason)
+
+    def ranking(self, summary: Summary, x_raw: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """(score float64[B], outside bool[B]). ``np.where(outside, inf, score)`` is the served
+        rule as one number: a case is accepted iff it is <= the threshold (calibrate ranks by it)."""
+        score = score_values(summary, self.rule.score)
+        return score, self.outside(x_raw, len(score))[0]
+
+    def decide(self, summary: Summary, x_raw: np.ndarray | None = None,
+               x_std: np.ndarray | None = None) -> Verdicts:
+        """Apply the rule to every case of ``summary``; ``x_raw`` float[B, *shape] are the raw
+        inputs (before standardisation), needed when there is a support check; ``x_std`` the
+        engine's standardised copy, so the check does not standardise again."""
+        rule = self.rule
+        score = score_values(summary, rule.score)
+        abstain = score > rule.threshold
+        unit = SCORE_UNITS[rule.score]
+        unit = f" {unit}" if unit else ""
+        reason = [
+            f"{rule.score} {v:.4g}{unit} {'>' if a else '<='} threshold {rule.threshold:.4g}"
+            for v, a in zip(score.tolist(), abstain.tolist())
+        ]
+        if self.support is None:
+            return Verdicts(score=score, abstain=abstain, reason=reason)
+        outside, why = self.outside(x_raw, len(score), x_std)
+        reason = [f"{w}; {r}" if w else r for w, r in zip(why, reason)]
+        return Verdicts(score=score, abstain=abstain | outside, reason=reason, outside=outside)
 
 
 def rule_from(manifest: Any, config: Any = None) -> DecisionRule:

@@ -4,7 +4,7 @@ Data flows one way::
 
     parsed body -> validation.validate_predict (InputSpec of the live model)
       -> runner(engine, x)             float32[S, B, K]
-      -> summary.summarise -> decision.decide -> render.results
+      -> summary.summarise -> decision.ServedRule.decide -> render.results
       -> review.enqueue(Answered)      one annotation per case, merged into its result
       -> metrics.observe_predict(...)  -> response dicts
 
@@ -23,6 +23,7 @@ Example::
 
 from __future__ import annotations
 
+import functools
 import logging
 import threading
 import time
@@ -34,7 +35,7 @@ import numpy as np
 
 from demur.serve.config import ServeConfig
 from demur.serve.core import render
-from demur.serve.core.decision import DecisionRule, Verdicts, decide, rule_from
+from demur.serve.core.decision import DecisionRule, ServedRule, Verdicts, rule_from
 from demur.serve.core.summary import Summary, summarise
 from demur.serve.core.support import support_from_manifest
 from demur.serve.core.validation import PredictRequest, validate_predict
@@ -62,15 +63,28 @@ class Live:
     Immutable; a roll-out replaces the whole object."""
 
     engine: Any
-    rule: DecisionRule
+    served: ServedRule  # the one rule: support check, then score vs threshold (core/decision.py)
     level: float
     model: dict[str, str]
     loaded_at: float
-    support: Any = None  # demur.serve.core.support.SupportCheck, None for a bundle without one
+
+    @property
+    def rule(self) -> DecisionRule:
+        return self.served.rule
+
+    @property
+    def support(self) -> Any:
+        """The support check (demur.serve.core.support.SupportCheck), None for a bundle without one."""
+        return self.served.support
 
     @property
     def manifest(self) -> Any:
         return self.engine.manifest
+
+    @functools.cached_property
+    def decision_rule(self) -> dict[str, Any]:
+        """The rule in force as every answer and ``GET /v1/model`` show it, built once per model."""
+        return {"score": self.rule.score, "threshold": self.rule.threshold, "source": self.rule.source}
 
 
 @dataclass(frozen=True)
@@ -100,7 +114,8 @@ class ReviewHook(Protocol):
 
 
 class MetricsHook(Protocol):
-    """What the pipeline and the fronts report to (serve/adapters/metrics.py implements it)."""
+    """Everything the pipeline and the fronts report (serve/adapters/metrics.py implements it).
+    Callers go through ``Runtime.monitor``, which guards every call once."""
 
     def bind_model(self, bundle: Any, rule: DecisionRule) -> None: ...
 
@@ -108,6 +123,10 @@ class MetricsHook(Protocol):
                         graph_seconds: float, total_seconds: float) -> None: ...
 
     def observe_error(self, *, status: int, code: str, endpoint: str | None) -> None: ...
+
+    def observe_request(self, route: str, method: str, status: int, seconds: float) -> None: ...
+
+    def observe_connection_refused(self) -> None: ...
 
 
 class _NoReview:
@@ -127,6 +146,43 @@ class _NoMetrics:
 
     def observe_error(self, **_: Any) -> None:
         return None
+
+    def observe_request(self, route: str, method: str, status: int, seconds: float) -> None:
+        return None
+
+    def observe_connection_refused(self) -> None:
+        return None
+
+
+class _Guarded:
+    """The metrics hook behind one guard: a failing metric is logged, never costs an answer,
+    a connection or a roll-out. Every caller (pipeline, fronts, error handler) goes through it."""
+
+    def __init__(self, hook: MetricsHook) -> None:
+        self.hook = hook
+
+    def _call(self, fn: Callable[..., None], *args: Any, **kwargs: Any) -> None:
+        try:
+            fn(*args, **kwargs)
+        except Exception:  # metrics must never cost an answer
+            log.exception("metrics hook failed")
+
+    def bind_model(self, bundle: Any, rule: DecisionRule) -> None:
+        self._call(self.hook.bind_model, bundle, rule)
+
+    def observe_predict(self, *, x_raw: np.ndarray, summary: Summary, decisions: Verdicts,
+                        graph_seconds: float, total_seconds: float) -> None:
+        self._call(self.hook.observe_predict, x_raw=x_raw, summary=summary, decisions=decisions,
+                   graph_seconds=graph_seconds, total_seconds=total_seconds)
+
+    def observe_error(self, *, status: int, code: str, endpoint: str | None) -> None:
+        self._call(self.hook.observe_error, status=status, code=code, endpoint=endpoint)
+
+    def observe_request(self, route: str, method: str, status: int, seconds: float) -> None:
+        self._call(self.hook.observe_request, route, method, status, seconds)
+
+    def observe_connection_refused(self) -> None:
+        self._call(self.hook.observe_connection_refused)
 
 
 class ModelSlot:
@@ -184,10 +240,11 @@ class Runtime:
         self.slot = ModelSlot()
         self.review: ReviewHook = review if review is not None else _NoReview()
         self.metrics: MetricsHook = metrics if metrics is not None else _NoMetrics()
+        self.monitor: MetricsHook = _Guarded(self.metrics)  # how everyone reports: one guard
         self._load_engine = load_engine
         self.model_extras: list[Callable[[], dict[str, Any]]] = []
         self.started_at = time.time()
-        self.slot.subscribe(lambda live: self.metrics.bind_model(live.engine.bundle, live.rule))
+        self.slot.subscribe(lambda live: self.monitor.bind_model(live.engine.bundle, live.rule))
 
     # -- models ------------------------------------------------------------------
     def build_engine(self, bundle_path: str | None = None) -> Any:
@@ -211,8 +268,8 @@ class Runtime:
         rule = rule_from(manifest, self.config)
         level = float(self.config.interval_level or manifest.interval_level)
         model = render.model_ref(manifest.model_name, manifest.model_version, engine.checksum)
-        live = Live(engine=engine, rule=rule, level=level, model=model, loaded_at=time.time(),
-                    support=support_from_manifest(manifest))
+        live = Live(engine=engine, served=ServedRule(rule, support_from_manifest(manifest)), level=level,
+                    model=model, loaded_at=time.time())
         self._smoke(live)
         return live
 
@@ -227,8 +284,7 @@ class Runtime:
             raise BundleError(
                 f"smoke prediction failed: expected finite draws of shape [S, 1, {k}]; got shape "
                 f"{list(draws.shape)}", field="bundle")
-        decide(summarise(live.manifest.task, draws, live.level, live.manifest.target), live.rule,
-               support=live.support, x_raw=x)
+        live.served.decide(summarise(live.manifest.task, draws, live.level, live.manifest.target), x)
 
     def install(self, engine: Any) -> Live | None:
         """Prepare ``engine`` and make it live; return the model it replaced."""
@@ -271,12 +327,11 @@ class Runtime:
         req = valid[0][1] if len(valid) == 1 else PredictRequest(
             x=np.concatenate([r.x for _, r in valid]), case_ids=[c for _, r in valid for c in r.case_ids])
         answered = self.answer_request(req, caller=caller, live=live, started=t0)
-        rule = {"score": live.rule.score, "threshold": live.rule.threshold, "source": live.rule.source}
         draw_count = answered.summary.draws
         start = 0
         for i, r in valid:
             answers[i] = {"model": live.model, "results": answered.results[start:start + r.size],
-                          "draws": draw_count, "decision_rule": rule}
+                          "draws": draw_count, "decision_rule": live.decision_rule}
             start += r.size
         return live, answers
 
@@ -295,23 +350,21 @@ class Runtime:
         live = live if live is not None else self.slot.live
         manifest = live.manifest
         t1 = time.perf_counter()
-        draws = live.engine.run(req.x)
+        x_std = live.engine.standardise(req.x)   # once: the graph and the support check read it
+        draws = live.engine.run_standardised(x_std)
         t2 = time.perf_counter()
         if draws.ndim != 3 or draws.shape[1] != req.size:
             raise GraphRunError(f"the graph returned draws of shape {list(draws.shape)} for {req.size} cases")
         summary = summarise(manifest.task, draws, live.level, manifest.target)
-        decisions = decide(summary, live.rule, support=live.support, x_raw=req.x)
+        decisions = live.served.decide(summary, req.x, x_std)
         if not rendered:
             answered = Answered(live, req, summary, decisions, [], caller)
         else:
             results = render.results(summary, decisions, live.rule, manifest.labels, req.case_ids)
             answered = Answered(live, req, summary, decisions, results, caller)
             self._annotate(answered)
-        try:
-            self.metrics.observe_predict(x_raw=req.x, summary=summary, decisions=decisions,
-                                         graph_seconds=t2 - t1, total_seconds=time.perf_counter() - t0)
-        except Exception:  # metrics must never cost an answer
-            log.exception("metrics hook failed")
+        self.monitor.observe_predict(x_raw=req.x, summary=summary, decisions=decisions,
+                                     graph_seconds=t2 - t1, total_seconds=time.perf_counter() - t0)
         return answered
 
     def _annotate(self, answered: Answered) -> None:
@@ -345,8 +398,7 @@ class Runtime:
             "graph": live.engine.kind,
             "draws": live.engine.draws,
             "interval_level": live.level,
-            "decision_rule": {"score": live.rule.score, "threshold": live.rule.threshold,
-                              "source": live.rule.source},
+            "decision_rule": live.decision_rule,
             "calibration": m.decision.calibration,
             "support": live.support.describe() if live.support is not None else {
                 "checked": False, "reason": "this bundle has no support record (exported before the support "

@@ -15,8 +15,9 @@ Classification (``K`` logits per draw)
     ``mutual_information``  H[p̄] - (1/S) Σ_s H[p_s]                   [B]
         the BALD decomposition of Houlsby et al. (2011), eq. (1): the mutual
         information between the label and the weights under the S-draw
-        posterior sample. It is >= 0 by Jensen's inequality; values below
-        zero can only be float round-off (of order 1e-16) and are clipped to 0.
+        posterior sample. It is >= 0 by Jensen's inequality; values at or
+        below 1e-13 x max(H[p̄], 1) can only be float round-off (of order
+        1e-16) and are set to 0, so identical draws (the means graph) give 0.
     ``one_minus_max_prob``  1 - max_k p̄_k                              [B]
 
 Regression (``K = 2``: mean and log-variance in standardised target units)
@@ -107,6 +108,10 @@ _LOG_VAR_LIMIT = 60.0
 wild draw gives a huge but finite variance instead of an overflow."""
 
 _LN_2PIE = float(np.log(2.0 * np.pi * np.e))
+
+_ROUND_OFF = 1e-13
+"""Classification mutual information at or below this share of max(H[p̄], 1) nats is float
+round-off (float64 sums of the same terms differ by ~1e-16 relative) and is reported as 0."""
 
 
 @dataclass(frozen=True)
@@ -236,7 +241,10 @@ def classification_summary(logits: np.ndarray, level: float = 0.9) -> Classifica
     mean_probs = p.mean(axis=1)                            # [K, B], p̄
     log_mean = np.log(np.where(mean_probs > 0.0, mean_probs, 1.0))  # 0 ln 0 = 0 where every draw underflowed
     predictive_entropy = -_rows(np.add, mean_probs * log_mean)
-    mutual_information = np.maximum(predictive_entropy - expected_entropy, 0.0)
+    mutual_information = predictive_entropy - expected_entropy
+    # Round-off of the difference (two sums of the same terms when every draw agrees, e.g. the
+    # means graph) is set to 0: ~1e-17 nats of noise must not rank cases or meet a threshold.
+    mutual_information[mutual_information <= _ROUND_OFF * np.maximum(predictive_entropy, 1.0)] = 0.0
     mean_probs = np.ascontiguousarray(mean_probs.T)       # [B, K]
 
     q = _quantiles(p, ((1.0 - level) / 2.0, (1.0 + level) / 2.0), axis=1)  # [2, K, B]

@@ -62,7 +62,7 @@ from __future__ import annotations
 
 import base64
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -111,6 +111,10 @@ REASON = "outside_training_data"
 
 _CONSTANT = 1e-12
 
+_ROUNDING = 1e-5
+"""Past-the-bound distance (scale units) below which a standardised float32 value counts as on the
+bound: float32 standardisation moves a value by ~1e-7 relative, far less than this."""
+
 
 def standardisation(x: np.ndarray, *, shared_units: bool = False) -> tuple[np.ndarray, np.ndarray]:
     """Per-feature (center, scale) of training inputs ``x``: float[N, F] -> float64[F], float64[F].
@@ -135,9 +139,12 @@ def standardisation(x: np.ndarray, *, shared_units: bool = False) -> tuple[np.nd
 
 
 def conformal_threshold(scores: np.ndarray, alpha: float) -> tuple[float, float]:
-    """(threshold, false-alarm bound): the ceil((n+1)(1-alpha))-th smallest of the n held-out
+    """(threshold, false-alarm bound): the ceil((n+1)(1-alpha))-th smallest s_(k) of the n held-out
     ``scores`` and 1 - k/(n+1), the bound on P(new in-distribution score > threshold).
-    With too few scores for ``alpha`` the largest is used (bound 1/(n+1))."""
+    With too few scores for ``alpha`` the largest is used (bound 1/(n+1)). The threshold is
+    written midway between s_(k) and the next larger score (0.1% above s_(k) when there is
+    none), never on a held-out case's own distance: a distance recomputed in another batch
+    (float32 inputs, BLAS blocking) differs in its last bits and must not change sides."""
     if not 0.0 < alpha < 1.0:
         raise ConfigError(f"alpha must be in (0, 1); got {alpha}", field="alpha")
     s = np.sort(np.asarray(scores, dtype=np.float64).ravel())
@@ -145,7 +152,10 @@ def conformal_threshold(scores: np.ndarray, alpha: float) -> tuple[float, float]
     if n < 1:
         raise ConfigError("the support threshold needs held-out cases; got none", field="x_heldout")
     k = min(n, math.ceil((n + 1) * (1.0 - alpha) - 1e-12))
-    return float(s[k - 1]), 1.0 - k / (n + 1)
+    kth = float(s[k - 1])
+    above = s[s > kth]
+    threshold = kth + 0.5 * (float(above[0]) - kth) if len(above) and np.isfinite(above[0]) else kth * 1.001 + 1e-12
+    return threshold, 1.0 - k / (n + 1)
 
 
 @dataclass(frozen=True)
@@ -161,7 +171,12 @@ class SupportResult:
 @dataclass(frozen=True)
 class SupportCheck:
     """The manifest's support record, ready to test cases. ``sample``: float32[N, F] standardised
-    training inputs; ``threshold`` on the k-NN distance; ``low/high/margin`` raw units."""
+    training inputs; ``threshold`` on the k-NN distance; ``low/high/margin`` raw units.
+
+    Per request the check costs one [B, F] x [F, N] float32 matrix product and a partial sort:
+    the sample's squared norms and the range bounds in standardised units are computed once,
+    here, and the sample is never copied per call. Pass the graph's standardised input
+    (``x_std``, the engine's) so the case is standardised once per request."""
 
     names: tuple[str, ...]
     low: np.ndarray
@@ -173,42 +188,66 @@ class SupportCheck:
     neighbours: int
     threshold: float
     record: dict[str, Any]
+    _pre: dict[str, np.ndarray] = field(default_factory=dict, init=False, repr=False, compare=False)
 
-    def distance(self, x_raw: np.ndarray) -> np.ndarray:
-        """k-NN distance of each case to the training sample, float64[B] (standardised units)."""
-        z = (np.asarray(x_raw, dtype=np.float64).reshape(len(x_raw), -1) - self.center) / self.scale
-        s = self.sample
-        d2 = (z * z).sum(axis=1)[:, None] - 2.0 * (z @ s.T) + (s * s).sum(axis=1)[None, :]
-        k = min(self.neighbours, s.shape[0])
+    def __post_init__(self) -> None:
+        sample = np.ascontiguousarray(self.sample, dtype=np.float32)
+        object.__setattr__(self, "sample", sample)
+        self._pre.update(
+            sq=np.einsum("ij,ij->i", sample, sample),                                   # float32[N]
+            center=self.center.astype(np.float32).ravel(), scale=self.scale.astype(np.float32).ravel(),
+            lo=(((self.low - self.margin) - self.center) / self.scale).astype(np.float32),
+            hi=(((self.high + self.margin) - self.center) / self.scale).astype(np.float32),
+        )
+
+    def standardised(self, x_raw: np.ndarray) -> np.ndarray:
+        """float32[B, F]: (x - center) / scale, in float32 (the engine's standardisation)."""
+        x = np.asarray(x_raw, dtype=np.float32).reshape(len(x_raw), -1)
+        return (x - self._pre["center"]) / self._pre["scale"]
+
+    def _z(self, x_raw: np.ndarray, x_std: np.ndarray | None) -> np.ndarray:
+        if x_std is None:
+            return self.standardised(x_raw)
+        return np.asarray(x_std, dtype=np.float32).reshape(len(x_std), -1)
+
+    def distance(self, x_raw: np.ndarray, x_std: np.ndarray | None = None) -> np.ndarray:
+        """k-NN distance of each case to the training sample, float64[B] (standardised units);
+        ``x_std``: the same cases already standardised (skips standardising them again)."""
+        z = self._z(x_raw, x_std)
+        d2 = np.einsum("ij,ij->i", z, z)[:, None] - 2.0 * (z @ self.sample.T) + self._pre["sq"][None, :]
+        k = min(self.neighbours, self.sample.shape[0])
         kth = np.partition(d2, k - 1, axis=1)[:, k - 1]
-        return np.sqrt(np.maximum(kth, 0.0))
+        return np.sqrt(np.maximum(kth, 0.0)).astype(np.float64)
 
-    def scores(self, x_raw: np.ndarray) -> np.ndarray:
+    def scores(self, x_raw: np.ndarray, x_std: np.ndarray | None = None) -> np.ndarray:
         """The nonconformity score: the k-NN distance, +inf where the range check fails."""
-        x = np.asarray(x_raw, dtype=np.float64).reshape(len(x_raw), -1)
-        d = self.distance(x)
-        return np.where(self._excess(x).max(axis=1, initial=0.0) > 0, np.inf, d)
+        z = self._z(x_raw, x_std)
+        d = self.distance(x_raw, z)
+        return np.where(self._excess(z).max(axis=1, initial=0.0) > 0, np.inf, d)
 
-    def _excess(self, x: np.ndarray) -> np.ndarray:
-        """How far each feature lies past its range plus margin, in scale units (0 inside)."""
-        below = (self.low - self.margin) - x
-        above = x - (self.high + self.margin)
-        return np.maximum(np.maximum(below, above), 0.0) / self.scale
+    def _excess(self, z: np.ndarray) -> np.ndarray:
+        """How far each standardised feature lies past its range plus margin, in scale units (0 inside;
+        a float32 rounding step at the bound counts as inside)."""
+        past = np.maximum(self._pre["lo"] - z, z - self._pre["hi"])
+        return np.where(past > _ROUNDING, past, 0.0)
 
-    def check(self, x_raw: np.ndarray) -> SupportResult:
-        """Test every case of ``x_raw`` (float[B, *shape], raw units)."""
-        x = np.asarray(x_raw, dtype=np.float64).reshape(len(x_raw), -1)
-        excess = self._excess(x)
+    def check(self, x_raw: np.ndarray, x_std: np.ndarray | None = None) -> SupportResult:
+        """Test every case of ``x_raw`` (float[B, *shape], raw units; ``x_std`` the same cases
+        standardised, as the engine fed them to the graph)."""
+        x = np.asarray(x_raw).reshape(len(x_raw), -1)
+        z = self._z(x_raw, x_std)
+        excess = self._excess(z)
         worst = excess.argmax(axis=1) if x.shape[1] else np.zeros(len(x), dtype=np.int64)
         ranged = excess[np.arange(len(x)), worst] > 0 if x.shape[1] else np.zeros(len(x), dtype=bool)
-        dist = self.distance(x)
+        dist = self.distance(x_raw, z)
         far = dist > self.threshold
         reasons: list[str | None] = []
         for i in range(len(x)):
             if ranged[i]:
                 j = int(worst[i])
-                side = "above" if x[i, j] > self.high[j] else "below"
-                reasons.append(f"{REASON}: feature {self.names[j]} = {x[i, j]:.4g} {side} training range "
+                value = float(x[i, j])
+                side = "above" if value > self.high[j] else "below"
+                reasons.append(f"{REASON}: feature {self.names[j]} = {value:.4g} {side} training range "
                                f"{self.low[j]:.4g}-{self.high[j]:.4g}")
             elif far[i]:
                 reasons.append(f"{REASON}: distance to training data {dist[i]:.4g} > {self.threshold:.4g}")
@@ -319,9 +358,5 @@ def _from_record(record: dict[str, Any], inputs: Any) -> SupportCheck:
 
 def support_from_manifest(manifest: Any) -> SupportCheck | None:
     """The bundle's support check, or None for a bundle exported without one."""
-    record = (getattr(manifest, "raw", None) or {}).get("support")
-    if not record:
-        return None
-    if not isinstance(record, dict):
-        raise ManifestInvalid(f"manifest 'support' must be an object; got {type(record).__name__}", field="support")
-    return _from_record(record, manifest.inputs)
+    section = getattr(manifest, "support", None)  # the typed section, parsed once at load
+    return _from_record(section.record, manifest.inputs) if section is not None else None

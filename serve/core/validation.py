@@ -39,6 +39,7 @@ import numpy as np
 import orjson
 
 from demur.serve.core.bundle import InputSpec
+from demur.serve.core.npy_body import ArrayBody, validate_array
 from demur.serve.errors import InvalidInput, PayloadTooLarge
 
 __all__ = ["BODY_KEYS", "MAX_CASE_ID_CHARS", "PredictRequest", "client_text", "parse_json", "validate_predict"]
@@ -111,6 +112,9 @@ def validate_predict(body: Any, spec: InputSpec, max_cases: int) -> PredictReque
         req = validate_predict({"cases": [[0.0] * 64]}, manifest.inputs, 1024)
         req.x.shape    # (1, 64) for a flat spec, (1, 1, 8, 8) for an image spec
     """
+    if isinstance(body, ArrayBody):  # the binary body (serve/core/npy_body.py): cases only, no ids
+        x = validate_array(body, spec, max_cases)
+        return PredictRequest(x=x, case_ids=[None] * len(x))
     if not isinstance(body, dict):
         raise InvalidInput(
             f"body must be a JSON object like {{\"cases\": [...]}}; got {_kind(body)}", field="body"

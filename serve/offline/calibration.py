@@ -1,4 +1,5 @@
-"""Held-out metrics, and thresholds chosen from labelled data with a stated guarantee.
+"""Thresholds chosen from labelled data with a stated guarantee (the measuring is
+``demur.serve.offline.metrics``).
 
 Pure numpy + scipy (no flask, no onnxruntime): the inputs are the serving
 path's own summaries and scores, computed by the caller (``demur calibrate``).
@@ -19,8 +20,18 @@ Threshold choice -- three ways
    accepts ceil((1 - max_abstain) n) cases (the most conservative threshold the
    budget allows) to n. Candidate k is the calibration scores' order statistic
    s_(k) and accepts the cases scored below it; the threshold written to the
-   bundle is the float just below s_(k), so the served rule "abstain iff score >
-   threshold" accepts exactly those cases. Each candidate's accepted-case error
+   bundle sits midway between s_(k) and the largest calibration score below it
+   (``threshold_between``), so the served rule "abstain iff score > threshold"
+   accepts exactly those cases, and a score recomputed in another batch (float32
+   sums change in their last bits with batch composition) does not change sides.
+   The bound below is for "accept scores below s_(k)"; the served rule differs
+   from it only on scores inside that gap, where no calibration case lies (its
+   expected population mass is one order-statistic spacing, 1/(n + 1)).
+
+   The scores are the SERVED rule's (``demur.serve.core.decision.ServedRule``):
+   a case the support check puts outside the training data scores +inf, so it
+   abstains at every candidate, and every figure (abstain rate, accepted
+   accuracy, the bound) is the served rule's. Each candidate's accepted-case error
    rate gets the one-sided Clopper-Pearson upper bound (Clopper & Pearson 1934),
    ``scipy.stats.beta.ppf(1 - level, e + 1, a - e)`` for e errors among a
    accepted. Why a bound at a data-chosen threshold is exact: given s_(k), the
@@ -53,7 +64,9 @@ Threshold choice -- three ways
    ``CalibrationInfeasible`` gives the best figures achievable.
 
 2. Target abstention rate r (``select_for_abstain``): the threshold is the
-   ceil((n + 1)(1 - r))-th smallest calibration score. By exchangeability a new
+   ceil((n + 1)(1 - r))-th smallest calibration score s_(k) (written midway to the
+   next larger one, ``threshold_between``; the support check's +inf scores count
+   as abstentions, so r bounds the served rule's rate). By exchangeability a new
    case's score is <= it with probability >= ceil((n+1)(1-r))/(n+1) >= 1 - r,
    so the expected abstention rate is at most r (and at least r - 1/(n+1)
    for continuous scores): the finite-sample-corrected empirical quantile
@@ -72,17 +85,6 @@ Threshold choice -- three ways
    >= 1 - alpha. serve/core/summary.py applies it (manifest ``target.conformal_q``
    at ``target.conformal_level``, ``target.aleatoric_floor``).
 
-Held-out metrics
-----------------
-accuracy; NLL (mean -ln p_y, nats); Brier score (Brier 1950: mean over cases
-of Σ_k (p_k - 1[y = k])^2, range [0, 2]; halved for two classes, as
-sklearn.metrics.brier_score_loss does); ECE with 15 equal-width bins on the
-max-probability confidence, bins ((m-1)/M, m/M] (Guo, Pleiss, Sun & Weinberger
-2017, eq. 3); the risk-coverage curve and AURC (its mean risk over the n
-coverage steps, cases ordered by increasing score, ties in input order;
-Geifman, Uziel & El-Yaniv 2019); accuracy at referral rates 0, 5, 10, 20, 30,
-50 % (the round(r n) highest-score cases referred). Regression: coverage,
-mean interval width, RMSE, MAE.
 """
 
 from __future__ import annotations
@@ -101,37 +103,21 @@ from demur.serve.errors import CalibrationInfeasible, ConfigError
 
 __all__ = [
     "DEFAULT_MAX_ABSTAIN",
-    "ECE_BINS",
     "MAX_CANDIDATES",
-    "REFERRAL_RATES",
     "ThresholdChoice",
-    "accuracy_at_referral",
-    "aurc",
-    "brier_score",
     "calibration_record",
-    "classification_metrics",
     "batch_spread",
     "candidate_ranks",
     "check_feasible",
     "conformal_scale",
     "error_upper_bound",
-    "expected_calibration_error",
     "fingerprint",
     "guarantee_text",
     "minimum_rows",
-    "negative_log_likelihood",
-    "regression_metrics",
-    "reliability_bins",
-    "risk_coverage",
     "select_for_abstain",
     "select_for_accuracy",
+    "threshold_between",
 ]
-
-ECE_BINS = 15
-"""Equal-width confidence bins for ECE (Guo et al. 2017 use 15)."""
-
-REFERRAL_RATES = (0.0, 0.05, 0.10, 0.20, 0.30, 0.50)
-"""Shares of cases sent to people at which accepted-case accuracy is reported."""
 
 MAX_CANDIDATES = 50
 """Most thresholds searched when targeting an accuracy."""
@@ -157,137 +143,6 @@ def error_upper_bound(errors: int | np.ndarray, n: int | np.ndarray, delta: floa
         ee, mm = np.broadcast_to(e, b.shape)[ok], np.broadcast_to(m, b.shape)[ok]
         b[ok] = stats.beta.ppf(1.0 - delta, ee + 1.0, mm - ee)
     return b
-
-
-# --------------------------------------------------------------------------- metrics
-
-
-def _labels(probs: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    p = np.asarray(probs, dtype=np.float64)
-    t = np.asarray(y).astype(np.int64).ravel()
-    if p.ndim != 2 or p.shape[0] != t.shape[0]:
-        raise ValueError(f"probs must be [N, K] and y [N]; got {list(p.shape)} and {list(t.shape)}")
-    if t.size and (t.min() < 0 or t.max() >= p.shape[1]):
-        raise ValueError(f"labels must be class indices in 0..{p.shape[1] - 1}")
-    return p, t
-
-
-def negative_log_likelihood(probs: np.ndarray, y: np.ndarray) -> float:
-    """Mean -ln p_y in nats (probabilities floored at float64 eps, as sklearn.metrics.log_loss clips)."""
-    p, t = _labels(probs, y)
-    eps = np.finfo(np.float64).eps
-    return float(-np.mean(np.log(np.clip(p[np.arange(len(t)), t], eps, 1.0))))
-
-
-def brier_score(probs: np.ndarray, y: np.ndarray) -> float:
-    """Brier (1950) score: mean over cases of Σ_k (p_k - 1[y=k])^2; halved when K = 2."""
-    p, t = _labels(probs, y)
-    onehot = np.zeros_like(p)
-    onehot[np.arange(len(t)), t] = 1.0
-    b = float(np.mean(np.sum((p - onehot) ** 2, axis=1)))
-    return b / 2.0 if p.shape[1] == 2 else b
-
-
-def reliability_bins(probs: np.ndarray, y: np.ndarray, bins: int = ECE_BINS) -> dict[str, np.ndarray]:
-    """Per-bin count, mean confidence and accuracy; bin m holds confidences in ((m-1)/M, m/M]."""
-    p, t = _labels(probs, y)
-    conf = p.max(axis=1)
-    correct = (p.argmax(axis=1) == t).astype(np.float64)
-    idx = np.clip(np.ceil(conf * bins).astype(np.int64) - 1, 0, bins - 1)
-    count = np.bincount(idx, minlength=bins).astype(np.float64)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean_conf = np.bincount(idx, weights=conf, minlength=bins) / count
-        acc = np.bincount(idx, weights=correct, minlength=bins) / count
-    return {"edges": np.linspace(0.0, 1.0, bins + 1), "count": count, "confidence": mean_conf, "accuracy": acc}
-
-
-def expected_calibration_error(probs: np.ndarray, y: np.ndarray, bins: int = ECE_BINS) -> float:
-    """ECE = Σ_m (|B_m| / n) |acc(B_m) - conf(B_m)| (Guo et al. 2017, eq. 3), equal-width bins."""
-    r = reliability_bins(probs, y, bins)
-    n = r["count"].sum()
-    filled = r["count"] > 0
-    gap = np.abs(r["accuracy"][filled] - r["confidence"][filled])
-    return float(np.sum(r["count"][filled] / n * gap)) if n else 0.0
-
-
-def risk_coverage(scores: np.ndarray, correct: np.ndarray) -> dict[str, np.ndarray]:
-    """Cases ordered by increasing score (most sure first); for i = 1..n the coverage i/n,
-    the risk (error rate) of the first i, and the score of the i-th (accept if score <= it)."""
-    s = np.asarray(scores, dtype=np.float64).ravel()
-    c = np.asarray(correct, dtype=bool).ravel()
-    order = np.argsort(s, kind="stable")
-    errors = np.cumsum(~c[order])
-    i = np.arange(1, len(s) + 1)
-    return {"coverage": i / len(s), "risk": errors / i, "score": s[order]}
-
-
-def aurc(scores: np.ndarray, correct: np.ndarray) -> float:
-    """Area under the risk-coverage curve: the mean of the risk over the n coverage steps."""
-    return float(np.mean(risk_coverage(scores, correct)["risk"]))
-
-
-def accuracy_at_referral(scores: np.ndarray, correct: np.ndarray,
-                         rates: tuple[float, ...] = REFERRAL_RATES) -> dict[str, float]:
-    """Accuracy on the cases kept when the round(r n) highest-score cases go to people."""
-    rc = risk_coverage(scores, correct)
-    n = len(rc["risk"])
-    out = {}
-    for r in rates:
-        keep = n - int(round(r * n))
-        out[f"{r:.2f}"] = float(1.0 - rc["risk"][keep - 1]) if keep > 0 else float("nan")
-    return out
-
-
-def classification_metrics(probs: np.ndarray, y: np.ndarray, scores: np.ndarray,
-                           threshold: float | None = None) -> dict[str, Any]:
-    """All held-out classification figures as plain floats (JSON-ready)."""
-    p, t = _labels(probs, y)
-    correct = p.argmax(axis=1) == t
-    out: dict[str, Any] = {
-        "n": int(len(t)),
-        "accuracy": float(correct.mean()),
-        "nll": negative_log_likelihood(p, t),
-        "brier": brier_score(p, t),
-        "ece": expected_calibration_error(p, t),
-        "aurc": aurc(scores, correct),
-        "accuracy_at_referral": accuracy_at_referral(scores, correct),
-        "score_mean_correct": float(np.mean(scores[correct])) if correct.any() else None,
-        "score_mean_wrong": float(np.mean(scores[~correct])) if (~correct).any() else None,
-    }
-    if threshold is not None:
-        accepted = np.asarray(scores) <= threshold
-        out["at_threshold"] = {
-            "threshold": float(threshold),
-            "abstain_rate": float(1.0 - accepted.mean()),
-            "accepted": int(accepted.sum()),
-            "accuracy_accepted": float(correct[accepted].mean()) if accepted.any() else None,
-        }
-    return out
-
-
-def regression_metrics(y: np.ndarray, mean: np.ndarray, lower: np.ndarray, upper: np.ndarray,
-                       scores: np.ndarray | None = None, threshold: float | None = None) -> dict[str, Any]:
-    """Coverage of [lower, upper], mean interval width, RMSE and MAE (target units)."""
-    y = np.asarray(y, dtype=np.float64).ravel()
-    inside = (y >= lower) & (y <= upper)
-    err = y - mean
-    out: dict[str, Any] = {
-        "n": int(len(y)),
-        "coverage": float(inside.mean()),
-        "mean_interval_width": float(np.mean(upper - lower)),
-        "rmse": float(np.sqrt(np.mean(err**2))),
-        "mae": float(np.mean(np.abs(err))),
-    }
-    if scores is not None and threshold is not None:
-        accepted = np.asarray(scores) <= threshold
-        out["at_threshold"] = {
-            "threshold": float(threshold),
-            "abstain_rate": float(1.0 - accepted.mean()),
-            "accepted": int(accepted.sum()),
-            "coverage_accepted": float(inside[accepted].mean()) if accepted.any() else None,
-            "rmse_accepted": float(np.sqrt(np.mean(err[accepted] ** 2))) if accepted.any() else None,
-        }
-    return out
 
 
 # --------------------------------------------------------------------------- threshold choice
@@ -398,6 +253,32 @@ def _check_method(method: str) -> None:
         raise ConfigError(f"method must be one of {', '.join(METHODS)}; got '{method}'", field="method")
 
 
+def threshold_between(below: float, above: float) -> float:
+    """A threshold strictly between two calibration scores ``below`` < ``above``: midway
+    between them, so neither side is within float32 round-off of it. ``above`` may be +inf
+    (every finite score accepted: the threshold sits 1e-3 of max(|below|, 1) above ``below``,
+    scores are differences of float32 entropies, reproducible to about 1e-6) and ``below``
+    -inf (nothing accepted: as far below ``above``)."""
+    lo, hi = float(below), float(above)
+    if not lo < hi:
+        raise ValueError(f"threshold_between needs below < above; got {lo} and {hi}")
+    if math.isinf(hi) and math.isinf(lo):
+        return 0.0
+    if math.isinf(hi):
+        return lo + 1e-3 * max(abs(lo), 1.0)
+    if math.isinf(lo):
+        return hi - 1e-3 * max(abs(hi), 1.0)
+    return lo + 0.5 * (hi - lo)
+
+
+def _gaps(srt: np.ndarray, accepted: np.ndarray) -> np.ndarray:
+    """For sorted scores ``srt`` and accepted counts a (the a smallest accepted), the
+    threshold midway between srt[a - 1] and srt[a], per count."""
+    lo = np.where(accepted > 0, srt[np.maximum(accepted - 1, 0)], -np.inf)
+    hi = np.where(accepted < len(srt), srt[np.minimum(accepted, len(srt) - 1)], np.inf)
+    return np.array([threshold_between(a, b) for a, b in zip(lo.tolist(), hi.tolist())])
+
+
 def select_for_accuracy(
     scores: np.ndarray,
     correct: np.ndarray,
@@ -416,9 +297,9 @@ def select_for_accuracy(
     s = np.asarray(scores, dtype=np.float64).ravel()
     c = np.asarray(correct, dtype=bool).ravel()
     n = len(s)
-    if n < 2 or len(c) != n or not np.all(np.isfinite(s)):
-        raise ConfigError(f"need >= 2 finite scores with one correctness flag each; got {n} scores, "
-                          f"{len(c)} flags", field="scores")
+    if n < 2 or len(c) != n or np.isnan(s).any() or (s == -np.inf).any():
+        raise ConfigError(f"need >= 2 scores (finite, or +inf for a case the support check puts outside) with "
+                          f"one correctness flag each; got {n} scores, {len(c)} flags", field="scores")
     check_feasible(n, target_accuracy, delta, max_abstain=max_abstain, method=method)
     srt = np.sort(s)
     ranks = candidate_ranks(n, max_abstain, max_candidates)
@@ -435,7 +316,7 @@ def select_for_accuracy(
         certified = np.arange(m) < (tested - 1 if len(fails) else m)
     else:
         tested, certified = m, ok
-    thresholds = np.nextafter(cand, -np.inf)
+    thresholds = _gaps(srt, accepted)
     curve = [
         {"threshold": float(thresholds[j]), "coverage": float(accepted[j] / n),
          "accuracy": float(1.0 - errors[j] / accepted[j]) if accepted[j] else None,
@@ -519,16 +400,27 @@ def _finite_sample_rank(n: int, level: float, what: str) -> int:
 
 
 def select_for_abstain(scores: np.ndarray, rate: float, correct: np.ndarray | None = None) -> ThresholdChoice:
-    """Threshold = the ceil((n+1)(1-rate))-th smallest score: expected abstention <= rate."""
+    """Accept the ceil((n+1)(1-rate)) smallest scores (ties at the k-th included): expected
+    abstention <= rate. The threshold is midway to the next larger score; +inf scores (the
+    support check's) always abstain, and a rate they alone exceed is ``CalibrationInfeasible``."""
     rate = _check_fraction("target_abstain", rate)
-    s = np.sort(np.asarray(scores, dtype=np.float64).ravel())
+    raw = np.asarray(scores, dtype=np.float64).ravel()
+    if np.isnan(raw).any() or (raw == -np.inf).any():
+        raise ConfigError("scores must be finite, or +inf for a case the support check puts outside",
+                          field="scores")
+    s = np.sort(raw)
     n = len(s)
     k = _finite_sample_rank(n, 1.0 - rate, f"an abstention rate of {rate:.4g}")
-    t = float(s[k - 1])
-    raw = np.asarray(scores, dtype=np.float64).ravel()
+    if math.isinf(s[k - 1]):
+        outside = int(np.sum(np.isinf(s)))
+        raise CalibrationInfeasible(
+            f"the support check alone puts {outside} of the {n} calibration cases outside the training data "
+            f"({outside / n:.1%}), more than the abstention rate {rate:.4g} allows; raise --target-abstain, or "
+            "calibrate on rows like the training data", field="target_abstain")
+    accepted = int(np.searchsorted(s, s[k - 1], side="right"))
+    t = float(_gaps(s, np.array([accepted]))[0])
     acc_mask = raw <= t
     errors = int(np.sum(~np.asarray(correct, dtype=bool)[acc_mask])) if correct is not None else 0
-    accepted = int(acc_mask.sum())
     return ThresholdChoice(
         method="abstain_quantile", threshold=t, n=n, accepted=accepted, errors=errors,
         abstain_rate=float(1.0 - accepted / n),

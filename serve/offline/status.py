@@ -90,14 +90,24 @@ def read_status(text: str, top: int = 5) -> dict[str, Any]:
     Returns {"model", "cases", "abstain_ratio", "abstain_window_cases",
     "calibrated_abstain_ratio", "threshold", "psi_max", "top_features" [{"feature",
     "psi", "reading"}], "score_ks", "score_ks_critical", "drift_window_cases", "review_queue",
-    "review_enqueue_failures"}; missing figures are ``None``.
+    "review_enqueue_failures", "audit"}; missing figures are ``None``. ``audit`` is the served
+    model's audit: {"decided", "agree", "certified", "lower_bound", "evidence", "evidence_threshold",
+    "abstentions_decided", "abstentions_model_right"} (read from the shared review store).
     """
     out: dict[str, Any] = {
         "model": None, "cases": {}, "abstain_ratio": None, "abstain_window_cases": None,
         "calibrated_abstain_ratio": None, "threshold": None, "psi_max": None, "top_features": [],
         "score_ks": None, "score_ks_critical": None, "drift_window_cases": None, "review_queue": {},
-        "review_enqueue_failures": None,
+        "review_enqueue_failures": None, "audit": None,
     }
+    audit_names = {
+        "demur_audit_decided_cases": "decided", "demur_audit_agreements": "agree",
+        "demur_certified_accuracy": "certified", "demur_audit_accuracy_lower_bound": "lower_bound",
+        "demur_audit_evidence_nats": "evidence", "demur_audit_evidence_threshold_nats": "evidence_threshold",
+        "demur_abstentions_decided_cases": "abstentions_decided",
+        "demur_abstentions_model_right_cases": "abstentions_model_right",
+    }
+    audit: dict[str, dict[str, float]] = {}
     psi: dict[str, float] = {}
     scalars = {
         "demur_abstain_ratio": "abstain_ratio",
@@ -125,6 +135,11 @@ def read_status(text: str, top: int = 5) -> dict[str, Any]:
                 psi[s.labels.get("feature", "?")] = float(s.value)
             elif s.name == "demur_review_queue_cases":
                 out["review_queue"][s.labels.get("status", "?")] = int(s.value)
+            elif s.name in audit_names:
+                audit.setdefault(s.labels.get("model_checksum", ""), {})[audit_names[s.name]] = float(s.value)
+    served = (out["model"] or {}).get("checksum")
+    if served in audit:
+        out["audit"] = {k: audit[served].get(k) for k in audit_names.values()}
     ranked = sorted(psi.items(), key=lambda kv: (-kv[1], kv[0]))[:top]
     out["top_features"] = [{"feature": f, "psi": v, "reading": psi_reading(v)} for f, v in ranked]
     return out
@@ -170,6 +185,19 @@ def render_status(status: dict[str, Any], url: str = DEFAULT_URL) -> str:
     if status["review_enqueue_failures"]:
         lines.append(f"  enqueue failures   {status['review_enqueue_failures']:.0f} abstained cases spooled, "
                      "not yet in the review store")
+    audit = status.get("audit")
+    if audit and audit.get("decided"):
+        line = (f"  audit              {audit['agree']:.0f} of {audit['decided']:.0f} audited accepted cases "
+                "right by the reviewers")
+        if audit.get("lower_bound") is not None and audit.get("certified") is not None:
+            verdict = ("CONTRADICTS the certificate" if audit["evidence"] >= audit["evidence_threshold"]
+                       else "no evidence against the certificate")
+            line += (f"; accuracy >= {audit['lower_bound']:.3f} (exact bound), certified {audit['certified']:.3f}: "
+                     f"{verdict}")
+        lines.append(line)
+        if audit.get("abstentions_decided"):
+            lines.append(f"  referred cases     the model would have been right on {audit['abstentions_model_right']:.0f}"
+                         f" of {audit['abstentions_decided']:.0f} decided abstentions")
     lines.append("  PSI reading (common practice, a rule of thumb): < 0.1 stable, 0.1-0.25 moderate, > 0.25 major.")
     lines.append("  demur supports, never replaces, qualified human judgement: abstained cases go to a person.")
     return "\n".join(lines)

@@ -21,8 +21,15 @@ result says::
     {"review": {"queued": false, "spooled": true, "pending_review_id": "...",
                 "reason": "the review store is unavailable; ..."}}
 
-``pending_review_id`` is the id the item will have once the replayer has
-moved it into the store. ``failures`` counts abstained cases the store did
+``pending_review_id`` resolves once the replayer has moved the item into the
+store: it is the item's own id, or, when the same case (case id, model checksum,
+inputs) reached the store meanwhile under another id, an alias of that item
+(``GET /v1/reviews/<id>`` answers either way; serve/review/store/__init__.py).
+
+Idempotency is keyed by the case, not only its id: the same case id with the same
+inputs gives the same item (a retried request); the same case id with *other* inputs
+is queued as a new item and the answer says so:
+``{"review_id": ..., "review": {"queued": true, "case_id_reused": true, "reason": ...}}``. ``failures`` counts abstained cases the store did
 not take at once (``on_failure(n)`` is called too; the app wires it to the
 metrics' ``review_enqueue_failed``). After a failure the store is not tried
 on the request path again until the replayer finds it answering (at most
@@ -93,6 +100,8 @@ NOT_QUEUED = {
 ACCURACY_LEVEL = 0.95
 _MAX_CALLERS = 10_000
 _DESCRIBE_TTL_S = 5.0
+_REUSED = ("this case id was queued before for this model with other inputs; these inputs are a new "
+           "review item (send a new case id for a new case)")
 _UNAVAILABLE = ("the review store is unavailable; the case is kept in this server's spool and will be "
                 "queued when the store answers again")
 
@@ -186,7 +195,7 @@ class ReviewRouter:
         default) and a spool file in ``data_dir``. Nothing touches disk or network
         until the first item (PostgreSQL's pool connects in the background)."""
         store = open_store(config.review_store_url, lease_s=config.review_lease_s,
-                           pool_size=max(2, config.threads + 1))
+                           pool_size=max(2, config.threads + 1), order=config.review_order)
         spool = Spool(Path(config.data_dir) / SPOOL_FILE)
         return cls(store, spool, audit_fraction=config.audit_fraction, replay_s=config.spool_replay_s,
                    seed=config.seed, on_failure=on_failure, max_pending=config.review_max_pending,
@@ -230,16 +239,19 @@ class ReviewRouter:
         view = self._view(answered.live)
         x = answered.request.x
         now = time.time()
-        items = [self._item(kind, answered.results[i], case_ids[i], x[i], model, view, now) for i, kind in chosen]
+        predictions, intervals = _typed(answered)
+        items = [self._item(kind, answered.results[i], predictions[i], intervals[i], case_ids[i], x[i], model, view,
+                            now, inclusion=self.audit_fraction if kind == "audit" else 1.0) for i, kind in chosen]
         abstained = [(i, item) for (i, kind), item in zip(chosen, items) if kind == "abstain"]
         try:
             if time.monotonic() < self._skip_until:
                 raise ReviewStoreUnavailable("the review store failed recently; waiting for the replayer")
-            ids = self.store.enqueue(items)
+            outcomes = self.store.enqueue_items(items)
         except Exception as exc:
             self._store_down(exc)
             return self._fallback(items, abstained, notes)
-        by_item = dict(zip((it.id for it in items), ids))
+        ids = [None if e is None else e.id for e in outcomes]
+        by_item = dict(zip((it.id for it in items), outcomes))
         rejected = sum(1 for rid in ids if rid is None)
         n_abstained = sum(1 for _, it in abstained if by_item[it.id] is not None)
         with self._lock:
@@ -248,8 +260,14 @@ class ReviewRouter:
                 1 for it in items if it.kind == "audit" and by_item[it.id] is None)
             self._pending += len(items) - rejected
         for i, item in abstained:
-            rid = by_item[item.id]
-            notes[i] = {"review_id": rid} if rid is not None else _not_queued("rejected")
+            done = by_item[item.id]
+            if done is None:
+                notes[i] = _not_queued("rejected")
+            elif done.reused:
+                notes[i] = {"review_id": done.id, "review": {"queued": True, "case_id_reused": True,
+                                                             "reason": _REUSED}}
+            else:
+                notes[i] = {"review_id": done.id}
         if rejected:
             self._event("rejected", rejected)
         return notes
@@ -400,28 +418,26 @@ class ReviewRouter:
         return view
 
     @staticmethod
-    def _item(kind: str, result: dict[str, Any], case_id: str | None, x: np.ndarray, model: dict[str, str],
-              view: dict[str, Any], now: float) -> NewItem:
+    def _item(kind: str, result: dict[str, Any], prediction: str, interval: tuple[float, float] | None,
+              case_id: str | None, x: np.ndarray, model: dict[str, str], view: dict[str, Any], now: float, *,
+              inclusion: float) -> NewItem:
+        """``result``: the rendered dict the client received, stored as the model's view the
+        reviewer sees; ``prediction`` and ``interval`` come typed from the summary (``_typed``)."""
         task = view["task"]
         # The float32 values the model saw, in their shortest round-trip form (0.3, not 0.30000001192092896).
         case = {"values": [float(v) for v in np.asarray(x, dtype=np.float32).ravel().astype(str)],
                 "shape": view["shape"], **{k: view[k] for k in ("kind", "grid", "names", "low", "high") if k in view}}
         summary = {k: result.get(k) for k in ("mean", "interval", "uncertainty", "score", "threshold", "reason")}
         summary["task"] = task
+        # the chance this case was sent to people (audit_fraction for audits, 1 for abstentions):
+        # the inclusion weight recertification needs (demur.serve.offline.recertify)
+        summary["inclusion"] = float(inclusion)
         if "variance" in result:
             summary["variance"] = result["variance"]
         if view.get("labels"):
             summary["labels"] = view["labels"]
-        interval = None
-        prediction = result.get("prediction")
-        if task == "regression":
-            iv = result.get("interval") or {}
-            if isinstance(iv.get("lower"), (int, float)) and isinstance(iv.get("upper"), (int, float)):
-                interval = (float(iv["lower"]), float(iv["upper"]))
-            prediction = None if prediction is None else repr(float(prediction))
-        return new_item(kind=kind, model=model, case=case, summary=summary,
-                        prediction=None if prediction is None else str(prediction), interval=interval,
-                        client_case_id=case_id, now=now)
+        return new_item(kind=kind, model=model, case=case, summary=summary, prediction=prediction,
+                        interval=interval, client_case_id=case_id, now=now)
 
     # ------------------------------------------------------------------ reading
     def _check_up(self) -> None:
@@ -488,3 +504,15 @@ class ReviewRouter:
         if self.replayer is not None:
             self.replayer.stop()
         self.store.close()
+
+
+def _typed(answered: Answered) -> tuple[list[str], list[tuple[float, float] | None]]:
+    """Per case, from the typed summary: the prediction as stored (the label; a regression mean
+    as its shortest round-trip text) and the regression interval (None for classifiers)."""
+    summary = answered.summary
+    if summary.task == "classification":
+        labels = answered.live.manifest.labels
+        return [labels[int(k)] for k in summary.prediction.tolist()], [None] * len(summary)
+    means = summary.prediction.tolist()
+    return ([repr(float(m)) for m in means],
+            [(float(lo), float(hi)) for lo, hi in zip(summary.lower.tolist(), summary.upper.tolist())])

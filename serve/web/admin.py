@@ -16,7 +16,18 @@ when the candidate has passed every check:
 
 A bad candidate raises a named ``BundleError`` (422; ``SmokeFailed`` when it
 loads but cannot predict) or ``InvalidInput`` (400)
-and the serving engine is untouched. Two roll-outs at once: ``Conflict`` (409).
+and the serving engine is untouched.
+
+Two roll-outs at once: exactly one wins, the other gets ``Conflict`` (409). Within a
+process a lock says so; across the workers of one server, an exclusive ``flock`` on
+``<data_dir>/rollout.<master pid>.lock``, taken without waiting before the candidate
+is loaded and held until every worker serves the new bundle (each worker confirms
+by writing the record's generation to ``active-bundle.<master pid>.ack.<worker pid>``;
+the winner waits at most ``CONFIRM_WAIT_S``). So the record (below) is only ever
+written by the roll-out that holds the lock, every worker converges on it, and a
+roll-out is answered only once it is done everywhere (``"workers": "all serving"``;
+``"signalled"`` if a worker did not confirm in time). A second roll-out that starts
+after the first was answered is not concurrent: it runs, and wins in turn.
 
 Routes (admin scope, ``demur.serve.web.auth``)::
 
@@ -35,7 +46,9 @@ the bundle volume was pointed at a new directory).
 
 from __future__ import annotations
 
+import contextlib
 import datetime as _dt
+import fcntl
 import logging
 import os
 import signal
@@ -43,11 +56,12 @@ import threading
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
+from collections.abc import Iterator
 from typing import Any
 
 from demur.serve.core.bundle import load_bundle
 from demur.serve.config import ServeConfig
-from demur.serve.errors import BundleError, Conflict, DemurError, InvalidInput, SmokeFailed
+from demur.serve.errors import BundleError, Conflict, DemurError, InvalidInput, NotFound, SmokeFailed
 
 __all__ = [
     "ADMIN_EXTENSION",
@@ -70,6 +84,9 @@ ADMIN_EXTENSION = "demur.admin"
 
 _log = logging.getLogger("demur.admin")
 
+CONFIRM_WAIT_S = 30.0
+"""Longest a roll-out waits (holding the roll-out lock) for every worker to serve it."""
+
 
 @dataclass
 class AdminState:
@@ -82,6 +99,7 @@ class AdminState:
     lock: threading.Lock = field(default_factory=threading.Lock)
     rollouts: int = 0
     refused: int = 0
+    all_serving: bool = False
     loaded_at: str = field(default_factory=lambda: _now())
 
     @property
@@ -90,6 +108,13 @@ class AdminState:
         if self.master_pid is None:
             return None
         return Path(self.config.data_dir) / f"active-bundle.{self.master_pid}"
+
+    @property
+    def lock_path(self) -> Path | None:
+        """The roll-out lock shared by the workers of one master (``None`` alone)."""
+        if self.master_pid is None:
+            return None
+        return Path(self.config.data_dir) / f"rollout.{self.master_pid}.lock"
 
 
 @dataclass(frozen=True)
@@ -180,9 +205,31 @@ def roll_out(app: Any, path: str | os.PathLike[str], *, propagate: bool = True) 
     if not state.lock.acquire(blocking=False):
         raise Conflict("another roll-out is in progress in this process; retry when it finishes", field="bundle")
     try:
-        return _roll_out_locked(app, state, str(Path(path).resolve()), propagate)
+        with _workers_lock(state) if propagate else contextlib.nullcontext():
+            return _roll_out_locked(app, state, str(Path(path).resolve()), propagate)
     finally:
         state.lock.release()
+
+
+@contextlib.contextmanager
+def _workers_lock(state: AdminState) -> Iterator[None]:
+    """The roll-out lock across this server's workers, taken without waiting: ``Conflict``
+    while another worker rolls out. Released when the file is closed (also if the worker dies)."""
+    path = state.lock_path
+    if path is None:
+        yield
+        return
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o600)
+    try:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            raise Conflict("another roll-out is in progress in another worker of this server; retry when it "
+                           "finishes (GET /v1/admin/model shows the bundle serving)", field="bundle") from None
+        yield
+    finally:
+        os.close(fd)
 
 
 def _roll_out_locked(app: Any, state: AdminState, path: str, propagate: bool) -> Rollout:
@@ -203,23 +250,89 @@ def _roll_out_locked(app: Any, state: AdminState, path: str, propagate: bool) ->
         state.rollouts += 1
         state.loaded_at = _now()
     if propagate and state.record_path is not None:
-        _record(state, path)
+        generation = _record(state, path)
+        _confirm(state, generation)
         try:
             os.kill(state.master_pid, signal.SIGHUP)  # type: ignore[arg-type]
         except OSError as exc:  # the master is gone: this worker still serves the new bundle
             _log.warning("could not signal the master (pid %s): %s", state.master_pid, exc)
+        state.all_serving = _wait_for_workers(state, generation)
     _log.info("roll-out %s: %s %s -> %s (%s)", "done" if changed else "unchanged",
               current["name"], previous.get("version"), current["version"], current["checksum"][:12])
     return Rollout(previous=previous, current=current, path=path, changed=changed, check_s=check_s)
 
 
-def _record(state: AdminState, path: str) -> None:
+def _record(state: AdminState, path: str) -> str:
+    """Write the record (path, then a fresh generation token); return the token."""
     target = state.record_path
     assert target is not None
     target.parent.mkdir(parents=True, exist_ok=True)
+    generation = f"{os.getpid()}-{time.time_ns()}"
     tmp = target.with_name(f".{target.name}.{os.getpid()}")
-    tmp.write_text(path + "\n", encoding="utf-8")
+    tmp.write_text(f"{path}\n{generation}\n", encoding="utf-8")
     os.replace(tmp, target)
+    return generation
+
+
+def _read_record(config: ServeConfig, master_pid: int) -> tuple[str, str] | None:
+    """(path, generation) of the master's record, or ``None``."""
+    try:
+        lines = (Path(config.data_dir) / f"active-bundle.{master_pid}").read_text(encoding="utf-8").splitlines()
+    except OSError:
+        return None
+    if not lines or not lines[0].strip():
+        return None
+    return lines[0].strip(), (lines[1].strip() if len(lines) > 1 else "")
+
+
+def _ack_path(state: AdminState, pid: int) -> Path:
+    return Path(state.config.data_dir) / f"active-bundle.{state.master_pid}.ack.{pid}"
+
+
+def _confirm(state: AdminState, generation: str) -> None:
+    """This worker serves the record of ``generation``."""
+    if state.master_pid is None or not generation:
+        return
+    target = _ack_path(state, os.getpid())
+    try:
+        tmp = target.with_name(f".{target.name}")
+        tmp.write_text(generation, encoding="utf-8")
+        os.replace(tmp, target)
+    except OSError as exc:
+        _log.warning("could not confirm the roll-out in %s: %s", target, exc)
+
+
+def _workers_of(master_pid: int) -> list[int]:
+    """The master's children (gunicorn's workers), from Linux's /proc; [] elsewhere."""
+    out: list[int] = []
+    for task in Path(f"/proc/{master_pid}/task").glob("*"):
+        try:
+            out += [int(p) for p in (task / "children").read_text().split()]
+        except (OSError, ValueError):
+            continue
+    return sorted(set(out))
+
+
+def _wait_for_workers(state: AdminState, generation: str) -> bool:
+    """Until every live worker confirmed ``generation`` (True), or ``CONFIRM_WAIT_S`` (False)."""
+    assert state.master_pid is not None
+    deadline = time.monotonic() + CONFIRM_WAIT_S
+    while True:
+        workers = _workers_of(state.master_pid)
+        waiting = []
+        for pid in workers:
+            try:
+                if _ack_path(state, pid).read_text(encoding="utf-8") == generation:
+                    continue
+            except OSError:
+                pass
+            waiting.append(pid)
+        if not waiting:
+            return True
+        if time.monotonic() >= deadline:
+            _log.warning("roll-out: worker(s) %s did not confirm within %.0f s", waiting, CONFIRM_WAIT_S)
+            return False
+        time.sleep(0.02)
 
 
 def startup_bundle(config: ServeConfig, master_pid: int | None = None) -> str:
@@ -228,13 +341,11 @@ def startup_bundle(config: ServeConfig, master_pid: int | None = None) -> str:
     configured bundle."""
     if master_pid is None:
         return config.bundle
-    record = Path(config.data_dir) / f"active-bundle.{master_pid}"
-    try:
-        text = record.read_text(encoding="utf-8").strip()
-    except OSError:
+    record = _read_record(config, master_pid)
+    if record is None:
         return config.bundle
     try:
-        return str(confine(config, text))
+        return str(confine(config, record[0]))
     except DemurError:
         return config.bundle
 
@@ -253,15 +364,19 @@ def _reload_from_signal(app: Any) -> None:
         _log.error("SIGHUP reload skipped: a roll-out held the lock for %s s", _SIGNAL_LOCK_WAIT_S)
         return
     try:
+        record = _read_record(state.config, state.master_pid) if state.master_pid is not None else None
+        generation = record[1] if record is not None else ""
         path = str(Path(startup_bundle(state.config, state.master_pid)).resolve())
         live = _serving(app)
         if live is not None and path == state.bundle_path:
             try:
                 if load_bundle(path).checksum == live.model["checksum"]:
+                    _confirm(state, generation)
                     return  # this worker already serves it (it took the roll-out request)
             except DemurError:
                 pass  # the roll-out below names the problem
         result = _roll_out_locked(app, state, path, False)
+        _confirm(state, generation)
     except DemurError as exc:
         _log.error("SIGHUP reload of %s refused, the previous bundle keeps serving: %s", path, exc.message)
         return
@@ -359,6 +474,13 @@ def install_admin(app: Any, config: ServeConfig, *, bundle_path: str | None = No
         if unknown:
             raise InvalidInput(f"unknown key '{unknown[0]}'; the body takes only 'bundle'", field=unknown[0])
         path = confine(state.config, body.get("bundle"))
+        try:
+            found = path.is_dir()
+        except OSError:  # a name the file system cannot hold (too long, ...): no such bundle either
+            found = False
+        if not found:
+            raise NotFound(f"no bundle directory '{str(body.get('bundle'))[:200]}' in the bundles directory "
+                           f"{bundle_root(state.config)}", field="bundle")
         result = roll_out(app, path)
         return jsonify({
             "model": result.current,
@@ -366,7 +488,8 @@ def install_admin(app: Any, config: ServeConfig, *, bundle_path: str | None = No
             "bundle_path": result.path,
             "changed": result.changed,
             "checks_s": round(result.check_s, 4),
-            "workers": "signalled" if state.master_pid is not None else "this process",
+            "workers": ("this process" if state.master_pid is None
+                        else "all serving" if state.all_serving else "signalled"),
         })
 
     app.register_blueprint(bp)

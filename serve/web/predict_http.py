@@ -8,9 +8,9 @@ batches admitted requests across one pass of its event loop, and the Flask route
 What a predict request meets, in order::
 
     Authorization (predict scope)                401 / 403
-    Content-Type: application/json               415
+    Content-Type: application/json (or application/x-npy)   415
     body size <= max_body_bytes                  413
-    JSON                                         400
+    JSON (or .npy, serve/core/npy_body.py)       400
     admission: fewer than queue_max_requests     503 + Retry-After
       waiting in this worker
     -> Runtime.answer (validation, graph, summary, decision, review, metrics)
@@ -34,6 +34,7 @@ import orjson
 
 from demur.serve.config import ServeConfig
 from demur.serve.errors import DemurError, Overloaded, PayloadTooLarge, UnsupportedMediaType
+from demur.serve.core.npy_body import NPY_MEDIA_TYPE, ArrayBody, parse_npy
 from demur.serve.core.validation import parse_json
 from demur.serve.web.auth import CHALLENGE, TokenSet
 
@@ -65,11 +66,14 @@ def admit(header: Callable[[str], str | None], body: bytes, *, tokens: TokenSet,
     """
     principal = tokens.check(header("authorization"), "predict")
     ctype = header("content-type")
-    if (ctype or "").split(";", 1)[0].strip().lower() != "application/json":
-        raise UnsupportedMediaType(f"Content-Type must be application/json; got {ctype or 'no Content-Type'}",
-                                   field="Content-Type")
+    media = (ctype or "").split(";", 1)[0].strip().lower()
+    if media not in ("application/json", NPY_MEDIA_TYPE):
+        raise UnsupportedMediaType(f"Content-Type must be application/json (or {NPY_MEDIA_TYPE}: the cases as one "
+                                   f"NumPy .npy array); got {ctype or 'no Content-Type'}", field="Content-Type")
     if len(body) > config.max_body_bytes:
         raise PayloadTooLarge(f"body is {len(body)} bytes; the limit is {config.max_body_bytes}", field="body")
+    if media == NPY_MEDIA_TYPE:
+        return _admit_array(parse_npy(body), principal, tokens, config, waiting)
     parsed = parse_json(body)
     if waiting >= config.queue_max_requests:
         raise Overloaded(f"server is at capacity: {waiting} requests waiting (limit {config.queue_max_requests}); "
@@ -77,6 +81,15 @@ def admit(header: Callable[[str], str | None], body: bytes, *, tokens: TokenSet,
     cases = parsed.get("cases") if isinstance(parsed, dict) else None
     caller = principal.id if tokens.configured("predict") else None
     return Admitted(parsed, caller, len(cases) if isinstance(cases, list) else 1)
+
+
+def _admit_array(parsed: ArrayBody, principal: Any, tokens: TokenSet, config: ServeConfig,
+                 waiting: int) -> Admitted:
+    """The admission step of a binary (.npy) body, as for JSON above."""
+    if waiting >= config.queue_max_requests:
+        raise Overloaded(f"server is at capacity: {waiting} requests waiting (limit {config.queue_max_requests}); "
+                         "retry later", retry_after_s=config.request_timeout_s / 2)
+    return Admitted(parsed, principal.id if tokens.configured("predict") else None, parsed.rows)
 
 
 def encode(payload: Any) -> bytes:

@@ -34,6 +34,7 @@ from typing import Any
 
 import orjson
 from flask import Blueprint, Response, g, request
+from werkzeug.routing import BaseConverter
 
 from demur.serve.web.auth import require
 from demur.serve.web.limits import SECURITY_HEADERS
@@ -41,7 +42,7 @@ from demur.serve.errors import InvalidInput, NotFound
 from demur.serve.review.store import KINDS, MAX_EXCLUDE, MAX_NOTE_CHARS, STATUSES, ReviewItem
 from demur.serve.core.validation import client_text, parse_json
 
-__all__ = ["PAGE_HEADERS", "install_review_api", "make_blueprint"]
+__all__ = ["PAGE_HEADERS", "ItemIdConverter", "install_review_api", "make_blueprint"]
 
 PAGE_HEADERS: dict[str, str] = {
     "Content-Security-Policy": SECURITY_HEADERS["Content-Security-Policy"],  # the one policy of every response
@@ -70,7 +71,7 @@ def _json(payload: Any, status: int = 200) -> Response:
 
 def _int_arg(name: str, default: int, low: int, high: int) -> int:
     raw = request.args.get(name)
-    if raw is None or raw == "":
+    if raw is None:
         return default
     try:
         value = int(raw)
@@ -82,8 +83,10 @@ def _int_arg(name: str, default: int, low: int, high: int) -> int:
 
 
 def _choice_arg(name: str, choices: tuple[str, ...], default: str | None) -> str | None:
+    """The query parameter, one of ``choices``; absent: ``default``. Given empty (``?status=``)
+    is refused like any other value not in the list: the API document allows no empty value."""
     raw = request.args.get(name)
-    if raw is None or raw == "":
+    if raw is None:
         return default
     if raw not in choices:
         raise InvalidInput(f"'{name}' must be one of {', '.join(choices)}; got '{raw[:40]}'", field=name)
@@ -186,7 +189,7 @@ def make_blueprint(router: Any) -> Blueprint:
         status = _choice_arg("status", STATUSES, None)
         kind = _choice_arg("kind", KINDS, None)
         limit = _int_arg("limit", 50, 1, MAX_LIMIT)
-        after = request.args.get("after") or None
+        after = request.args.get("after")
         if after is not None:
             _item_id(after, "after")
         items = store().page(status, kind=kind, limit=limit, after=after)
@@ -230,12 +233,12 @@ def make_blueprint(router: Any) -> Blueprint:
         response.headers["Cache-Control"] = "no-store"
         return response
 
-    @bp.get("/v1/reviews/<item_id>")
+    @bp.get("/v1/reviews/<item_id:item_id>")
     @require("review")
     def get_item(item_id: str) -> Response:
         return _json({"item": store().get(item_id).to_json()})
 
-    @bp.post("/v1/reviews/<item_id>/decision")
+    @bp.post("/v1/reviews/<item_id:item_id>/decision")
     @require("review")
     def decide(item_id: str) -> Response:
         item = store().get(item_id)
@@ -243,7 +246,7 @@ def make_blueprint(router: Any) -> Blueprint:
         done = store().decide(item_id, me().id, label=label, value=value, note=note, admin=me().is_admin)
         return _json({"item": done.to_json(), "counts": store().counts()})
 
-    @bp.post("/v1/reviews/<item_id>/release")
+    @bp.post("/v1/reviews/<item_id:item_id>/release")
     @require("review")
     def release(item_id: str) -> Response:
         _check_keys(_body(optional=True), ())
@@ -266,7 +269,8 @@ def _decided(store: Any, limit: int) -> list[ReviewItem]:
 
 
 def _csv(items: list[ReviewItem]) -> str:
-    """One row per decided item: who, when, the decision, the model's prediction, then the inputs.
+    """One row per decided item: who, when, the decision, the model's prediction, the chance it
+    was sent to people (``inclusion``: recertification weights by it), then the inputs.
 
     Input columns are the bundle's feature names when every item shares them,
     else ``x0, x1, ...`` (the widest item sets the count; shorter rows end early).
@@ -276,7 +280,7 @@ def _csv(items: list[ReviewItem]) -> str:
     shared = next(iter(name_sets)) if len(name_sets) == 1 else ()
     inputs = list(shared) if len(shared) == width else [f"x{i}" for i in range(width)]
     head = ["id", "kind", "model_name", "model_version", "model_checksum", "client_case_id", "created",
-            "decided", "reviewer", "label", "value", "prediction", "note"]
+            "decided", "reviewer", "label", "value", "prediction", "note", "inclusion"]
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\n")
     writer.writerow(head + inputs)
@@ -285,9 +289,18 @@ def _csv(items: list[ReviewItem]) -> str:
         text = [it.id, it.kind, it.model_name, it.model_version, it.model_checksum, it.client_case_id or "",
                 d["created"], d["decision"]["decided"], it.decided_by or "",
                 it.label if it.label is not None else "", "" if it.value is None else repr(it.value),
-                it.prediction or "", it.note or ""]
+                it.prediction or "", it.note or "", _inclusion(it)]
         writer.writerow([_safe_cell(str(cell)) for cell in text] + [repr(float(v)) for v in it.case.get("values", [])])
     return buf.getvalue()
+
+
+def _inclusion(item: ReviewItem) -> str:
+    """The chance the item was sent to people: 1 for an abstention, the audit fraction for an
+    audit (recorded in its summary since this release; empty when an older item lacks it)."""
+    value = item.summary.get("inclusion") if isinstance(item.summary, dict) else None
+    if isinstance(value, (int, float)) and not isinstance(value, bool):
+        return repr(float(value))
+    return "1.0" if item.kind == "abstain" else ""
 
 
 _NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?|[+-]?(?:inf|nan)")
@@ -303,6 +316,15 @@ def _safe_cell(text: str) -> str:
     return text
 
 
+class ItemIdConverter(BaseConverter):
+    """``<item_id:item_id>``: an item id, never one of the fixed words under /v1/reviews/, so
+    ``OPTIONS /v1/reviews/claim`` answers ``Allow: POST, OPTIONS`` (claim is no item id; the
+    document lists no GET there) and routing alone cannot confuse the two."""
+
+    regex = r"(?!(?:claim|summary|export)$)[A-Za-z0-9_-]{1,64}"
+
+
 def install_review_api(app: Any, router: Any) -> None:
-    """Register the reviewer blueprint on ``app``."""
+    """Register the reviewer blueprint (and its item-id converter) on ``app``."""
+    app.url_map.converters["item_id"] = ItemIdConverter
     app.register_blueprint(make_blueprint(router))

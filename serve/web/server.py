@@ -33,7 +33,7 @@ import sys
 from typing import Any
 
 from demur.serve.core.bundle import load_bundle
-from demur.serve.config import ServeConfig, build_config, worker_count
+from demur.serve.config import GRAPH_CHOICES, ServeConfig, build_config, worker_count
 from demur.serve.core.decision import rule_from
 
 __all__ = ["ACCESS_LOG_FORMAT", "app_from_environment", "build_app", "gunicorn_options", "register", "serve"]
@@ -64,7 +64,7 @@ def register(subparsers: Any) -> None:
     p.add_argument("--score", help="decision score, overriding the bundle's (needs --threshold)")
     p.add_argument("--threshold", type=float, help="abstain when the score is above this")
     p.add_argument("--interval-level", type=float, help="interval level in (0, 1), default the bundle's")
-    p.add_argument("--graph", choices=("auto", "stacked", "sampler", "flip", "means"), help="graph kind to run")
+    p.add_argument("--graph", choices=GRAPH_CHOICES, help="graph kind to run")
     p.add_argument("--ort-threads", type=int, dest="ort_intra_threads", help="onnxruntime threads per session")
     p.add_argument("--max-cases", type=int, help="most cases per request (default 1024)")
     p.add_argument("--max-body-bytes", type=int, help="largest request body (default 8 MiB)")
@@ -72,11 +72,14 @@ def register(subparsers: Any) -> None:
     p.add_argument("--config", dest="config_file", help="TOML file of settings")
     p.add_argument("--data-dir", help="directory for the review queue, spool and state")
     p.add_argument("--review-store", help="sqlite:///PATH or postgresql://... (default SQLite in --data-dir)")
+    p.add_argument("--review-order", choices=("oldest", "most_uncertain"),
+                   help="what people are handed first: oldest (default) or most_uncertain (audits, then the "
+                        "abstentions with the most mutual information)")
     p.set_defaults(func=_main)
 
 
 _FLAG_FIELDS = ("host", "port", "workers", "threads", "trusted_proxies", "score", "threshold", "interval_level", "graph",
-                "ort_intra_threads", "max_cases", "max_body_bytes", "seed", "data_dir", "review_store")
+                "ort_intra_threads", "max_cases", "max_body_bytes", "seed", "data_dir", "review_store", "review_order")
 
 
 def _main(args: argparse.Namespace) -> int:

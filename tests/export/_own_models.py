@@ -5,20 +5,7 @@ from __future__ import annotations
 import torch
 from torch import nn
 
-from demur.export.layers import VariationalConv2d, VariationalLinear
-
-
-class ResidualBlock(nn.Module):
-    """conv -> batch norm -> + skip -> GELU, with a variational convolution."""
-
-    def __init__(self, channels: int, posterior: str) -> None:
-        super().__init__()
-        self.conv = VariationalConv2d(channels, channels, 3, padding=1, posterior=posterior, init_sigma=0.1)
-        self.bn = nn.BatchNorm2d(channels)
-        self.act = nn.GELU()
-
-    def forward(self, x: torch.Tensor) -> torch.Tensor:
-        return self.act(x + self.bn(self.conv(x)))
+from demur.export.layers import ResidualBlock, VariationalLinear
 
 
 class DepotConvNet(nn.Module):
@@ -29,7 +16,7 @@ class DepotConvNet(nn.Module):
         super().__init__()
         self.stem = nn.Conv2d(1, 6, 3, padding=1)
         self.pool = nn.MaxPool2d(2)
-        self.block = ResidualBlock(6, posterior)
+        self.block = ResidualBlock(6, posterior, init_sigma=0.1)  # the block demur bench measures too
         self.norm = nn.LayerNorm(6 * 4 * 4)
         self.hidden = nn.Linear(6 * 4 * 4, 24)
         self.head = VariationalLinear(24, 10, posterior=posterior, init_sigma=0.1)
@@ -73,3 +60,70 @@ def residual_sequential(seed: int = 0) -> ResidualSequential:
     torch.manual_seed(seed)
     return ResidualSequential(VariationalLinear(64, 10, init_sigma=0.05), nn.Tanh(),
                               VariationalLinear(10, 10, init_sigma=0.05)).eval()
+
+
+class FrozenBackbone(nn.Module):
+    """A deterministic conv backbone for 1x8x8 digits: conv, batch norm, ReLU, a residual conv, pool,
+    a linear feature layer (a user's trained network, frozen)."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.stem = nn.Sequential(nn.Conv2d(1, 6, 3, padding=1), nn.BatchNorm2d(6), nn.ReLU())
+        self.conv = nn.Conv2d(6, 6, 3, padding=1)
+        self.features = nn.Linear(6 * 4 * 4, 24)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        h = self.stem(x)
+        h = torch.max_pool2d(h + torch.relu(self.conv(h)), 2)
+        return torch.tanh(self.features(h.flatten(1)))
+
+
+def frozen_backbone(seed: int = 0) -> FrozenBackbone:
+    torch.manual_seed(seed)
+    net = FrozenBackbone()
+    with torch.no_grad():
+        net.stem[1].running_mean.uniform_(-0.5, 0.5)
+        net.stem[1].running_var.uniform_(0.5, 2.0)
+    return net.eval().requires_grad_(False)
+
+
+def backbone_head(posterior: str = "gaussian", seed: int = 0) -> nn.Sequential:
+    """Bayesian last layers: the frozen backbone, two variational linear layers."""
+    backbone = frozen_backbone(seed)
+    torch.manual_seed(seed + 1)
+    return nn.Sequential(backbone, VariationalLinear(24, 16, posterior=posterior, init_sigma=0.1), nn.GELU(),
+                         VariationalLinear(16, 10, posterior=posterior, init_sigma=0.1)).eval()
+
+
+def backbone_dropout(seed: int = 0) -> nn.Sequential:
+    """MC dropout in the head only: the frozen backbone, linear, ReLU, dropout, linear."""
+    backbone = frozen_backbone(seed)
+    torch.manual_seed(seed + 1)
+    return nn.Sequential(backbone, nn.Linear(24, 16), nn.ReLU(), nn.Dropout(0.3), nn.Linear(16, 10)).eval()
+
+
+def shared_backbone_ensemble(members: int = 3, variational: bool = False) -> list[nn.Module]:
+    """A deep ensemble whose members share ONE frozen backbone module and differ in their heads."""
+    backbone = frozen_backbone(0)
+    heads = []
+    for m in range(members):
+        torch.manual_seed(10 + m)
+        head = VariationalLinear(24, 10, init_sigma=0.1) if variational else nn.Linear(24, 10)
+        heads.append(nn.Sequential(backbone, head).eval())
+    return heads
+
+
+class Untraceable(nn.Module):
+    """A forward torch.fx cannot follow (Python control flow on a tensor's size), which the
+    ONNX exporter's tracer runs concretely: it exports the per-draw way."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.backbone = frozen_backbone(0)
+        self.head = VariationalLinear(24, 10, init_sigma=0.1)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        h = self.backbone(x)
+        if h.shape[0] > 0:
+            h = torch.relu(h)
+        return self.head(h)

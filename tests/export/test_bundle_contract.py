@@ -37,7 +37,8 @@ TINY = [  # (task, kind, posterior, arch)
     ("classification", "flip", "radial", "conv"),
     ("classification", "flip", "gaussian", "mlp"),
 ]
-OWN = ["conv-resnet-stacked", "conv-resnet-flip", "ensemble", "mc-dropout-sampler", "mc-dropout-stacked"]
+OWN = ["conv-resnet-stacked", "conv-resnet-flip", "ensemble", "mc-dropout-sampler", "mc-dropout-stacked",
+       "conv-backbone-head-sampler", "conv-backbone-dropout-sampler", "conv-shared-backbone-ensemble"]
 TRAINED = ["demo_bundle", "demo_sampler_bundle", "diabetes_bundle"]
 CASES = [pytest.param(("tiny", c), id="tiny-" + "-".join(c)) for c in TINY] + [
     pytest.param(("own", c), id="own-" + c) for c in OWN] + [
@@ -52,18 +53,24 @@ def own_bundles(tmp_path_factory):
 
     from demur.export import export_model, input_spec
 
-    from tests.export._own_models import depot_conv_net, dropout_mlp, plain_mlp
+    from tests.export._own_models import (backbone_dropout, backbone_head, depot_conv_net, dropout_mlp, plain_mlp,
+                                          shared_backbone_ensemble)
 
     x = load_digits().data.astype(np.float64)
     cache = {}
+    # Bayesian last layers, MC dropout in a head, and an ensemble sharing one frozen backbone: the
+    # shared-computation graphs (export/shared.py) under the same contract
+    special = {"conv-backbone-head-sampler": backbone_head, "conv-backbone-dropout-sampler": backbone_dropout,
+               "conv-shared-backbone-ensemble": lambda: shared_backbone_ensemble(3, variational=True)}
 
     def make(what: str):
         if what not in cache:
             shape = [1, 8, 8] if what.startswith("conv") else None
-            model = (depot_conv_net() if what.startswith("conv") else [plain_mlp(seed=s) for s in range(3)]
-                     if what == "ensemble" else dropout_mlp())
+            model = (special[what]() if what in special else depot_conv_net() if what.startswith("conv")
+                     else [plain_mlp(seed=s) for s in range(3)] if what == "ensemble" else dropout_mlp())
+            ensemble = what.endswith("ensemble")
             bundle = export_model(model, tmp_path_factory.mktemp("own") / what, inputs=input_spec(x[:800], shape=shape),
-                                  kind=what.rsplit("-", 1)[-1] if what != "ensemble" else "stacked", draws=6,
+                                  kind=what.rsplit("-", 1)[-1] if not ensemble else "stacked", draws=6,
                                   reference=x[800:900], seed=5, name=what)
             cache[what] = (bundle, model)
         return cache[what]
@@ -81,7 +88,7 @@ def exported(request, tiny_bundle_factory):
         task, kind, posterior, arch = what
         bundle = tiny_bundle_factory(task=task, kind=kind, posterior=posterior, arch=arch)
         return bundle, tiny_bundle_factory.models[bundle.path]
-    from demur.export.training import load_checkpoint
+    from demur.export.checkpoints import load_checkpoint
 
     bundle = request.getfixturevalue(what)
     checkpoint = request.getfixturevalue("diabetes_checkpoint" if what.startswith("diabetes") else "demo_checkpoint")

@@ -23,7 +23,8 @@ from demur.export.datasets import load_dataset
 from demur.export.errors import ExportError
 from demur.export.exporter import export_bundle, export_model
 from demur.export.layers import forward_draws, sample_network
-from demur.export.training import load_checkpoint, standardise_inputs, train
+from demur.export.checkpoints import load_checkpoint
+from demur.export.training import standardise_inputs, train
 from demur.serve.core.bundle import load_bundle
 from demur.serve.cli import main
 from demur.serve.adapters.engine import Engine

@@ -1,4 +1,4 @@
-"""export/training.py: ELBO training, metrics, the checkpoint and ``demur train``.
+"""export/training.py: ELBO training, metrics and ``demur train``.
 
 References: Guo et al., "On Calibration of Modern Neural Networks", ICML 2017,
 eq. 3 (ECE, worked example below computed by hand); scikit-learn
@@ -8,7 +8,6 @@ sklearn's bundled digits and diabetes data; torch.load(weights_only=True).
 
 from __future__ import annotations
 
-import json
 import math
 
 import numpy as np
@@ -20,16 +19,11 @@ from sklearn.metrics import accuracy_score, log_loss
 
 import demur.export.training as training
 from demur.export.datasets import load_dataset
-from demur.export.errors import CheckpointError, LayerConfigError
+from demur.export.errors import LayerConfigError
 from demur.export.layers import VariationalLinear, variational_layers
-from demur.serve.offline.calibration import expected_calibration_error
-from demur.export.training import (
-    CHECKPOINT_FORMAT,
-    evaluate,
-    load_checkpoint,
-    standardise_inputs,
-    train,
-)
+from demur.serve.offline.metrics import expected_calibration_error
+from demur.export.checkpoints import load_checkpoint
+from demur.export.training import predictive_metrics, standardise_inputs, train
 from demur.serve.cli import main
 
 
@@ -58,7 +52,7 @@ def test_classification_metrics_match_sklearn():
     draws = torch.as_tensor(rng.normal(size=(6, 50, 4)) * 2, dtype=torch.float32)
     y = rng.integers(0, 4, size=50)
     probs = torch.softmax(draws.double(), dim=-1).mean(0).numpy()
-    m = evaluate(draws, y, "classification")
+    m = predictive_metrics(draws, y, "classification")
     assert m["accuracy"] == pytest.approx(accuracy_score(y, probs.argmax(1)))
     assert m["nll"] == pytest.approx(log_loss(y, probs, labels=range(4)), rel=1e-9)
     assert m["ece"] == pytest.approx(expected_calibration_error(probs, y))
@@ -71,7 +65,7 @@ def test_regression_metrics_match_scipy_norm():
     target = {"center": 150.0, "scale": 75.0}
     y = rng.normal(150, 75, size=20)
     draws = torch.as_tensor(np.stack([mean_std, logvar], -1)[None], dtype=torch.float64)
-    m = evaluate(draws, y, "regression", target)
+    m = predictive_metrics(draws, y, "regression", target)
     mu = mean_std * 75 + 150
     sd = np.exp(logvar / 2) * 75
     assert m["nll"] == pytest.approx(-scipy.stats.norm.logpdf(y, mu, sd).mean(), rel=1e-9)
@@ -92,41 +86,6 @@ def test_standardisation_floors_constant_features():
     np.testing.assert_allclose(z[:, varying].std(0), 1.0, atol=1e-5)
     conv = training._input_spec(ds, "conv")
     assert conv["shape"] == [1, 8, 8] and standardise_inputs(conv, ds.x_test[:3]).shape == (3, 1, 8, 8)
-
-
-def test_checkpoint_loads_with_weights_only(tmp_path):
-    ds = load_dataset("digits")
-    result = train(ds, epochs=1, out=tmp_path, hidden=(16,), progress=False)
-    # reference: torch.load(weights_only=True) refuses anything but tensors and plain containers
-    raw = torch.load(tmp_path / "checkpoint.pt", weights_only=True)
-    assert raw["format"] == CHECKPOINT_FORMAT and raw["version"] == 1
-    for key in ("arch", "state_dict", "task", "labels", "inputs", "target", "data", "metrics", "drift_features"):
-        assert key in raw, key
-    assert raw["arch"] == {"kind": "mlp", "hidden": [16], "channels": [16, 32], "posterior": "radial",
-                           "prior_scale": 1.0, "init_sigma": 1e-3}
-    assert raw["data"] == {"source": "digits", "target": "digit", "seed": 0}
-    assert set(raw["inputs"]) >= {"names", "shape", "center", "scale", "low", "high", "kind"}
-    assert len(raw["drift_features"]["edges"]) == 64
-    model, meta = load_checkpoint(tmp_path)
-    assert "state_dict" not in meta and meta["labels"] == [str(i) for i in range(10)]
-    for a, b in zip(variational_layers(model), variational_layers(result.model)):
-        assert torch.equal(a.weight_mu, b.weight_mu) and torch.equal(a.bias_rho, b.bias_rho)
-    record = json.loads((tmp_path / "training.json").read_text())
-    assert record["history"][0]["epoch"] == 1 and "test" in record["metrics"]
-
-
-def test_foreign_checkpoints_are_refused(tmp_path):
-    with pytest.raises(CheckpointError, match="no checkpoint at"):
-        load_checkpoint(tmp_path)
-    torch.save({"format": "something-else"}, tmp_path / "checkpoint.pt")
-    with pytest.raises(CheckpointError, match="format must be 'demur-checkpoint'; got 'something-else'"):
-        load_checkpoint(tmp_path)
-    torch.save({"format": CHECKPOINT_FORMAT, "version": 99}, tmp_path / "checkpoint.pt")
-    with pytest.raises(CheckpointError, match="version 99 is not supported"):
-        load_checkpoint(tmp_path)
-    torch.save({"layer": VariationalLinear(2, 2)}, tmp_path / "checkpoint.pt")  # a pickled module
-    with pytest.raises(CheckpointError, match="not a readable demur checkpoint"):
-        load_checkpoint(tmp_path)
 
 
 def test_bad_settings_are_named():
@@ -248,19 +207,13 @@ def test_ensemble_checkpoint_round_trips_and_exports_the_mixture(tmp_path, capsy
     m = b.manifest
     got = summarise(m.task, Engine(b).load().run(x), m.interval_level, m.target).mean_probs
     assert np.abs(got - want).max() <= 1e-5
-    from demur.export.bench import _load_model
+    from demur.export.bench.engine import _load_model
     from demur.export.errors import ExportError
 
     with pytest.raises(ExportError, match="holds an ensemble of 3"):  # demur bench measures one network
         _load_model(ck)
 
 
-def test_ensemble_checkpoint_with_missing_members_is_refused(tmp_path):
-    ds = load_dataset("digits")
-    train(ds, epochs=1, out=tmp_path, hidden=(16,), progress=False)
-    raw = torch.load(tmp_path / "checkpoint.pt", weights_only=True)
-    torch.save({**raw, "members": 3, "state_dict": [raw["state_dict"]]}, tmp_path / "checkpoint.pt")
-    with pytest.raises(CheckpointError, match="3 members needs as many state_dicts"):
-        load_checkpoint(tmp_path)
+def test_an_ensemble_needs_two_members():
     with pytest.raises(LayerConfigError, match="at least 2 members"):
-        training.train_ensemble(ds, 1)
+        training.train_ensemble(load_dataset("digits"), 1)

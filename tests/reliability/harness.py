@@ -107,6 +107,9 @@ class Server:
     args: list[str] = field(default_factory=list)
     port: int = 0
     proc: subprocess.Popen[bytes] | None = None
+    executable: Path = DEMUR
+    """The ``demur`` to run (tests/test_wheel.py: one installed from the wheel)."""
+    cwd: Path = ROOT
 
     @property
     def url(self) -> str:
@@ -117,10 +120,10 @@ class Server:
         env = {k: v for k, v in os.environ.items() if not k.startswith("DEMUR_")}
         env.update(self.env)
         env["PYTHONUNBUFFERED"] = "1"
-        cmd = [str(DEMUR), "serve", str(self.bundle), "--host", "127.0.0.1", "--port", str(self.port),
+        cmd = [str(self.executable), "serve", str(self.bundle), "--host", "127.0.0.1", "--port", str(self.port),
                "--workers", str(self.workers), "--threads", str(self.threads), *self.args]
         self._log = open(self.log_path, "ab")
-        self.proc = subprocess.Popen(cmd, stdout=self._log, stderr=subprocess.STDOUT, env=env, cwd=ROOT,
+        self.proc = subprocess.Popen(cmd, stdout=self._log, stderr=subprocess.STDOUT, env=env, cwd=self.cwd,
                                      start_new_session=True)
         self.wait_ready(ready_timeout_s)
         return self

@@ -238,6 +238,9 @@ def _pg_cut(rel_bundles: dict[str, Path], tmp_path: Path, n: int, cuts: int, nam
                 found = {}
                 for rid, case_id in rows:
                     found[rid] = found.get(rid, 0) + 1
+                # a pending id may be an alias of the item its case was stored as (serve/review/store)
+                for alias, rid in conn.execute(f'SELECT alias, id FROM "{schema}".demur_review_aliases').fetchall():
+                    found.setdefault(alias, found.get(rid, 0))
                 if set(ids) <= set(found):
                     break
                 time.sleep(0.5)

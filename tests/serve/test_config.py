@@ -56,3 +56,17 @@ def test_frozen_and_sized_to_the_host() -> None:
         cfg.port = 1  # type: ignore[misc]
     assert cfg.workers == 0 and worker_count(cfg) == (os.cpu_count() or 1)
     assert worker_count(cfg.replace(workers=3)) == 3 and worker_count(cfg, cpus=8) == 8
+
+
+def test_every_serve_flag_reaches_the_config() -> None:
+    """A flag `demur serve` accepts but never hands to build_config would be silently ignored
+    (found: --review-order, in the demo): every option's dest is passed or handled by name."""
+    import argparse
+
+    from demur.serve.web import server
+
+    parser = argparse.ArgumentParser()
+    server.register(parser.add_subparsers())
+    serve = next(a for a in parser._subparsers._group_actions[0].choices.values())  # the one subcommand
+    dests = {a.dest for a in serve._actions if a.dest not in ("help", "bundle", "config_file", "single")}
+    assert dests <= set(server._FLAG_FIELDS), dests - set(server._FLAG_FIELDS)

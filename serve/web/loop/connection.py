@@ -10,6 +10,12 @@ What it guarantees, per connection:
   a server may ignore it); the bytes after it are parsed as the next request;
 * limits (request target, header count and size, body size) are refused with a JSON
   414/431/413 naming the field, malformed HTTP with a 400, and the connection closed;
+* a 413 is answered while the client may still be sending its body: closing then would
+  make the kernel answer the rest with a reset, and many clients report ECONNRESET
+  instead of the answer. So after a 413 the connection half-closes (the answer, then
+  FIN) and reads and discards what the client still sends, at most ``DRAIN_BYTES`` or
+  ``DRAIN_S`` seconds, then closes (common practice: an HTTP server's "lingering close";
+  RFC 9112, 9.6, asks a server to close in stages so the client can read the answer);
 * HTTP/1.0 keep-alive is kept only when asked for, and then said so in the answer.
 
 The connection hands complete requests to its ``Front`` (serve/web/loop/worker.py), which
@@ -25,21 +31,27 @@ from typing import TYPE_CHECKING, Any
 
 import httptools
 
-from demur.serve.errors import PayloadTooLarge
-from demur.serve.web.predict_http import encode
+from demur.serve.errors import PayloadTooLarge, Refused
+from demur.serve.web.predict_http import refusal
 
 if TYPE_CHECKING:  # pragma: no cover
     from demur.serve.web.loop.worker import Front
 
-__all__ = ["MAX_PIPELINED", "Connection", "Request", "Slot", "error_answer", "header_value"]
+__all__ = ["DRAIN_BYTES", "DRAIN_S", "MAX_PIPELINED", "Connection", "Request", "Slot", "error_answer",
+           "header_value"]
 
 MAX_PIPELINED = 32  # requests one connection may have in flight before we stop reading it
+DRAIN_BYTES = 64 * 1024 * 1024
+"""Most bytes read and discarded after a 413 before the connection is closed anyway."""
+DRAIN_S = 5.0
+"""Longest a connection lingers after a 413, reading and discarding."""
 _CONTINUE = b"HTTP/1.1 100 Continue\r\n\r\n"
 
 
 def error_answer(status: int, code: str, message: str, field: str | None) -> tuple[int, bytes]:
-    """Status and body in the app's one error shape."""
-    return status, encode({"error": {"code": code, "message": message, "field": field}})
+    """Status and body of a framing refusal, built by the one error path (``refusal``)."""
+    out, _, body = refusal(Refused(status, code, message, field))
+    return out, body
 
 
 def header_value(headers: list[tuple[bytes, bytes]], name: bytes) -> bytes | None:
@@ -53,11 +65,12 @@ def header_value(headers: list[tuple[bytes, bytes]], name: bytes) -> bytes | Non
 class Slot:
     """One answer's place in its connection's response order."""
 
-    __slots__ = ("data", "close")
+    __slots__ = ("data", "close", "linger")
 
     def __init__(self, data: bytes | None = None) -> None:
         self.data = data
         self.close = False
+        self.linger = False  # after writing: half-close and discard what still arrives (a 413)
 
 
 class Request:
@@ -97,6 +110,7 @@ class Connection(asyncio.Protocol):
         self.slots: deque[Slot] = deque()
         self.paused = False
         self.last_active = time.monotonic()
+        self.draining = -1  # >= 0 while lingering after a 413: bytes discarded so far
         self._reset()
 
     def _reset(self) -> None:
@@ -124,6 +138,11 @@ class Connection(asyncio.Protocol):
 
     def data_received(self, data: bytes) -> None:
         self.last_active = time.monotonic()
+        if self.draining >= 0:  # after a 413: the rest of the body, read and discarded
+            self.draining += len(data)
+            if self.draining > DRAIN_BYTES:
+                self.close()
+            return
         while data and self.transport is not None:
             data = self._feed(data)
 
@@ -216,7 +235,11 @@ class Connection(asyncio.Protocol):
             if transport is None:
                 continue
             transport.write(done.data)  # type: ignore[arg-type]
-            if done.close:
+            if done.close and done.linger and transport.can_write_eof():
+                self._linger(transport)
+                transport = None  # nothing more is written on this connection
+                self.slots.clear()
+            elif done.close:
                 transport.close()
                 self.transport = transport = None
         self.last_active = time.monotonic()
@@ -224,9 +247,22 @@ class Connection(asyncio.Protocol):
             transport.resume_reading()
             self.paused = False
 
+    def _linger(self, transport: asyncio.Transport) -> None:
+        """Half-close after the answer (FIN once it is written) and keep reading, discarding."""
+        transport.write_eof()
+        self.draining = 0
+        if self.paused:
+            transport.resume_reading()
+            self.paused = False
+        asyncio.get_running_loop().call_later(DRAIN_S, self.close)
+
+    def eof_received(self) -> bool | None:
+        return None  # the client is done: close (asyncio closes the transport)
+
     def _refuse_now(self) -> None:
         status, body = self.refused  # type: ignore[misc]
         slot = Slot()
+        slot.linger = status == 413
         self.slots.append(slot)
         client = self.front.client_of(self.peer[0], self.headers)
         self.front.count_refusal(self.url.partition(b"?")[0], status, self.t0, len(body), client)
@@ -238,7 +274,7 @@ class Connection(asyncio.Protocol):
 
     @property
     def idle(self) -> bool:
-        return not self.slots and not self.in_message
+        return not self.slots and not self.in_message and self.draining < 0
 
     def close(self) -> Any:
         if self.transport is not None:
