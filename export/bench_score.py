@@ -150,10 +150,12 @@ def score_section(bundle_path: Path, *, rows: int = 20_000, workdir: Path, repea
                 runs[what].append(fn())
     for what, values in runs.items():
         out.append({"what": what, "rows_per_s": _spread(values), "one_core": pinned})
-    limit = out[0]["rows_per_s"]
     for n in workers:
         out.append(_cluster_row(bundle_path, paths["parts"], workdir / f"scored-{n}w", n, rows, repeats))
-    ratio = out[2]["rows_per_s"]["median"] / limit["median"]
+    # the ratio of each interleaved repeat, then their median: a burst of other work on a
+    # shared machine moves both sides of one repeat together
+    engine_runs, score_runs = list(runs.values())[0], list(runs.values())[2]
+    ratio = statistics.median(sc / en for sc, en in zip(score_runs, engine_runs))
     return {"rows": out, "ratio": ratio, "target": SCORE_TARGET, "met": ratio >= SCORE_TARGET,
             "bundle": str(bundle_path), "cases": rows, "chunk_rows": DEFAULT_CHUNK_ROWS}
 
@@ -164,7 +166,7 @@ def _cluster_row(bundle: Path, parts: Path, out: Path, workers: int, rows: int, 
     from demur.serve.offline.cluster import score_to_parquet
 
     with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
-                      dashboard_address=None) as cluster, Client(cluster) as client:
+                      dashboard_address="127.0.0.1:0") as cluster, Client(cluster) as client:
         score_to_parquet(str(parts), bundle, out, id_column="case_id", client=client)  # warm: workers load
 
         def run() -> float:

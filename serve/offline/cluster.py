@@ -34,8 +34,8 @@ from __future__ import annotations
 import os
 import threading
 import time
-from collections.abc import Sequence
-from dataclasses import dataclass
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -44,10 +44,10 @@ import numpy as np
 from demur.serve.config import ServeConfig
 from demur.serve.core.bundle import load_bundle
 from demur.serve.errors import BundleError, ConfigError
-from demur.serve.offline.scoring import DEFAULT_CHUNK_ROWS, Scorer, output_columns
+from demur.serve.offline.scoring import DEFAULT_CHUNK_ROWS, Scorer, ScoreReport, output_columns
 from demur.serve.offline.tables import arrow_rows, arrow_table
 
-__all__ = ["CLUSTER_EXTRA", "ClusterReport", "score_frame", "score_partition", "score_to_parquet"]
+__all__ = ["CLUSTER_EXTRA", "connect", "score_frame", "score_partition", "score_to_parquet"]
 
 CLUSTER_EXTRA = "pip install 'demur[cluster]'"
 
@@ -79,6 +79,33 @@ def _scorer(config: ServeConfig, checksum: str, id_column: str | None) -> Scorer
                                   field="bundle")
             _SCORERS[key] = scorer
     return scorer
+
+
+@contextmanager
+def connect(address: str) -> Iterator[Any]:
+    """A Dask client for ``address``: ``tcp://host:port`` (an existing scheduler) or
+    ``local:N`` (a cluster of N worker processes on this machine, one thread each, on
+    127.0.0.1; closed on exit)."""
+    _dask()
+    from dask.distributed import Client, LocalCluster
+
+    if address.startswith("local:"):
+        try:
+            workers = int(address[len("local:"):])
+        except ValueError:
+            workers = 0
+        if workers < 1:
+            raise ConfigError(f"--cluster local:N needs a number of workers N >= 1; got {address!r}", field="cluster")
+        with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
+                          dashboard_address="127.0.0.1:0") as local, Client(local) as client:
+            yield client
+        return
+    try:
+        client = Client(address, timeout=30)
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise ConfigError(f"cannot reach the Dask scheduler at {address!r}: {exc}", field="cluster") from None
+    with client:
+        yield client
 
 
 def score_partition(frame: Any, number: int, config: ServeConfig, checksum: str,
@@ -164,26 +191,9 @@ def _write(frame: Any, number: int, out: str, config: ServeConfig, checksum: str
             int((decisions == "invalid").sum()))
 
 
-@dataclass(frozen=True)
-class ClusterReport:
-    """What a cluster run wrote: partitions, row counts by decision, seconds, rows/s."""
-
-    partitions: int
-    rows: int
-    accepted: int
-    abstained: int
-    invalid: int
-    seconds: float
-    out: str
-
-    @property
-    def rows_per_s(self) -> float:
-        return self.rows / self.seconds if self.seconds > 0 else float("inf")
-
-
 def score_to_parquet(data: Any, bundle: str | os.PathLike[str], out: str | os.PathLike[str], *,
                      id_column: str | None = None, config: ServeConfig | None = None,
-                     client: Any = None) -> ClusterReport:
+                     client: Any = None) -> ScoreReport:
     """Score ``data`` (a Dask DataFrame, or a Parquet / CSV path the workers can read) with
     ``bundle`` on the Dask cluster of ``client`` (default: the current client), writing
     one Parquet file per partition into the directory ``out``. Files ``part-*.parquet``
@@ -211,5 +221,5 @@ def score_to_parquet(data: Any, bundle: str | os.PathLike[str], out: str | os.Pa
     for partial in target.glob(".part-*.partial-*"):  # left by a worker that died while writing
         partial.unlink(missing_ok=True)
     rows, acc, abst, inv = (int(sum(c[k] for c in counts)) for k in range(4))
-    return ClusterReport(partitions=len(parts), rows=rows, accepted=acc, abstained=abst, invalid=inv,
-                         seconds=time.perf_counter() - t0, out=str(target))
+    return ScoreReport(rows=rows, accepted=acc, abstained=abst, invalid=inv, queued=0,
+                       seconds=time.perf_counter() - t0, out=str(target), partitions=len(parts))

@@ -211,7 +211,8 @@ def _review_note(result: dict[str, Any]) -> tuple[str | None, bool]:
 
 @dataclass(frozen=True)
 class ScoreReport:
-    """What a run did: row counts by decision, review items queued, seconds, rows/s."""
+    """What a run did: row counts by decision, review items queued, seconds, rows/s; the
+    output file (or, on a cluster, the directory of its ``partitions`` files)."""
 
     rows: int
     accepted: int
@@ -220,6 +221,7 @@ class ScoreReport:
     queued: int
     seconds: float
     out: str
+    partitions: int = 1
 
     @property
     def rows_per_s(self) -> float:
@@ -261,6 +263,10 @@ def score_file(config: ServeConfig, data: str | os.PathLike[str], out: str | os.
                 counts[name] += c
             if bar is not None:
                 bar.update(sum(counts.values()))
+        if not sum(counts.values()):  # a header and no rows: an output with its header and no rows
+            columns, valid = scorer.score(Rows(row=np.zeros(0, dtype=np.int64), x=np.zeros((0, 0)), bad=[],
+                                               ids=[] if id_column else None))
+            writer.write(columns, valid, scorer.columns)
         writer.commit()
     except BaseException:
         writer.abort()
@@ -323,6 +329,10 @@ def register(subparsers: Any) -> None:
                                                   "the rule it sets is the rule applied")
     p.add_argument("--chunk-rows", type=int, default=DEFAULT_CHUNK_ROWS,
                    help=f"rows per graph run; bounds memory (default {DEFAULT_CHUNK_ROWS})")
+    p.add_argument("--cluster", default=None, metavar="ADDRESS",
+                   help="score on a Dask cluster: tcp://HOST:PORT, or local:N for N worker processes here; "
+                        "--data is then a Parquet or CSV path or glob the workers read, --out a directory of "
+                        "Parquet files (pip install 'demur[cluster]')")
     p.add_argument("--quiet", action="store_true", help="no progress line even on a terminal")
     p.set_defaults(func=_main)
 
@@ -332,6 +342,8 @@ def _main(args: argparse.Namespace) -> int:
     if args.enqueue:
         flags["review_store"] = args.enqueue
     config = build_config(file=args.config, env=os.environ, flags=flags)
+    if args.cluster:
+        return _on_cluster(args, config)
     review = None
     if args.enqueue:
         review = _review_router(config)
@@ -342,13 +354,31 @@ def _main(args: argparse.Namespace) -> int:
     finally:
         if review is not None:
             review.close()
-    queued = f", {report.queued:,} queued for review" if review is not None else ""
-    print(f"demur score: {report.rows:,} rows -> {report.out}: {report.accepted:,} accepted, "
+    _print(report, queued=f", {report.queued:,} queued for review" if review is not None else "")
+    return 0
+
+
+def _on_cluster(args: argparse.Namespace, config: ServeConfig) -> int:
+    """``--cluster``: the same scorer in every worker (demur.serve.offline.cluster)."""
+    if args.enqueue:
+        raise ConfigError("--enqueue works on one machine only; score on the cluster, then send the abstained "
+                          "rows' file through demur score --enqueue", field="enqueue")
+    from demur.serve.offline.cluster import connect, score_to_parquet
+
+    with connect(args.cluster) as client:
+        report = score_to_parquet(args.data, args.bundle, args.out, id_column=args.id_column, config=config,
+                                  client=client)
+    _print(report, queued="")
+    return 0
+
+
+def _print(report: ScoreReport, queued: str) -> None:
+    where = f"{report.out} ({report.partitions} files)" if report.partitions > 1 else report.out
+    print(f"demur score: {report.rows:,} rows -> {where}: {report.accepted:,} accepted, "
           f"{report.abstained:,} abstained, {report.invalid:,} invalid{queued} "
           f"({report.seconds:.1f} s, {report.rows_per_s:,.0f} rows/s)", file=sys.stderr)
     if report.abstained:
         print(f"demur score: {CAUTION}", file=sys.stderr)
-    return 0
 
 
 def _review_router(config: ServeConfig) -> Any:

@@ -38,6 +38,7 @@ from demur.serve.errors import ConfigError, InvalidInput
 __all__ = [
     "FORMATS",
     "PARQUET_EXTRA",
+    "ROW_GROUP_ROWS",
     "Rows",
     "TableReader",
     "TableWriter",
@@ -54,6 +55,12 @@ FORMATS = {".csv": "csv", ".parquet": "parquet", ".pq": "parquet"}
 """File suffix -> format."""
 
 PARQUET_EXTRA = "pip install 'demur[parquet]'"
+
+ROW_GROUP_ROWS = 65_536
+"""Rows per Parquet row group written: chunks are gathered to this size (about 20 MB for
+the digits' 42 output columns), because a row group per 1,024-row chunk keeps a growing
+footer in memory (measured: 707 MB peak RSS over 7.2 million rows) and makes files that
+readers scan slowly."""
 
 _F32_MAX = float(np.finfo(np.float32).max)
 _OK, _EMPTY, _TEXT, _NONFINITE, _RANGE, _TYPE = range(6)
@@ -469,9 +476,27 @@ class _ArrowWriter(TableWriter):
         self._kind = kind
         self._writer: Any = None
         self._schema: Any = None
+        self._pending: list[Any] = []
+        self._pending_rows = 0
 
     def write(self, columns: dict[str, Any], valid: np.ndarray, kinds: dict[str, str]) -> None:
         table = arrow_table(columns, valid, kinds)
+        if self._kind == "parquet":  # row groups of ROW_GROUP_ROWS, not one per chunk
+            self._pending.append(table)
+            self._pending_rows += table.num_rows
+            if self._pending_rows >= ROW_GROUP_ROWS:
+                self._flush()
+            return
+        self._put(table)
+
+    def _flush(self) -> None:
+        if self._pending:
+            import pyarrow as pa
+
+            self._put(pa.concat_tables(self._pending))
+            self._pending, self._pending_rows = [], 0
+
+    def _put(self, table: Any) -> None:
         if self._writer is None:
             if self._kind == "parquet":
                 import pyarrow.parquet as pq
@@ -484,12 +509,14 @@ class _ArrowWriter(TableWriter):
             self._schema = table.schema
         self._writer.write_table(table.cast(self._schema))
 
+    def commit(self) -> None:
+        self._flush()
+        super().commit()
+
     def _close(self) -> None:
         if self._writer is not None:
             self._writer.close()
             self._writer = None
-        elif not self.tmp.exists():
-            self.tmp.touch()
 
 
 def arrow_table(columns: dict[str, Any], valid: np.ndarray, kinds: dict[str, str]) -> Any:

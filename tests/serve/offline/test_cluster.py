@@ -48,10 +48,11 @@ def _write_parts(root: Path, names: list[str]) -> list[str]:
     return ids
 
 
-@pytest.fixture()
+@pytest.fixture(scope="module")
 def cluster() -> Any:
+    """One local cluster for the module (the killed worker's nanny starts a new process)."""
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                                  dashboard_address=None) as local, distributed.Client(local) as client:
+                                  dashboard_address="127.0.0.1:0") as local, distributed.Client(local) as client:
         yield client
 
 
@@ -119,3 +120,55 @@ def test_score_frame_is_a_lazy_dask_frame(cluster: Any, tiny_bundle_factory: Any
     done = scored.compute()
     assert len(done) == 100 and done["parcel_id"].tolist() == list(range(100))
     assert set(done["decision"]) <= {"accept", "abstain"}
+    # each worker process loaded the bundle once, however many partitions it scored
+    loaded = cluster.run(lambda: [key[1:] for key in __import__("demur.serve.offline.cluster",
+                                                                fromlist=["_SCORERS"])._SCORERS])
+    per_worker = [sum(1 for key in keys if key[0].bundle == str(bundle.path)) for keys in loaded.values()]
+    assert max(per_worker) == 1
+
+
+def test_csv_on_the_cluster_reads_cells_as_text_so_a_bad_cell_is_a_bad_row(cluster: Any, tiny_bundle_factory: Any,
+                                                                         tmp_path: Path) -> None:
+    import csv
+
+    bundle = tiny_bundle_factory(task="classification", kind="stacked", draws=8)
+    names = list(bundle.manifest.inputs.names)
+    x = load_digits().data[:60]
+    (tmp_path / "in").mkdir()
+    for p in range(2):
+        with (tmp_path / "in" / f"parcels-{p}.csv").open("w", newline="") as fh:
+            w = csv.writer(fh)
+            w.writerow(["parcel_id", *names, "depot"])
+            for i, row in enumerate(x[p * 30:(p + 1) * 30]):
+                cells = [repr(float(v)) for v in row]
+                if p == 1 and i == 2:
+                    cells[5] = "seven"
+                w.writerow([f"p{p}-{i}", *cells, "north"])
+    report = score_to_parquet(str(tmp_path / "in" / "*.csv"), bundle.path, tmp_path / "out", id_column="parcel_id",
+                              config=ServeConfig(seed=0), client=cluster)
+    assert report.rows == 60 and report.invalid == 1 and report.partitions == 2
+    table = pq.read_table(sorted((tmp_path / "out").glob("part-*.parquet")))
+    bad = [r for r in table.to_pylist() if r["decision"] == "invalid"]
+    assert [r["reason"] for r in bad] == [f"partition 1 row 3 column '{names[5]}' holds 'seven'; expected a number"]
+    assert sorted(table.column("parcel_id").to_pylist()) == sorted(f"p{p}-{i}" for p in range(2) for i in range(30))
+
+
+def test_cli_scores_on_a_local_cluster(tiny_bundle_factory: Any, tmp_path: Path, capsys: Any) -> None:
+    from demur.serve.cli import main
+
+    bundle = tiny_bundle_factory(task="classification", kind="stacked", draws=8)
+    names = list(bundle.manifest.inputs.names)
+    x = load_digits().data[:50]
+    (tmp_path / "in").mkdir()
+    cols = {n: pa.array(x[:, j]) for j, n in enumerate(names)} | {"parcel_id": pa.array(range(50))}
+    pq.write_table(pa.table(cols), tmp_path / "in" / "parcels.parquet")
+    out = tmp_path / "scored"
+    assert main(["score", str(bundle.path), "--data", str(tmp_path / "in"), "--out", str(out), "--id", "parcel_id",
+                 "--cluster", "local:1"]) == 0
+    assert "50 rows" in capsys.readouterr().err
+    assert pq.read_table(out).column("parcel_id").to_pylist() == list(range(50))
+    assert main(["score", str(bundle.path), "--data", "x", "--out", "y", "--cluster", "local:zero"]) == 1
+    assert "local:N needs a number of workers" in capsys.readouterr().err
+    assert main(["score", str(bundle.path), "--data", "x", "--out", "y", "--cluster", "local:1",
+                 "--enqueue", "sqlite:///q.sqlite3"]) == 1
+    assert "--enqueue works on one machine only" in capsys.readouterr().err

@@ -255,3 +255,108 @@ def test_cli_refusals_name_the_problem(tiny_bundle_factory: Any, tmp_path: Path,
     assert "demur score:" in capsys.readouterr().err
     assert main(["score", str(bundle.path), "--data", str(tmp_path / "missing.csv"), "--out", "y.csv"]) == 1
     assert "no such file" in capsys.readouterr().err
+
+
+def test_image_bundle_rows_are_reshaped_as_the_server_does(tiny_bundle_factory: Any, make_app: Any,
+                                                           tmp_path: Path) -> None:
+    """A conv net's input is [1, 8, 8]: a file row of 64 named pixels is the case the server
+    gets as an 8x8 grid."""
+    bundle = tiny_bundle_factory(task="classification", kind="stacked", draws=8, arch="conv")
+    names = list(bundle.manifest.inputs.names)
+    data = tmp_path / "parcels.csv"
+    _digits_csv(data, names, 20, breakage=False)
+    out = tmp_path / "scored.parquet"
+    score_file(ServeConfig(bundle=str(bundle.path), seed=0), data, out, id_column="parcel_id", ignore=["depot"])
+    rows = _read(out)
+    grids = [np.asarray(v).reshape(8, 8).tolist() for v in load_digits().data[:20]]
+    server = _server_results(make_app, bundle, grids, 1024)
+    assert [r["decision"] for r in rows] == [a["decision"] for a in server]
+    assert [r["prediction"] for r in rows] == [a["prediction"] for a in server]
+    assert [r["score"] for r in rows] == [a["score"]["value"] for a in server]
+
+
+@pytest.mark.postgres
+def test_enqueue_to_postgresql(tiny_bundle_factory: Any, tmp_path: Path, capsys: Any) -> None:
+    """--enqueue with the real PostgreSQL on 127.0.0.1 (the store several servers share)."""
+    from tests.serve._review_helpers import PG_URL, pg_schema, require_postgres, with_schema
+
+    require_postgres()
+    bundle = tiny_bundle_factory(task="classification", kind="stacked", draws=8)
+    data = tmp_path / "parcels.csv"
+    _digits_csv(data, list(bundle.manifest.inputs.names), 30, breakage=False)
+    with pg_schema("demur_score") as schema:
+        url = with_schema(PG_URL, schema)
+        out = tmp_path / "scored.csv"
+        assert main(["score", str(bundle.path), "--data", str(data), "--out", str(out), "--id", "parcel_id",
+                     "--ignore", "depot", "--enqueue", url, "--quiet"]) == 0
+        abstained = [r for r in _read(out) if r["decision"] == "abstain"]
+        queue = open_store(url, lease_s=60.0)
+        try:
+            assert abstained and queue.counts()["pending"] == len(abstained)
+            assert {queue.get(r["review"]).client_case_id for r in abstained} == {r["parcel_id"] for r in abstained}
+        finally:
+            queue.close()
+    assert "queued for review" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("suffix", [".csv", ".parquet"])
+def test_a_file_with_a_header_and_no_rows_gives_an_empty_output(tiny_bundle_factory: Any, tmp_path: Path,
+                                                                 suffix: str) -> None:
+    bundle = tiny_bundle_factory(task="classification", kind="stacked", draws=8)
+    data = tmp_path / "empty.csv"
+    data.write_text(",".join(["parcel_id", *bundle.manifest.inputs.names]) + "\n")
+    out = tmp_path / f"scored{suffix}"
+    report = score_file(ServeConfig(bundle=str(bundle.path), seed=0), data, out, id_column="parcel_id")
+    assert report.rows == 0 and _read(out) == []
+    if suffix == ".parquet":
+        assert pq.read_schema(out).names == list(output_columns(bundle.manifest, "parcel_id"))
+
+
+def test_with_a_queue_an_id_the_store_cannot_hold_makes_its_row_invalid(tiny_bundle_factory: Any,
+                                                                        tmp_path: Path) -> None:
+    """The server refuses such case ids with a 400 naming the field; a file row gets the reason."""
+    from demur.serve.offline.scoring import _review_router
+
+    bundle = tiny_bundle_factory(task="classification", kind="stacked", draws=8)
+    names = list(bundle.manifest.inputs.names)
+    data = tmp_path / "parcels.csv"
+    x = load_digits().data[:4]
+    with data.open("w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh)
+        w.writerow(["parcel_id", *names])
+        for cid, row in zip(["ok-1", "nul\x00here", "x" * 201, ""], x):
+            w.writerow([cid, *row.tolist()])
+    config = ServeConfig(bundle=str(bundle.path), seed=0, review_store=f"sqlite:///{tmp_path / 'q.sqlite3'}")
+    router = _review_router(config)
+    try:
+        score_file(config, data, tmp_path / "scored.csv", id_column="parcel_id", review=router)
+    finally:
+        router.close()
+    rows = _read(tmp_path / "scored.csv")
+    assert [r["decision"] == "invalid" for r in rows] == [False, True, True, False]
+    assert rows[1]["reason"].startswith("row 2: 'parcel_id' holds the NUL character, U+0000 at position 3")
+    assert rows[2]["reason"] == "row 3: 'parcel_id' must have 1 to 200 characters; got 201"
+
+
+def test_progress_line_only_when_asked(tiny_bundle_factory: Any, tmp_path: Path, capsys: Any) -> None:
+    """The CLI asks for it only on a terminal (``sys.stderr.isatty()``); the line shows the
+    share of the file read and rows/s, redrawn in place."""
+    from demur.serve.offline.scoring import _Progress
+
+    class Reader:
+        total_rows, total_bytes = 200, None
+
+        def done(self) -> int:
+            return 50
+
+    bar = _Progress(Reader())
+    bar._last -= 1.0  # as if the last redraw were a second ago
+    bar.update(50)
+    bar.close()
+    assert capsys.readouterr().err.startswith("\rdemur score:  25.0% 50 rows (")
+    bundle = tiny_bundle_factory(task="classification", kind="stacked", draws=8)
+    data = tmp_path / "parcels.csv"
+    _digits_csv(data, list(bundle.manifest.inputs.names), 10, breakage=False)
+    score_file(ServeConfig(bundle=str(bundle.path), seed=0), data, tmp_path / "o.csv", id_column="parcel_id",
+               ignore=["depot"])
+    assert capsys.readouterr().err == ""

@@ -89,3 +89,14 @@ def test_parquet_without_pyarrow_is_refused_naming_the_extra(tmp_path: Path, mon
         open_writer(tmp_path / "out.parquet")
     writer = open_writer(tmp_path / "out.csv")  # CSV still works, through the csv module
     writer.abort()
+
+
+def test_pandas_stored_index_is_not_a_column_to_refuse(tmp_path: Path) -> None:
+    """pandas (DataFrame.to_parquet) stores a non-default unnamed index as the column
+    '__index_level_0__' (pandas metadata convention); it is no feature and no typo."""
+    pd = pytest.importorskip("pandas")
+    path = tmp_path / "frame.parquet"
+    pd.DataFrame({"a": [1.0, 2.0], "b": [3.0, 4.0], "c": [5.0, 6.0]}, index=[10, 20]).to_parquet(path)
+    assert "__index_level_0__" in pq.ParquetFile(path).schema_arrow.names
+    x, bad, _ = _all(open_reader(path, NAMES))
+    assert bad == [None, None] and x.tolist() == [[1.0, 3.0, 5.0], [2.0, 4.0, 6.0]]
