@@ -30,7 +30,7 @@ from demur.serve.core.summary import summarise
 from demur.export.datasets import Dataset, load_dataset
 from demur.export.training import predict_draws, standardise_inputs, train
 
-__all__ = ["measure_review_order"]
+__all__ = ["main", "measure_review_order"]
 
 
 def _subset(ds: Dataset, rows: np.ndarray) -> Dataset:
