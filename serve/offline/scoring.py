@@ -384,9 +384,15 @@ def _print(report: ScoreReport, queued: str) -> None:
 def _review_router(config: ServeConfig) -> Any:
     """The review queue at ``config.review_store_url``: every abstention, no audit sample
     (accepted rows of a backlog are not the live traffic an audit estimates), the server's
-    backlog ceiling. No spool: an abstention the store does not take says so in ``review``."""
+    backlog ceiling. No spool: an abstention the store does not take says so in ``review``;
+    a store that does not answer at the start stops the run (``ReviewStoreUnavailable``)."""
     from demur.serve.review.router import ReviewRouter
     from demur.serve.review.store import open_store
 
     store = open_store(config.review_store_url, lease_s=config.review_lease_s)
+    try:
+        store.ping()  # a store that cannot be reached is refused before the first row, not row by row
+    except BaseException:
+        store.close()
+        raise
     return ReviewRouter(store, None, audit_fraction=0.0, max_pending=config.review_max_pending)

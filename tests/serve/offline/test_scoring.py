@@ -360,3 +360,18 @@ def test_progress_line_only_when_asked(tiny_bundle_factory: Any, tmp_path: Path,
     score_file(ServeConfig(bundle=str(bundle.path), seed=0), data, tmp_path / "o.csv", id_column="parcel_id",
                ignore=["depot"])
     assert capsys.readouterr().err == ""
+
+
+def test_an_unreachable_review_store_stops_the_run_before_any_row(tiny_bundle_factory: Any, tmp_path: Path,
+                                                                   capsys: Any) -> None:
+    from tests.serve._review_helpers import free_port
+
+    bundle = tiny_bundle_factory(task="classification", kind="stacked", draws=8)
+    data = tmp_path / "parcels.csv"
+    _digits_csv(data, list(bundle.manifest.inputs.names), 5, breakage=False)
+    out = tmp_path / "scored.csv"
+    url = f"postgresql://postgres@127.0.0.1:{free_port()}/test"
+    assert main(["score", str(bundle.path), "--data", str(data), "--out", str(out), "--id", "parcel_id",
+                 "--ignore", "depot", "--enqueue", url, "--quiet"]) == 1
+    assert "demur score: no PostgreSQL connection for the review store" in capsys.readouterr().err
+    assert not out.exists()
