@@ -101,10 +101,11 @@ def _settings(quick: bool) -> dict[str, Any]:
     if quick:
         return {"draws": [32], "batches": [1, 64], "repeats": 3, "budget_s": 0.04, "http_s": 2,
                 "worker_models": [(2, 4, 1, 0.0)], "front_rounds": 1, "rss": True,
-                "conv_draws": 32, "conv_nets": ["small", "large"], **_BACKBONE}
+                "conv_draws": 32, "conv_nets": ["small", "large"], "score_rows": 4000, **_BACKBONE}
     return {"draws": [8, 32, 128], "batches": [1, 64], "repeats": 5, "budget_s": 0.2, "http_s": 6,
             "worker_models": [(2, 4, 1, 0.0), (2, 4, 1, 1.0), (1, 4, 1, 0.0), (1, 4, 2, 0.0), (1, 4, 1, 1.0)],
-            "front_rounds": 2, "rss": True, "conv_draws": 32, "conv_nets": ["small", "large"], **_BACKBONE}
+            "front_rounds": 2, "rss": True, "conv_draws": 32, "conv_nets": ["small", "large"], "score_rows": 20_000,
+            **_BACKBONE}
 
 
 _BACKBONE = {"backbone_draws": 32, "backbone_sizes": [32, 224], "backbone_batches": [1, 16]}  # [] skips
@@ -505,6 +506,9 @@ def run_bench(*, quick: bool = False, checkpoint: Path | None = None, http: bool
                                           unchecked=bundles[S]["unchecked"])
         else:
             result["http"] = {"skipped": "--no-http"}
+        if cfg.get("score_rows"):
+            S = 32 if 32 in bundles else next(iter(bundles))
+            result["score"] = _score(bundles[S]["main"].path, cfg, root / "score", log)
         result["machine"]["load_average_end"] = list(os.getloadavg())
         result["elapsed_s"] = time.perf_counter() - t_start
         _ratios_and_targets(result)
@@ -512,6 +516,21 @@ def run_bench(*, quick: bool = False, checkpoint: Path | None = None, http: bool
     finally:
         if own:
             shutil.rmtree(root, ignore_errors=True)
+
+
+def _score(bundle_path: Path, cfg: dict[str, Any], root: Path, log: Callable[[str], None]) -> dict[str, Any]:
+    """``demur score`` against the engine alone, and on a local Dask cluster when installed."""
+    from demur.export.bench.score import score_section
+
+    workers = tuple(int(w) for w in cfg.get("score_workers", (1, 2)))
+    try:
+        import dask.distributed  # noqa: F401
+    except ImportError:
+        workers = ()
+    log(f"score: {cfg['score_rows']} rows, Dask workers {list(workers) or 'not installed'}")
+    root.mkdir(parents=True, exist_ok=True)
+    return score_section(bundle_path, rows=int(cfg["score_rows"]), workdir=root, repeats=int(cfg["repeats"]),
+                         workers=workers)
 
 
 def format_table(result: dict[str, Any]) -> str:
@@ -590,6 +609,13 @@ def format_table(result: dict[str, Any]) -> str:
                          f"off {sup['off']['requests_per_s']:.0f} (p99 {sup['off']['p99_ms']:.1f} ms): on / off "
                          f"{sup['on_over_off_requests_per_s']:.3f}")
     lines += backbone_lines(result.get("backbone", []))
+    score = result.get("score")
+    if score:
+        lines += ["", f"demur score, rows/s (median [min-max]); score / engine {score['ratio']:.2f} "
+                      f"(target >= {score['target']})"]
+        for row in score["rows"]:
+            r = row["rows_per_s"]
+            lines.append(f"  {row['what']:<60} {r['median']:10.0f} [{r['min']:.0f}-{r['max']:.0f}]")
     lines += ["", "ratios"]
     for k, v in result["ratios"].items():
         lines.append(f"  {k:<52} {v:10.3f}" if isinstance(v, (int, float)) else f"  {k:<52} {'-':>10}")

@@ -22,7 +22,7 @@ from demur.serve.cli import build_parser
 TINY = {"draws": [4], "batches": [1, 2], "repeats": 1, "budget_s": 0.0, "rss": False,
         "http_s": 1, "worker_models": [(1, 2, 1, 0.0)], "front_rounds": 1, "conv_draws": 4,
         "conv_nets": ["small"], "backbone_draws": 4, "backbone_sizes": [32], "backbone_batches": [1, 2],
-        "backbone_width": 4}
+        "backbone_width": 4, "score_rows": 300, "score_workers": []}
 
 
 @pytest.fixture(scope="module")
@@ -62,6 +62,16 @@ def test_tiny_run_has_every_section(tiny_result: dict[str, Any]) -> None:
     assert all(row["over_deterministic"] > 0 for row in bll["rows"])
     assert all(v.startswith("shared") for k, v in bll["computation"].items() if k != "means")
     json.dumps(r)  # serialisable as written to bench.json
+
+
+def test_the_default_export_is_scored_as_demur_score_scores_it(tiny_result: dict[str, Any]) -> None:
+    """The score section measures `demur score` against the engine on the bundle `demur export`
+    writes by default (support check on); the cluster rows are skipped in the tiny run."""
+    score = tiny_result["score"]
+    whats = [row["what"] for row in score["rows"]]
+    assert any("engine" in w for w in whats) and any("demur score" in w for w in whats)
+    assert score["ratio"] > 0 and score["target"] == 0.7
+    assert "demur score, rows/s" in format_table(tiny_result)
 
 
 def test_ratios_and_targets_are_named(tiny_result: dict[str, Any]) -> None:

@@ -1,4 +1,4 @@
-"""export/bench_score.py: the scoring section of ``demur bench`` has its documented shape.
+"""export/bench/score.py: the scoring section of ``demur bench`` has its documented shape.
 
 No timing is asserted (speed is the benchmark's own job, as ratios measured in one run):
 a tiny run checks that every row, the ratio and the target are present and well formed.
@@ -11,7 +11,7 @@ import math
 from pathlib import Path
 from typing import Any
 
-from demur.export.bench_score import SCORE_TARGET, score_section
+from demur.export.bench.score import SCORE_TARGET, score_section
 
 
 def test_score_section_has_every_row_and_the_ratio(tiny_bundle_factory: Any, tmp_path: Path) -> None:
