@@ -7,7 +7,7 @@ mutable state; bundles come from tests/conftest.py and are read-only.
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
@@ -61,3 +61,17 @@ def image_client(tiny_bundle_factory: Callable[..., Any], make_app: Callable[...
 def demo_client(demo_bundle: Any, make_app: Callable[..., Any]) -> Any:
     """The trained digits demo (radial MLP, stacked draws, S = 32)."""
     return make_app(demo_bundle).test_client()
+
+
+@pytest.fixture(params=["sqlite", pytest.param("postgres", marks=pytest.mark.postgres)])
+def store_url(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
+    """The URL of an empty review store: a SQLite file under tmp_path, or a fresh schema on
+    the real PostgreSQL (dropped afterwards)."""
+    from tests.serve._review_helpers import PG_URL, pg_schema, require_postgres, with_schema
+
+    if request.param == "sqlite":
+        yield f"sqlite:///{tmp_path / 'reviews.sqlite3'}"
+        return
+    require_postgres()
+    with pg_schema() as schema:
+        yield with_schema(PG_URL, schema)

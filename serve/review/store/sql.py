@@ -113,6 +113,14 @@ class SqlStore:
     def _marks(self, n: int) -> str:
         return ", ".join([self._p] * n)
 
+    def _rows(self, sql: str, params: Sequence[Any] = ()) -> list[Any]:
+        """Every row ``sql`` (already templated) returns, read in one transaction."""
+        def read(cur: Any) -> list[Any]:
+            cur.execute(sql, tuple(params))
+            return cur.fetchall()
+
+        return self._run(read, write=False)
+
     def _run(self, fn: Callable[[Any], Any], *, write: bool) -> Any:
         """``fn(cursor)`` in one transaction, driver errors converted; a transient
         conflict reruns the whole transaction (bounded, jittered)."""
@@ -258,12 +266,8 @@ class SqlStore:
         sql = self.sql("SELECT id, created, rejected, reason, item_json FROM {rejected} "
                        "ORDER BY created, id LIMIT {p}")
 
-        def read(cur: Any) -> list[Any]:
-            cur.execute(sql, (int(limit),))
-            return cur.fetchall()
-
         return [{"id": r[0], "created": iso_time(r[1]), "rejected": iso_time(r[2]), "reason": r[3],
-                 "item": json.loads(r[4])} for r in self._run(read, write=False)]
+                 "item": json.loads(r[4])} for r in self._rows(sql, (int(limit),))]
 
     def rejected_count(self) -> int:
         return self._count(self.sql("SELECT COUNT(*) FROM {rejected}"), ())
@@ -309,11 +313,7 @@ class SqlStore:
             params.append(after)
         sql = self.sql(f"SELECT {_SELECT} FROM {{items}} WHERE {' AND '.join(where)} ORDER BY id LIMIT {{p}}")
 
-        def read(cur: Any) -> list[Any]:
-            cur.execute(sql, (*params, int(limit)))
-            return cur.fetchall()
-
-        return [row_to_item(r, now) for r in self._run(read, write=False)]
+        return [row_to_item(r, now) for r in self._rows(sql, (*params, int(limit)))]
 
     # -- the review flow
     def claim_next(self, reviewer: str, *, exclude: Sequence[str] = ()) -> ReviewItem | None:
@@ -426,12 +426,8 @@ class SqlStore:
             "FROM {items} WHERE status = 'decided' GROUP BY kind"
         )
 
-        def read(cur: Any) -> list[Any]:
-            cur.execute(sql)
-            return cur.fetchall()
-
         out = {kind: {"decided": 0, "labelled": 0, "agree": 0, "valued": 0, "covered": 0} for kind in KINDS}
-        for kind, n, labelled, agree, valued, covered in self._run(read, write=False):
+        for kind, n, labelled, agree, valued, covered in self._rows(sql):
             out[kind] = {"decided": int(n), "labelled": int(labelled or 0), "agree": int(agree or 0),
                          "valued": int(valued or 0), "covered": int(covered or 0)}
         return out
@@ -445,12 +441,8 @@ class SqlStore:
             "FROM {items} WHERE status = 'decided' GROUP BY model_checksum, kind"
         )
 
-        def read(cur: Any) -> list[Any]:
-            cur.execute(sql)
-            return cur.fetchall()
-
         by_model: dict[str, dict[str, int]] = {}
-        for checksum, kind, decided, right in self._run(read, write=False):
+        for checksum, kind, decided, right in self._rows(sql):
             row = by_model.setdefault(str(checksum), {})
             row[f"{kind}_decided"] = int(decided or 0)
             row[f"{kind}_right"] = int(right or 0)
@@ -467,25 +459,27 @@ class SqlStore:
         self._run(read, write=False)
 
 
-def backfill_digests(store: SqlStore, cur: Any) -> None:
-    """Migration step (schema 3): the case digest of every stored item that has a client case id."""
-    cur.execute(store.sql("SELECT id, case_json FROM {items} WHERE client_case_id IS NOT NULL"))
-    rows = cur.fetchall()
-    for item_id, case_json in rows:
+def _backfill(store: SqlStore, cur: Any, column: str, source: str, where: str,
+              compute: Callable[[str], Any]) -> None:
+    """Migration step: set ``column`` of every item matching ``where`` to ``compute(source JSON)``;
+    a value that cannot be computed (``ValueError``) or is None is left NULL."""
+    cur.execute(store.sql(f"SELECT id, {source} FROM {{items}} WHERE {where}"))
+    for item_id, text in cur.fetchall():
         try:
-            digest = case_digest(json.loads(case_json))
+            value = compute(text)
         except ValueError:
             continue
-        cur.execute(store.sql("UPDATE {items} SET case_digest = {p} WHERE id = {p}"), (digest, item_id))
+        if value is not None:
+            cur.execute(store.sql(f"UPDATE {{items}} SET {column} = {{p}} WHERE id = {{p}}"), (value, item_id))
+
+
+def backfill_digests(store: SqlStore, cur: Any) -> None:
+    """Migration step (schema 3): the case digest of every stored item that has a client case id."""
+    _backfill(store, cur, "case_digest", "case_json", "client_case_id IS NOT NULL",
+              lambda text: case_digest(json.loads(text)))
 
 
 def backfill_priorities(store: SqlStore, cur: Any) -> None:
     """Migration step (schema 4): the review priority of every pending or claimed item."""
-    cur.execute(store.sql("SELECT id, summary_json FROM {items} WHERE status <> 'decided'"))
-    for item_id, summary_json in cur.fetchall():
-        try:
-            priority = review_priority(json.loads(summary_json))
-        except ValueError:
-            continue
-        if priority is not None:
-            cur.execute(store.sql("UPDATE {items} SET priority = {p} WHERE id = {p}"), (priority, item_id))
+    _backfill(store, cur, "priority", "summary_json", "status <> 'decided'",
+              lambda text: review_priority(json.loads(text)))

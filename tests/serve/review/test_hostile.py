@@ -21,7 +21,6 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
-import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
@@ -30,7 +29,7 @@ from demur.serve.errors import InvalidInput
 from demur.serve.review.router import ReviewRouter
 from demur.serve.review.spool import Spool
 from demur.serve.review.store import open_store
-from tests.serve._review_helpers import PG_URL, SwitchStore, pg_schema, require_postgres, with_schema
+from tests.serve._review_helpers import SwitchStore
 
 GOOD_ID = st.text(st.characters(codec="utf-8", exclude_categories=("Cc", "Cs")), min_size=1, max_size=40)
 HOSTILE_ID = st.one_of(
@@ -42,15 +41,6 @@ HOSTILE_ID = st.one_of(
     st.just(""),
 )
 
-
-@pytest.fixture(params=["sqlite", pytest.param("postgres", marks=pytest.mark.postgres)])
-def store_url(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
-    if request.param == "sqlite":
-        yield f"sqlite:///{tmp_path / 'reviews.sqlite3'}"
-        return
-    require_postgres()
-    with pg_schema("demur_hostile") as schema:
-        yield with_schema(PG_URL, schema)
 
 
 @contextlib.contextmanager

@@ -31,14 +31,11 @@ from tests.serve._review_helpers import PG_URL, SwitchStore, answered, item, pg_
 LEASE_S = 60.0
 
 
-@pytest.fixture(params=["sqlite", pytest.param("postgres", marks=pytest.mark.postgres)])
-def url(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
-    if request.param == "sqlite":
-        yield f"sqlite:///{tmp_path / 'reviews.sqlite3'}"
-        return
-    require_postgres()
-    with pg_schema("demur_ids") as schema:
-        yield with_schema(PG_URL, schema)
+
+@pytest.fixture()
+def url(store_url: str) -> str:
+    """An empty review store on SQLite and on the real PostgreSQL (tests/serve/conftest.py)."""
+    return store_url
 
 
 @contextlib.contextmanager

@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import json
 import math
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -19,19 +19,9 @@ from demur.serve.adapters.metrics import Metrics
 from demur.serve.config import ServeConfig
 from demur.serve.core.bundle import load_bundle, write_manifest
 from demur.serve.web.app import create_app
-from tests.serve._review_helpers import PG_URL, pg_schema, require_postgres, with_schema
 
 TOKENS = {"review_tokens": "rev-token-0123456789abcdef"}
 
-
-@pytest.fixture(params=["sqlite", pytest.param("postgres", marks=pytest.mark.postgres)])
-def store_url(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
-    if request.param == "sqlite":
-        yield f"sqlite:///{tmp_path / 'reviews.sqlite3'}"
-        return
-    require_postgres()
-    with pg_schema() as schema:
-        yield with_schema(PG_URL, schema)
 
 
 @pytest.fixture()
