@@ -20,7 +20,6 @@ from __future__ import annotations
 import argparse
 import time
 
-import numpy as np
 import torch
 import torch.nn.functional as F
 from sklearn.datasets import load_digits
@@ -29,7 +28,7 @@ from torch import nn
 
 from demur.export import calibrate, export_model, input_spec
 from demur.export.layers import VariationalLinear
-from demur.export.training import elbo_optimiser, kl_weight, total_kl
+from demur.export.elbo import fit_elbo
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.bundle import load_bundle
 from demur.serve.core.decision import decide, rule_from
@@ -83,20 +82,10 @@ def train_backbone(xt: torch.Tensor, yt: torch.Tensor, epochs: int = 15) -> Back
 
 
 def fit_head(features: torch.Tensor, yt: torch.Tensor, epochs: int = 60) -> nn.Sequential:
-    """The ELBO on features computed once: cross-entropy + annealed KL / n (demur.export.training)."""
+    """The ELBO on features computed once: cross-entropy + annealed KL / n (demur.export.elbo.fit_elbo)."""
     head = variational_head(features.shape[1])
-    opt = elbo_optimiser(head, lr=3e-3, rho_lr=1e-3)
-    total, step = epochs * ((len(features) + 127) // 128), 0
-    for _ in range(epochs):
-        head.train()
-        for idx in torch.randperm(len(features)).split(128):
-            loss = (F.cross_entropy(head(features[idx]), yt[idx])
-                    + kl_weight(step, total) * total_kl(head) / len(features))
-            opt.zero_grad()
-            loss.backward()
-            opt.step()
-            step += 1
-    return head.eval()
+    fit_elbo(head, features, yt, epochs=epochs, batch=128, threads=None)
+    return head
 
 
 def main(out: str = "build/own-backbone", weights: str | None = None) -> None:

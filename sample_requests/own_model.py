@@ -16,9 +16,7 @@ out here so you can read and change it.
 from __future__ import annotations
 
 import sys
-import time
 
-import numpy as np
 import torch
 import torch.nn.functional as F
 from sklearn.datasets import load_digits
@@ -27,7 +25,7 @@ from torch import nn
 
 from demur.export import export_model, input_spec
 from demur.export.layers import VariationalConv2d, VariationalLinear
-from demur.export.training import elbo_optimiser, kl_weight, total_kl
+from demur.export.elbo import fit_elbo
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.bundle import load_bundle
 from demur.serve.core.summary import summarise
@@ -63,21 +61,8 @@ def main(out: str = "build/own-model") -> None:
     xt, yt = torch.from_numpy(spec.standardise(x_train)), torch.as_tensor(y_train)
 
     model = PostcodeNet()
-    opt = elbo_optimiser(model, lr=3e-3, rho_lr=1e-3)     # sigma moves more gently than the means
-    torch.set_num_threads(1)                               # small matrices: a second thread mostly waits
-    epochs, batch = 8, 64
-    total = epochs * ((len(xt) + batch - 1) // batch)
-    started, step = time.perf_counter(), 0
-    for _ in range(epochs):
-        model.train()
-        for idx in torch.randperm(len(xt)).split(batch):
-            loss = F.cross_entropy(model(xt[idx]), yt[idx]) + kl_weight(step, total) * total_kl(model) / len(xt)
-            opt.zero_grad()
-            loss.backward()
-            opt.step()
-            step += 1
-    model.eval()
-    print(f"trained in {time.perf_counter() - started:.1f} s")
+    seconds = fit_elbo(model, xt, yt, epochs=8, batch=64)   # the ELBO, sigma on a gentler step than the means
+    print(f"trained in {seconds:.1f} s")
 
     bundle = export_model(model, out, inputs=spec, labels=[str(d) for d in range(10)], kind="flip", draws=32,
                           reference=x_held[:200], name="postcode-digits", seed=0)

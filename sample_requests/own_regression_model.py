@@ -17,7 +17,6 @@ qualified clinician.
 from __future__ import annotations
 
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -27,7 +26,7 @@ from torch import nn
 
 from demur.export import input_spec
 from demur.export.layers import VariationalLinear
-from demur.export.training import elbo_optimiser, kl_weight, total_kl
+from demur.export.elbo import fit_elbo
 
 TARGET = "progression"
 
@@ -59,21 +58,8 @@ def main(out: str = "build/own-regression") -> None:
     yt = torch.from_numpy((y[train] - center) / scale).float()
 
     model = build_model()
-    opt = elbo_optimiser(model, lr=1e-2, rho_lr=1e-3)
-    epochs, batch = 150, 32
-    total = epochs * ((len(xt) + batch - 1) // batch)
-    started, step = time.perf_counter(), 0
-    for _ in range(epochs):
-        for idx in torch.randperm(len(xt)).split(batch):
-            mean, log_var = model(xt[idx]).unbind(-1)
-            nll = 0.5 * (log_var + (yt[idx] - mean) ** 2 / log_var.exp()).mean()    # Gaussian NLL
-            loss = nll + kl_weight(step, total) * total_kl(model) / len(xt)
-            opt.zero_grad()
-            loss.backward()
-            opt.step()
-            step += 1
-    model.eval()
-    print(f"trained in {time.perf_counter() - started:.1f} s on {len(xt)} rows")
+    seconds = fit_elbo(model, xt, yt, task="regression", epochs=150, batch=32, lr=1e-2)   # Gaussian NLL + KL
+    print(f"trained in {seconds:.1f} s on {len(xt)} rows")
 
     root = Path(out)
     root.mkdir(parents=True, exist_ok=True)

@@ -17,7 +17,6 @@ supports, and never replaces, the judgement of a qualified clinician.
 from __future__ import annotations
 
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -29,7 +28,7 @@ from torch import nn
 
 from demur.export import export_model, input_spec
 from demur.export.layers import VariationalLinear
-from demur.export.training import elbo_optimiser, kl_weight, total_kl
+from demur.export.elbo import fit_elbo
 
 TARGET = "diagnosis"
 
@@ -81,20 +80,8 @@ def main(out: str = "build/own-tabular") -> None:
     xt, yt = torch.from_numpy(spec.standardise(x_train)).float(), torch.as_tensor(y_train)
 
     model = TriageNet(len(names), 32, len(labels))
-    opt = elbo_optimiser(model, lr=3e-3, rho_lr=1e-3)
-    epochs, batch = 60, 32
-    total = epochs * ((len(xt) + batch - 1) // batch)
-    started, step = time.perf_counter(), 0
-    for _ in range(epochs):
-        model.train()
-        for idx in torch.randperm(len(xt)).split(batch):
-            loss = F.cross_entropy(model(xt[idx]), yt[idx]) + kl_weight(step, total) * total_kl(model) / len(xt)
-            opt.zero_grad()
-            loss.backward()
-            opt.step()
-            step += 1
-    model.eval()
-    print(f"trained in {time.perf_counter() - started:.1f} s on {len(xt)} rows")
+    seconds = fit_elbo(model, xt, yt, epochs=60, batch=32)
+    print(f"trained in {seconds:.1f} s on {len(xt)} rows")
 
     root = Path(out)
     root.mkdir(parents=True, exist_ok=True)
