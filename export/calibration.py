@@ -47,7 +47,7 @@ from typing import Any
 import numpy as np
 
 from demur.serve.adapters.engine import Engine
-from demur.serve.core.bundle import SCORE_TASKS, SCORE_UNITS, Bundle, load_bundle, write_manifest
+from demur.serve.core.bundle import SCORE_TASKS, SCORE_UNITS, Bundle, SupportSection, load_bundle, write_manifest
 from demur.serve.core.decision import DecisionRule, ServedRule, Verdicts, score_values
 from demur.serve.core.drift import score_reference
 from demur.serve.core.summary import conformal_variance, summarise
@@ -223,7 +223,7 @@ def _calibrate(b: Bundle, cal: Cases, check: Cases | None, floor_x: np.ndarray |
                      "cases only")
 
     engine = Engine(b, graph=graph, seed=engine_seed).load()
-    support = recalibrated(m.raw["support"], m.inputs, cal.x) if m.raw.get("support") else None
+    support = recalibrated(m.support.record, m.inputs, cal.x) if m.support is not None else None
     served = _served_rule(m, score, support)
     d_cal = draws_in_chunks(engine, cal.x)
     d_test = draws_in_chunks(engine, check.x) if check is not None else None
@@ -384,7 +384,8 @@ def _served_rule(m: Any, score: str, support: dict[str, Any] | None) -> ServedRu
     """The rule the bundle will serve, its threshold still open: the support check as it will be
     written (re-set on the calibration rows) and ``score``. The one rule object
     (serve/core/decision.py): calibrate certifies exactly what the server runs."""
-    check = support_from_manifest(SimpleNamespace(raw={"support": support}, inputs=m.inputs)) if support else None
+    section = SupportSection(threshold=None, record=support) if support else None  # as load_bundle will parse it
+    check = support_from_manifest(SimpleNamespace(support=section, inputs=m.inputs)) if section else None
     return ServedRule(DecisionRule(score, 0.0, "calibrated"), check)
 
 

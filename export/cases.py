@@ -18,7 +18,7 @@ from typing import Any
 
 import numpy as np
 
-from demur.serve.core.bundle import Bundle
+from demur.serve.core.bundle import Bundle, TrainingData
 from demur.serve.core.fingerprint import training_overlap
 from demur.serve.errors import ConfigError
 
@@ -180,11 +180,11 @@ def fitted_rows(bundle: Bundle, x: np.ndarray, what: str, *, field: str) -> Any:
     """Which rows of ``x`` the bundle's training-row fingerprint recognises
     (``demur.serve.core.fingerprint.training_overlap``), or None when the bundle keeps no
     fingerprint; a damaged one is a ``DatasetError`` naming ``field``."""
-    record = bundle.manifest.raw.get("extensions", {}).get("training_rows")
-    if record is None:
+    fingerprint = bundle.manifest.fingerprint
+    if fingerprint is None:
         return None
     try:
-        return training_overlap(record, x)
+        return training_overlap(fingerprint.record, x)
     except ValueError as exc:
         raise DatasetError(f"cannot check {what} against the training rows: {exc}", field=field) from None
 
@@ -229,7 +229,8 @@ def screen_training_rows(bundle: Bundle, cases: Cases, drop: bool, what: str) ->
 def label_column(bundle: Bundle, target: str | None) -> str:
     """The label column of a user's CSV: ``target``, else the one the bundle's training used;
     ``ConfigError`` when neither is known."""
-    target = target or _trained_on(bundle).get("target")
+    data = _trained_on(bundle)
+    target = target or (data.target if data is not None else None)
     if target is None:
         raise ConfigError("a CSV needs --target COLUMN (the label column); the bundle records none", field="target")
     return str(target)
@@ -241,8 +242,8 @@ def builtin_splits(bundle: Bundle, data: str, seed: int | None) -> tuple[Dataset
     Its labels and features must be the bundle's (``DatasetError`` otherwise)."""
     m = bundle.manifest
     trained = _trained_on(bundle)
-    same = str(trained.get("source", data)) == str(data)
-    split_seed = int(seed if seed is not None else (trained.get("seed", 0) if same else 0))
+    same = trained is None or trained.source in ("", str(data))
+    split_seed = int(seed if seed is not None else (trained.seed if trained is not None and same else 0))
     ds = load_dataset(data, None, seed=split_seed, task=m.task)
     if m.task == "classification" and tuple(ds.labels) != tuple(m.labels):
         raise DatasetError(f"data '{data}' has labels {list(ds.labels)}; bundle {bundle.path} has {list(m.labels)}",
@@ -254,6 +255,7 @@ def builtin_splits(bundle: Bundle, data: str, seed: int | None) -> tuple[Dataset
     return ds, split_seed
 
 
-def _trained_on(bundle: Bundle) -> dict[str, Any]:
-    """How the bundle's training data was loaded ({"source", "target", "seed"}), or {}."""
-    return (bundle.manifest.raw.get("extensions", {}).get("training", {}) or {}).get("data", {}) or {}
+def _trained_on(bundle: Bundle) -> TrainingData | None:
+    """How the bundle's training rows were loaded (``extensions.training.data``), or None."""
+    training = bundle.manifest.training
+    return training.data if training is not None else None

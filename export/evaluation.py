@@ -61,7 +61,7 @@ from demur.serve.offline.evaluation import (
     write_evaluation,
 )
 
-from demur.serve.offline.chunked import draws_in_chunks
+from demur.serve.offline.chunked import chunks
 
 from demur.export.cases import (
     builtin_splits,
@@ -91,10 +91,15 @@ def _served(bundle: Bundle, x: np.ndarray, y: np.ndarray, shifts: dict[str, np.n
     rule, support = served.rule, served.support
 
     def run(xs: np.ndarray) -> tuple[dict[str, np.ndarray], np.ndarray, np.ndarray]:
-        xs = xs.reshape(-1, *m.inputs.shape)
-        s = summarise(m.task, draws_in_chunks(engine, xs), m.interval_level, m.target)
-        d = served.decide(s, xs)
-        return scores_of(s.mean_probs, s.mutual_information), ~d.abstain, s.mean_probs
+        probs, mi, accept = [], [], []
+        for xb in chunks(xs.reshape(-1, *m.inputs.shape)):
+            s = summarise(m.task, engine.run(xb), m.interval_level, m.target)
+            d = served.decide(s, xb)
+            probs.append(s.mean_probs)
+            mi.append(s.mutual_information)
+            accept.append(~d.abstain)
+        p = np.concatenate(probs)
+        return scores_of(p, np.concatenate(mi)), np.concatenate(accept), p
 
     clean, accept, probs = run(x)
     shifted = {name: run(xs)[:2] for name, xs in shifts.items()}
@@ -152,14 +157,13 @@ def _recipe(bundle: Bundle | None) -> dict[str, Any]:
     user's own, or an export from before the record existed."""
     from demur.export.training import DEFAULTS
 
-    t = (bundle.manifest.raw.get("extensions", {}) or {}).get("training", {}) if bundle is not None else {}
-    t = t if isinstance(t, dict) else {}
-    settings, arch = t.get("settings"), t.get("arch")
-    recorded = isinstance(settings, dict) and isinstance(arch, dict) and arch.get("kind") in ("mlp", "conv")
-    chosen = {k: settings[k] for k in DEFAULTS if recorded and k in settings}
-    return {"recorded": recorded, "arch": arch["kind"] if recorded else "mlp",
-            "settings": {**DEFAULTS, **chosen},
-            "seed": int(settings["seed"]) if recorded and isinstance(settings.get("seed"), int) else None}
+    t = bundle.manifest.training if bundle is not None else None
+    settings, arch = (t.settings, t.arch) if t is not None else (None, None)
+    recorded = settings is not None and arch is not None and arch.get("kind") in ("mlp", "conv")
+    chosen = {k: settings[k] for k in DEFAULTS if recorded and settings is not None and k in settings}
+    seed = settings.get("seed") if recorded and settings is not None else None
+    return {"recorded": recorded, "arch": arch["kind"] if recorded and arch is not None else "mlp",
+            "settings": {**DEFAULTS, **chosen}, "seed": int(seed) if isinstance(seed, int) else None}
 
 
 def _baseline(members: list[Any], bundle: Bundle, x: np.ndarray, y: np.ndarray,
@@ -309,7 +313,7 @@ def _recalibrated_like(original: Bundle, held: Bundle, x_cal: np.ndarray, y_cal:
     from demur.export.calibration import calibrate
     from demur.serve.errors import CalibrationInfeasible
 
-    record = original.manifest.raw.get("decision", {}).get("calibration") or {}
+    record = original.manifest.decision.calibration or {}
     goal, score = record.get("target") or {}, record.get("score")
     if "accuracy" in goal:
         options = {"target_accuracy": float(goal["accuracy"]), "max_abstain": float(goal["max_abstain"]),
@@ -323,9 +327,9 @@ def _recalibrated_like(original: Bundle, held: Bundle, x_cal: np.ndarray, y_cal:
     except CalibrationInfeasible as exc:
         return held, f"the exporter's default threshold (calibrating as the bundle was failed: {exc})"
     held = load_bundle(held.path)
-    d = held.manifest.raw["decision"]
+    d = held.manifest.decision
     goal_text = ", ".join(f"{k} {v:g}" for k, v in options.items())
-    return held, (f"{d['score']} > {d['threshold']:.4g}, calibrated as the bundle was ({goal_text}) on the seen "
+    return held, (f"{d.score} > {d.threshold:.4g}, calibrated as the bundle was ({goal_text}) on the seen "
                   "classes' cal split")
 
 
@@ -528,28 +532,34 @@ def _evaluate_regression(b: Bundle, x: np.ndarray, y: np.ndarray, *, out: str | 
     engine = Engine(b, graph="auto", seed=0).load()
     served = ServedRule.from_manifest(m)
 
-    def run(xs: np.ndarray) -> tuple[np.ndarray, Any, Any]:
+    def run(xs: np.ndarray) -> tuple[np.ndarray, Any, np.ndarray, np.ndarray]:
+        """(draws, summary, abstain, outside), decided a chunk at a time (bounded k-NN memory)."""
         xs = xs.reshape(-1, *m.inputs.shape)
-        d = draws_in_chunks(engine, xs)
-        s = summarise(m.task, d, m.interval_level, m.target)
-        return d, s, served.decide(s, xs)
+        d, verdicts = [], []
+        for xb in chunks(xs):
+            db = engine.run(xb)
+            d.append(db)
+            verdicts.append(served.decide(summarise(m.task, db, m.interval_level, m.target), xb))
+        d = np.concatenate(d, axis=1)
+        out = [v.outside if v.outside is not None else np.zeros(len(v.abstain), bool) for v in verdicts]
+        return (d, summarise(m.task, d, m.interval_level, m.target), np.concatenate([v.abstain for v in verdicts]),
+                np.concatenate(out))
 
-    d, s, v = run(x)
+    d, s, abstain, outside = run(x)
     mu, sd = regression_components(d, float(m.target.get("center", 0.0)), float(m.target.get("scale", 1.0)))
     spec = m.inputs
     low, high = np.asarray(spec.low), np.asarray(spec.high)
     shifts = {**shifted_inputs(x, low=low, high=high, center=np.asarray(spec.center), image_shape=None, seed=seed),
               **far_shifts(x, low=low, high=high)}
     clean_width = float(np.mean(s.interval_width))
-    outside = lambda vv: vv.outside if vv.outside is not None else np.zeros(len(vv.abstain), bool)  # noqa: E731
-    rows = {"clean": regression_shift_row(clean_width, s.interval_width, s.epistemic_std, ~v.abstain, outside(v))}
+    rows = {"clean": regression_shift_row(clean_width, s.interval_width, s.epistemic_std, ~abstain, outside)}
     for name, xs in shifts.items():
-        _, ss, vv = run(xs)
-        rows[name] = regression_shift_row(clean_width, ss.interval_width, ss.epistemic_std, ~vv.abstain, outside(vv))
+        _, ss, ab, far = run(xs)
+        rows[name] = regression_shift_row(clean_width, ss.interval_width, ss.epistemic_std, ~ab, far)
     body = {"scores": regression_scores(mu, sd, y),
             "coverage": coverage_table(mu, sd, y, (s.lower, s.upper, s.level, s.interval_method)),
             "referral": referral_by_epistemic(y, s.mean, s.epistemic_var, s.lower, s.upper),
-            "shift": rows, "clean_accepted": float(np.mean(~v.abstain)),
+            "shift": rows, "clean_accepted": float(np.mean(~abstain)),
             "rule": {"score": served.rule.score, "threshold": served.rule.threshold, "source": served.rule.source,
                      "support": served.support is not None}}
     figures = {"title": title or f"{m.model_name} v{m.model_version}", "model": m.model_name, "task": "regression",

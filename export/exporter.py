@@ -69,7 +69,7 @@ from demur.serve.core.fingerprint import training_fingerprint
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.summary import summarise
 from demur.serve.core.support import standardisation, support_record
-from demur.serve.offline.chunked import draws_in_chunks
+from demur.serve.offline.chunked import chunks
 
 from demur.export.datasets import read_features, read_labelled, read_training_columns
 from demur.export.errors import ExportError, GraphBuildError
@@ -478,8 +478,8 @@ def _reference_scores(bundle: Bundle, x_raw: np.ndarray) -> np.ndarray:
     m = bundle.manifest
     seed = next((m.graphs[k].seed for k in FRESH_KINDS if k in m.graphs), None)
     engine = Engine(bundle, graph="auto", seed=seed).load()
-    summary = summarise(m.task, draws_in_chunks(engine, x_raw), m.interval_level, m.target)
-    return score_values(summary, DEFAULT_SCORE)
+    return np.concatenate([score_values(summarise(m.task, engine.run(xb), m.interval_level, m.target),
+                                        DEFAULT_SCORE) for xb in chunks(x_raw)])
 
 
 def _swap_into_place(tmp: Path, out: Path) -> None:

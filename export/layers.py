@@ -60,6 +60,7 @@ from demur.export.errors import LayerConfigError
 __all__ = [
     "ARCHITECTURES",
     "POSTERIORS",
+    "ResidualBlock",
     "VariationalConv2d",
     "VariationalLayer",
     "VariationalLinear",
@@ -305,6 +306,23 @@ class VariationalConv2d(VariationalLayer):
 
 
 # -- whole networks -----------------------------------------------------------
+class ResidualBlock(nn.Module):
+    """``x -> GELU(x + BatchNorm(VariationalConv2d(x)))``, channels kept (3x3, padding 1): the
+    residual block of the conv nets ``demur bench`` measures (export/bench/conv.py) and of the
+    own-model tests. ``layer`` options go to the convolution (default: ``init_spread`` 0.02,
+    the training default). sample_requests/own_model.py keeps a standalone copy, since a user
+    copies that file alone."""
+
+    def __init__(self, channels: int, posterior: str = "radial", **layer: Any) -> None:
+        super().__init__()
+        self.conv = VariationalConv2d(channels, channels, 3, padding=1, posterior=posterior,  # type: ignore[arg-type]
+                                      **(layer or {"init_spread": 0.02}))
+        self.bn = nn.BatchNorm2d(channels)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return F.gelu(x + self.bn(self.conv(x)))
+
+
 def build_model(
     kind: str,
     input_shape: Sequence[int],

@@ -7,6 +7,10 @@ with demur's public API, and run the bundle the way the server does.
 The architecture is yours: a deterministic conv stem, max-pool, a residual block with batch
 norm and GELU, and demur's variational layers where you want weight uncertainty. Only the
 variational layers must be demur's; everything else is plain torch.
+
+This file stands alone on purpose (you copy it, nothing else): its ``Residual`` block is the
+same block ``demur.export.layers.ResidualBlock`` gives the benchmark and the tests, written
+out here so you can read and change it.
 """
 
 from __future__ import annotations

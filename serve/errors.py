@@ -23,7 +23,7 @@ so callers that only know Python's own exceptions still catch it::
     ├── GraphRunError(RuntimeError)          onnxruntime failed on validated input (500)
     ├── ReviewStoreUnavailable(ConnectionError)  the review store cannot be reached
     ├── ReviewItemRejected(ValueError)       this one item can never be stored (set aside)
-    └── CalibrationInfeasible(ValueError)    no threshold meets the target
+    ├── CalibrationInfeasible(ValueError)    no threshold meets the target
 
 Every error carries ``field`` (the offending key path, or ``None``), an HTTP
 ``status`` and a short machine ``code``; ``to_payload`` gives the JSON body
@@ -50,12 +50,14 @@ __all__ = [
     "NotLoaded",
     "Overloaded",
     "PayloadTooLarge",
+    "Refused",
     "ReviewItemRejected",
     "ReviewStoreUnavailable",
     "SmokeFailed",
     "Unauthorized",
     "UnsupportedFormat",
     "UnsupportedMediaType",
+    "internal_error",
 ]
 
 
@@ -177,3 +179,19 @@ class ReviewItemRejected(DemurError, ValueError):
 class CalibrationInfeasible(DemurError, ValueError):
     status = 422
     code = "calibration_infeasible"
+
+
+class Refused(DemurError):
+    """An HTTP refusal that is none of the named errors: its ``status`` and ``code`` are given
+    (a routing 404 or 405, a framing 414 or 431, a 500). Every error body of every front is
+    built from a ``DemurError`` by ``demur.serve.web.predict_http.refusal``, this one included."""
+
+    def __init__(self, status: int, code: str, message: str, field: str | None = None) -> None:
+        super().__init__(message, field=field)
+        self.status = int(status)
+        self.code = code
+
+
+def internal_error() -> Refused:
+    """The 500 every front answers for what it did not expect; the details go to the log only."""
+    return Refused(500, "internal", "internal error; the server log has the details")

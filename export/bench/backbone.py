@@ -45,14 +45,14 @@ from demur.export.errors import ExportError
 from demur.export.graphs import export_graph
 from demur.export.layers import VariationalLinear
 from demur.serve.adapters.engine import Engine
-from demur.serve.core.bundle import Bundle, write_bundle
+from demur.serve.core.bundle import GRAPH_KINDS, Bundle, write_bundle
 from demur.serve.core.npy_body import NPY_MEDIA_TYPE
 
 __all__ = ["BACKBONE_KINDS", "BayesianLastLayers", "backbone_lines", "backbone_ratios", "backbone_section", "image_spec",
            "transport_section"]
 
-BACKBONE_KINDS = ("stacked", "sampler", "flip", "means")
-"""Graph kinds measured; ``means`` is the deterministic network."""
+BACKBONE_KINDS = GRAPH_KINDS
+"""Graph kinds measured (every kind of the bundle format); ``means`` is the deterministic network."""
 
 _TOLERANCE = 1e-4
 

@@ -30,7 +30,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from demur.export.layers import VariationalConv2d, VariationalLinear
+from demur.export.layers import ResidualBlock, VariationalLinear
 from demur.serve.adapters.engine import Engine
 
 __all__ = ["CONV_NETS", "DepotConv", "conv_section", "network_numbers"]
@@ -42,16 +42,6 @@ CONV_NETS = {"small": {"channels": 8, "blocks": 1, "hidden": 0},
 _KINDS = ("stacked", "flip")
 
 
-class _Residual(nn.Module):
-    def __init__(self, channels: int) -> None:
-        super().__init__()
-        self.conv = VariationalConv2d(channels, channels, 3, padding=1, posterior="radial", init_spread=0.02)
-        self.bn = nn.BatchNorm2d(channels)
-
-    def forward(self, x: torch.Tensor) -> torch.Tensor:
-        return F.gelu(x + self.bn(self.conv(x)))
-
-
 class DepotConv(nn.Module):
     """Digits [1, 8, 8] -> 10 logits: conv stem, ReLU, max-pool, ``blocks`` residual blocks,
     optionally a variational hidden layer (GELU), a variational head."""
@@ -59,7 +49,7 @@ class DepotConv(nn.Module):
     def __init__(self, channels: int, blocks: int, hidden: int) -> None:
         super().__init__()
         self.stem = nn.Conv2d(1, channels, 3, padding=1)
-        self.blocks = nn.Sequential(*(_Residual(channels) for _ in range(blocks)))
+        self.blocks = nn.Sequential(*(ResidualBlock(channels) for _ in range(blocks)))
         width = channels * 4 * 4
         self.hidden = VariationalLinear(width, hidden, init_spread=0.02) if hidden else None
         self.head = VariationalLinear(hidden or width, 10, init_spread=0.02)

@@ -23,6 +23,7 @@ Example::
 
 from __future__ import annotations
 
+import functools
 import logging
 import threading
 import time
@@ -80,6 +81,11 @@ class Live:
     def manifest(self) -> Any:
         return self.engine.manifest
 
+    @functools.cached_property
+    def decision_rule(self) -> dict[str, Any]:
+        """The rule in force as every answer and ``GET /v1/model`` show it, built once per model."""
+        return {"score": self.rule.score, "threshold": self.rule.threshold, "source": self.rule.source}
+
 
 @dataclass(frozen=True)
 class Answered:
@@ -108,7 +114,8 @@ class ReviewHook(Protocol):
 
 
 class MetricsHook(Protocol):
-    """What the pipeline and the fronts report to (serve/adapters/metrics.py implements it)."""
+    """Everything the pipeline and the fronts report (serve/adapters/metrics.py implements it).
+    Callers go through ``Runtime.monitor``, which guards every call once."""
 
     def bind_model(self, bundle: Any, rule: DecisionRule) -> None: ...
 
@@ -116,6 +123,10 @@ class MetricsHook(Protocol):
                         graph_seconds: float, total_seconds: float) -> None: ...
 
     def observe_error(self, *, status: int, code: str, endpoint: str | None) -> None: ...
+
+    def observe_request(self, route: str, method: str, status: int, seconds: float) -> None: ...
+
+    def observe_connection_refused(self) -> None: ...
 
 
 class _NoReview:
@@ -135,6 +146,43 @@ class _NoMetrics:
 
     def observe_error(self, **_: Any) -> None:
         return None
+
+    def observe_request(self, route: str, method: str, status: int, seconds: float) -> None:
+        return None
+
+    def observe_connection_refused(self) -> None:
+        return None
+
+
+class _Guarded:
+    """The metrics hook behind one guard: a failing metric is logged, never costs an answer,
+    a connection or a roll-out. Every caller (pipeline, fronts, error handler) goes through it."""
+
+    def __init__(self, hook: MetricsHook) -> None:
+        self.hook = hook
+
+    def _call(self, fn: Callable[..., None], *args: Any, **kwargs: Any) -> None:
+        try:
+            fn(*args, **kwargs)
+        except Exception:  # metrics must never cost an answer
+            log.exception("metrics hook failed")
+
+    def bind_model(self, bundle: Any, rule: DecisionRule) -> None:
+        self._call(self.hook.bind_model, bundle, rule)
+
+    def observe_predict(self, *, x_raw: np.ndarray, summary: Summary, decisions: Verdicts,
+                        graph_seconds: float, total_seconds: float) -> None:
+        self._call(self.hook.observe_predict, x_raw=x_raw, summary=summary, decisions=decisions,
+                   graph_seconds=graph_seconds, total_seconds=total_seconds)
+
+    def observe_error(self, *, status: int, code: str, endpoint: str | None) -> None:
+        self._call(self.hook.observe_error, status=status, code=code, endpoint=endpoint)
+
+    def observe_request(self, route: str, method: str, status: int, seconds: float) -> None:
+        self._call(self.hook.observe_request, route, method, status, seconds)
+
+    def observe_connection_refused(self) -> None:
+        self._call(self.hook.observe_connection_refused)
 
 
 class ModelSlot:
@@ -192,10 +240,11 @@ class Runtime:
         self.slot = ModelSlot()
         self.review: ReviewHook = review if review is not None else _NoReview()
         self.metrics: MetricsHook = metrics if metrics is not None else _NoMetrics()
+        self.monitor: MetricsHook = _Guarded(self.metrics)  # how everyone reports: one guard
         self._load_engine = load_engine
         self.model_extras: list[Callable[[], dict[str, Any]]] = []
         self.started_at = time.time()
-        self.slot.subscribe(lambda live: self.metrics.bind_model(live.engine.bundle, live.rule))
+        self.slot.subscribe(lambda live: self.monitor.bind_model(live.engine.bundle, live.rule))
 
     # -- models ------------------------------------------------------------------
     def build_engine(self, bundle_path: str | None = None) -> Any:
@@ -278,12 +327,11 @@ class Runtime:
         req = valid[0][1] if len(valid) == 1 else PredictRequest(
             x=np.concatenate([r.x for _, r in valid]), case_ids=[c for _, r in valid for c in r.case_ids])
         answered = self.answer_request(req, caller=caller, live=live, started=t0)
-        rule = {"score": live.rule.score, "threshold": live.rule.threshold, "source": live.rule.source}
         draw_count = answered.summary.draws
         start = 0
         for i, r in valid:
             answers[i] = {"model": live.model, "results": answered.results[start:start + r.size],
-                          "draws": draw_count, "decision_rule": rule}
+                          "draws": draw_count, "decision_rule": live.decision_rule}
             start += r.size
         return live, answers
 
@@ -315,11 +363,8 @@ class Runtime:
             results = render.results(summary, decisions, live.rule, manifest.labels, req.case_ids)
             answered = Answered(live, req, summary, decisions, results, caller)
             self._annotate(answered)
-        try:
-            self.metrics.observe_predict(x_raw=req.x, summary=summary, decisions=decisions,
-                                         graph_seconds=t2 - t1, total_seconds=time.perf_counter() - t0)
-        except Exception:  # metrics must never cost an answer
-            log.exception("metrics hook failed")
+        self.monitor.observe_predict(x_raw=req.x, summary=summary, decisions=decisions,
+                                     graph_seconds=t2 - t1, total_seconds=time.perf_counter() - t0)
         return answered
 
     def _annotate(self, answered: Answered) -> None:
@@ -353,8 +398,7 @@ class Runtime:
             "graph": live.engine.kind,
             "draws": live.engine.draws,
             "interval_level": live.level,
-            "decision_rule": {"score": live.rule.score, "threshold": live.rule.threshold,
-                              "source": live.rule.source},
+            "decision_rule": live.decision_rule,
             "calibration": m.decision.calibration,
             "support": live.support.describe() if live.support is not None else {
                 "checked": False, "reason": "this bundle has no support record (exported before the support "

@@ -358,9 +358,5 @@ def _from_record(record: dict[str, Any], inputs: Any) -> SupportCheck:
 
 def support_from_manifest(manifest: Any) -> SupportCheck | None:
     """The bundle's support check, or None for a bundle exported without one."""
-    record = (getattr(manifest, "raw", None) or {}).get("support")
-    if not record:
-        return None
-    if not isinstance(record, dict):
-        raise ManifestInvalid(f"manifest 'support' must be an object; got {type(record).__name__}", field="support")
-    return _from_record(record, manifest.inputs)
+    section = getattr(manifest, "support", None)  # the typed section, parsed once at load
+    return _from_record(section.record, manifest.inputs) if section is not None else None

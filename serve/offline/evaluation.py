@@ -29,7 +29,6 @@ supports, never replaces, qualified human judgement.
 
 from __future__ import annotations
 
-import html
 import json
 from collections.abc import Mapping
 from pathlib import Path
@@ -47,7 +46,7 @@ from demur.serve.offline.metrics import (
     expected_calibration_error,
     negative_log_likelihood,
 )
-from demur.serve.offline.report import CAUTION, _json_safe, _plt
+from demur.serve.offline.pages import json_safe, pyplot, render_page
 
 __all__ = ["FAR_SHIFTS", "NOISE_SD", "SCORE_NAMES", "auroc", "auroc_difference", "auroc_standard_error",
            "holdout_row", "referral_table", "scores_of", "shift_row", "shifted_inputs", "write_evaluation"]
@@ -234,55 +233,42 @@ def _shift_plot(plt: Any, figures: Mapping[str, Any], path: Path) -> None:
     plt.close(fig)
 
 
-def _fmt(v: Any) -> str:
-    return "" if v is None else f"{v:.4f}" if isinstance(v, float) else html.escape(str(v))
-
-
-def _table(head: list[str], rows: list[list[Any]]) -> str:
-    h = "".join(f"<th>{html.escape(c)}</th>" for c in head)
-    body = "".join("<tr>" + "".join(f"<td>{_fmt(c)}</td>" for c in r) + "</tr>" for r in rows)
-    return f"<table><thead><tr>{h}</tr></thead><tbody>{body}</tbody></table>"
-
-
 def _html(figures: Mapping[str, Any], images: list[str]) -> str:
-    parts = [f"<h1>demur evaluate: {html.escape(str(figures.get('title', '')))}</h1>",
-             f"<p class='caution'><strong>Caution.</strong> {html.escape(CAUTION)}</p>"]
+    """index.html: the context for templates/evaluation.html (rows and sentences; the template lays them out)."""
     rates = [f"{r:.2f}" for r in REFERRAL_RATES]
+    models = []
     for model, body in figures["models"].items():
         ref = body["referral"]
-        parts.append(f"<h2>{html.escape(model)}</h2>"
-                     + (f"<p>Network: {html.escape(str(body['network']))}.</p>" if body.get("network") else "")
-                     + f"<p>{ref['n']} held-out cases: accuracy {ref['accuracy']:.4f}, "
-                     f"ECE {ref['ece']:.4f} (15 bins), NLL {ref['nll']:.4f} nats, Brier {ref['brier']:.4f}</p>")
-        rows = [[name, *[row["accuracy_at_referral"][r] for r in rates], row["aurc"]]
-                for name, row in ref["rankings"].items()]
-        parts.append(_table(["ranking", *[f"{float(r):.0%} referred" for r in rates], "AURC"], rows))
         names = [n for n in SCORE_NAMES if n in ref["rankings"]]
-        rows = [[s, *[row["auroc"].get(n) for n in names], row["accepted"]] for s, row in body["shift"].items()]
-        parts.append("<h3>Shifted inputs</h3>" + _table(["shift", *[f"AUROC {n}" for n in names], "accepted"], rows))
-        if body.get("holdout"):
-            h = body["holdout"]
+        page: dict[str, Any] = {
+            "name": model, "network": body.get("network"),
+            "summary": f"{ref['n']} held-out cases: accuracy {ref['accuracy']:.4f}, ECE {ref['ece']:.4f} (15 bins), "
+                       f"NLL {ref['nll']:.4f} nats, Brier {ref['brier']:.4f}",
+            "referral": {"head": ["ranking", *[f"{float(r):.0%} referred" for r in rates], "AURC"],
+                         "rows": [[name, *[row["accuracy_at_referral"][r] for r in rates], row["aurc"]]
+                                  for name, row in ref["rankings"].items()]},
+            "shift": {"head": ["shift", *[f"AUROC {n}" for n in names], "accepted"],
+                      "rows": [[s, *[row["auroc"].get(n) for n in names], row["accepted"]]
+                               for s, row in body["shift"].items()]},
+            "holdout": None,
+        }
+        h = body.get("holdout")
+        if h:
             se = h.get("auroc_se", {})
-            parts.append(f"<h3>Unseen class {html.escape(str(h['label']))}</h3>"
-                         f"<p>{html.escape(str(h.get('rows', '')))}</p>" + _table(
-                ["score", f"AUROC unseen ({h['n']}) vs seen ({h.get('n_seen', '?')})", "standard error"],
-                [[n, v, se.get(n)] for n, v in h["auroc"].items()]
-            ) + f"<p>accepted: {round(h['accepted'] * h['n'])} of {h['n']} unseen cases ({h['accepted']:.1%})"
-                + (f" by the rule {html.escape(str(h['rule']))}" if h.get("rule") else "") + "</p>"
-                + "<p class='caution'>One class, measured on these cases: another class the model never saw may be "
-                  "flagged more or less often. An accepted unseen case gets a wrong label with no flag.</p>")
-            if h.get("against_deterministic"):
-                c = h["against_deterministic"]
-                parts.append(f"<p>AUROC of {html.escape(c['score'])} minus the deterministic network's "
-                             f"{html.escape(c['baseline_score'])}, same cases: {c['difference']:+.4f} "
-                             f"(standard error {c['standard_error']:.4f}, two-sided p = {c['p_value']:.3f}; "
-                             "DeLong et al. 1988)</p>")
-    parts += [f"<img src='{i}' alt='{i}'>" for i in images]
-    style = ("body{font-family:sans-serif;max-width:60em;margin:2em auto}table{border-collapse:collapse}"
-             "td,th{border:1px solid #999;padding:.2em .5em;text-align:right}.caution{background:#fff4d6;"
-             "padding:.6em}")
-    return (f"<!doctype html><html><head><meta charset='utf-8'><title>demur evaluate</title><style>{style}"
-            f"</style></head><body>{''.join(parts)}</body></html>\n")
+            c = h.get("against_deterministic")
+            page["holdout"] = {
+                "label": str(h["label"]), "rows_note": str(h.get("rows", "")),
+                "table": {"head": ["score", f"AUROC unseen ({h['n']}) vs seen ({h.get('n_seen', '?')})",
+                                   "standard error"], "rows": [[n, v, se.get(n)] for n, v in h["auroc"].items()]},
+                "accepted": f"accepted: {round(h['accepted'] * h['n'])} of {h['n']} unseen cases ({h['accepted']:.1%})"
+                            + (f" by the rule {h['rule']}" if h.get("rule") else ""),
+                "versus": (f"AUROC of {c['score']} minus the deterministic network's {c['baseline_score']}, same "
+                           f"cases: {c['difference']:+.4f} (standard error {c['standard_error']:.4f}, two-sided "
+                           f"p = {c['p_value']:.3f}; DeLong et al. 1988)") if c else None,
+            }
+        models.append(page)
+    return render_page("evaluation.html", title=f"demur evaluate: {figures.get('title', '')}", models=models,
+                       images=images)
 
 
 def write_evaluation(folder: str | Path, figures: Mapping[str, Any]) -> Path:
@@ -294,8 +280,8 @@ def write_evaluation(folder: str | Path, figures: Mapping[str, Any]) -> Path:
     root = Path(folder)
     root.mkdir(parents=True, exist_ok=True)
     path = root / "evaluation.json"
-    path.write_text(json.dumps(_json_safe(figures), indent=2) + "\n")
-    plt = _plt()
+    path.write_text(json.dumps(json_safe(figures), indent=2) + "\n")
+    plt = pyplot()
     _referral_plot(plt, figures, root / "referral.png")
     _shift_plot(plt, figures, root / "shift.png")
     (root / "index.html").write_text(_html(figures, ["referral.png", "shift.png"]), encoding="utf-8")

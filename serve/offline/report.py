@@ -19,9 +19,7 @@ no flask or onnxruntime; it is called by ``demur calibrate``.
 
 from __future__ import annotations
 
-import html
 import json
-import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -31,14 +29,9 @@ import numpy as np
 
 from demur.serve.core.bundle import SCORE_UNITS
 from demur.serve.offline.metrics import ECE_BINS, reliability_bins, risk_coverage
+from demur.serve.offline.pages import CAUTION, figure, json_safe, pyplot, render_page
 
-__all__ = ["CAUTION", "ClassificationPlots", "RegressionPlots", "decision_lines", "write_report"]
-
-CAUTION = (
-    "demur supports, and never replaces, qualified human judgement. Accepted predictions can still "
-    "be wrong; the guarantee is a statement about the population the calibration cases came from, "
-    "not about any single case or batch, and it does not hold for inputs unlike that data."
-)
+__all__ = ["ClassificationPlots", "RegressionPlots", "decision_lines", "write_report"]
 
 
 @dataclass(frozen=True)
@@ -86,15 +79,6 @@ class RegressionPlots:
     split: str = "test"
     raw_lower: np.ndarray | None = None  # the model's own interval before conformal, target units
     raw_upper: np.ndarray | None = None
-
-
-def _plt() -> Any:
-    import matplotlib
-
-    matplotlib.use("Agg", force=True)
-    import matplotlib.pyplot as plt
-
-    return plt
 
 
 def _axis_label(name: str, unit: str) -> str:
@@ -190,20 +174,6 @@ def _residual_plot(plt: Any, p: RegressionPlots, path: Path) -> None:
     _finish(plt, fig, ax, path, "predicted mean (target units)", "residual y - mean (target units)", f"Residuals and the served interval ({p.split} cases)")
 
 
-def _json_safe(obj: Any) -> Any:
-    if isinstance(obj, Mapping):
-        return {str(k): _json_safe(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_json_safe(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return _json_safe(obj.tolist())
-    if isinstance(obj, np.generic):
-        return _json_safe(obj.item())
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    return obj
-
-
 def write_report(folder: str | Path, figures: Mapping[str, Any],
                  plots: ClassificationPlots | RegressionPlots | None = None) -> Path:
     """Write report.json, the PNG plots and index.html into ``folder``; return report.json's path."""
@@ -211,7 +181,7 @@ def write_report(folder: str | Path, figures: Mapping[str, Any],
     out.mkdir(parents=True, exist_ok=True)
     images: list[tuple[str, str]] = []
     if plots is not None:
-        plt = _plt()
+        plt = pyplot()
         if isinstance(plots, ClassificationPlots):
             _referral_plot(plt, plots, out / "referral.png")
             _reliability_plot(plt, plots, out / "reliability.png")
@@ -240,7 +210,7 @@ def write_report(folder: str | Path, figures: Mapping[str, Any],
     report = dict(figures)
     report["caution"] = CAUTION
     path = out / "report.json"
-    path.write_text(json.dumps(_json_safe(report), indent=2) + "\n", encoding="utf-8")
+    path.write_text(json.dumps(json_safe(report), indent=2) + "\n", encoding="utf-8")
     (out / "index.html").write_text(_html(report, images), encoding="utf-8")
     return path
 
@@ -304,22 +274,6 @@ def decision_lines(record: Mapping[str, Any]) -> list[str]:
     return lines
 
 
-def _fmt(v: Any) -> str:
-    if isinstance(v, bool) or v is None:
-        return "-" if v is None else ("yes" if v else "no")
-    if isinstance(v, (int, np.integer)):
-        return str(int(v))
-    if isinstance(v, (float, np.floating)):
-        return "-" if not math.isfinite(float(v)) else f"{float(v):.4g}"
-    return str(v)
-
-
-def _table(rows: list[tuple[str, Any]], head: tuple[str, str] = ("figure", "value")) -> str:
-    body = "".join(f"<tr><th scope='row'>{html.escape(k)}</th><td>{html.escape(_fmt(v))}</td></tr>" for k, v in rows)
-    return (f"<table><thead><tr><th>{html.escape(head[0])}</th><th>{html.escape(head[1])}</th></tr></thead>"
-            f"<tbody>{body}</tbody></table>")
-
-
 _METRIC_NAMES = {
     "n": "cases", "accuracy": "accuracy (all cases)", "nll": "negative log-likelihood (nats)",
     "brier": "Brier score", "ece": "expected calibration error (15 bins)", "aurc": "area under risk-coverage",
@@ -328,35 +282,35 @@ _METRIC_NAMES = {
 }
 
 
-def _metrics_table(metrics: Mapping[str, Any]) -> str:
+def _metrics_tables(metrics: Mapping[str, Any]) -> list[dict[str, Any]]:
     rows = [(label, metrics[k]) for k, label in _METRIC_NAMES.items() if k in metrics]
     at = metrics.get("at_threshold") or {}
     rows += [(f"at the threshold: {k.replace('_', ' ')}", v) for k, v in at.items() if k != "threshold"]
-    out = _table(rows)
+    tables = [_rows(rows)]
     referral = metrics.get("accuracy_at_referral")
     if referral:
-        out += _table([(f"{100 * float(r):.0f}% referred", v) for r, v in referral.items()],
-                      ("cases referred to a person (highest score first)", "accuracy on the rest"))
-    return out
+        tables.append(_rows([(f"{100 * float(r):.0f}% referred", v) for r, v in referral.items()],
+                            ("cases referred to a person (highest score first)", "accuracy on the rest")))
+    return tables
+
+
+def _rows(rows: list[tuple[str, Any]], head: tuple[str, str] = ("figure", "value")) -> dict[str, Any]:
+    """A figure-and-value table for ``tables.html``."""
+    return {"head": head, "rows": rows}
 
 
 def _html(report: Mapping[str, Any], images: list[tuple[str, str]]) -> str:
-    title = f"demur calibration report: {report.get('model', {}).get('name', 'model')}"
-    parts = [f"<h1>{html.escape(title)}</h1>",
-             f"<p class='caution'><strong>Caution.</strong> {html.escape(CAUTION)}</p>"]
+    """index.html: the context for templates/report.html (rows and sentences; the template lays them out)."""
     rec = report.get("calibration")
-    if report.get("status") == "infeasible":
-        parts.append(f"<p class='bad'><strong>No threshold was written; the bundle is unchanged.</strong> "
-                     f"{html.escape(str(report.get('message', '')))}</p>")
-    elif isinstance(rec, Mapping):
+    decision: list[str] = []
+    sections: list[dict[str, Any]] = []
+    if report.get("status") != "infeasible" and isinstance(rec, Mapping):
         lines = decision_lines(rec)
-        parts.append(f"<h2>The decision</h2><p class='decision'>{html.escape(lines[0][0].upper() + lines[0][1:])}."
-                     "</p>")
-        parts += [f"<p>{html.escape(line[0].upper() + line[1:].rstrip('.'))}.</p>" for line in lines[1:]]
+        decision = [lines[0][0].upper() + lines[0][1:]] + [line[0].upper() + line[1:].rstrip(".") for line in lines[1:]]
         ach = rec.get("achieved", {})
         rows = [("score", rec.get("score")), ("threshold (abstain when score is above)", rec.get("threshold")),
                 ("method", rec.get("method")), ("reference", rec.get("reference")),
-                ("target", ", ".join(f"{k} {_fmt(v)}" for k, v in (rec.get("target") or {}).items())),
+                ("target", ", ".join(f"{k} {figure(v)}" for k, v in (rec.get("target") or {}).items())),
                 ("confidence", rec.get("confidence")), ("calibration cases used (n)", rec.get("n")),
                 ("rows in the file", (rec.get("data") or {}).get("rows")),
                 ("training rows left out", (rec.get("data") or {}).get("training_rows_dropped")),
@@ -365,7 +319,7 @@ def _html(report: Mapping[str, Any], images: list[tuple[str, str]]) -> str:
         if rec.get("bound"):
             rows += [("certified accepted accuracy (lower bound)", rec["bound"]["accuracy_lower"]),
                      ("candidate thresholds / tested", f"{rec['bound']['candidates']} / {rec['bound']['tested']}")]
-        parts.append("<h2>Calibration</h2>" + _table(rows))
+        sections.append({"heading": "Calibration", "tables": [_rows(rows)]})
         if rec.get("batch"):
             rows = []
             for key, label in (("at_calibration_estimate", "at the calibration estimate"),
@@ -376,9 +330,10 @@ def _html(report: Mapping[str, Any], images: list[tuple[str, str]]) -> str:
                           f"{b['q05']:.4f} / {b['q50']:.4f} / {b['q95']:.4f}"),
                          (f"{label}: chance a batch falls below {b['target']:g}", _chance(b["below"]))]
             size = rec["batch"]["at_calibration_estimate"]["batch"]
-            parts.append(f"<h2>What a batch of {size} future cases shows</h2><p>Accepted-case accuracy on one batch "
-                         "scatters around the population figure (exact binomial sums; the batch accepts a "
-                         "Binomial(N, coverage) number of cases).</p>" + _table(rows))
+            sections.append({"heading": f"What a batch of {size} future cases shows",
+                             "intro": "Accepted-case accuracy on one batch scatters around the population figure "
+                                      "(exact binomial sums; the batch accepts a Binomial(N, coverage) number of "
+                                      "cases).", "tables": [_rows(rows)]})
         if rec.get("conformal"):
             c = rec["conformal"]
             rows = [("level", c["level"]), ("conformal scale q", c["q"]),
@@ -389,26 +344,16 @@ def _html(report: Mapping[str, Any], images: list[tuple[str, str]]) -> str:
                     ("floor rule", c["aleatoric_floor_rule"])]
             if isinstance(report.get("test"), Mapping) and "coverage" in report["test"]:
                 rows.insert(3, ("conformal interval coverage (check)", report["test"]["coverage"]))
-            parts.append("<h2>Intervals</h2><p>Split conformal (Lei et al. 2018) corrects the model's interval to "
-                         "the stated coverage; the first row shows why the correction matters.</p>" + _table(rows))
-    for note in report.get("notes") or []:
-        parts.append(f"<p class='note'>{html.escape(str(note))}</p>")
-    for section, label in (("test", "Independent check"), ("calibration_split", "Calibration cases")):
-        if isinstance(report.get(section), Mapping):
-            parts.append(f"<h2>{label}</h2>{_metrics_table(report[section])}")
-    parts += [f"<figure><img src='{html.escape(f)}' alt='{html.escape(c)}'><figcaption>{html.escape(c)}"
-              "</figcaption></figure>" for f, c in images]
-    parts.append("<p>Every figure is also in <a href='report.json'>report.json</a>, for programs.</p>")
-    return (
-        "<!doctype html><html lang='en'><head><meta charset='utf-8'>"
-        f"<title>{html.escape(title)}</title><style>body{{font-family:sans-serif;max-width:60em;margin:2em auto;"
-        "padding:0 1em;line-height:1.4}} img{{max-width:100%}} "
-        ".caution{{border:2px solid #b60;padding:.8em;background:#fff7e6}} .bad{{color:#a00}} "
-        ".decision{{font-size:1.15em;font-weight:bold}} .note{{color:#555}} "
-        "table{{border-collapse:collapse;margin:.6em 0 1.2em}} th,td{{border:1px solid #ccc;padding:.3em .6em;"
-        "text-align:left}} thead th{{background:#eee}}</style></head><body>"
-        f"{''.join(parts)}</body></html>\n"
-    )
+            sections.append({"heading": "Intervals", "intro": "Split conformal (Lei et al. 2018) corrects the model's "
+                             "interval to the stated coverage; the first row shows why the correction matters.",
+                             "tables": [_rows(rows)]})
+    checks = [{"heading": label, "tables": _metrics_tables(report[section])}
+              for section, label in (("test", "Independent check"), ("calibration_split", "Calibration cases"))
+              if isinstance(report.get(section), Mapping)]
+    return render_page("report.html", title=f"demur calibration report: {report.get('model', {}).get('name', 'model')}",
+                       infeasible=report.get("status") == "infeasible", message=str(report.get("message", "")),
+                       decision=decision, sections=sections, notes=[str(n) for n in report.get("notes") or []],
+                       checks=checks, images=images)
 
 
 def _finish(plt: Any, fig: Any, ax: Any, path: Path, xlabel: str, ylabel: str, title: str) -> None:

@@ -239,8 +239,9 @@ class ReviewRouter:
         view = self._view(answered.live)
         x = answered.request.x
         now = time.time()
-        items = [self._item(kind, answered.results[i], case_ids[i], x[i], model, view, now,
-                            inclusion=self.audit_fraction if kind == "audit" else 1.0) for i, kind in chosen]
+        predictions, intervals = _typed(answered)
+        items = [self._item(kind, answered.results[i], predictions[i], intervals[i], case_ids[i], x[i], model, view,
+                            now, inclusion=self.audit_fraction if kind == "audit" else 1.0) for i, kind in chosen]
         abstained = [(i, item) for (i, kind), item in zip(chosen, items) if kind == "abstain"]
         try:
             if time.monotonic() < self._skip_until:
@@ -417,8 +418,11 @@ class ReviewRouter:
         return view
 
     @staticmethod
-    def _item(kind: str, result: dict[str, Any], case_id: str | None, x: np.ndarray, model: dict[str, str],
-              view: dict[str, Any], now: float, *, inclusion: float) -> NewItem:
+    def _item(kind: str, result: dict[str, Any], prediction: str, interval: tuple[float, float] | None,
+              case_id: str | None, x: np.ndarray, model: dict[str, str], view: dict[str, Any], now: float, *,
+              inclusion: float) -> NewItem:
+        """``result``: the rendered dict the client received, stored as the model's view the
+        reviewer sees; ``prediction`` and ``interval`` come typed from the summary (``_typed``)."""
         task = view["task"]
         # The float32 values the model saw, in their shortest round-trip form (0.3, not 0.30000001192092896).
         case = {"values": [float(v) for v in np.asarray(x, dtype=np.float32).ravel().astype(str)],
@@ -432,16 +436,8 @@ class ReviewRouter:
             summary["variance"] = result["variance"]
         if view.get("labels"):
             summary["labels"] = view["labels"]
-        interval = None
-        prediction = result.get("prediction")
-        if task == "regression":
-            iv = result.get("interval") or {}
-            if isinstance(iv.get("lower"), (int, float)) and isinstance(iv.get("upper"), (int, float)):
-                interval = (float(iv["lower"]), float(iv["upper"]))
-            prediction = None if prediction is None else repr(float(prediction))
-        return new_item(kind=kind, model=model, case=case, summary=summary,
-                        prediction=None if prediction is None else str(prediction), interval=interval,
-                        client_case_id=case_id, now=now)
+        return new_item(kind=kind, model=model, case=case, summary=summary, prediction=prediction,
+                        interval=interval, client_case_id=case_id, now=now)
 
     # ------------------------------------------------------------------ reading
     def _check_up(self) -> None:
@@ -508,3 +504,15 @@ class ReviewRouter:
         if self.replayer is not None:
             self.replayer.stop()
         self.store.close()
+
+
+def _typed(answered: Answered) -> tuple[list[str], list[tuple[float, float] | None]]:
+    """Per case, from the typed summary: the prediction as stored (the label; a regression mean
+    as its shortest round-trip text) and the regression interval (None for classifiers)."""
+    summary = answered.summary
+    if summary.task == "classification":
+        labels = answered.live.manifest.labels
+        return [labels[int(k)] for k in summary.prediction.tolist()], [None] * len(summary)
+    means = summary.prediction.tolist()
+    return ([repr(float(m)) for m in means],
+            [(float(lo), float(hi)) for lo, hi in zip(summary.lower.tolist(), summary.upper.tolist())])

@@ -30,10 +30,11 @@ from werkzeug.exceptions import HTTPException
 
 from demur.serve.adapters.engine import Engine
 from demur.serve.adapters.metrics import Metrics
+from demur.serve.web.metrics_http import install_metrics
 from demur.serve.config import ServeConfig
 from demur.serve.core.bundle import load_bundle
 from demur.serve.core.pipeline import CAUTION, Runtime
-from demur.serve.errors import DemurError, PayloadTooLarge
+from demur.serve.errors import DemurError, PayloadTooLarge, Refused, internal_error
 from demur.serve.review.router import ReviewRouter
 from demur.serve.web import predict_http
 from demur.serve.web.admin import install_admin
@@ -148,7 +149,7 @@ def create_app(
     router = review if isinstance(review, ReviewRouter) else None  # a test may pass a bare ReviewHook
     if router is not None:
         router.install(app, runtime, metrics)
-    metrics.install(app, runtime, router)
+    install_metrics(app, metrics, runtime, router)
     for plugin in plugins:
         plugin.init_app(app)
     install_limits(app, config)
@@ -161,10 +162,7 @@ def create_app(
 
 def _install_errors(app: Flask, runtime: Runtime) -> None:
     def answer(exc: DemurError, headers: list[tuple[str, str]] | None = None) -> Response:
-        try:
-            runtime.metrics.observe_error(status=exc.status, code=exc.code, endpoint=request.endpoint)
-        except Exception:
-            log.exception("metrics hook failed")
+        runtime.monitor.observe_error(status=exc.status, code=exc.code, endpoint=request.endpoint)
         status, extra, data = predict_http.refusal(exc)
         response = Response(data, status=status, mimetype="application/json")
         response.headers.extend([*extra, *(headers or [])])
@@ -187,23 +185,16 @@ def _install_errors(app: Flask, runtime: Runtime) -> None:
             message = f"{request.method} is not allowed on {request.path}"
             if allowed:
                 message += f"; use {', '.join(m for m in allowed if m not in ('HEAD', 'OPTIONS'))}"
-            return answer(_HttpError(405, "method_not_allowed", message, "method"),
+            return answer(Refused(405, "method_not_allowed", message, "method"),
                           [("Allow", ", ".join(allowed))] if allowed else None)
         if status == 404:
-            return answer(_HttpError(404, "not_found", f"no route {request.path}; see /openapi.json", "path"))
+            return answer(Refused(404, "not_found", f"no route {request.path}; see /openapi.json", "path"))
         code = (exc.name or "error").lower().replace(" ", "_").replace("'", "")
-        return answer(_HttpError(status, code, exc.description or exc.name, None))
+        return answer(Refused(status, code, exc.description or exc.name, None))
 
     @app.errorhandler(Exception)
     def _unexpected(exc: Exception) -> Response:
         log.error("unhandled error on %s %s", request.method, request.path, exc_info=exc)
-        return answer(_HttpError(500, "internal", "internal error; the server log has the details", None))
+        return answer(internal_error())
 
 
-class _HttpError(DemurError):
-    """A werkzeug routing error (404, 405, ...) carried through the one error path."""
-
-    def __init__(self, status: int, code: str, message: str, field: str | None) -> None:
-        super().__init__(message, field=field)
-        self.status = status
-        self.code = code

@@ -189,3 +189,20 @@ def test_column_order_names_every_problem():
     msg = info.value.message
     assert "missing column(s) 'c'" in msg and "unknown column(s) 'zz'" in msg and "duplicated column(s) 'a'" in msg
     assert column_order(["c", "id", "a", "b", "label"], ["a", "b", "c"], target="label", ignore=["id"]) == [2, 3, 0]
+
+
+def test_training_columns_are_every_column_but_the_target_in_file_order(tmp_path):
+    """``demur export --data``: the user's training rows define the inputs, read by the same reader
+    (one CSV reader, export/datasets.py) with the same cell checks."""
+    from demur.export.datasets import read_training_columns
+    from demur.export.errors import NonNumericFeature, TargetColumnMissing
+
+    path = tmp_path / "train.csv"
+    path.write_text("b,label,a\n1,x,2\n3,y,4\n")
+    x, names = read_training_columns(path, "label")
+    assert names == ["b", "a"] and x.tolist() == [[1.0, 2.0], [3.0, 4.0]]
+    with pytest.raises(TargetColumnMissing, match="--target 'digit' is not a column") as info:
+        read_training_columns(path, "digit")
+    assert info.value.field == "target"
+    with pytest.raises(NonNumericFeature, match="feature column 'label' must hold finite numbers"):
+        read_training_columns(path, None)

@@ -26,6 +26,7 @@ import numpy as np
 
 from demur.serve.core.decision import Verdicts
 from demur.serve.core.pipeline import Answered
+from demur.serve.core.summary import summarise
 from demur.serve.core.validation import PredictRequest
 from demur.serve.review.store import NewItem, new_item
 
@@ -131,7 +132,10 @@ def answered(decisions: list[str], x: Any = None, case_ids: list[str | None] | N
     live = SimpleNamespace(model=dict(model or MODEL), manifest=manifest)
     abstain = np.asarray([d == "abstain" for d in decisions], dtype=bool)
     dec = Verdicts(score=np.full(n, 0.3), abstain=abstain, reason=["r"] * n)
-    return Answered(live=live, request=PredictRequest(x=arr, case_ids=ids), summary=None,  # type: ignore[arg-type]
+    logits = np.zeros((4, n, 10), dtype=np.float32)
+    logits[..., 7] = 3.0  # every case predicts "7", as ``results`` renders it
+    summary = summarise("classification", logits, 0.9, {})
+    return Answered(live=live, request=PredictRequest(x=arr, case_ids=ids), summary=summary,  # type: ignore[arg-type]
                     decisions=dec, results=results(decisions, ids), caller=caller)
 
 

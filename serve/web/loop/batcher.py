@@ -29,7 +29,7 @@ from typing import Any
 
 from demur.serve.config import ServeConfig
 from demur.serve.core.pipeline import Runtime
-from demur.serve.errors import DemurError, Overloaded
+from demur.serve.errors import DemurError, Overloaded, internal_error
 from demur.serve.web.predict_http import Admitted, Headers, refusal, reply
 
 __all__ = ["DEFAULT_ROWS", "ROWS_BY_KIND", "Batcher", "rows_cap"]
@@ -53,12 +53,7 @@ def rows_cap(config: ServeConfig, kind: str | None) -> int:
     return config.batch_max_rows or ROWS_BY_KIND.get(kind or "", DEFAULT_ROWS)
 
 
-class _Internal(DemurError):
-    status = 500
-    code = "internal"
-
-
-_INTERNAL = _Internal("internal error; the server log has the details")
+_INTERNAL = internal_error()
 
 
 class Batcher:
@@ -159,10 +154,7 @@ class Batcher:
         if isinstance(answer, DemurError):
             if answer.status >= 500:
                 log.warning("%s: %s", answer.code, answer.message)
-            try:
-                self.runtime.metrics.observe_error(status=answer.status, code=answer.code, endpoint="predict")
-            except Exception:
-                log.exception("metrics hook failed")
+            self.runtime.monitor.observe_error(status=answer.status, code=answer.code, endpoint="predict")
         self.deliver(conn, req, status, headers, data)
 
     def close(self) -> None:

@@ -31,8 +31,8 @@ from typing import TYPE_CHECKING, Any
 
 import httptools
 
-from demur.serve.errors import PayloadTooLarge
-from demur.serve.web.predict_http import encode
+from demur.serve.errors import PayloadTooLarge, Refused
+from demur.serve.web.predict_http import refusal
 
 if TYPE_CHECKING:  # pragma: no cover
     from demur.serve.web.loop.worker import Front
@@ -49,8 +49,9 @@ _CONTINUE = b"HTTP/1.1 100 Continue\r\n\r\n"
 
 
 def error_answer(status: int, code: str, message: str, field: str | None) -> tuple[int, bytes]:
-    """Status and body in the app's one error shape."""
-    return status, encode({"error": {"code": code, "message": message, "field": field}})
+    """Status and body of a framing refusal, built by the one error path (``refusal``)."""
+    out, _, body = refusal(Refused(status, code, message, field))
+    return out, body
 
 
 def header_value(headers: list[tuple[bytes, bytes]], name: bytes) -> bytes | None:

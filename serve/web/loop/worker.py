@@ -51,13 +51,13 @@ from typing import Any
 
 from gunicorn.workers import base
 
-from demur.serve.errors import DemurError
+from demur.serve.errors import DemurError, internal_error
 from demur.serve.web import predict_http
 from demur.serve.web.auth import tokens_of
 from demur.serve.web.limits import SECURITY_HEADERS
 from demur.serve.web.loop.batcher import Batcher
 from demur.serve.web.loop.bridge import call_app, environ_for
-from demur.serve.web.loop.connection import Connection, Request, error_answer
+from demur.serve.web.loop.connection import Connection, Request
 
 __all__ = ["PREDICT_PATH", "Front", "FrontWorker", "trusted_set"]
 
@@ -135,10 +135,7 @@ class Front:
                 log.warning("refusing connection from %s: %d open (worker_connections %d); %d refused so far",
                             conn.peer[0] or "-", len(self.connections), self.max_connections,
                             self.refused_connections)
-            try:
-                self.runtime.metrics.observe_connection_refused()  # type: ignore[attr-defined]
-            except Exception:
-                log.exception("metrics hook failed")
+            self.runtime.monitor.observe_connection_refused()
             return False
         self.connections.add(conn)
         return True
@@ -218,7 +215,7 @@ class Front:
             data = self.response(status, body, keep_alive=req.keep_alive, version=req.version, extra=_head(headers))
         except Exception:  # e.g. a header value that is not latin-1: answer without it
             log.exception("answer headers could not be encoded")
-            status, body = error_answer(500, "internal", "internal error; the server log has the details", None)
+            status, _, body = predict_http.refusal(internal_error())
             data = self.response(status, body, keep_alive=False)
         conn.finish(req.slot, data, close=not req.keep_alive)
         self.count(req.method, req.path, status, req.t0, len(body), req.client)
@@ -230,10 +227,7 @@ class Front:
             route, verb = "/v1/predict", "POST" if method == b"POST" else "other"
         else:
             route, verb = "other", "other"
-        try:
-            self.runtime.metrics.observe_request(route, verb, status, seconds)  # type: ignore[attr-defined]
-        except Exception:
-            log.exception("metrics hook failed")
+        self.runtime.monitor.observe_request(route, verb, status, seconds)
         self.log_access(client, method, path, status, size, seconds)
 
     def count_refusal(self, path: bytes, status: int, t0: float, size: int, client: str) -> None:
@@ -293,7 +287,7 @@ def _connection(keep_alive: bool, version: str) -> bytes:
 
 
 def _internal() -> tuple[int, list[tuple[str, str]], bytes]:
-    status, body = error_answer(500, "internal", "internal error; the server log has the details", None)
+    status, _, body = predict_http.refusal(internal_error())
     return status, [], body
 
 

@@ -29,7 +29,7 @@ from typing import Any
 import numpy as np
 import pytest
 import scipy.stats
-from prometheus_client import CollectorRegistry, Histogram
+from prometheus_client import CollectorRegistry
 from prometheus_client.parser import text_string_to_metric_families
 
 import demur.serve.adapters.metrics as metrics_mod
@@ -37,7 +37,7 @@ from demur.serve.web.app import create_app
 from demur.serve.config import ServeConfig
 from demur.serve.adapters.engine import Engine
 from demur.serve.errors import ReviewStoreUnavailable
-from demur.serve.adapters.metrics import SCORE_BUCKETS, Metrics
+from demur.serve.adapters.metrics import Metrics
 from tests._processes import supervised
 
 ROOT = Path(__file__).resolve().parents[3]
@@ -165,21 +165,6 @@ def test_cases_and_requests_match_what_was_answered(tiny: Any) -> None:
     assert value(text, "demur_graph_run_duration_seconds_count") == 5
     assert value(text, "demur_mutual_information_nats_count") == sent
     assert value(text, "demur_http_request_duration_seconds_count", route="/v1/predict") == 6
-
-
-def test_vectorised_histogram_equals_observe_loop() -> None:
-    # reference: prometheus_client's Histogram.observe, one call per value
-    rng = np.random.default_rng(3)
-    vals = np.concatenate([rng.gamma(0.5, 0.2, size=500), np.array(SCORE_BUCKETS), [0.0, 99.0, np.nan]])
-    ours_reg, ref_reg = CollectorRegistry(), CollectorRegistry()
-    ours = Histogram("h", "x", buckets=SCORE_BUCKETS, registry=ours_reg)
-    ref = Histogram("h", "x", buckets=SCORE_BUCKETS, registry=ref_reg)
-    metrics_mod._observe_many(ours, vals)
-    for v in vals[np.isfinite(vals)]:
-        ref.observe(float(v))
-    for le in [*map(str, SCORE_BUCKETS), "+Inf"]:
-        assert ours_reg.get_sample_value("h_bucket", {"le": le}) == ref_reg.get_sample_value("h_bucket", {"le": le})
-    assert ours_reg.get_sample_value("h_sum") == pytest.approx(ref_reg.get_sample_value("h_sum"), rel=1e-12)
 
 
 def test_abstention_ratio_is_over_the_last_window_decisions(tiny: Any) -> None:

@@ -184,3 +184,32 @@ def test_model_names_that_cannot_be_a_header_are_refused(tiny_bundle_factory: An
     (path / "manifest.json").write_text(json.dumps(manifest))  # written by hand, past the writer
     with pytest.raises((ManifestInvalid, ChecksumMismatch)):
         load_bundle(path)
+
+
+def test_typed_sections_are_parsed_once_at_load(tiny_bundle_factory, copy_bundle) -> None:
+    """extensions.training, extensions.training_rows, support and the calibration's stated abstain
+    rate come back as typed sections; a bundle without them has None (a model of the user's own)."""
+    bundle = tiny_bundle_factory()
+    m = bundle.manifest
+    assert m.training is None and m.fingerprint is None and m.decision.expected_abstain_rate is None
+    path = copy_bundle(bundle)
+    raw = _raw(path)
+    raw["extensions"] = {"training": {"data": {"source": "digits", "target": "digit", "seed": 3},
+                                      "settings": {"epochs": 5}, "arch": {"kind": "mlp"}, "metrics": {}},
+                         "training_rows": {"method": "m", "rows": 12, "hashes": ""}}
+    raw["decision"]["calibration"] = {"achieved": {"abstain_rate": 0.25}}
+    write_manifest(path, raw)
+    m = load_bundle(path).manifest
+    assert m.training.data.source == "digits" and m.training.data.target == "digit" and m.training.data.seed == 3
+    assert m.training.settings == {"epochs": 5} and m.training.arch == {"kind": "mlp"}
+    assert m.fingerprint.rows == 12 and m.fingerprint.record["method"] == "m"
+    assert m.decision.expected_abstain_rate == 0.25
+
+
+def test_a_section_of_the_wrong_type_is_refused(tiny_bundle_factory, copy_bundle) -> None:
+    path = copy_bundle(tiny_bundle_factory())
+    raw = _raw(path)
+    raw["extensions"] = {"training_rows": "not an object"}
+    with pytest.raises(ManifestInvalid, match="extensions.training_rows' must be an object") as info:
+        write_manifest(path, raw)
+    assert info.value.field == "extensions.training_rows"

@@ -22,7 +22,7 @@ from sklearn.datasets import load_digits
 from sklearn.neighbors import NearestNeighbors
 
 from demur.serve.core import support as support_mod
-from demur.serve.core.bundle import load_bundle, write_manifest
+from demur.serve.core.bundle import SupportSection, load_bundle, write_manifest
 from demur.serve.core.support import (
     IMAGE_SCALE_FLOOR,
     REASON,
@@ -45,8 +45,12 @@ def _spec(x: np.ndarray, image: bool = True) -> dict[str, Any]:
 
 
 class _Manifest:
+    """What support_from_manifest reads of a manifest: the typed support section and the inputs."""
+
     def __init__(self, raw: dict[str, Any], inputs: Any) -> None:
-        self.raw, self.inputs = raw, inputs
+        record = raw.get("support")
+        self.support = SupportSection(threshold=None, record=record) if record else None
+        self.inputs = inputs
 
 
 def _check(x_train: np.ndarray, x_held: np.ndarray, alpha: float = 0.01) -> Any:

@@ -182,6 +182,7 @@ class _Metrics:
         self.predicts: list[dict[str, Any]] = []
         self.errors: list[dict[str, Any]] = []
         self.bound: list[Any] = []
+        self.requests: list[tuple[str, int]] = []
 
     def bind_model(self, bundle: Any, rule: Any) -> None:
         self.bound.append((bundle.checksum, rule.score))
@@ -192,8 +193,44 @@ class _Metrics:
     def observe_error(self, **kw: Any) -> None:
         self.errors.append(kw)
 
-    def install(self, app: Any, runtime: Any, review: Any = None) -> None:
-        """What create_app calls on its metrics (the real one adds /metrics); nothing here."""
+    def observe_request(self, route: str, method: str, status: int, seconds: float) -> None:
+        self.requests.append((route, status))
+
+    def observe_connection_refused(self) -> None:
+        return None
+
+    def attach(self, runtime: Any, *, review: Any = None, routes: Any = None) -> None:
+        """What serve/web/metrics_http.py calls when create_app composes its metrics."""
+
+    def exposition(self) -> tuple[bytes, str]:
+        return b"", "text/plain"
+
+
+class _FailingMetrics(_Metrics):
+    """Every report raises, as a metrics backend with a full disk or a bug would."""
+
+    def bind_model(self, bundle: Any, rule: Any) -> None:
+        raise OSError("disk full")
+
+    def observe_predict(self, **kw: Any) -> None:
+        raise RuntimeError("metrics bug")
+
+    def observe_error(self, **kw: Any) -> None:
+        raise RuntimeError("metrics bug")
+
+    def observe_request(self, route: str, method: str, status: int, seconds: float) -> None:
+        raise RuntimeError("metrics bug")
+
+
+def test_a_failing_metrics_hook_never_costs_an_answer(tiny_bundle_factory: Any, make_app: Any,
+                                                      caplog: pytest.LogCaptureFixture) -> None:
+    """Runtime.monitor is the one guard around the metrics hook: the model still goes live, answers
+    and refusals still go out, and each failure is logged."""
+    bundle = tiny_bundle_factory(task="classification", kind="stacked", draws=8)
+    client = make_app(bundle, review=_Review(), metrics=_FailingMetrics()).test_client()
+    assert _post(client, {"cases": _rows(2)}).status_code == 200
+    assert _post(client, {"cases": []}).status_code == 400
+    assert sum("metrics hook failed" in r.getMessage() for r in caplog.records) >= 4
 
 
 def test_review_and_metrics_hooks(tiny_bundle_factory: Any, make_app: Any) -> None:

@@ -14,8 +14,8 @@ document. Bounded: ``MAX_EXAMPLES`` per operation and phase, one worker, a fixed
 stateful phase claims and decides from.
 
 Each run's requests are counted per operation from its HAR report and printed (the
-figures the issue asks for). hooks: tests/serve/schema_fuzz_hooks.py; settings:
-tests/serve/schemathesis.toml.
+figures the issue asks for). hooks: tests/serve/web/schema_fuzz_hooks.py; settings:
+tests/serve/web/schemathesis.toml.
 """
 
 from __future__ import annotations
@@ -37,7 +37,7 @@ from tests.reliability.harness import Server
 
 pytestmark = [pytest.mark.slow]
 
-ROOT = Path(__file__).resolve().parents[2]
+ROOT = Path(__file__).resolve().parents[3]
 ST = Path(sys.executable).with_name("st")
 MAX_EXAMPLES = int(os.environ.get("DEMUR_FUZZ_EXAMPLES", "25"))
 """Examples per operation and phase; DEMUR_FUZZ_EXAMPLES=500 for a long run by hand."""
@@ -82,7 +82,7 @@ def fuzz_server(tiny_bundle_factory: Callable[..., Any], tmp_path_factory: pytes
 @pytest.mark.parametrize("who", ["admin", "review", "predict", "none"])
 def test_schemathesis_finds_nothing(who: str, fuzz_server: Server, tmp_path: Path) -> None:
     har = tmp_path / "requests.har"
-    cmd = [str(ST), "--config-file", str(ROOT / "tests" / "serve" / "schemathesis.toml"), "run",
+    cmd = [str(ST), "--config-file", str(ROOT / "tests" / "serve" / "web" / "schemathesis.toml"), "run",
            f"{fuzz_server.url}/openapi.json", "--checks", "all", "--max-examples", str(MAX_EXAMPLES),
            "--workers", "1", "--seed", os.environ.get("DEMUR_FUZZ_SEED", "20"), "--generation-database", "none",
            "--request-timeout", "30", "--report", "har", "--report-har-path", str(har), "--no-color",
@@ -90,7 +90,7 @@ def test_schemathesis_finds_nothing(who: str, fuzz_server: Server, tmp_path: Pat
     if who != "none":
         cmd += ["--header", f"Authorization: Bearer {TOKENS[who]}"]
     env = {k: v for k, v in os.environ.items() if not k.startswith("DEMUR_")}
-    env["SCHEMATHESIS_HOOKS"] = "tests.serve.schema_fuzz_hooks"
+    env["SCHEMATHESIS_HOOKS"] = "tests.serve.web.schema_fuzz_hooks"
     env["PYTHONPATH"] = str(ROOT)
     done = subprocess.run(cmd, cwd=tmp_path, env=env, capture_output=True, text=True, timeout=900)
     counts = _counts(har) if har.exists() else Counter()
