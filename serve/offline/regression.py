@@ -30,7 +30,6 @@ shift      for built-in shifts of the held-out inputs: the served interval's mea
 
 from __future__ import annotations
 
-import html
 import json
 from collections.abc import Mapping
 from pathlib import Path
@@ -42,7 +41,7 @@ from scipy.special import logsumexp
 
 from demur.serve.core.summary import mixture_quantile
 from demur.serve.offline.metrics import REFERRAL_RATES
-from demur.serve.offline.report import CAUTION, _json_safe, _plt
+from demur.serve.offline.pages import json_safe, pyplot, render_page
 
 __all__ = ["COVERAGE_LEVELS", "PIT_BINS", "coverage_table", "crps_gaussian", "crps_mixture", "far_shifts",
            "nll_mixture", "pit_values", "referral_by_epistemic", "regression_lines", "regression_scores",
@@ -170,22 +169,13 @@ def regression_lines(figures: Mapping[str, Any]) -> list[str]:
     return lines
 
 
-def _table(rows: list[Mapping[str, Any]], keys: list[str]) -> str:
-    def cell(v: Any) -> str:
-        return f"{v:.4g}" if isinstance(v, float) else html.escape(str(v))
-
-    head = "".join(f"<th>{html.escape(k)}</th>" for k in keys)
-    body = "".join("<tr>" + "".join(f"<td>{cell(r.get(k, ''))}</td>" for k in keys) + "</tr>" for r in rows)
-    return f"<table><tr>{head}</tr>{body}</table>"
-
-
 def write_regression_evaluation(out: str | Path, figures: Mapping[str, Any]) -> Path:
     """evaluation.json, pit.png and index.html (tables as tables, the caution) under ``out``."""
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
-    (out / "evaluation.json").write_text(json.dumps(_json_safe(figures), indent=2), encoding="utf-8")
+    (out / "evaluation.json").write_text(json.dumps(json_safe(figures), indent=2), encoding="utf-8")
     body = figures["models"]["bundle"]
-    plt = _plt()
+    plt = pyplot()
     fig, ax = plt.subplots(figsize=(5.6, 3.6))
     counts = body["scores"]["pit"]["counts"]
     ax.bar(np.arange(PIT_BINS) / PIT_BINS, counts, width=1 / PIT_BINS, align="edge", edgecolor="black")
@@ -196,18 +186,16 @@ def write_regression_evaluation(out: str | Path, figures: Mapping[str, Any]) -> 
     fig.savefig(out / "pit.png", dpi=110)
     plt.close(fig)
     sc = body["scores"]
-    shifts = [{"shift": k, **v} for k, v in body["shift"].items()]
-    page = (f"<!doctype html><meta charset='utf-8'><title>{html.escape(figures['title'])}</title>"
-            f"<h1>{html.escape(figures['title'])}</h1><p><strong>{html.escape(CAUTION)}</strong></p>"
-            f"<h2>Scores ({sc['n']} held-out cases)</h2>"
-            + _table([sc], ["nll", "crps", "rmse", "mae"])
-            + "<h2>Interval coverage</h2>" + _table(body["coverage"], ["interval", "level", "coverage", "mean_width"])
-            + "<h2>PIT</h2><img src='pit.png' alt='PIT histogram'>"
-            + "<h2>Referral by epistemic variance</h2>"
-            + _table(body["referral"], ["referred", "kept", "rmse", "mae", "coverage"])
-            + "<h2>Shifted inputs</h2>"
-            + _table(shifts, ["shift", "mean_width", "width_ratio", "epistemic_std", "accepted",
-                              "outside_training_data"])
-            + "".join(f"<p>{html.escape(n)}</p>" for n in figures.get("notes", [])))
+
+    def rows(items: list[Mapping[str, Any]], keys: list[str]) -> dict[str, Any]:
+        return {"head": keys, "rows": [[r.get(k) for k in keys] for r in items]}
+
+    page = render_page(
+        "regression.html", title=f"demur evaluate: {figures['title']}", n=sc["n"], notes=figures.get("notes", []),
+        scores=rows([sc], ["nll", "crps", "rmse", "mae"]),
+        coverage=rows(body["coverage"], ["interval", "level", "coverage", "mean_width"]),
+        referral=rows(body["referral"], ["referred", "kept", "rmse", "mae", "coverage"]),
+        shift=rows([{"shift": k, **v} for k, v in body["shift"].items()],
+                   ["shift", "mean_width", "width_ratio", "epistemic_std", "accepted", "outside_training_data"]))
     (out / "index.html").write_text(page, encoding="utf-8")
     return out / "index.html"
