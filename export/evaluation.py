@@ -532,28 +532,34 @@ def _evaluate_regression(b: Bundle, x: np.ndarray, y: np.ndarray, *, out: str | 
     engine = Engine(b, graph="auto", seed=0).load()
     served = ServedRule.from_manifest(m)
 
-    def run(xs: np.ndarray) -> tuple[np.ndarray, Any, Any]:
+    def run(xs: np.ndarray) -> tuple[np.ndarray, Any, np.ndarray, np.ndarray]:
+        """(draws, summary, abstain, outside), decided a chunk at a time (bounded k-NN memory)."""
         xs = xs.reshape(-1, *m.inputs.shape)
-        d = draws_in_chunks(engine, xs)
-        s = summarise(m.task, d, m.interval_level, m.target)
-        return d, s, served.decide(s, xs)
+        d, verdicts = [], []
+        for xb in chunks(xs):
+            db = engine.run(xb)
+            d.append(db)
+            verdicts.append(served.decide(summarise(m.task, db, m.interval_level, m.target), xb))
+        d = np.concatenate(d, axis=1)
+        out = [v.outside if v.outside is not None else np.zeros(len(v.abstain), bool) for v in verdicts]
+        return (d, summarise(m.task, d, m.interval_level, m.target), np.concatenate([v.abstain for v in verdicts]),
+                np.concatenate(out))
 
-    d, s, v = run(x)
+    d, s, abstain, outside = run(x)
     mu, sd = regression_components(d, float(m.target.get("center", 0.0)), float(m.target.get("scale", 1.0)))
     spec = m.inputs
     low, high = np.asarray(spec.low), np.asarray(spec.high)
     shifts = {**shifted_inputs(x, low=low, high=high, center=np.asarray(spec.center), image_shape=None, seed=seed),
               **far_shifts(x, low=low, high=high)}
     clean_width = float(np.mean(s.interval_width))
-    outside = lambda vv: vv.outside if vv.outside is not None else np.zeros(len(vv.abstain), bool)  # noqa: E731
-    rows = {"clean": regression_shift_row(clean_width, s.interval_width, s.epistemic_std, ~v.abstain, outside(v))}
+    rows = {"clean": regression_shift_row(clean_width, s.interval_width, s.epistemic_std, ~abstain, outside)}
     for name, xs in shifts.items():
-        _, ss, vv = run(xs)
-        rows[name] = regression_shift_row(clean_width, ss.interval_width, ss.epistemic_std, ~vv.abstain, outside(vv))
+        _, ss, ab, far = run(xs)
+        rows[name] = regression_shift_row(clean_width, ss.interval_width, ss.epistemic_std, ~ab, far)
     body = {"scores": regression_scores(mu, sd, y),
             "coverage": coverage_table(mu, sd, y, (s.lower, s.upper, s.level, s.interval_method)),
             "referral": referral_by_epistemic(y, s.mean, s.epistemic_var, s.lower, s.upper),
-            "shift": rows, "clean_accepted": float(np.mean(~v.abstain)),
+            "shift": rows, "clean_accepted": float(np.mean(~abstain)),
             "rule": {"score": served.rule.score, "threshold": served.rule.threshold, "source": served.rule.source,
                      "support": served.support is not None}}
     figures = {"title": title or f"{m.model_name} v{m.model_version}", "model": m.model_name, "task": "regression",

@@ -169,10 +169,6 @@ def regression_lines(figures: Mapping[str, Any]) -> list[str]:
     return lines
 
 
-def _section(title: str, rows: list[Mapping[str, Any]], keys: list[str], image: str | None = None) -> dict[str, Any]:
-    return {"title": title, "head": keys, "rows": [[r.get(k, "") for k in keys] for r in rows], "image": image}
-
-
 def write_regression_evaluation(out: str | Path, figures: Mapping[str, Any]) -> Path:
     """evaluation.json, pit.png and index.html (tables as tables, the caution) under ``out``."""
     out = Path(out)
@@ -190,13 +186,16 @@ def write_regression_evaluation(out: str | Path, figures: Mapping[str, Any]) -> 
     fig.savefig(out / "pit.png", dpi=110)
     plt.close(fig)
     sc = body["scores"]
-    shifts = [{"shift": k, **v} for k, v in body["shift"].items()]
-    page = render_page("regression.html", title=figures["title"], notes=list(figures.get("notes", [])), sections=[
-        _section(f"Scores ({sc['n']} held-out cases)", [sc], ["nll", "crps", "rmse", "mae"]),
-        _section("Interval coverage", body["coverage"], ["interval", "level", "coverage", "mean_width"], "pit.png"),
-        _section("Referral by epistemic variance", body["referral"], ["referred", "kept", "rmse", "mae", "coverage"]),
-        _section("Shifted inputs", shifts, ["shift", "mean_width", "width_ratio", "epistemic_std", "accepted",
-                                            "outside_training_data"]),
-    ])
+
+    def rows(items: list[Mapping[str, Any]], keys: list[str]) -> dict[str, Any]:
+        return {"head": keys, "rows": [[r.get(k) for k in keys] for r in items]}
+
+    page = render_page(
+        "regression.html", title=f"demur evaluate: {figures['title']}", n=sc["n"], notes=figures.get("notes", []),
+        scores=rows([sc], ["nll", "crps", "rmse", "mae"]),
+        coverage=rows(body["coverage"], ["interval", "level", "coverage", "mean_width"]),
+        referral=rows(body["referral"], ["referred", "kept", "rmse", "mae", "coverage"]),
+        shift=rows([{"shift": k, **v} for k, v in body["shift"].items()],
+                   ["shift", "mean_width", "width_ratio", "epistemic_std", "accepted", "outside_training_data"]))
     (out / "index.html").write_text(page, encoding="utf-8")
     return out / "index.html"
