@@ -61,7 +61,7 @@ from demur.serve.offline.evaluation import (
     write_evaluation,
 )
 
-from demur.serve.offline.chunked import chunks, draws_in_chunks
+from demur.serve.offline.chunked import chunks
 
 from demur.export.cases import (
     builtin_splits,
