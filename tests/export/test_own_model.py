@@ -31,7 +31,7 @@ from torch import nn
 from demur.export import export_model, input_spec
 from demur.export.draws import DrawNetwork, draw_noise, reference_draws
 from demur.export.errors import ExportError, GraphBuildError
-from demur.export.flip import FlipDraws
+from demur.export.flip import FULL_RANK, LOW_RANK, FlipDraws
 from demur.serve.adapters.engine import Engine
 from demur.serve.cli import main
 from demur.serve.core.summary import summarise
@@ -255,12 +255,13 @@ def test_refusals_are_named_never_silent(digits, tmp_path: Path) -> None:
     assert list(tmp_path.iterdir()) == []
 
 
-def test_flip_conv_weights_keep_the_gaussian_posterior_per_weight() -> None:
-    """Each Flipout draw's conv weight is N(mu, sigma^2) (Wen et al. 2018 + the rank-M base's exact
-    marginal, export/flip.py): one weight over 2000 calls, kstest against scipy.stats.norm."""
+@pytest.mark.parametrize("rank", [FULL_RANK, LOW_RANK], ids=["full-rank", "rank-16"])
+def test_flip_conv_weights_keep_the_gaussian_posterior_per_weight(rank: int) -> None:
+    """Each Flipout draw's conv weight is N(mu, sigma^2) (Wen et al. 2018; the full-rank base, and the
+    rank-M base's exact marginal, export/flip.py): one weight over 2000 calls, kstest against scipy.stats.norm."""
     model = depot_conv_net("gaussian")
     layer = model.block.conv
-    net = DrawNetwork(model, "flip", 4, seed=0, input_shape=(1, 8, 8))
+    net = DrawNetwork(model, "flip", 4, seed=0, input_shape=(1, 8, 8), flip_rank=rank)
     mode = net.layers[0]._draw_mode
     assert isinstance(mode, FlipDraws)
     rng = np.random.default_rng(0)
