@@ -61,46 +61,16 @@ import time
 from collections.abc import Callable
 
 from demur.serve.errors import ConfigError
-from demur.serve.review.store.items import (
-    KINDS,
-    MAX_EXCLUDE,
-    MAX_ID_CHARS,
-    MAX_NOTE_CHARS,
-    REVIEW_ORDERS,
-    SCHEMA_VERSION,
-    STATUSES,
-    Enqueued,
-    NewItem,
-    ReviewItem,
-    ReviewStore,
-    case_digest,
-    new_id,
-    new_item,
-    unstorable,
-)
+from demur.serve.review.store.items import (KINDS, MAX_EXCLUDE, MAX_ID_CHARS, MAX_NOTE_CHARS, REVIEW_ORDERS,
+                                           SCHEMA_VERSION, STATUSES, Enqueued, NewItem, ReviewItem, ReviewStore,
+                                           case_digest, new_id, new_item, unstorable)
 from demur.serve.review.store.postgres import PostgresStore
 from demur.serve.review.store.sqlite import SqliteStore
 
-__all__ = [
-    "KINDS",
-    "MAX_EXCLUDE",
-    "MAX_ID_CHARS",
-    "MAX_NOTE_CHARS",
-    "REVIEW_ORDERS",
-    "SCHEMA_VERSION",
-    "STATUSES",
-    "Enqueued",
-    "NewItem",
-    "PostgresStore",
-    "ReviewItem",
-    "ReviewStore",
-    "SqliteStore",
-    "case_digest",
-    "new_id",
-    "new_item",
-    "open_store",
-    "unstorable",
-]
+# The package's public face: the items' names, the two stores and open_store.
+__all__ = ["KINDS", "MAX_EXCLUDE", "MAX_ID_CHARS", "MAX_NOTE_CHARS", "REVIEW_ORDERS", "SCHEMA_VERSION", "STATUSES",
+           "Enqueued", "NewItem", "PostgresStore", "ReviewItem", "ReviewStore", "SqliteStore", "case_digest",
+           "new_id", "new_item", "open_store", "unstorable"]
 
 
 def open_store(url: str, *, lease_s: float, pool_size: int = 4,

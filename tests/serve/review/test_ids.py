@@ -203,12 +203,7 @@ def test_two_replicas_in_reversed_orders_never_spool(tmp_path: Path) -> None:
             except BaseException as exc:  # reported below
                 errors.append(exc)
 
-        barrier = threading.Barrier(2)
-        threads = [threading.Thread(target=replica, args=(k, barrier)) for k in range(2)]
-        for t in threads:
-            t.start()
-        for t in threads:
-            t.join(120)
+        _two_replicas(replica)
         try:
             assert not errors, errors[0]
             for router in routers:
@@ -265,12 +260,7 @@ def test_a_real_deadlock_is_retried_in_place(tmp_path: Path) -> None:
             except BaseException as exc:
                 errors.append(exc)
 
-        barrier = threading.Barrier(2)
-        threads = [threading.Thread(target=replica, args=(k, barrier)) for k in range(2)]
-        for t in threads:
-            t.start()
-        for t in threads:
-            t.join(120)
+        _two_replicas(replica)
         try:
             assert not errors, errors[0]
             retried = sum(s.retried for s in stores)
@@ -290,3 +280,13 @@ def test_the_store_interface_has_enqueue_items(url: str) -> None:
         assert isinstance(s, ReviewStore)
     finally:
         s.close()
+
+
+def _two_replicas(replica: Any) -> None:
+    """Run ``replica(k, barrier)`` for k = 0, 1 in two threads that start each round together."""
+    barrier = threading.Barrier(2)
+    threads = [threading.Thread(target=replica, args=(k, barrier)) for k in range(2)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(120)

@@ -242,14 +242,7 @@ def test_roll_out_under_a_master_records_the_path_and_signals_it(bundles: dict[s
     """Under gunicorn the worker writes active-bundle.<master pid> and sends the master SIGHUP;
     here the 'master' is a child process that records the signal."""
     flag = bundles["root"] / "hup"
-    child = subprocess.Popen([sys.executable, "-c", (
-        "import signal, sys, time, pathlib\n"
-        f"p = pathlib.Path({str(flag)!r})\n"
-        "signal.signal(signal.SIGHUP, lambda *a: p.write_text('hup'))\n"
-        "print('ready', flush=True)\n"
-        "t = time.monotonic()\n"
-        "while not p.exists() and time.monotonic() - t < 20: time.sleep(0.02)\n")],
-        stdout=subprocess.PIPE, text=True)
+    child = _hup_recorder(flag)
     try:
         assert child.stdout is not None and child.stdout.readline().strip() == "ready"
         app = _app(bundles)
@@ -262,23 +255,12 @@ def test_roll_out_under_a_master_records_the_path_and_signals_it(bundles: dict[s
         assert admin.startup_bundle(cfg, child.pid) == str(bundles["v2"].resolve())
         assert admin.startup_bundle(cfg, child.pid + 1) == cfg.bundle   # another master's record: ignored
     finally:
-        if child.poll() is None:
-            child.kill()
-            child.wait(5)
-        if child.stdout is not None:
-            child.stdout.close()
+        _stop(child)
 
 
 def test_forward_reload_signal_passes_sighup_to_each_worker(tmp_path: Path) -> None:
     flag = tmp_path / "worker-hup"
-    worker = subprocess.Popen([sys.executable, "-c", (
-        "import signal, time, pathlib\n"
-        f"p = pathlib.Path({str(flag)!r})\n"
-        "signal.signal(signal.SIGHUP, lambda *a: p.write_text('hup'))\n"
-        "print('ready', flush=True)\n"
-        "t = time.monotonic()\n"
-        "while not p.exists() and time.monotonic() - t < 20: time.sleep(0.02)\n")],
-        stdout=subprocess.PIPE, text=True)
+    worker = _hup_recorder(flag)
     previous = signal.getsignal(signal.SIGHUP)
     try:
         assert worker.stdout is not None and worker.stdout.readline().strip() == "ready"
@@ -291,11 +273,7 @@ def test_forward_reload_signal_passes_sighup_to_each_worker(tmp_path: Path) -> N
         assert worker.wait(20) == 0 and flag.read_text() == "hup"
     finally:
         signal.signal(signal.SIGHUP, previous)
-        if worker.poll() is None:
-            worker.kill()
-            worker.wait(5)
-        if worker.stdout is not None:
-            worker.stdout.close()
+        _stop(worker)
 
 
 def test_startup_bundle_refuses_a_record_outside_the_directory(tmp_path: Path) -> None:
@@ -305,3 +283,24 @@ def test_startup_bundle_refuses_a_record_outside_the_directory(tmp_path: Path) -
     (tmp_path / "d" / "active-bundle.77").write_text("/etc\n")
     assert admin.startup_bundle(cfg, 77) == cfg.bundle
     assert admin.startup_bundle(cfg, None) == cfg.bundle
+
+
+def _hup_recorder(flag: Path) -> subprocess.Popen[str]:
+    """A child process (ours, stopped by PID) that writes ``flag`` when it gets SIGHUP; it prints
+    'ready' once its handler is set and exits after the flag or 20 s."""
+    return subprocess.Popen([sys.executable, "-c", (
+        "import signal, time, pathlib\n"
+        f"p = pathlib.Path({str(flag)!r})\n"
+        "signal.signal(signal.SIGHUP, lambda *a: p.write_text('hup'))\n"
+        "print('ready', flush=True)\n"
+        "t = time.monotonic()\n"
+        "while not p.exists() and time.monotonic() - t < 20: time.sleep(0.02)\n")],
+        stdout=subprocess.PIPE, text=True)
+
+
+def _stop(child: subprocess.Popen[str]) -> None:
+    if child.poll() is None:
+        child.kill()
+        child.wait(5)
+    if child.stdout is not None:
+        child.stdout.close()
