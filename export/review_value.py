@@ -64,6 +64,23 @@ def measure_review_order(seed: int, *, start: int = 150, budget: int = 60, refer
     return out
 
 
+def _table(rows: list[dict[str, Any]], start: int, budget: int) -> list[str]:
+    """The trial's rows as a Markdown table, with the mean and the paired difference."""
+    out = [f"{budget} labels on top of {start}; test accuracy (359 digits); gain in accuracy points per 100 labels",
+           "| seed | start | oldest first | most uncertain first | gain per 100 labels: oldest / most uncertain |",
+           "|---|---|---|---|---|"]
+    keys = ("start_accuracy", "oldest", "most_uncertain", "oldest_gain_per_label", "most_uncertain_gain_per_label")
+    mean = {k: float(np.mean([r[k] for r in rows])) for k in keys}
+    for r in [*rows, {"seed": "mean", **mean}]:
+        out.append(f"| {r['seed']} | {r['start_accuracy']:.3f} | {r['oldest']:.3f} | {r['most_uncertain']:.3f} | "
+                   f"{1e4 * r['oldest_gain_per_label']:.1f} / {1e4 * r['most_uncertain_gain_per_label']:.1f} |")
+    diff = np.array([r["most_uncertain"] - r["oldest"] for r in rows])
+    se = float(diff.std(ddof=1) / np.sqrt(len(diff))) if len(diff) > 1 else float("nan")
+    out.append(f"most uncertain minus oldest: {diff.mean():+.4f} accuracy (paired standard error {se:.4f}, "
+               f"{len(diff)} seeds)")
+    return out
+
+
 def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(prog="python -m demur.export.review_value", description=__doc__.split("\n\n")[0])
     p.add_argument("--seeds", type=int, nargs="+", default=[0, 1, 2])
@@ -72,21 +89,7 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--epochs", type=int, default=40)
     args = p.parse_args(argv)
     rows = [measure_review_order(s, start=args.start, budget=args.budget, epochs=args.epochs) for s in args.seeds]
-    print(f"{args.budget} labels on top of {args.start}; test accuracy (359 digits); gain in accuracy points per "
-          "100 labels")
-    print("| seed | start | oldest first | most uncertain first | gain per 100 labels: oldest / most uncertain |")
-    print("|---|---|---|---|---|")
-    for r in rows:
-        print(f"| {r['seed']} | {r['start_accuracy']:.3f} | {r['oldest']:.3f} | {r['most_uncertain']:.3f} | "
-              f"{1e4 * r['oldest_gain_per_label']:.1f} / {1e4 * r['most_uncertain_gain_per_label']:.1f} |")
-    keys = ("start_accuracy", "oldest", "most_uncertain", "oldest_gain_per_label", "most_uncertain_gain_per_label")
-    mean = {k: float(np.mean([r[k] for r in rows])) for k in keys}
-    diff = np.array([r["most_uncertain"] - r["oldest"] for r in rows])
-    se = float(diff.std(ddof=1) / np.sqrt(len(diff))) if len(diff) > 1 else float("nan")
-    print(f"| mean | {mean['start_accuracy']:.3f} | {mean['oldest']:.3f} | {mean['most_uncertain']:.3f} | "
-          f"{1e4 * mean['oldest_gain_per_label']:.1f} / {1e4 * mean['most_uncertain_gain_per_label']:.1f} |")
-    print(f"most uncertain minus oldest: {diff.mean():+.4f} accuracy (paired standard error {se:.4f}, "
-          f"{len(diff)} seeds)")
+    print("\n".join(_table(rows, args.start, args.budget)))
     return 0
 
 

@@ -215,22 +215,24 @@ def demo_checkpoint(request: pytest.FixtureRequest) -> Path:
     return _trained_checkpoint(request, "digits", DIGITS_TRAINING)
 
 
+def _stacked_or_sampler(checkpoint: Path, factory: pytest.TempPathFactory, name: str, kind: str) -> Any:
+    """A session bundle of ``checkpoint``: S = 32 draws, seed 0 (the sampler records it)."""
+    from demur.export.exporter import export_bundle
+
+    return export_bundle(checkpoint, factory.mktemp(name.split("-")[0]) / name, kind=kind, draws=32, seed=0,
+                         version="1")
+
+
 @pytest.fixture(scope="session")
 def demo_bundle(demo_checkpoint: Path, tmp_path_factory: pytest.TempPathFactory) -> Any:
     """The demo model as stacked draws (S = 32, seed 0)."""
-    from demur.export.exporter import export_bundle
-
-    out = tmp_path_factory.mktemp("demo") / "digits-stacked"
-    return export_bundle(demo_checkpoint, out, kind="stacked", draws=32, seed=0, version="1")
+    return _stacked_or_sampler(demo_checkpoint, tmp_path_factory, "digits-stacked", "stacked")
 
 
 @pytest.fixture(scope="session")
 def demo_sampler_bundle(demo_checkpoint: Path, tmp_path_factory: pytest.TempPathFactory) -> Any:
     """The demo model as a sampler graph (S = 32 fresh draws per call, recorded seed 0)."""
-    from demur.export.exporter import export_bundle
-
-    out = tmp_path_factory.mktemp("demo") / "digits-sampler"
-    return export_bundle(demo_checkpoint, out, kind="sampler", draws=32, seed=0, version="1")
+    return _stacked_or_sampler(demo_checkpoint, tmp_path_factory, "digits-sampler", "sampler")
 
 
 @pytest.fixture(scope="session")
@@ -250,10 +252,7 @@ def diabetes_checkpoint(request: pytest.FixtureRequest) -> Path:
 @pytest.fixture(scope="session")
 def diabetes_bundle(diabetes_checkpoint: Path, tmp_path_factory: pytest.TempPathFactory) -> Any:
     """The diabetes regression model as stacked draws (S = 32, seed 0)."""
-    from demur.export.exporter import export_bundle
-
-    out = tmp_path_factory.mktemp("diabetes") / "diabetes-stacked"
-    return export_bundle(diabetes_checkpoint, out, kind="stacked", draws=32, seed=0, version="1")
+    return _stacked_or_sampler(diabetes_checkpoint, tmp_path_factory, "diabetes-stacked", "stacked")
 
 
 # Property tests have no per-example deadline: the machines are shared and noisy, and speed is

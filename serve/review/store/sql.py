@@ -26,26 +26,10 @@ from typing import Any
 
 from demur.serve.core.audit import AuditTally
 from demur.serve.errors import ConfigError, Conflict, NotFound, ReviewItemRejected
-from demur.serve.review.store.items import (
-    COLUMNS,
-    KINDS,
-    MAX_EXCLUDE,
-    REVIEW_ORDERS,
-    SCHEMA_VERSION,
-    STATUSES,
-    Enqueued,
-    NewItem,
-    ReviewItem,
-    ascii_json,
-    case_digest,
-    check_id,
-    is_item_id,
-    iso_time,
-    new_id,
-    review_priority,
-    row_to_item,
-    unstorable,
-)
+from demur.serve.review.store.items import (COLUMNS, KINDS, MAX_EXCLUDE, REVIEW_ORDERS, SCHEMA_VERSION,
+                                            STATUSES, Enqueued, NewItem, ReviewItem, ascii_json, case_digest,
+                                            check_id, is_item_id, iso_time, new_id, review_priority,
+                                            row_to_item, unstorable)
 
 __all__ = ["TRANSIENT_RETRIES", "Migration", "SqlStore", "backfill_digests", "backfill_priorities"]
 
