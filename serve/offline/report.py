@@ -185,9 +185,7 @@ def write_report(folder: str | Path, figures: Mapping[str, Any],
         if isinstance(plots, ClassificationPlots):
             _referral_plot(plt, plots, out / "referral.png")
             _reliability_plot(plt, plots, out / "reliability.png")
-            _score_hist(plt, plots.scores, [("correct", plots.correct), ("wrong", ~plots.correct)],
-                        plots.threshold, plots.score_name, plots.score_unit, out / "score_hist.png",
-                        f"Decision score: correct versus wrong predictions ({plots.split} cases)")
+            good, names = plots.correct, ("correct", "wrong", "correct versus wrong predictions")
             images = [
                 ("referral.png", "Accuracy on accepted cases as more cases are referred to people. "
                                  "The marker is the operating point of the chosen threshold."),
@@ -197,16 +195,16 @@ def write_report(folder: str | Path, figures: Mapping[str, Any],
         else:
             _coverage_plot(plt, plots, out / "coverage.png")
             _residual_plot(plt, plots, out / "residuals.png")
-            inside = (plots.y >= plots.lower) & (plots.y <= plots.upper)
-            _score_hist(plt, plots.scores, [("inside interval", inside), ("outside interval", ~inside)],
-                        plots.threshold, plots.score_name, plots.score_unit, out / "score_hist.png",
-                        f"Decision score: cases inside versus outside the interval ({plots.split} cases)")
+            good = (plots.y >= plots.lower) & (plots.y <= plots.upper)
+            names = ("inside interval", "outside interval", "cases inside versus outside the interval")
             images = [
                 ("coverage.png", "Share of cases inside the interval at each nominal level: the model's own "
                                  "(moment-matched) interval against the conformal one."),
                 ("residuals.png", "Test residuals with the served interval around the predicted mean."),
                 ("score_hist.png", "The decision score for cases inside and outside the served interval."),
             ]
+        _score_hist(plt, plots.scores, [(names[0], good), (names[1], ~good)], plots.threshold, plots.score_name,
+                    plots.score_unit, out / "score_hist.png", f"Decision score: {names[2]} ({plots.split} cases)")
     report = dict(figures)
     report["caution"] = CAUTION
     path = out / "report.json"
