@@ -35,8 +35,36 @@ from demur.export.errors import DatasetError
 __all__ = ["REVIEW_EXPORT_COLUMNS", "is_review_export", "recertify_file"]
 
 REVIEW_EXPORT_COLUMNS = ("id", "kind", "model_name", "model_version", "model_checksum", "client_case_id",
-                         "created", "decided", "reviewer", "label", "value", "prediction", "note", "inclusion")
+                         "created", "decided", "reviewer", "label", "value", "prediction", "note", "inclusion",
+                         "score")
 """The review export's own columns (serve/web/review_api.py); every other column is a feature."""
+
+
+def _as_served(rows: list[dict[str, str]], mine: np.ndarray, kind: np.ndarray, ranked: np.ndarray,
+               correct: np.ndarray, labels: Any) -> tuple[np.ndarray, np.ndarray]:
+    """Audit items as they were served: the export's ``score`` and ``prediction`` columns.
+
+    A fresh-draw graph (flip, sampler) scores a case anew on every call: rescored, an audit item
+    the server accepted could land above the served threshold (and was refused as "accepted by
+    another rule") or change its predicted class. The certificate is about the accepted
+    predictions that were served, so those are what it counts. Rows without the columns (an
+    export of an earlier version) keep the rescored values."""
+    picked = [rows[i] for i in np.flatnonzero(mine)]
+    ranked, correct = ranked.copy(), correct.copy()
+    for j, row in enumerate(picked):
+        if kind[j] != "audit":
+            continue
+        text = (row.get("score") or "").strip()
+        try:
+            value = float(text)
+        except ValueError:
+            value = float("nan")
+        if np.isfinite(value):
+            ranked[j] = value
+        pred = row.get("prediction") or ""
+        if pred in labels:
+            correct[j] = pred == row.get("label")
+    return ranked, correct
 
 
 def _header(path: str | Path) -> list[str]:
@@ -110,6 +138,7 @@ def recertify_file(bundle: str | Path, path: str | Path, *, target_accuracy: flo
     score, outside = served.ranking(summary, x)
     ranked = np.where(outside, np.inf, score)
     correct = summary.prediction == y
+    ranked, correct = _as_served(rows, mine, kind, ranked, correct, m.labels)
     delta = round(1.0 - confidence, 12)
     try:
         rec = recertify(kind, ranked, correct, served_threshold=m.decision.threshold, audit_fraction=inclusion,

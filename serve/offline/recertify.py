@@ -37,7 +37,13 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from demur.serve.offline.calibration import DEFAULT_MAX_ABSTAIN, ThresholdChoice, select_for_accuracy
+from demur.serve.errors import CalibrationInfeasible
+from demur.serve.offline.calibration import (
+    DEFAULT_MAX_ABSTAIN,
+    ThresholdChoice,
+    minimum_rows,
+    select_for_accuracy,
+)
 
 __all__ = ["Recertification", "RecertifyError", "naive_estimates", "recertify", "weighted_abstain_rate"]
 
@@ -111,6 +117,14 @@ def recertify(kind: np.ndarray, score: np.ndarray, correct: np.ndarray, *, serve
         raise RecertifyError("no decided audit items: only audit items (a random sample of accepted cases) can "
                              "certify accuracy; set audit_fraction > 0 and let people decide some")
     a_score, a_correct = score[audit], correct[audit]
+    need = minimum_rows(target_accuracy, delta, max_abstain=max_abstain)
+    if len(a_score) < max(need, 2):
+        raise CalibrationInfeasible(
+            f"{len(a_score)} decided audit item(s) for this model; accepted-case accuracy {target_accuracy:.4g} with "
+            f"confidence {1 - delta:.4g} needs at least {max(need, 2)} even if every one is right. Audit items are "
+            f"a share audit_fraction ({audit_fraction:g}) of the "
+            "accepted cases: let people decide more of them (or raise audit_fraction), lower the target or the "
+            "confidence, or calibrate on a fresh labelled file", field="data")
     if np.any(a_score > served_threshold):
         # an audit item scored above the served threshold was accepted under another rule
         raise RecertifyError(f"{int(np.sum(a_score > served_threshold))} audit items score above the served "

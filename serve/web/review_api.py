@@ -270,7 +270,8 @@ def _decided(store: Any, limit: int) -> list[ReviewItem]:
 
 def _csv(items: list[ReviewItem]) -> str:
     """One row per decided item: who, when, the decision, the model's prediction, the chance it
-    was sent to people (``inclusion``: recertification weights by it), then the inputs.
+    was sent to people (``inclusion``: recertification weights by it), the decision score it was
+    served with (``score``), then the inputs.
 
     Input columns are the bundle's feature names when every item shares them,
     else ``x0, x1, ...`` (the widest item sets the count; shorter rows end early).
@@ -280,7 +281,7 @@ def _csv(items: list[ReviewItem]) -> str:
     shared = next(iter(name_sets)) if len(name_sets) == 1 else ()
     inputs = list(shared) if len(shared) == width else [f"x{i}" for i in range(width)]
     head = ["id", "kind", "model_name", "model_version", "model_checksum", "client_case_id", "created",
-            "decided", "reviewer", "label", "value", "prediction", "note", "inclusion"]
+            "decided", "reviewer", "label", "value", "prediction", "note", "inclusion", "score"]
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\n")
     writer.writerow(head + inputs)
@@ -289,9 +290,20 @@ def _csv(items: list[ReviewItem]) -> str:
         text = [it.id, it.kind, it.model_name, it.model_version, it.model_checksum, it.client_case_id or "",
                 d["created"], d["decision"]["decided"], it.decided_by or "",
                 it.label if it.label is not None else "", "" if it.value is None else repr(it.value),
-                it.prediction or "", it.note or "", _inclusion(it)]
+                it.prediction or "", it.note or "", _inclusion(it), _served_score(it)]
         writer.writerow([_safe_cell(str(cell)) for cell in text] + [repr(float(v)) for v in it.case.get("values", [])])
     return buf.getvalue()
+
+
+def _served_score(item: ReviewItem) -> str:
+    """The decision score the item was served with (its summary's ``score.value``; empty when
+    absent). A fresh-draw graph (flip, sampler) scores a case anew on every call, so only this
+    value says on which side of the threshold the case fell: recertification reads it."""
+    score = item.summary.get("score") if isinstance(item.summary, dict) else None
+    value = score.get("value") if isinstance(score, dict) else None
+    if isinstance(value, (int, float)) and not isinstance(value, bool):
+        return repr(float(value))
+    return ""
 
 
 def _inclusion(item: ReviewItem) -> str:

@@ -90,3 +90,17 @@ def test_refusals_say_why() -> None:
                   audit_fraction=F, target_accuracy=0.5, delta=0.5)
     with pytest.raises(RecertifyError, match="kinds"):
         weighted_abstain_rate(np.array(["other"]), np.array([0.1]), 0.5, T0, F)
+
+
+def test_too_few_audit_items_are_refused_with_the_count_needed() -> None:
+    """One decided audit item once reached the threshold search and came back as "need >= 2 scores
+    ... got 1 scores, 1 flags"; now the refusal counts the audit items and says how many the target
+    needs (the same minimum_rows calibrate states, exact Clopper-Pearson: scipy.stats.beta)."""
+    from demur.serve.errors import CalibrationInfeasible
+    from demur.serve.offline.calibration import minimum_rows
+
+    need = minimum_rows(0.9, 0.1)
+    with pytest.raises(CalibrationInfeasible, match=f"1 decided audit item.*needs at least {need}") as info:
+        recertify(np.array(["audit", "abstain", "abstain"]), np.array([0.1, 0.8, 0.9]), np.ones(3, bool),
+                  served_threshold=T0, audit_fraction=F, target_accuracy=0.9, delta=0.1)
+    assert info.value.field == "data" and "audit_fraction" in str(info.value)
