@@ -85,6 +85,7 @@ Python use (the test fixtures do this)::
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import json
 import math
 import sys
@@ -153,6 +154,7 @@ DEFAULTS: dict[str, Any] = {
     "init_sigma": 1e-3,
     "init_spread": 0.02,
     "rho_lr": 1e-3,
+    "sigma_param": "softplus",
     "hidden": (256, 256),
     "channels": (16, 32),
     "threads": 1,
@@ -257,9 +259,17 @@ def train(
     seed: int = 0,
     out: Path | str | None = None,
     progress: bool | None = None,
+    prior_from: Path | str | tuple[nn.Module, dict[str, Any]] | None = None,
     **hyper: Any,
 ) -> TrainResult:
     """Fit a variational ``arch`` network to ``dataset`` and (if ``out``) write its checkpoint.
+
+    ``prior_from`` (a ``demur train`` checkpoint of one network, or ``load_checkpoint``'s
+    (model, meta) of one) makes this a continual update (``demur.export.continual``): the
+    network, its input standardisation and its labels come from there, training starts at
+    its posterior with that posterior as the prior, and ``dataset`` holds only the new rows
+    (its labels a subset of the checkpoint's). ``kl_warmup`` then defaults to 0: the prior
+    already says what the old rows taught, so the KL pulls from the first step.
 
     ``hyper`` overrides ``DEFAULTS`` (lr, rho_lr, batch_size, prior_scale,
     kl_weight, kl_warmup, init_spread, init_sigma, hidden, channels, threads).
@@ -277,6 +287,11 @@ def train(
         raise LayerConfigError(f"posterior must be one of {list(POSTERIORS)}; got {posterior!r}", field="posterior")
     if arch == "conv" and dataset.image_shape is None:
         raise LayerConfigError(f"arch 'conv' needs image inputs; dataset {dataset.name!r} is tabular", field="arch")
+    start = None
+    if prior_from is not None:
+        start = _prior_start(prior_from, dataset)
+        arch, posterior, dataset = start["arch"], start["posterior"], start["dataset"]
+        hyper = {"kl_warmup": 0.0, **hyper, **start["settings"]}
     h = {**DEFAULTS, **hyper}
     h["epochs"] = int(DEFAULTS["epochs"] if epochs is None else epochs)
     if h["epochs"] < 1:
@@ -289,23 +304,70 @@ def train(
     previous_threads = torch.get_num_threads()
     torch.set_num_threads(int(h["threads"]))
     try:
-        return _fit(dataset, arch, posterior, seed, out, progress, h)
+        return _fit(dataset, arch, posterior, seed, out, progress, h, start)
     finally:
         torch.set_num_threads(previous_threads)
 
 
+def _prior_start(prior_from: Path | str | tuple[nn.Module, dict[str, Any]], dataset: Dataset) -> dict[str, Any]:
+    """What a continual update starts from: the old model, its metadata, the settings that fix
+    the network (architecture, prior family), and ``dataset`` with its labels mapped onto the
+    old model's (a ``LayerConfigError`` naming ``prior_from`` when they do not fit)."""
+    if isinstance(prior_from, tuple):
+        model, meta = prior_from
+        source = str(meta.get("name", "model"))
+    else:
+        model, meta = load_checkpoint(prior_from)
+        source = str(prior_from)
+        if isinstance(model, list):
+            raise LayerConfigError(f"{prior_from} is an ensemble of {len(model)} networks; update it with "
+                                   "train_ensemble(..., prior_from=...) (demur train --prior-from does)",
+                                   field="prior_from")
+    if meta["task"] != dataset.task:
+        raise LayerConfigError(f"the checkpoint is a {meta['task']} model; the new data is {dataset.task}",
+                               field="prior_from")
+    old = list(meta["labels"])
+    if dataset.task == "classification":
+        missing = [lab for lab in dataset.labels if lab not in old]
+        if missing:
+            raise LayerConfigError(
+                f"the new data has labels {missing} the checkpoint's model does not know (it knows {old}); a "
+                "continual update keeps the output layer, so the first model must be trained with every label",
+                field="prior_from")
+        index = np.array([old.index(lab) for lab in dataset.labels], dtype=np.int64)
+        mapped = {f"y_{name}": index[getattr(dataset, f"y_{name}")] for name in ("train", "val", "cal", "test")}
+        dataset = dataclasses.replace(dataset, labels=tuple(old), **mapped)
+    arch = meta["arch"]
+    settings = {"hidden": tuple(arch["hidden"]), "channels": tuple(arch["channels"]),
+                "prior_scale": float(arch["prior_scale"]), "init_sigma": float(arch.get("init_sigma", 1e-3)),
+                "sigma_param": arch.get("sigma_param", "softplus")}
+    return {"model": model, "meta": meta, "arch": arch["kind"], "posterior": arch["posterior"],
+            "settings": settings, "dataset": dataset, "source": source}
+
+
 def train_ensemble(dataset: Dataset, members: int, *, posterior: str = "radial", seed: int = 0,
-                   out: Path | str | None = None, **options: Any) -> list[TrainResult]:
+                   out: Path | str | None = None, prior_from: Path | str | None = None,
+                   **options: Any) -> list[TrainResult]:
     """``members`` variational networks on the same split, member i from seed ``seed * members + i``
     (its own initialisation and shuffling; Lakshminarayanan et al. 2017 train deep-ensemble members
     from random initialisations). ``options`` are ``train``'s. Exported together (``export_model``
     with the list of models, or ``demur export`` of the checkpoint ``out`` gets) they serve the
     mixture of the members' posteriors. The checkpoint's ``metrics`` are the mixture's (``EVAL_DRAWS``
-    draws split evenly over the members); each member's own are under ``member_metrics``."""
+    draws split evenly over the members); each member's own are under ``member_metrics``.
+    ``prior_from``: an ensemble checkpoint of ``members`` networks; member i is updated from
+    its member i (``train``'s ``prior_from``)."""
     if isinstance(members, bool) or not isinstance(members, int) or members < 2:
         raise LayerConfigError(f"an ensemble needs at least 2 members; got {members!r}", field="members")
-    results = [train(dataset, posterior=posterior, seed=seed * members + i, progress=False, **options)
-               for i in range(members)]
+    starts: list[Any] = [None] * members
+    if prior_from is not None:
+        old, meta = load_checkpoint(prior_from)
+        if not isinstance(old, list) or len(old) != members:
+            got = len(old) if isinstance(old, list) else 1
+            raise LayerConfigError(f"{prior_from} holds {got} network(s); updating it needs --members {got}",
+                                   field="prior_from")
+        starts = [(model, {**meta, "name": f"{prior_from} member {i}"}) for i, model in enumerate(old)]
+    results = [train(dataset, posterior=posterior, seed=seed * members + i, progress=False, prior_from=starts[i],
+                     **options) for i in range(members)]
     if out is not None:
         _write_ensemble(results, Path(out), seed)
     return results
@@ -338,15 +400,18 @@ def _write_ensemble(results: list[TrainResult], out: Path, seed: int) -> None:
 
 def _fit(
     dataset: Dataset, arch: str, posterior: str, seed: int, out: Path | str | None, progress: bool | None,
-    h: dict[str, Any],
+    h: dict[str, Any], start: dict[str, Any] | None = None,
 ) -> TrainResult:
     torch.manual_seed(seed)
     np.random.seed(seed % 2**32)
     started, cpu_started = time.perf_counter(), time.process_time()
 
-    inputs = _input_spec(dataset, arch)
+    # An update keeps the old network's standardisation: its weights were fitted to it.
+    inputs = _input_spec(dataset, arch) if start is None else start["meta"]["inputs"]
     task = dataset.task
-    if task == "regression":
+    if start is not None:
+        target = dict(start["meta"]["target"])
+    elif task == "regression":
         ytr = dataset.y_train.astype(np.float64)
         target = {"center": float(ytr.mean()), "scale": float(max(ytr.std(), SCALE_FLOOR))}
     else:
@@ -366,7 +431,13 @@ def _fit(
         prior_scale=float(h["prior_scale"]), hidden=tuple(h["hidden"]), channels=tuple(h["channels"]),
         init_sigma=float(h["init_sigma"]),
         init_spread=None if h["init_spread"] is None else float(h["init_spread"]),
+        sigma_param=str(h["sigma_param"]),  # type: ignore[arg-type]
     )
+    if start is not None:
+        from demur.export.continual import posterior_as_prior
+
+        model.load_state_dict(start["model"].state_dict())
+        model = posterior_as_prior(model)
     opt = _optimiser(model, float(h["lr"]), None if h["rho_lr"] is None else float(h["rho_lr"]))
     bs = int(h["batch_size"])
     steps_per_epoch = math.ceil(n / bs)
@@ -432,6 +503,7 @@ def _fit(
             "posterior": posterior,
             "prior_scale": float(h["prior_scale"]),
             "init_sigma": float(h["init_sigma"]),
+            "sigma_param": str(h["sigma_param"]),
         },
         "task": task,
         "labels": list(dataset.labels),
@@ -439,7 +511,8 @@ def _fit(
         "target": target,
         "data": {"source": dataset.source, "target": dataset.target, "seed": int(dataset.seed)},
         "metrics": metrics,
-        "training": {**settings, "seed": int(seed), "n_train": n},
+        "training": {**settings, "seed": int(seed), "n_train": n,
+                     **({"prior_from": start["source"]} if start is not None else {})},
         "drift_features": feature_reference(dataset.x_train),
     }
     out_dir = None
@@ -476,10 +549,13 @@ def _optimiser(model: nn.Module, lr: float, rho_lr: float | None) -> torch.optim
 
 
 def _sigma_summary(model: nn.Module) -> dict[str, float]:
+    """sigma's median / max / min, and the median per-parameter posterior sd (``spread``)."""
     with torch.no_grad():
-        parts = [t.flatten() for m in variational_layers(model) for t in (m.weight_sigma, m.bias_sigma)]
-        sig = torch.cat(parts)
-    return {"median": float(sig.median()), "max": float(sig.max()), "min": float(sig.min())}
+        layers = variational_layers(model)
+        sig = torch.cat([t.flatten() for m in layers for t in (m.weight_sigma, m.bias_sigma)])
+        spread = torch.cat([t.flatten() for m in layers for t in m.spread().values()])
+    return {"median": float(sig.median()), "max": float(sig.max()), "min": float(sig.min()),
+            "spread_median": float(spread.median())}
 
 
 # -- checkpoint -----------------------------------------------------------------
@@ -522,6 +598,7 @@ def load_checkpoint(directory: Path | str) -> tuple[nn.Sequential | list[nn.Sequ
         model = build_model(
             arch["kind"], meta["inputs"]["shape"], outputs, arch["posterior"], prior_scale=arch["prior_scale"],
             hidden=arch["hidden"], channels=arch["channels"], init_sigma=arch.get("init_sigma", 1e-3),
+            sigma_param=arch.get("sigma_param", "softplus"),
         )
         try:
             model.load_state_dict(state)
