@@ -104,7 +104,7 @@ from demur.serve.offline.calibration import expected_calibration_error
 
 from demur.export.datasets import Dataset, load_dataset
 from demur.export.errors import CheckpointError, LayerConfigError, TrainingError
-from demur.export.layers import ARCHITECTURES, POSTERIORS, build_model, total_kl, variational_layers
+from demur.export.layers import ARCHITECTURES, POSTERIORS, SIGMA_PARAMS, build_model, total_kl, variational_layers
 
 __all__ = [
     "CHECKPOINT_FORMAT",
@@ -326,6 +326,16 @@ def _prior_start(prior_from: Path | str | tuple[nn.Module, dict[str, Any]], data
     if meta["task"] != dataset.task:
         raise LayerConfigError(f"the checkpoint is a {meta['task']} model; the new data is {dataset.task}",
                                field="prior_from")
+    names = list(meta["inputs"]["names"])
+    if sorted(dataset.feature_names) != sorted(names):
+        gone = [n for n in names if n not in dataset.feature_names][:5]
+        extra = [n for n in dataset.feature_names if n not in names][:5]
+        raise LayerConfigError(f"the new data's feature columns differ from the checkpoint's: missing {gone}, "
+                               f"not in the checkpoint {extra}; an update needs the same columns", field="prior_from")
+    if list(dataset.feature_names) != names:  # same columns, another order: the checkpoint's order
+        order = np.array([list(dataset.feature_names).index(n) for n in names])
+        dataset = dataclasses.replace(dataset, feature_names=tuple(names), **{
+            f"x_{s}": getattr(dataset, f"x_{s}")[:, order] for s in ("train", "val", "cal", "test")})
     old = list(meta["labels"])
     if dataset.task == "classification":
         missing = [lab for lab in dataset.labels if lab not in old]
@@ -630,6 +640,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     p.add_argument("--lr", type=float, default=DEFAULTS["lr"], help="Adam step size of the means")
     p.add_argument("--rho-lr", type=float, default=DEFAULTS["rho_lr"],
                    help=f"Adam step size of the sigma parameters (default {DEFAULTS['rho_lr']})")
+    p.add_argument("--sigma-param", choices=SIGMA_PARAMS, default=DEFAULTS["sigma_param"],
+                   help="sigma = softplus(rho) or exp(rho) ('log': steps relative to sigma, so the ELBO sets the "
+                        f"spread; default {DEFAULTS['sigma_param']})")
     p.add_argument("--init-spread", type=float, default=DEFAULTS["init_spread"],
                    help=f"initial posterior sd of each weight (default {DEFAULTS['init_spread']})")
     p.add_argument("--batch-size", type=int, default=DEFAULTS["batch_size"])
@@ -643,6 +656,10 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     p.add_argument("--members", type=int, default=1,
                    help="train this many networks (seeds SEED*M .. SEED*M+M-1) into one ensemble checkpoint; "
                         "exported, each member gives S // M draws of its own posterior (default 1)")
+    p.add_argument("--prior-from", type=Path, metavar="CHECKPOINT",
+                   help="continual update: start from this checkpoint's posterior and use it as the prior, training "
+                        "on --data (the new rows) only; architecture, standardisation and labels come from the "
+                        "checkpoint, an ensemble is updated member by member (README, 'Updating a model')")
     p.add_argument("--progress", action=argparse.BooleanOptionalAction, default=None,
                    help="show a progress bar (default: when stderr is a terminal)")
     p.set_defaults(func=_run)
@@ -661,17 +678,24 @@ def _int_list(text: str) -> tuple[int, ...]:
 def _run(args: argparse.Namespace) -> int:
     ds = load_dataset(args.data, args.target, seed=args.seed, task=args.task)
     options = dict(arch=args.arch, posterior=args.posterior, epochs=args.epochs, seed=args.seed, out=args.out,
-                   lr=args.lr, rho_lr=args.rho_lr, init_spread=args.init_spread,
+                   lr=args.lr, rho_lr=args.rho_lr, init_spread=args.init_spread, sigma_param=args.sigma_param,
                    batch_size=args.batch_size, prior_scale=args.prior_scale, kl_weight=args.kl_weight,
                    kl_warmup=args.kl_warmup, hidden=args.hidden, channels=args.channels, threads=args.threads)
-    if args.members == 1:
-        print(summary_line(train(ds, progress=args.progress, **options)))
+    members = args.members
+    if args.prior_from is not None:
+        old, _ = load_checkpoint(args.prior_from)
+        members = len(old) if isinstance(old, list) else 1
+        if args.members not in (1, members):
+            raise LayerConfigError(f"--members {args.members} does not match the {members} network(s) of "
+                                   f"--prior-from {args.prior_from}; leave --members out", field="members")
+    if members == 1:
+        print(summary_line(train(ds, progress=args.progress, prior_from=args.prior_from, **options)))
         return 0
-    results = train_ensemble(ds, args.members, **options)
+    results = train_ensemble(ds, members, prior_from=args.prior_from, **options)
     for r in results:
         print("  member " + summary_line(r))
     t = json.loads((Path(args.out) / "training.json").read_text())["metrics"]["test"]
-    print(f"ensemble of {args.members} ({args.posterior}), test split: "
+    print(f"ensemble of {members} ({results[0].meta['arch']['posterior']}), test split: "
           + ", ".join(f"{k} {v:.4g}" for k, v in t.items()) + f" -> {Path(args.out) / 'checkpoint.pt'}")
     return 0
 
