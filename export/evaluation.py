@@ -76,16 +76,20 @@ def _served(bundle: Bundle, x: np.ndarray, y: np.ndarray, shifts: dict[str, np.n
     support = support_from_manifest(m)
 
     def run(xs: np.ndarray) -> tuple[dict[str, np.ndarray], np.ndarray, np.ndarray]:
-        probs, mi, accept = [], [], []
+        probs, mi, joint, accept = [], [], [], []
         for i in range(0, len(xs), _ROWS):
             xb = xs[i:i + _ROWS].reshape(-1, *m.inputs.shape)
             s = summarise(m.task, engine.run(xb), m.interval_level, m.target)
             d = decide(s, rule, support=support, x_raw=xb)
             probs.append(s.mean_probs)
             mi.append(s.mutual_information)
+            joint.append(s.joint_rank)
             accept.append(~d.abstain)
         p = np.concatenate(probs)
-        return scores_of(p, np.concatenate(mi)), np.concatenate(accept), p
+        scores = scores_of(p, np.concatenate(mi))
+        if all(j is not None for j in joint):  # the bundle records a score reference (serve/core/summary.py)
+            scores["joint_rank"] = np.concatenate(joint)
+        return scores, np.concatenate(accept), p
 
     clean, accept, probs = run(x)
     shifted = {name: run(xs)[:2] for name, xs in shifts.items()}

@@ -121,6 +121,7 @@ __all__ = [
     "load_checkpoint",
     "predict_draws",
     "register",
+    "served_statistics",
     "standardise_inputs",
     "summary_line",
     "total_kl",
@@ -155,6 +156,7 @@ DEFAULTS: dict[str, Any] = {
     "init_spread": 0.02,
     "rho_lr": 1e-3,
     "sigma_param": "softplus",
+    "fit_temperature": False,
     "hidden": (256, 256),
     "channels": (16, 32),
     "threads": 1,
@@ -212,7 +214,9 @@ def evaluate(
 ) -> dict[str, float]:
     """Metrics of the Monte-Carlo predictive from ``draws``: float32[S, B, K].
 
-    classification: accuracy, nll (nats per case), ece (15 bins), mean_confidence.
+    classification: accuracy, nll (nats per case), ece (15 bins), mean_confidence, of the
+    predictive mean after the temperature ``target["temperature"]`` if present (what is served:
+    serve/core/summary.py).
     regression (draws hold mean and log-variance in standardised units; ``y``
     in target units): rmse and mean absolute error in target units, nll of the
     Gaussian mixture in target units (nats per case).
@@ -220,6 +224,7 @@ def evaluate(
     S = draws.shape[0]
     if task == "classification":
         logp = torch.logsumexp(torch.log_softmax(draws.double(), dim=-1), dim=0) - math.log(S)
+        logp = torch.log_softmax(logp / float((target or {}).get("temperature", 1.0)), dim=-1)
         probs = logp.exp().numpy()
         yt = torch.as_tensor(np.asarray(y), dtype=torch.long)
         return {
@@ -392,13 +397,20 @@ def _write_ensemble(results: list[TrainResult], out: Path, seed: int) -> None:
         "cpu_seconds": sum(r.metrics["cpu_seconds"] for r in results),
         "threads": first.metrics["threads"], "eval_draws": per * len(results),
     }
-    for split in ("val", "test"):
-        x, y = ds.split(split)
+    def mixture(x: np.ndarray) -> torch.Tensor:
         xt = torch.from_numpy(standardise_inputs(first.meta["inputs"], x))
         with torch.no_grad():
-            draws = torch.cat([predict_draws(r.model, xt, S=per) for r in results])
-        metrics[split] = evaluate(draws, y, first.meta["task"], first.meta["target"])
-    meta = {**first.meta, "name": f"{first.meta['name']}-x{len(results)}", "members": len(results),
+            return torch.cat([predict_draws(r.model, xt, S=per) for r in results])
+
+    target = dict(first.meta["target"])
+    if first.meta["task"] == "classification":
+        fit = bool(first.meta["training"].get("fit_temperature", False))
+        target.update(served_statistics(mixture(ds.x_val), ds.y_val, mixture(np.concatenate([ds.x_train, ds.x_val])),
+                                        fit=fit))
+    for split in ("val", "test"):
+        x, y = ds.split(split)
+        metrics[split] = evaluate(mixture(x), y, first.meta["task"], target)
+    meta = {**first.meta, "name": f"{first.meta['name']}-x{len(results)}", "members": len(results), "target": target,
             "metrics": metrics, "member_metrics": [r.metrics for r in results],
             "training": {**first.meta["training"], "seed": int(seed),
                          "member_seeds": [int(r.meta["training"]["seed"]) for r in results]}}
@@ -496,6 +508,10 @@ def _fit(
         "threads": int(h["threads"]),
         "eval_draws": EVAL_DRAWS,
     }
+    if task == "classification":
+        target.update(served_statistics(
+            predict_draws(model, x_va), dataset.y_val,
+            predict_draws(model, torch.cat([x_tr, x_va])), fit=bool(h["fit_temperature"])))
     for split in ("val", "test"):
         x, y = dataset.split(split)
         metrics[split] = evaluate(predict_draws(model, tensors(x, y)[0]), y, task, target)
@@ -533,6 +549,35 @@ def _fit(
         record = {k: meta[k] for k in ("name", "arch", "task", "labels", "data", "training", "metrics")}
         (out_dir / "training.json").write_text(json.dumps({**record, "history": history}, indent=2) + "\n")
     return TrainResult(model=model, meta=meta, metrics=metrics, out=out_dir, dataset=dataset)
+
+
+def served_statistics(val_draws: torch.Tensor, y_val: np.ndarray, reference_draws: torch.Tensor, *,
+                      fit: bool) -> dict[str, Any]:
+    """What a classifier's bundle needs in ``target`` besides the network (serve/core/summary.py):
+    ``temperature`` (``fit``: the T > 0 minimising the validation NLL of softmax(ln p̄ / T), Guo et
+    al. 2017, section 4.2, searched on ln T in [-3, 3]; else 1) and ``score_reference``, the
+    quantiles at levels 0, 0.01, ..., 1 of predictive entropy and mutual information over
+    ``reference_draws`` (the training and validation rows), computed by the serving code itself
+    with that temperature. ``*_draws``: float32[S, B, K] logits."""
+    from scipy.optimize import minimize_scalar
+
+    from demur.serve.core.summary import classification_summary
+
+    t = 1.0
+    if fit:
+        log_mean = torch.logsumexp(torch.log_softmax(val_draws.double(), -1), 0) - math.log(val_draws.shape[0])
+        yt = torch.as_tensor(np.asarray(y_val), dtype=torch.long)
+
+        def nll(log_t: float) -> float:
+            logp = torch.log_softmax(log_mean / math.exp(log_t), dim=-1)
+            return float(-logp[torch.arange(len(yt)), yt].mean())
+
+        t = float(math.exp(minimize_scalar(nll, bounds=(-3.0, 3.0), method="bounded").x))
+    s = classification_summary(reference_draws.numpy(), temperature=t)
+    levels = np.linspace(0.0, 1.0, 101)
+    return {"temperature": t, "score_reference": {
+        "predictive_entropy": np.quantile(s.predictive_entropy, levels).tolist(),
+        "mutual_information": np.quantile(s.mutual_information, levels).tolist()}}
 
 
 def kl_weight(step: int, total_steps: int, *, warmup: float = KL_WARMUP, weight: float = KL_WEIGHT) -> float:
@@ -643,6 +688,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     p.add_argument("--sigma-param", choices=SIGMA_PARAMS, default=DEFAULTS["sigma_param"],
                    help="sigma = softplus(rho) or exp(rho) ('log': steps relative to sigma, so the ELBO sets the "
                         f"spread; default {DEFAULTS['sigma_param']})")
+    p.add_argument("--fit-temperature", action=argparse.BooleanOptionalAction, default=DEFAULTS["fit_temperature"],
+                   help="fit a temperature for the predictive mean on the validation split and serve it "
+                        f"(default {DEFAULTS['fit_temperature']})")
     p.add_argument("--init-spread", type=float, default=DEFAULTS["init_spread"],
                    help=f"initial posterior sd of each weight (default {DEFAULTS['init_spread']})")
     p.add_argument("--batch-size", type=int, default=DEFAULTS["batch_size"])
@@ -679,6 +727,7 @@ def _run(args: argparse.Namespace) -> int:
     ds = load_dataset(args.data, args.target, seed=args.seed, task=args.task)
     options = dict(arch=args.arch, posterior=args.posterior, epochs=args.epochs, seed=args.seed, out=args.out,
                    lr=args.lr, rho_lr=args.rho_lr, init_spread=args.init_spread, sigma_param=args.sigma_param,
+                   fit_temperature=args.fit_temperature,
                    batch_size=args.batch_size, prior_scale=args.prior_scale, kl_weight=args.kl_weight,
                    kl_warmup=args.kl_warmup, hidden=args.hidden, channels=args.channels, threads=args.threads)
     members = args.members
