@@ -102,3 +102,40 @@ def test_the_fitted_temperature_recovers_a_known_one():
     assert len(ref["predictive_entropy"]) == 101 and np.all(np.diff(ref["predictive_entropy"]) >= 0)
     assert served_statistics(torch.zeros(1, 3, 4), np.zeros(3, dtype=int), torch.zeros(1, 3, 4),
                              fit=False)["temperature"] == 1.0
+
+
+@pytest.mark.slow
+def test_joint_rank_keeps_the_guarantee_at_the_demo_target(demo_bundle, demo_dataset):
+    """The population design of tests/serve/test_calibration.py with the joint rank as the score: the
+    pool is the 718 held-out digits (cal + test splits) through the serving path once, and IS the
+    population; each of 1000 calibration sets is 359 digits drawn from it with replacement; a
+    violation is the pool's accepted accuracy at the chosen threshold below the demo target 0.98.
+    The joint rank's reference quantiles come from the training rows (demur train), never from the
+    calibration rows, so the score is a fixed function of the case and Learn-then-Test's guarantee
+    (Angelopoulos et al. 2021) holds as for any score. Check: the exact binomial 99% interval of the
+    violation rate (scipy.stats.binomtest) reaches down to delta = 0.1."""
+    from tests.serve.test_calibration import DEMO_DELTA, _violation_study
+
+    from demur.serve.core.decision import score_values
+    from demur.serve.core.summary import summarise
+
+    m = demo_bundle.manifest
+    assert "score_reference" in m.target
+    x = np.concatenate([demo_dataset.x_cal, demo_dataset.x_test])
+    y = np.concatenate([demo_dataset.y_cal, demo_dataset.y_test])
+    s = summarise("classification", Engine(demo_bundle, graph="stacked").load().run(x), m.interval_level, m.target)
+    scores, correct = score_values(s, "joint_rank"), s.prediction == y
+    order = np.argsort(scores)
+    srt, wrong = scores[order], np.cumsum(~correct[order])
+
+    def at(t):
+        k = np.searchsorted(srt, t, side="right")
+        return 1.0 - wrong[k - 1] / k, k / len(srt)
+
+    reps = 1000
+    pop, _, feasible, _ = _violation_study(scores, correct, at, "fixed_sequence", reps, seed=77)
+    ci = stats.binomtest(pop, reps).proportion_ci(confidence_level=0.99, method="exact")
+    print(f"\n[joint rank, digits pool of {len(scores)}] feasible {feasible}/{reps}; population violation rate "
+          f"{pop / reps:.4f} (99% CI {ci.low:.4f}-{ci.high:.4f})")
+    assert feasible >= reps // 2
+    assert ci.low <= DEMO_DELTA
