@@ -114,23 +114,17 @@ def test_joint_rank_keeps_the_guarantee_at_the_demo_target(demo_bundle, demo_dat
     calibration rows, so the score is a fixed function of the case and Learn-then-Test's guarantee
     (Angelopoulos et al. 2021) holds as for any score. Check: the exact binomial 99% interval of the
     violation rate (scipy.stats.binomtest) reaches down to delta = 0.1."""
-    from tests.serve.test_calibration import DEMO_DELTA, _violation_study
+    from tests.serve.test_calibration import DEMO_DELTA, _digits_pool, _violation_study
 
     from demur.serve.core.decision import score_values
-    from demur.serve.core.summary import summarise
 
-    m = demo_bundle.manifest
-    assert "score_reference" in m.target
-    x = np.concatenate([demo_dataset.x_cal, demo_dataset.x_test])
-    y = np.concatenate([demo_dataset.y_cal, demo_dataset.y_test])
-    s = summarise("classification", Engine(demo_bundle, graph="stacked").load().run(x), m.interval_level, m.target)
-    scores, correct = score_values(s, "joint_rank"), s.prediction == y
-    order = np.argsort(scores)
-    srt, wrong = scores[order], np.cumsum(~correct[order])
+    assert "score_reference" in demo_bundle.manifest.target
+    _, correct, summary = _digits_pool(demo_bundle, demo_dataset)
+    scores = score_values(summary, "joint_rank")
 
-    def at(t):
-        k = np.searchsorted(srt, t, side="right")
-        return 1.0 - wrong[k - 1] / k, k / len(srt)
+    def at(t):  # the pool's accepted accuracy and coverage at threshold t
+        keep = scores <= t
+        return float(correct[keep].mean()), float(keep.mean())
 
     reps = 1000
     pop, _, feasible, _ = _violation_study(scores, correct, at, "fixed_sequence", reps, seed=77)
