@@ -27,13 +27,18 @@ of ``demur train`` (export/training.py), an ensemble member by member.
 from __future__ import annotations
 
 import copy
+import dataclasses
+from pathlib import Path
+from typing import Any
 
+import numpy as np
 from torch import nn
 
+from demur.export.datasets import Dataset
 from demur.export.errors import LayerConfigError
 from demur.export.layers import variational_layers
 
-__all__ = ["posterior_as_prior"]
+__all__ = ["posterior_as_prior", "update_start"]
 
 
 def posterior_as_prior(model: nn.Module) -> nn.Module:
@@ -53,3 +58,51 @@ def posterior_as_prior(model: nn.Module) -> nn.Module:
         spread = old.spread()
         new.set_prior(old.weight_mu.detach(), spread["weight"], old.bias_mu.detach(), spread["bias"])
     return updated.train()
+
+
+def update_start(prior_from: Path | str | tuple[nn.Module, dict[str, Any]], dataset: Dataset) -> dict[str, Any]:
+    """What a continual update starts from: the old model, its metadata, the settings that fix
+    the network (architecture, prior family), and ``dataset`` with its labels mapped onto the
+    old model's (a ``LayerConfigError`` naming ``prior_from`` when they do not fit)."""
+    from demur.export.training import load_checkpoint  # training imports this module
+
+    if isinstance(prior_from, tuple):
+        model, meta = prior_from
+        source = str(meta.get("name", "model"))
+    else:
+        model, meta = load_checkpoint(prior_from)
+        source = str(prior_from)
+        if isinstance(model, list):
+            raise LayerConfigError(f"{prior_from} is an ensemble of {len(model)} networks; update it with "
+                                   "train_ensemble(..., prior_from=...) (demur train --prior-from does)",
+                                   field="prior_from")
+    if meta["task"] != dataset.task:
+        raise LayerConfigError(f"the checkpoint is a {meta['task']} model; the new data is {dataset.task}",
+                               field="prior_from")
+    names = list(meta["inputs"]["names"])
+    if sorted(dataset.feature_names) != sorted(names):
+        gone = [n for n in names if n not in dataset.feature_names][:5]
+        extra = [n for n in dataset.feature_names if n not in names][:5]
+        raise LayerConfigError(f"the new data's feature columns differ from the checkpoint's: missing {gone}, "
+                               f"not in the checkpoint {extra}; an update needs the same columns", field="prior_from")
+    if list(dataset.feature_names) != names:  # same columns, another order: the checkpoint's order
+        order = np.array([list(dataset.feature_names).index(n) for n in names])
+        dataset = dataclasses.replace(dataset, feature_names=tuple(names), **{
+            f"x_{s}": getattr(dataset, f"x_{s}")[:, order] for s in ("train", "val", "cal", "test")})
+    old = list(meta["labels"])
+    if dataset.task == "classification":
+        missing = [lab for lab in dataset.labels if lab not in old]
+        if missing:
+            raise LayerConfigError(
+                f"the new data has labels {missing} the checkpoint's model does not know (it knows {old}); a "
+                "continual update keeps the output layer, so the first model must be trained with every label",
+                field="prior_from")
+        index = np.array([old.index(lab) for lab in dataset.labels], dtype=np.int64)
+        mapped = {f"y_{name}": index[getattr(dataset, f"y_{name}")] for name in ("train", "val", "cal", "test")}
+        dataset = dataclasses.replace(dataset, labels=tuple(old), **mapped)
+    arch = meta["arch"]
+    settings = {"hidden": tuple(arch["hidden"]), "channels": tuple(arch["channels"]),
+                "prior_scale": float(arch["prior_scale"]), "init_sigma": float(arch.get("init_sigma", 1e-3)),
+                "sigma_param": arch.get("sigma_param", "softplus")}
+    return {"model": model, "meta": meta, "arch": arch["kind"], "posterior": arch["posterior"],
+            "settings": settings, "dataset": dataset, "source": source}

@@ -52,6 +52,19 @@ and:
   trains five such networks (``train_ensemble``, ``demur train --members 5``)
   and serves the mixture of their posteriors: README, "Choosing the demo's
   defaults", has the 3-seed table against the alternatives.
+* **Spread set by the ELBO (``sigma_param="log"``, opt-in).** With softplus sigmas the rho step
+  of 1e-3 is an absolute change, so a radial sigma of 0.02 * sqrt(d) ~ 1-5 barely moves: the
+  trained per-weight spread stays at its initial 0.025 whatever the data say. ``--sigma-param
+  log`` (sigma = exp(rho)) makes each step relative; from initial spreads 0.01 and 0.1 the
+  trained spreads meet (tests/export/test_training.py). The spreads it learns are wide (median
+  0.21 radial, 0.27 gaussian at ``--rho-lr 3e-3 --kl-weight 0.1``; ~0.6-0.8 at the plain ELBO)
+  and cost clean accuracy; README, "Choosing the demo's defaults", has the measured table and
+  why the demo keeps softplus.
+* **Served temperature and score reference.** For a classifier ``served_statistics`` records in
+  ``target`` the PE and MI quantiles of the training rows (the ``joint_rank`` score,
+  serve/core/summary.py) and, with ``--fit-temperature``, a temperature fitted on the
+  validation split (Guo et al. 2017). Off by default: the demo's validation split has 90 cases,
+  and refitting on fresh draws of one trained mixture moved T between 0.73 and 1.42.
 * **One intra-op thread by default.** The matrices are small (batch 64 x
   256), so a second thread mostly waits: on this 2-core machine 60 epochs
   took 13 s wall / 9 s CPU with 1 thread but 56 s / 53 s with 2 when other
@@ -85,7 +98,6 @@ Python use (the test fixtures do this)::
 from __future__ import annotations
 
 import argparse
-import dataclasses
 import json
 import math
 import sys
@@ -104,6 +116,7 @@ from demur.serve.offline.calibration import expected_calibration_error
 
 from demur.export.datasets import Dataset, load_dataset
 from demur.export.errors import CheckpointError, LayerConfigError, TrainingError
+from demur.export.temperature import served_statistics
 from demur.export.layers import ARCHITECTURES, POSTERIORS, SIGMA_PARAMS, build_model, total_kl, variational_layers
 
 __all__ = [
@@ -121,7 +134,6 @@ __all__ = [
     "load_checkpoint",
     "predict_draws",
     "register",
-    "served_statistics",
     "standardise_inputs",
     "summary_line",
     "total_kl",
@@ -294,7 +306,9 @@ def train(
         raise LayerConfigError(f"arch 'conv' needs image inputs; dataset {dataset.name!r} is tabular", field="arch")
     start = None
     if prior_from is not None:
-        start = _prior_start(prior_from, dataset)
+        from demur.export.continual import update_start
+
+        start = update_start(prior_from, dataset)
         arch, posterior, dataset = start["arch"], start["posterior"], start["dataset"]
         hyper = {"kl_warmup": 0.0, **hyper, **start["settings"]}
     h = {**DEFAULTS, **hyper}
@@ -312,52 +326,6 @@ def train(
         return _fit(dataset, arch, posterior, seed, out, progress, h, start)
     finally:
         torch.set_num_threads(previous_threads)
-
-
-def _prior_start(prior_from: Path | str | tuple[nn.Module, dict[str, Any]], dataset: Dataset) -> dict[str, Any]:
-    """What a continual update starts from: the old model, its metadata, the settings that fix
-    the network (architecture, prior family), and ``dataset`` with its labels mapped onto the
-    old model's (a ``LayerConfigError`` naming ``prior_from`` when they do not fit)."""
-    if isinstance(prior_from, tuple):
-        model, meta = prior_from
-        source = str(meta.get("name", "model"))
-    else:
-        model, meta = load_checkpoint(prior_from)
-        source = str(prior_from)
-        if isinstance(model, list):
-            raise LayerConfigError(f"{prior_from} is an ensemble of {len(model)} networks; update it with "
-                                   "train_ensemble(..., prior_from=...) (demur train --prior-from does)",
-                                   field="prior_from")
-    if meta["task"] != dataset.task:
-        raise LayerConfigError(f"the checkpoint is a {meta['task']} model; the new data is {dataset.task}",
-                               field="prior_from")
-    names = list(meta["inputs"]["names"])
-    if sorted(dataset.feature_names) != sorted(names):
-        gone = [n for n in names if n not in dataset.feature_names][:5]
-        extra = [n for n in dataset.feature_names if n not in names][:5]
-        raise LayerConfigError(f"the new data's feature columns differ from the checkpoint's: missing {gone}, "
-                               f"not in the checkpoint {extra}; an update needs the same columns", field="prior_from")
-    if list(dataset.feature_names) != names:  # same columns, another order: the checkpoint's order
-        order = np.array([list(dataset.feature_names).index(n) for n in names])
-        dataset = dataclasses.replace(dataset, feature_names=tuple(names), **{
-            f"x_{s}": getattr(dataset, f"x_{s}")[:, order] for s in ("train", "val", "cal", "test")})
-    old = list(meta["labels"])
-    if dataset.task == "classification":
-        missing = [lab for lab in dataset.labels if lab not in old]
-        if missing:
-            raise LayerConfigError(
-                f"the new data has labels {missing} the checkpoint's model does not know (it knows {old}); a "
-                "continual update keeps the output layer, so the first model must be trained with every label",
-                field="prior_from")
-        index = np.array([old.index(lab) for lab in dataset.labels], dtype=np.int64)
-        mapped = {f"y_{name}": index[getattr(dataset, f"y_{name}")] for name in ("train", "val", "cal", "test")}
-        dataset = dataclasses.replace(dataset, labels=tuple(old), **mapped)
-    arch = meta["arch"]
-    settings = {"hidden": tuple(arch["hidden"]), "channels": tuple(arch["channels"]),
-                "prior_scale": float(arch["prior_scale"]), "init_sigma": float(arch.get("init_sigma", 1e-3)),
-                "sigma_param": arch.get("sigma_param", "softplus")}
-    return {"model": model, "meta": meta, "arch": arch["kind"], "posterior": arch["posterior"],
-            "settings": settings, "dataset": dataset, "source": source}
 
 
 def train_ensemble(dataset: Dataset, members: int, *, posterior: str = "radial", seed: int = 0,
@@ -549,35 +517,6 @@ def _fit(
         record = {k: meta[k] for k in ("name", "arch", "task", "labels", "data", "training", "metrics")}
         (out_dir / "training.json").write_text(json.dumps({**record, "history": history}, indent=2) + "\n")
     return TrainResult(model=model, meta=meta, metrics=metrics, out=out_dir, dataset=dataset)
-
-
-def served_statistics(val_draws: torch.Tensor, y_val: np.ndarray, reference_draws: torch.Tensor, *,
-                      fit: bool) -> dict[str, Any]:
-    """What a classifier's bundle needs in ``target`` besides the network (serve/core/summary.py):
-    ``temperature`` (``fit``: the T > 0 minimising the validation NLL of softmax(ln p̄ / T), Guo et
-    al. 2017, section 4.2, searched on ln T in [-3, 3]; else 1) and ``score_reference``, the
-    quantiles at levels 0, 0.01, ..., 1 of predictive entropy and mutual information over
-    ``reference_draws`` (the training and validation rows), computed by the serving code itself
-    with that temperature. ``*_draws``: float32[S, B, K] logits."""
-    from scipy.optimize import minimize_scalar
-
-    from demur.serve.core.summary import classification_summary
-
-    t = 1.0
-    if fit:
-        log_mean = torch.logsumexp(torch.log_softmax(val_draws.double(), -1), 0) - math.log(val_draws.shape[0])
-        yt = torch.as_tensor(np.asarray(y_val), dtype=torch.long)
-
-        def nll(log_t: float) -> float:
-            logp = torch.log_softmax(log_mean / math.exp(log_t), dim=-1)
-            return float(-logp[torch.arange(len(yt)), yt].mean())
-
-        t = float(math.exp(minimize_scalar(nll, bounds=(-3.0, 3.0), method="bounded").x))
-    s = classification_summary(reference_draws.numpy(), temperature=t)
-    levels = np.linspace(0.0, 1.0, 101)
-    return {"temperature": t, "score_reference": {
-        "predictive_entropy": np.quantile(s.predictive_entropy, levels).tolist(),
-        "mutual_information": np.quantile(s.mutual_information, levels).tolist()}}
 
 
 def kl_weight(step: int, total_steps: int, *, warmup: float = KL_WARMUP, weight: float = KL_WEIGHT) -> float:

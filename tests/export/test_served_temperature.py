@@ -18,7 +18,7 @@ from scipy import special, stats
 
 from demur.export.calibration import calibrate
 from demur.export.evaluation import evaluate
-from demur.export.training import served_statistics
+from demur.export.temperature import served_statistics
 from demur.serve.adapters.engine import Engine
 from demur.serve.config import ServeConfig
 from demur.serve.core.bundle import load_bundle, write_manifest
