@@ -22,8 +22,9 @@ from typing import Any
 
 import numpy as np
 import torch
+from torch import nn
 
-__all__ = ["served_statistics"]
+__all__ = ["mixture_statistics", "served_statistics"]
 
 
 def served_statistics(val_draws: torch.Tensor, y_val: np.ndarray, reference_draws: torch.Tensor, *,
@@ -53,3 +54,19 @@ def served_statistics(val_draws: torch.Tensor, y_val: np.ndarray, reference_draw
     return {"temperature": t, "score_reference": {
         "predictive_entropy": np.quantile(s.predictive_entropy, levels).tolist(),
         "mutual_information": np.quantile(s.mutual_information, levels).tolist()}}
+
+
+def mixture_statistics(models: list[nn.Module], inputs: dict[str, Any], x_val: np.ndarray, y_val: np.ndarray,
+                       x_train: np.ndarray, *, fit: bool, draws: int = 32) -> dict[str, Any]:
+    """``served_statistics`` of the mixture of ``models`` (one model: its own posterior), each
+    giving ``draws // len(models)`` torch draws, on raw validation and training rows (the
+    checkpoint's ``inputs`` standardise them), as the bundle exported from them serves."""
+    from demur.export.training import predict_draws, standardise_inputs  # training imports this module
+
+    per = max(1, int(draws) // len(models))
+
+    def mixture(x: np.ndarray) -> torch.Tensor:
+        xt = torch.from_numpy(standardise_inputs(inputs, x))
+        return torch.cat([predict_draws(m, xt, S=per) for m in models])
+
+    return served_statistics(mixture(x_val), y_val, mixture(np.concatenate([x_train, x_val])), fit=fit)

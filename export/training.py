@@ -116,7 +116,7 @@ from demur.serve.offline.calibration import expected_calibration_error
 
 from demur.export.datasets import Dataset, load_dataset
 from demur.export.errors import CheckpointError, LayerConfigError, TrainingError
-from demur.export.temperature import served_statistics
+from demur.export.temperature import mixture_statistics
 from demur.export.layers import ARCHITECTURES, POSTERIORS, SIGMA_PARAMS, build_model, total_kl, variational_layers
 
 __all__ = [
@@ -365,19 +365,17 @@ def _write_ensemble(results: list[TrainResult], out: Path, seed: int) -> None:
         "cpu_seconds": sum(r.metrics["cpu_seconds"] for r in results),
         "threads": first.metrics["threads"], "eval_draws": per * len(results),
     }
-    def mixture(x: np.ndarray) -> torch.Tensor:
-        xt = torch.from_numpy(standardise_inputs(first.meta["inputs"], x))
-        with torch.no_grad():
-            return torch.cat([predict_draws(r.model, xt, S=per) for r in results])
-
     target = dict(first.meta["target"])
     if first.meta["task"] == "classification":
-        fit = bool(first.meta["training"].get("fit_temperature", False))
-        target.update(served_statistics(mixture(ds.x_val), ds.y_val, mixture(np.concatenate([ds.x_train, ds.x_val])),
-                                        fit=fit))
+        target.update(mixture_statistics(
+            [r.model for r in results], first.meta["inputs"], ds.x_val, ds.y_val, ds.x_train,
+            fit=bool(first.meta["training"].get("fit_temperature", False))))
     for split in ("val", "test"):
         x, y = ds.split(split)
-        metrics[split] = evaluate(mixture(x), y, first.meta["task"], target)
+        xt = torch.from_numpy(standardise_inputs(first.meta["inputs"], x))
+        with torch.no_grad():
+            draws = torch.cat([predict_draws(r.model, xt, S=per) for r in results])
+        metrics[split] = evaluate(draws, y, first.meta["task"], target)
     meta = {**first.meta, "name": f"{first.meta['name']}-x{len(results)}", "members": len(results), "target": target,
             "metrics": metrics, "member_metrics": [r.metrics for r in results],
             "training": {**first.meta["training"], "seed": int(seed),
@@ -477,9 +475,8 @@ def _fit(
         "eval_draws": EVAL_DRAWS,
     }
     if task == "classification":
-        target.update(served_statistics(
-            predict_draws(model, x_va), dataset.y_val,
-            predict_draws(model, torch.cat([x_tr, x_va])), fit=bool(h["fit_temperature"])))
+        target.update(mixture_statistics([model], inputs, dataset.x_val, dataset.y_val, dataset.x_train,
+                                         fit=bool(h["fit_temperature"])))
     for split in ("val", "test"):
         x, y = dataset.split(split)
         metrics[split] = evaluate(predict_draws(model, tensors(x, y)[0]), y, task, target)

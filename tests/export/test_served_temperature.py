@@ -133,3 +133,19 @@ def test_joint_rank_keeps_the_guarantee_at_the_demo_target(demo_bundle, demo_dat
           f"{pop / reps:.4f} (99% CI {ci.low:.4f}-{ci.high:.4f})")
     assert feasible >= reps // 2
     assert ci.low <= DEMO_DELTA
+
+
+def test_the_held_out_class_retraining_serves_the_same_statistics(tmp_path, demo_dataset):
+    """`demur evaluate --holdout-class` retrains the recorded recipe and exports it: the retrained
+    bundle carries the mixture's temperature and score reference (as `demur train` records them), so
+    a rule calibrated on the joint rank is recalibrated on it, not refused."""
+    from demur.serve.cli import main
+
+    ck, b = tmp_path / "ck", tmp_path / "b"
+    assert main(["train", "--data", "digits", "--members", "2", "--epochs", "1", "--hidden", "16",
+                 "--sigma-param", "log", "--fit-temperature", "--out", str(ck)]) == 0
+    assert main(["export", str(ck), "--draws", "8", "--out", str(b)]) == 0
+    calibrate(b, demo_dataset.x_cal, demo_dataset.y_cal, target_abstain=0.2, score="joint_rank")
+    figures = evaluate(b, demo_dataset.x_test, demo_dataset.y_test, holdout=("9", demo_dataset))
+    row = figures["models"]["bundle"]["holdout"]
+    assert "joint_rank" in row["auroc"] and "joint_rank >" in row["rule"]
