@@ -81,6 +81,7 @@ def load_checkpoint(directory: Path | str) -> tuple[nn.Sequential | list[nn.Sequ
         model = build_model(
             arch["kind"], meta["inputs"]["shape"], outputs, arch["posterior"], prior_scale=arch["prior_scale"],
             hidden=arch["hidden"], channels=arch["channels"], init_sigma=arch.get("init_sigma", 1e-3),
+            sigma_param=arch.get("sigma_param", "softplus"),
         )
         try:
             model.load_state_dict(state)

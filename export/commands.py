@@ -37,7 +37,7 @@ _Subparsers = argparse._SubParsersAction
 # -- demur train ----------------------------------------------------------------------
 def register_train(subparsers: _Subparsers) -> None:
     """Add ``demur train`` to the ``demur`` command."""
-    from demur.export.layers import ARCHITECTURES, POSTERIORS
+    from demur.export.layers import ARCHITECTURES, POSTERIORS, SIGMA_PARAMS
     from demur.export.training import DEFAULTS
 
     p = subparsers.add_parser(
@@ -58,6 +58,12 @@ def register_train(subparsers: _Subparsers) -> None:
     p.add_argument("--lr", type=float, default=DEFAULTS["lr"], help="Adam step size of the means")
     p.add_argument("--rho-lr", type=float, default=DEFAULTS["rho_lr"],
                    help=f"Adam step size of the sigma parameters (default {DEFAULTS['rho_lr']})")
+    p.add_argument("--sigma-param", choices=SIGMA_PARAMS, default=DEFAULTS["sigma_param"],
+                   help="sigma = softplus(rho) or exp(rho) ('log': steps relative to sigma, so the ELBO sets the "
+                        f"spread; default {DEFAULTS['sigma_param']})")
+    p.add_argument("--fit-temperature", action=argparse.BooleanOptionalAction, default=DEFAULTS["fit_temperature"],
+                   help="fit a temperature for the predictive mean on the validation split and serve it "
+                        f"(default {DEFAULTS['fit_temperature']})")
     p.add_argument("--init-spread", type=float, default=DEFAULTS["init_spread"],
                    help=f"initial posterior sd of each weight (default {DEFAULTS['init_spread']})")
     p.add_argument("--batch-size", type=int, default=DEFAULTS["batch_size"])
@@ -71,6 +77,10 @@ def register_train(subparsers: _Subparsers) -> None:
     p.add_argument("--members", type=int, default=1,
                    help="train this many networks (seeds SEED*M .. SEED*M+M-1) into one ensemble checkpoint; "
                         "exported, each member gives S // M draws of its own posterior (default 1)")
+    p.add_argument("--prior-from", type=Path, metavar="CHECKPOINT",
+                   help="continual update: start from this checkpoint's posterior and use it as the prior, training "
+                        "on --data (the new rows) only; architecture, standardisation and labels come from the "
+                        "checkpoint, an ensemble is updated member by member (README, 'Updating a model')")
     p.add_argument("--progress", action=argparse.BooleanOptionalAction, default=None,
                    help="show a progress bar (default: when stderr is a terminal)")
     p.set_defaults(func=_train)
@@ -87,22 +97,32 @@ def _int_list(text: str) -> tuple[int, ...]:
 
 
 def _train(args: argparse.Namespace) -> int:
+    from demur.export.checkpoints import load_checkpoint
     from demur.export.datasets import load_dataset
+    from demur.export.errors import LayerConfigError
     from demur.export.training import summary_line, train, train_ensemble
 
     ds = load_dataset(args.data, args.target, seed=args.seed, task=args.task)
     options = dict(arch=args.arch, posterior=args.posterior, epochs=args.epochs, seed=args.seed, out=args.out,
-                   lr=args.lr, rho_lr=args.rho_lr, init_spread=args.init_spread,
+                   lr=args.lr, rho_lr=args.rho_lr, init_spread=args.init_spread, sigma_param=args.sigma_param,
+                   fit_temperature=args.fit_temperature,
                    batch_size=args.batch_size, prior_scale=args.prior_scale, kl_weight=args.kl_weight,
                    kl_warmup=args.kl_warmup, hidden=args.hidden, channels=args.channels, threads=args.threads)
-    if args.members == 1:
-        print(summary_line(train(ds, progress=args.progress, **options)))
+    members = args.members
+    if args.prior_from is not None:
+        old, _ = load_checkpoint(args.prior_from)
+        members = len(old) if isinstance(old, list) else 1
+        if args.members not in (1, members):
+            raise LayerConfigError(f"--members {args.members} does not match the {members} network(s) of "
+                                   f"--prior-from {args.prior_from}; leave --members out", field="members")
+    if members == 1:
+        print(summary_line(train(ds, progress=args.progress, prior_from=args.prior_from, **options)))
         return 0
-    results = train_ensemble(ds, args.members, **options)
+    results = train_ensemble(ds, members, prior_from=args.prior_from, **options)
     for r in results:
         print("  member " + summary_line(r))
     t = json.loads((Path(args.out) / "training.json").read_text())["metrics"]["test"]
-    print(f"ensemble of {args.members} ({args.posterior}), test split: "
+    print(f"ensemble of {members} ({results[0].meta['arch']['posterior']}), test split: "
           + ", ".join(f"{k} {v:.4g}" for k, v in t.items()) + f" -> {Path(args.out) / 'checkpoint.pt'}")
     return 0
 

@@ -91,15 +91,19 @@ def _served(bundle: Bundle, x: np.ndarray, y: np.ndarray, shifts: dict[str, np.n
     rule, support = served.rule, served.support
 
     def run(xs: np.ndarray) -> tuple[dict[str, np.ndarray], np.ndarray, np.ndarray]:
-        probs, mi, accept = [], [], []
+        probs, mi, joint, accept = [], [], [], []
         for xb in chunks(xs.reshape(-1, *m.inputs.shape)):
             s = summarise(m.task, engine.run(xb), m.interval_level, m.target)
             d = served.decide(s, xb)
             probs.append(s.mean_probs)
             mi.append(s.mutual_information)
+            joint.append(s.joint_rank)
             accept.append(~d.abstain)
         p = np.concatenate(probs)
-        return scores_of(p, np.concatenate(mi)), np.concatenate(accept), p
+        scores = scores_of(p, np.concatenate(mi))
+        if all(j is not None for j in joint):  # the bundle records a score reference (serve/core/summary.py)
+            scores["joint_rank"] = np.concatenate(joint)
+        return scores, np.concatenate(accept), p
 
     clean, accept, probs = run(x)
     shifted = {name: run(xs)[:2] for name, xs in shifts.items()}
@@ -261,6 +265,7 @@ def _holdout(bundle: Bundle, label: str, data: Any, seed: int, baseline: bool,
     model demur would be measuring a network that is not the user's, so it refuses and names
     the way that measures the user's own model (``evaluate(..., unseen=...)``)."""
     from demur.export.exporter import Inputs, export_model, training_rows
+    from demur.export.temperature import mixture_statistics
     from demur.export.training import train, train_ensemble
 
     m = bundle.manifest
@@ -281,16 +286,20 @@ def _holdout(bundle: Bundle, label: str, data: Any, seed: int, baseline: bool,
         results = train_ensemble(seen, int(m.posterior["members"]), posterior=m.posterior["member_family"],
                                  seed=train_seed, arch=recipe["arch"], **options)
         result, model = results[0], [r.model for r in results]
+        # what the ensemble checkpoint records: the mixture's temperature and score reference
+        target = {**result.meta["target"], **mixture_statistics(
+            model, result.meta["inputs"], seen.x_val, seen.y_val, seen.x_train,
+            fit=bool(options.get("fit_temperature", False)))}
     else:
         result = train(seen, arch=recipe["arch"], posterior=family, seed=train_seed, progress=False, **options)
-        model = result.model
+        model, target = result.model, result.meta["target"]
     shifts = {"unseen_class": unseen_x}
     out: dict[str, Any] = {}
     with tempfile.TemporaryDirectory(prefix="demur-holdout-") as tmp:
         held = export_model(model, Path(tmp) / "bundle", task="classification", labels=list(m.labels),
                             inputs=Inputs(spec=result.meta["inputs"], training=training_rows(seen.x_train)),
                             reference=seen.x_val, draws=m.graphs[next(iter(m.graphs))].draws, seed=seed,
-                            name="holdout")
+                            name="holdout", target=target)
         held, rule_note = _recalibrated_like(bundle, held, seen.x_cal, seen.y_cal)
         out["bundle"] = _served(held, seen_x, y_seen, shifts)
         if baseline:

@@ -1,8 +1,23 @@
 """Variational Linear and Conv2d layers: a distribution over every weight.
 
 Each layer holds, for its weight and its bias, a mean ``*_mu`` and an
-unconstrained ``*_rho``; the scale is ``sigma = softplus(rho)`` so it stays
-positive without clipping. Two posterior families share these parameters:
+unconstrained ``*_rho``; the scale is a positive function of rho, so it stays
+positive without clipping. ``sigma_param`` says which:
+
+``"softplus"``  sigma = softplus(rho) (the layers' default; checkpoints written
+                before ``sigma_param`` existed use it).
+``"log"``       sigma = exp(rho): rho is log sigma. Why: Adam moves a parameter
+                by about its step size per step whatever the gradient's size, so
+                with softplus in its linear range (sigma above ~1, where every
+                radial sigma lives: sigma = spread * sqrt(d)) sigma moves by an
+                absolute ~1e-3 per step, and a radial sigma of 3 hardly moves in
+                a thousand steps: the trained spread is the initial one. On log
+                sigma each step is a *relative* change, the same for a sigma of
+                0.01 or of 5, so the ELBO, not the initialisation, sets the
+                spread (tests/export/test_training.py trains from two initial
+                spreads and checks that they meet).
+
+Two posterior families share these parameters:
 
 ``"gaussian"``  mean-field: w = mu + sigma * eps, eps ~ N(0, I) elementwise.
 
@@ -27,7 +42,11 @@ times quieter per weight than a Gaussian one. ``demur train`` uses
 ``init_spread`` (see export/training.py for the measured default); the
 parameters and the checkpoint are the same either way.
 
-The prior is N(0, prior_scale^2) on every parameter. ``kl()`` is the
+The prior is N(0, prior_scale^2) on every parameter, unless ``set_prior`` gave
+the layer a prior of its own per parameter, N(m, s^2) elementwise (variational
+continual learning makes the previous posterior the next prior:
+``demur.export.continual``). That prior lives in non-persistent buffers: it
+shapes training only and is not part of the state_dict or the bundle. ``kl()`` is the
 Gaussian-to-Gaussian KL in closed form; for the radial posterior it is the
 paper's estimate (section 3.1): the entropy term in closed form up to an
 additive constant that does not depend on the parameters (-sum log sigma),
@@ -61,6 +80,7 @@ __all__ = [
     "ARCHITECTURES",
     "POSTERIORS",
     "ResidualBlock",
+    "SIGMA_PARAMS",
     "VariationalConv2d",
     "VariationalLayer",
     "VariationalLinear",
@@ -76,10 +96,14 @@ __all__ = [
 POSTERIORS = ("radial", "gaussian")
 """Posterior families every variational layer supports."""
 
+SIGMA_PARAMS = ("softplus", "log")
+"""How ``*_rho`` maps to sigma: softplus(rho), or exp(rho) (module docstring)."""
+
 ARCHITECTURES = ("mlp", "conv")
 """Model kinds ``build_model`` knows."""
 
 Posterior = Literal["radial", "gaussian"]
+SigmaParam = Literal["softplus", "log"]
 Draw = dict[str, torch.Tensor]
 
 _HALF_LOG_2PI = 0.5 * math.log(2.0 * math.pi)
@@ -114,8 +138,14 @@ class VariationalLayer(nn.Module):
         prior_scale: float = 1.0,
         init_sigma: float = 1e-3,
         init_spread: float | None = None,
+        sigma_param: SigmaParam = "softplus",
     ) -> None:
         super().__init__()
+        if sigma_param not in SIGMA_PARAMS:
+            raise LayerConfigError(
+                f"sigma_param must be one of {list(SIGMA_PARAMS)}; got {sigma_param!r}", field="sigma_param"
+            )
+        self.sigma_param: SigmaParam = sigma_param
         if posterior not in POSTERIORS:
             raise LayerConfigError(
                 f"posterior must be one of {list(POSTERIORS)}; got {posterior!r}", field="posterior"
@@ -134,25 +164,68 @@ class VariationalLayer(nn.Module):
         self.weight_rho = nn.Parameter(torch.full(weight_shape, self._initial_rho(math.prod(weight_shape))))
         self.bias_mu = nn.Parameter(torch.empty(out_features).uniform_(-bound, bound))
         self.bias_rho = nn.Parameter(torch.full((out_features,), self._initial_rho(out_features)))
+        # A prior per parameter (set_prior); None: N(0, prior_scale^2). Not persistent.
+        for name in ("weight_prior_mu", "weight_prior_sigma", "bias_prior_mu", "bias_prior_sigma"):
+            self.register_buffer(name, None, persistent=False)
 
     def _initial_rho(self, d: int) -> float:
         """rho giving the initial sigma of a d-element tensor (see ``init_spread``)."""
         if self.init_spread is None:
-            return inverse_softplus(self.init_sigma)
+            return self._rho_of(self.init_sigma)
         if not (self.init_spread > 0 and math.isfinite(self.init_spread)):
             raise LayerConfigError(f"init_spread must be a positive number; got {self.init_spread}",
                                    field="init_spread")
         scale = math.sqrt(d) if self.posterior == "radial" else 1.0
-        return inverse_softplus(self.init_spread * scale)
+        return self._rho_of(self.init_spread * scale)
+
+    def _rho_of(self, sigma: float) -> float:
+        return math.log(sigma) if self.sigma_param == "log" else inverse_softplus(sigma)
 
     # -- distribution ---------------------------------------------------------
+    def _sigma(self, rho: torch.Tensor) -> torch.Tensor:
+        return torch.exp(rho) if self.sigma_param == "log" else F.softplus(rho)
+
     @property
     def weight_sigma(self) -> torch.Tensor:
-        return F.softplus(self.weight_rho)
+        return self._sigma(self.weight_rho)
 
     @property
     def bias_sigma(self) -> torch.Tensor:
-        return F.softplus(self.bias_rho)
+        return self._sigma(self.bias_rho)
+
+    def spread(self) -> dict[str, torch.Tensor]:
+        """Each parameter's posterior standard deviation (detached): sigma for the gaussian
+        family, sigma / sqrt(d) for the radial one (a d-element tensor: one coordinate of the
+        unit direction has variance 1/d and E[r^2] = 1). {"weight": [*w.shape], "bias": [out]}."""
+        with torch.no_grad():
+            out = {}
+            for name, sigma in (("weight", self.weight_sigma), ("bias", self.bias_sigma)):
+                scale = math.sqrt(sigma.numel()) if self.posterior == "radial" else 1.0
+                out[name] = sigma.detach().clone() / scale
+            return out
+
+    def set_prior(self, weight_mu: torch.Tensor, weight_sigma: torch.Tensor,
+                  bias_mu: torch.Tensor, bias_sigma: torch.Tensor) -> None:
+        """Make the prior N(mu, sigma^2) per parameter (shapes of ``weight_mu`` / ``bias_mu``;
+        sigma > 0). Used by ``demur.export.continual.posterior_as_prior``."""
+        pairs = (("weight", weight_mu, weight_sigma, self.weight_mu), ("bias", bias_mu, bias_sigma, self.bias_mu))
+        for name, mu, sigma, like in pairs:
+            mu = torch.as_tensor(mu, dtype=like.dtype).detach().clone()
+            sigma = torch.as_tensor(sigma, dtype=like.dtype).detach().clone()
+            if mu.shape != like.shape or sigma.shape != like.shape:
+                raise LayerConfigError(
+                    f"the {name} prior must have shape {list(like.shape)}; got mean {list(mu.shape)}, "
+                    f"sd {list(sigma.shape)}", field=f"{name}_prior")
+            if not bool(torch.isfinite(mu).all()) or not bool((sigma > 0).all() & torch.isfinite(sigma).all()):
+                raise LayerConfigError(f"the {name} prior needs finite means and sds > 0", field=f"{name}_prior")
+            setattr(self, f"{name}_prior_mu", mu)
+            setattr(self, f"{name}_prior_sigma", sigma)
+
+    def _priors(self) -> tuple[tuple[Any, Any], tuple[Any, Any]]:
+        """((mean, sd) of the weight prior, (mean, sd) of the bias prior): tensors, or (0, prior_scale)."""
+        if self.weight_prior_mu is None:
+            return (0.0, self.prior_scale), (0.0, self.prior_scale)
+        return (self.weight_prior_mu, self.weight_prior_sigma), (self.bias_prior_mu, self.bias_prior_sigma)
 
     def _noise(self, S: int, shape: torch.Size, generator: torch.Generator | None) -> torch.Tensor:
         """Standardised perturbation [S, *shape]: Gaussian, or radial per tensor and draw."""
@@ -198,23 +271,28 @@ class VariationalLayer(nn.Module):
     def kl(self) -> torch.Tensor:
         """KL(q || p) in nats, summed over weight and bias (a scalar tensor).
 
-        gaussian: closed form, sum of log(p/sigma) + (sigma^2 + mu^2) / (2 p^2) - 1/2.
+        Prior N(m, p^2) per parameter (m = 0, p = prior_scale unless ``set_prior``).
+        gaussian: closed form, sum of log(p/sigma) + (sigma^2 + (mu - m)^2) / (2 p^2) - 1/2.
         radial: -sum log sigma (the entropy term, up to a parameter-free
         constant) + (-log p(w)) at one fresh draw w (the cross-entropy term by
         Monte Carlo), Farquhar et al. 2020, section 3.1.
         """
         total = self.weight_mu.new_zeros(())
-        p = self.prior_scale
+        priors = self._priors()
         if self.posterior == "gaussian":
-            for mu, sigma in ((self.weight_mu, self.weight_sigma), (self.bias_mu, self.bias_sigma)):
+            for (mu, sigma), (m, p) in zip(((self.weight_mu, self.weight_sigma), (self.bias_mu, self.bias_sigma)),
+                                           priors):
+                p = torch.as_tensor(p, dtype=mu.dtype)
                 total = total + (
-                    math.log(p) - torch.log(sigma) + (sigma.square() + mu.square()) / (2 * p * p) - 0.5
+                    torch.log(p) - torch.log(sigma) + (sigma.square() + (mu - m).square()) / (2 * p * p) - 0.5
                 ).sum()
             return total
         d = self.draw(1)
-        for sigma, w in ((self.weight_sigma, d["weight"]), (self.bias_sigma, d["bias"])):
+        for (sigma, w), (m, p) in zip(((self.weight_sigma, d["weight"]), (self.bias_sigma, d["bias"])), priors):
+            p = torch.as_tensor(p, dtype=sigma.dtype)
             neg_entropy = -torch.log(sigma).sum()
-            cross_entropy = (w.square() / (2 * p * p)).sum() + w.numel() * (math.log(p) + _HALF_LOG_2PI)
+            cross_entropy = ((w - m).square() / (2 * p * p)).sum() + (torch.log(p) + _HALF_LOG_2PI).expand_as(
+                w[0]).sum()
             total = total + neg_entropy + cross_entropy
         return total
 
@@ -231,6 +309,7 @@ class VariationalLinear(VariationalLayer):
         prior_scale: float = 1.0,
         init_sigma: float = 1e-3,
         init_spread: float | None = None,
+        sigma_param: SigmaParam = "softplus",
     ) -> None:
         if in_features < 1 or out_features < 1:
             raise LayerConfigError(
@@ -239,7 +318,7 @@ class VariationalLinear(VariationalLayer):
         super().__init__(
             (out_features, in_features), out_features, in_features,
             posterior=posterior, prior_scale=prior_scale, init_sigma=init_sigma,
-            init_spread=init_spread,
+            init_spread=init_spread, sigma_param=sigma_param,
         )
         self.in_features = int(in_features)
         self.out_features = int(out_features)
@@ -271,6 +350,7 @@ class VariationalConv2d(VariationalLayer):
         prior_scale: float = 1.0,
         init_sigma: float = 1e-3,
         init_spread: float | None = None,
+        sigma_param: SigmaParam = "softplus",
     ) -> None:
         if min(in_channels, out_channels, kernel_size, stride) < 1 or padding < 0:
             raise LayerConfigError(
@@ -282,7 +362,7 @@ class VariationalConv2d(VariationalLayer):
         super().__init__(
             (out_channels, in_channels, k, k), out_channels, in_channels * k * k,
             posterior=posterior, prior_scale=prior_scale, init_sigma=init_sigma,
-            init_spread=init_spread,
+            init_spread=init_spread, sigma_param=sigma_param,
         )
         self.in_channels = int(in_channels)
         self.out_channels = int(out_channels)
@@ -333,6 +413,7 @@ def build_model(
     channels: Sequence[int] = (16, 32),
     init_sigma: float = 1e-3,
     init_spread: float | None = None,
+    sigma_param: SigmaParam = "softplus",
 ) -> nn.Sequential:
     """The demo architectures of ``demur train``.
 
@@ -344,9 +425,10 @@ def build_model(
     further entry of ``channels``, ReLU after each, Flatten, VariationalLinear
     to ``outputs``. Digits: [1,8,8] -> [16,8,8] -> [32,4,4] -> 512 -> 10.
 
-    ``init_sigma`` / ``init_spread`` go to every layer (module docstring).
+    ``init_sigma`` / ``init_spread`` / ``sigma_param`` go to every layer (module docstring).
     """
-    kw = {"posterior": posterior, "prior_scale": prior_scale, "init_sigma": init_sigma, "init_spread": init_spread}
+    kw = {"posterior": posterior, "prior_scale": prior_scale, "init_sigma": init_sigma, "init_spread": init_spread,
+          "sigma_param": sigma_param}
     return _assemble(
         kind, input_shape, outputs, hidden, channels,
         linear=lambda a, b: VariationalLinear(a, b, **kw),

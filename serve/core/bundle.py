@@ -33,6 +33,7 @@ import copy
 import datetime as _dt
 import hashlib
 import json
+import math
 import os
 import re
 import tempfile
@@ -103,6 +104,7 @@ SCORE_TASKS: dict[str, tuple[str, ...]] = {
     "one_minus_max_prob": ("classification",),
     "interval_width": ("regression",),
     "epistemic_std": ("regression",),
+    "joint_rank": ("classification",),
 }
 """Decision scores a bundle may name, and the tasks each is defined for (their meaning:
 serve/core/decision.py; larger always means "less sure")."""
@@ -116,6 +118,7 @@ SCORE_UNITS: dict[str, str] = {
     "one_minus_max_prob": "",
     "interval_width": "target units",
     "epistemic_std": "target units",
+    "joint_rank": "",
 }
 """The unit of each score, for reports and metric help."""
 
@@ -312,6 +315,19 @@ def sha256_file(path: Path) -> str:
     return h.hexdigest()
 
 
+def _check_served_target(target: Any, score: str) -> None:
+    """A classifier's optional ``target.temperature`` (> 0) and ``target.score_reference`` (which
+    ``joint_rank`` needs), checked at load so a bad value never reaches a request
+    (serve/core/summary.py says what they mean)."""
+    target = target if isinstance(target, dict) else {}
+    t = target.get("temperature", 1.0)
+    if isinstance(t, bool) or not isinstance(t, (int, float)) or not (math.isfinite(t) and t > 0):
+        raise ManifestInvalid(f"target.temperature must be a finite number > 0; got {t!r}", field="target.temperature")
+    if score == "joint_rank" and not isinstance(target.get("score_reference"), dict):
+        raise ManifestInvalid("decision.score 'joint_rank' needs target.score_reference (written by demur train); "
+                              "this bundle has none: choose another score", field="target.score_reference")
+
+
 def _need(obj: dict[str, Any], key: str, kind: type | tuple[type, ...], where: str) -> Any:
     if not isinstance(obj, dict) or key not in obj:
         raise ManifestInvalid(f"manifest is missing '{where}{key}'", field=f"{where}{key}")
@@ -422,6 +438,7 @@ def _parse(raw: dict[str, Any]) -> Manifest:
     level = float(raw.get("interval_level", 0.9))
     if not 0.0 < level < 1.0:
         raise ManifestInvalid(f"interval_level must be in (0, 1); got {level}", field="interval_level")
+    _check_served_target(raw.get("target", {}), score)
     return Manifest(
         model_name=_header_safe(_need(model, "name", str, "model."), "model.name"),
         model_version=_header_safe(_need(model, "version", str, "model."), "model.version"),

@@ -13,6 +13,10 @@ predictive_entropy   both           total uncertainty, nats (regression: differe
 one_minus_max_prob   classification 1 - largest mean class probability
 interval_width       regression     width of the served interval, target units
 epistemic_std        regression     std of the draw means, target units
+joint_rank           classification the larger of the case's ranks among clean reference
+                                    cases by predictive entropy and by mutual
+                                    information (serve/core/summary.py); needs the
+                                    bundle's target.score_reference
 ==================== ============== ==================================================
 
 Before a case may be accepted it must also be inside the training data
@@ -103,7 +107,11 @@ def _check_fits(task: str, name: str) -> None:
 def score_values(summary: Summary, name: str) -> np.ndarray:
     """The named score per case, float64[B]; ``ConfigError`` if it does not fit the task."""
     _check_fits(summary.task, name)
-    return np.asarray(getattr(summary, name), dtype=np.float64)
+    value = getattr(summary, name)
+    if value is None:
+        raise ConfigError(f"score '{name}' needs the bundle's target.score_reference (written by demur train); "
+                          "this bundle has none: choose another score", field="score")
+    return np.asarray(value, dtype=np.float64)
 
 
 def decide(summary: Summary, rule: DecisionRule, *, support: SupportCheck | None = None,

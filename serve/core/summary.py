@@ -19,6 +19,37 @@ Classification (``K`` logits per draw)
         below 16 eps x max(H[p̄], 1) can only be float round-off (of order
         1e-16) and are set to 0, so identical draws (the means graph) give 0.
     ``one_minus_max_prob``  1 - max_k p̄_k                              [B]
+    ``joint_rank``          max(u_PE, u_MI): the larger of the case's two
+                            ranks among clean reference cases, by predictive
+                            entropy and by mutual information (below).   [B]
+
+Temperature (classification): the manifest's ``target`` may carry
+``temperature`` T > 0 (written by ``demur train``: fitted on the validation
+split by minimising the NLL of the mixture's predictive mean, Guo et al., "On
+Calibration of Modern Neural Networks", ICML 2017, section 4.2). The served
+mean is then p̄_T = softmax(ln p̄ / T), and ``prediction`` (unchanged: the map
+keeps the order), ``predictive_entropy`` and ``one_minus_max_prob`` are of
+p̄_T; ``lower`` / ``upper`` go through the same map (p^(1/T) / Σ_k p̄_k^(1/T),
+capped at 1), so they still bracket the served mean. ``expected_entropy`` and
+``mutual_information`` stay the draws' own: MI measures how much the draws
+disagree, which a temperature on their mean does not change. Why on the mean
+and not on each draw: a wide posterior is underconfident because its draws
+disagree and their average is flat; sharpening the average restores clean-case
+confidence without narrowing the draws (issue 26). Without the key T = 1 and
+nothing changes. Calibrate, evaluate and the server all call ``summarise``
+with the manifest's ``target``, so the temperature is applied identically.
+
+Joint rank (classification): ``target.score_reference`` holds, for
+``predictive_entropy`` and ``mutual_information``, the quantiles at levels
+0, 0.01, ..., 1 of that score over clean reference cases (``demur train``: the
+training and validation rows, through the trained model's draws; a fixed
+function of the case, never fitted on the calibration rows, so calibrate's
+guarantee holds as for any other score). u(x) is the level at x by linear
+interpolation between the quantiles (a rank in [0, 1]); above the top quantile
+u = 1 + (x - q_1) / (q_1 - q_0.5), so far-off cases keep their order instead
+of tying at 1. The score is the larger of u_PE and u_MI: a case is as unusual
+as its more unusual signal, ambiguity or disagreement between draws. Without
+a reference the field is None and the score is refused by name.
 
 Regression (``K = 2``: mean and log-variance in standardised target units)
     Each draw is a Gaussian N(mu_s, var_s); in target units
@@ -101,6 +132,7 @@ __all__ = [
     "Summary",
     "classification_summary",
     "conformal_variance",
+    "joint_rank",
     "mixture_quantile",
     "regression_components",
     "regression_summary",
@@ -135,6 +167,8 @@ class ClassificationSummary:
     expected_entropy: np.ndarray  # [B]
     mutual_information: np.ndarray  # [B]
     one_minus_max_prob: np.ndarray  # [B]
+    joint_rank: np.ndarray | None = None  # [B], with a score reference only
+    temperature: float = 1.0
     task: str = "classification"
     unit: str = UNIT
 
@@ -218,8 +252,12 @@ def _check_level(level: float) -> float:
     return level
 
 
-def classification_summary(logits: np.ndarray, level: float = 0.9) -> ClassificationSummary:
+def classification_summary(logits: np.ndarray, level: float = 0.9, *, temperature: float = 1.0,
+                           reference: Mapping[str, Any] | None = None) -> ClassificationSummary:
     """Summarise ``logits: float[S, B, K]`` (see the module docstring for each field).
+
+    ``temperature`` T > 0 sharpens (T < 1) or softens the served mean; ``reference`` (the
+    manifest's ``target.score_reference``) enables ``joint_rank``. Module docstring, both.
 
     Example::
 
@@ -252,9 +290,18 @@ def classification_summary(logits: np.ndarray, level: float = 0.9) -> Classifica
     # Round-off of the difference (two sums of the same terms when every draw agrees, e.g. the
     # means graph) is set to 0: ~1e-17 nats of noise must not rank cases or meet a threshold.
     mutual_information[mutual_information <= _ROUND_OFF * np.maximum(predictive_entropy, 1.0)] = 0.0
-    mean_probs = np.ascontiguousarray(mean_probs.T)       # [B, K]
-
     q = _quantiles(p, ((1.0 - level) / 2.0, (1.0 + level) / 2.0), axis=1)  # [2, K, B]
+    t = _check_temperature(temperature)
+    if t != 1.0:  # p -> p^(1/T) / sum_k mean_k^(1/T), in logs (module docstring)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            tempered = np.log(mean_probs) / t              # [K, B], -inf where every draw underflowed
+            top = tempered.max(axis=0)
+            log_z = np.log(_rows(np.add, np.exp(tempered - top))) + top
+            tempered -= log_z
+            mean_probs = np.exp(tempered)
+            predictive_entropy = -_rows(np.add, np.where(mean_probs > 0.0, mean_probs * tempered, 0.0))
+            q = np.minimum(np.exp(np.log(q) / t - log_z), 1.0)
+    mean_probs = np.ascontiguousarray(mean_probs.T)       # [B, K]
     q = np.ascontiguousarray(np.moveaxis(q, 1, 2))         # [2, B, K]
     return ClassificationSummary(
         level=level,
@@ -267,7 +314,51 @@ def classification_summary(logits: np.ndarray, level: float = 0.9) -> Classifica
         expected_entropy=expected_entropy,
         mutual_information=mutual_information,
         one_minus_max_prob=1.0 - np.max(mean_probs, axis=1),
+        joint_rank=None if reference is None else joint_rank(predictive_entropy, mutual_information, reference),
+        temperature=t,
     )
+
+
+def _check_temperature(value: Any) -> float:
+    try:
+        t = float(value)
+    except (TypeError, ValueError):
+        t = float("nan")
+    if not (np.isfinite(t) and t > 0.0):
+        raise ConfigError(f"target.temperature must be a finite number > 0; got {value!r}", field="target.temperature")
+    return t
+
+
+def _rank(x: np.ndarray, knots: Any, name: str) -> np.ndarray:
+    """u(x) for the quantile ``knots`` of one score (module docstring, "Joint rank")."""
+    try:
+        q = np.asarray(knots, dtype=np.float64)
+    except (TypeError, ValueError):
+        q = np.array([np.nan])
+    if q.ndim != 1 or len(q) < 3 or not np.all(np.isfinite(q)) or np.any(np.diff(q) < 0):
+        raise ConfigError(f"target.score_reference.{name} must be at least 3 finite quantiles in increasing "
+                          "order", field=f"target.score_reference.{name}")
+    levels = np.linspace(0.0, 1.0, len(q))
+    top, mid = q[-1], float(np.interp(0.5, levels, q))
+    # equal quantiles (a score that is often exactly 0): keep the highest level of each value
+    keep = np.r_[np.diff(q) > 0, True]
+    u = np.interp(x, q[keep], levels[keep])
+    spread = max(top - mid, 1e-12 * max(1.0, abs(top)))
+    return np.where(x > top, 1.0 + (x - top) / spread, u)
+
+
+def joint_rank(predictive_entropy: np.ndarray, mutual_information: np.ndarray,
+               reference: Mapping[str, Any]) -> np.ndarray:
+    """max(u_PE, u_MI) per case, float64[B]: the larger of the two ranks among the reference
+    cases (``reference``: quantiles per score name; module docstring, "Joint rank")."""
+    missing = [n for n in ("predictive_entropy", "mutual_information") if n not in reference]
+    if missing:
+        raise ConfigError(f"target.score_reference needs quantiles of {missing}",
+                          field="target.score_reference")
+    return np.maximum(_rank(np.asarray(predictive_entropy, dtype=np.float64), reference["predictive_entropy"],
+                            "predictive_entropy"),
+                      _rank(np.asarray(mutual_information, dtype=np.float64), reference["mutual_information"],
+                            "mutual_information"))
 
 
 def mixture_quantile(mu: np.ndarray, sd: np.ndarray, prob: float, *, tol: float = 1e-12,
@@ -404,10 +495,13 @@ def regression_summary(
 def summarise(task: str, draws: np.ndarray, level: float, target: Mapping[str, Any] | None = None) -> Summary:
     """Dispatch on the bundle's task. ``target`` is the manifest's ``target`` section
     ({"center", "scale"} and, after conformal calibration, "conformal_q",
-    "conformal_level" and optionally "aleatoric_floor"); it is ignored for classification.
+    "conformal_level" and optionally "aleatoric_floor"); for classification its
+    optional "temperature" and "score_reference" (module docstring).
     """
     if task == "classification":
-        return classification_summary(draws, level)
+        target = target or {}
+        return classification_summary(draws, level, temperature=target.get("temperature", 1.0),
+                                      reference=target.get("score_reference"))
     if task == "regression":
         target = target or {}
         q = target.get("conformal_q")

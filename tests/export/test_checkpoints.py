@@ -13,7 +13,7 @@ from demur.export.checkpoints import CHECKPOINT_FORMAT, load_checkpoint
 from demur.export.datasets import load_dataset
 from demur.export.errors import CheckpointError
 from demur.export.layers import VariationalLinear, variational_layers
-from demur.export.training import train
+from demur.export.training import DEFAULTS, train
 
 
 def test_checkpoint_loads_with_weights_only(tmp_path):
@@ -25,7 +25,7 @@ def test_checkpoint_loads_with_weights_only(tmp_path):
     for key in ("arch", "state_dict", "task", "labels", "inputs", "target", "data", "metrics", "drift_features"):
         assert key in raw, key
     assert raw["arch"] == {"kind": "mlp", "hidden": [16], "channels": [16, 32], "posterior": "radial",
-                           "prior_scale": 1.0, "init_sigma": 1e-3}
+                           "prior_scale": 1.0, "init_sigma": 1e-3, "sigma_param": DEFAULTS["sigma_param"]}
     assert raw["data"] == {"source": "digits", "target": "digit", "seed": 0}
     assert set(raw["inputs"]) >= {"names", "shape", "center", "scale", "low", "high", "kind"}
     assert len(raw["drift_features"]["edges"]) == 64

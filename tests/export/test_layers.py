@@ -271,3 +271,73 @@ def test_forward_draws_equals_per_draw_functional_pass(kind):
     assert all(torch.equal(a["weight"], b["weight"]) for a, b in zip(draws, again))
     with pytest.raises(LayerConfigError, match="one draw dict per variational layer"):
         forward_draws(model, x, draws[:2])
+
+
+# -- sigma parameterisation and a prior per parameter -----------------------------------------
+def test_log_sigma_parameterisation_maps_rho_by_exp_and_starts_at_the_spread():
+    # sigma = exp(rho): torch.exp is the reference; the radial layer starts at sigma = spread * sqrt(d)
+    layer = VariationalLinear(40, 6, posterior="radial", init_spread=0.02, sigma_param="log")
+    assert torch.allclose(layer.weight_rho, torch.full((6, 40), math.log(0.02 * math.sqrt(240))))
+    assert torch.allclose(layer.weight_sigma, torch.exp(layer.weight_rho))
+    assert torch.allclose(layer.spread()["weight"], torch.full((6, 40), 0.02), rtol=1e-5)
+    gauss = VariationalConv2d(2, 3, 3, posterior="gaussian", init_sigma=0.05, sigma_param="log")
+    assert torch.allclose(gauss.bias_sigma, torch.full((3,), 0.05)) and torch.allclose(gauss.spread()["bias"],
+                                                                                        gauss.bias_sigma)
+    with pytest.raises(LayerConfigError, match="sigma_param"):
+        VariationalLinear(3, 2, sigma_param="exp")
+
+
+def test_a_log_sigma_step_is_relative_and_a_softplus_step_absolute():
+    # Why the log parameterisation (module docstring): one Adam step moves rho by about lr
+    # (Kingma & Ba 2015, sec. 2.1: the effective step is bounded by the step size), so on
+    # exp(rho) a big and a small sigma change by the same factor; on softplus(rho) in its
+    # linear range the change is absolute, so a radial sigma of ~5 hardly moves.
+    changes = {}
+    for param in ("log", "softplus"):
+        layer = VariationalLinear(64, 256, posterior="radial", init_spread=0.02, sigma_param=param)
+        before = layer.weight_sigma.detach().clone()
+        opt = torch.optim.Adam([layer.weight_rho], lr=1e-2)
+        layer.weight_sigma.sum().backward()
+        opt.step()
+        changes[param] = float((layer.weight_sigma.detach() / before).mean())
+    assert changes["log"] == pytest.approx(math.exp(-1e-2), rel=1e-4)
+    # sigma = 0.02 * sqrt(16384) = 2.56: about -0.01 * sigmoid(rho) absolute, 0.36% relative
+    assert 1.0 - changes["softplus"] < (1.0 - changes["log"]) / 2
+
+
+@pytest.mark.parametrize("posterior", ["gaussian", "radial"])
+def test_a_prior_per_parameter_gives_the_kl_to_that_prior(posterior):
+    # reference: torch.distributions.kl_divergence(Normal(mu, sigma), Normal(m, s)) (closed form);
+    # radial: the same Monte Carlo estimate as above, with E[(w - m)^2] = (mu - m)^2 + sigma^2 / d
+    layer = _random_params(VariationalLinear(5, 3, posterior=posterior), seed=9).double()
+    g = torch.Generator().manual_seed(2)
+    m_w, m_b = torch.randn(3, 5, generator=g, dtype=torch.float64), torch.randn(3, generator=g, dtype=torch.float64)
+    s_w, s_b = torch.rand(3, 5, generator=g, dtype=torch.float64) + 0.2, torch.rand(3, generator=g,
+                                                                                   dtype=torch.float64) + 0.2
+    layer.set_prior(m_w, s_w, m_b, s_b)
+    pairs = ((layer.weight_mu, layer.weight_sigma, m_w, s_w), (layer.bias_mu, layer.bias_sigma, m_b, s_b))
+    with torch.no_grad():
+        if posterior == "gaussian":
+            want = sum(float(kl_divergence(Normal(mu, sig), Normal(m, s)).sum()) for mu, sig, m, s in pairs)
+            assert float(layer.kl()) == pytest.approx(want, rel=1e-10)
+            return
+        torch.manual_seed(0)
+        est = torch.stack([layer.kl() for _ in range(3000)])
+        want = 0.0
+        for mu, sig, m, s in pairs:
+            d = mu.numel()
+            want += float(-torch.log(sig).sum() + (((mu - m).square() + sig.square() / d) / (2 * s * s)).sum()
+                          + (torch.log(s) + 0.5 * math.log(2 * math.pi)).sum())
+    se = float(est.std()) / math.sqrt(len(est))
+    assert abs(float(est.mean()) - want) < 5 * se  # 5 standard errors (common practice for MC checks)
+
+
+def test_the_prior_per_parameter_stays_out_of_the_state_dict_and_is_checked():
+    layer = VariationalLinear(4, 2)
+    keys = set(layer.state_dict())
+    layer.set_prior(torch.zeros(2, 4), torch.ones(2, 4), torch.zeros(2), torch.ones(2))
+    assert set(layer.state_dict()) == keys  # training-only: checkpoints and bundles do not change
+    with pytest.raises(LayerConfigError, match="weight prior must have shape"):
+        layer.set_prior(torch.zeros(4, 2), torch.ones(4, 2), torch.zeros(2), torch.ones(2))
+    with pytest.raises(LayerConfigError, match="sds > 0"):
+        layer.set_prior(torch.zeros(2, 4), torch.zeros(2, 4), torch.zeros(2), torch.ones(2))

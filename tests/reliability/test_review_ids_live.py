@@ -4,7 +4,7 @@ answers, with the stored item A, and the queue holds the case once.
 
 A real ``demur serve`` on 127.0.0.1 whose review store is the real PostgreSQL behind a TCP
 proxy the test cuts (tests/reliability/harness.py). The router-level variant on SQLite and
-PostgreSQL is tests/serve/test_review_ids.py. Bounded: a deadline on every wait.
+PostgreSQL is tests/serve/review/test_ids.py. Bounded: a deadline on every wait.
 """
 
 from __future__ import annotations

@@ -252,3 +252,50 @@ def test_summarise_dispatch_and_conformal_interval():
     assert other.interval_method == "mixture"
     c = summarise("classification", rng.normal(size=(4, 3, 5)), 0.9, target)
     assert isinstance(c, ClassificationSummary) and len(c) == 3
+
+
+# -- temperature and joint rank (issue 26) ------------------------------------------------------
+def test_temperature_scales_the_predictive_mean_and_keeps_the_draws_disagreement():
+    # reference: temperature scaling of the predictive mean, softmax(ln p̄ / T) (Guo et al. 2017, sec. 4.2),
+    # by scipy.special.softmax; scipy.stats.entropy for the entropy of the served mean
+    rng = np.random.default_rng(4)
+    z = rng.normal(scale=3.0, size=(16, 7, 5))
+    plain = classification_summary(z, 0.9)
+    for t in (0.5, 2.0):
+        s = summarise("classification", z, 0.9, {"center": 0.0, "scale": 1.0, "temperature": t})
+        want = special.softmax(np.log(plain.mean_probs) / t, axis=1)
+        assert np.allclose(s.mean_probs, want, atol=1e-12)
+        assert np.allclose(s.predictive_entropy, stats.entropy(want, axis=1), atol=1e-12)
+        assert np.allclose(s.one_minus_max_prob, 1.0 - want.max(axis=1), atol=1e-12)
+        assert np.array_equal(s.prediction, plain.prediction)  # the map keeps the order
+        assert np.array_equal(s.mutual_information, plain.mutual_information)  # the draws' own
+        assert np.all(s.lower <= s.mean_probs + 1e-12) and np.all(s.mean_probs <= s.upper + 1e-12)
+        assert np.all(s.upper <= 1.0) and s.temperature == t
+    same = summarise("classification", z, 0.9, {"temperature": 1.0})
+    assert np.array_equal(same.mean_probs, plain.mean_probs)
+    for bad in (0.0, -1.0, float("nan"), "hot"):
+        with pytest.raises(ConfigError, match="target.temperature"):
+            summarise("classification", z, 0.9, {"temperature": bad})
+
+
+def test_joint_rank_worked_example():
+    # hand-worked: quantiles 0, 0.1, ..., 1.0 of PE (11 knots, levels 0, 0.1, ..., 1) and of MI
+    # 0, ..., 0 (half the reference cases have MI 0), 0.01 .. 0.05; u by linear interpolation,
+    # above the top 1 + (x - q_1) / (q_1 - q_0.5); the score is the larger of the two ranks
+    ref = {"predictive_entropy": np.linspace(0.0, 1.0, 11).tolist(),
+           "mutual_information": [0.0] * 6 + [0.01, 0.02, 0.03, 0.04, 0.05]}
+    pe = np.array([0.25, 0.25, 2.0, 0.0])
+    mi = np.array([0.0, 0.045, 0.0, 0.1])
+    got = summary_mod.joint_rank(pe, mi, ref)
+    # case 0: u_PE 0.25, u_MI 0.5 (the highest level where MI is 0) -> 0.5
+    # case 1: u_MI = 0.9 + 0.5 * 0.1 = 0.95; case 2: u_PE = 1 + (2 - 1) / 0.5 = 3;
+    # case 3: u_MI = 1 + (0.1 - 0.05) / (0.05 - 0) = 2
+    assert np.allclose(got, [0.5, 0.95, 3.0, 2.0])
+    with pytest.raises(ConfigError, match="score_reference"):
+        summary_mod.joint_rank(pe, mi, {"predictive_entropy": ref["predictive_entropy"]})
+    with pytest.raises(ConfigError, match="increasing"):
+        summary_mod.joint_rank(pe, mi, {**ref, "mutual_information": [0.3, 0.2, 0.1]})
+    z = np.random.default_rng(1).normal(size=(8, 4, 3))
+    assert classification_summary(z, 0.9).joint_rank is None
+    s = summarise("classification", z, 0.9, {"score_reference": ref})
+    assert np.allclose(s.joint_rank, summary_mod.joint_rank(s.predictive_entropy, s.mutual_information, ref))

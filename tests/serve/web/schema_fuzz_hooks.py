@@ -1,4 +1,4 @@
-"""Schemathesis hooks for tests/serve/test_schema_fuzz.py (loaded via SCHEMATHESIS_HOOKS).
+"""Schemathesis hooks for tests/serve/web/test_schema_fuzz.py (loaded via SCHEMATHESIS_HOOKS).
 
 Two rules of ``POST /v1/predict`` that JSON Schema cannot state are written in the API
 document's words instead (``case_ids``: exactly one entry per case, no string twice;
