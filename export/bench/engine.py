@@ -59,6 +59,7 @@ from demur.serve.core.summary import summarise
 
 from demur.export.bench.backbone import backbone_lines, backbone_ratios, backbone_section
 from demur.export.bench.conv import conv_section
+from demur.export.bench.score import bench_section
 from demur.export.bench.http import CLIENTS, FRONT_RULE, child_env, http_section
 from demur.export.draws import DrawNetwork
 from demur.export.errors import ExportError
@@ -508,7 +509,7 @@ def run_bench(*, quick: bool = False, checkpoint: Path | None = None, http: bool
             result["http"] = {"skipped": "--no-http"}
         if cfg.get("score_rows"):
             S = 32 if 32 in bundles else next(iter(bundles))
-            result["score"] = _score(bundles[S]["main"].path, cfg, root / "score", log)
+            result["score"] = bench_section(bundles[S]["main"].path, cfg, root / "score", log)
         result["machine"]["load_average_end"] = list(os.getloadavg())
         result["elapsed_s"] = time.perf_counter() - t_start
         _ratios_and_targets(result)
@@ -516,21 +517,6 @@ def run_bench(*, quick: bool = False, checkpoint: Path | None = None, http: bool
     finally:
         if own:
             shutil.rmtree(root, ignore_errors=True)
-
-
-def _score(bundle_path: Path, cfg: dict[str, Any], root: Path, log: Callable[[str], None]) -> dict[str, Any]:
-    """``demur score`` against the engine alone, and on a local Dask cluster when installed."""
-    from demur.export.bench.score import score_section
-
-    workers = tuple(int(w) for w in cfg.get("score_workers", (1, 2)))
-    try:
-        import dask.distributed  # noqa: F401
-    except ImportError:
-        workers = ()
-    log(f"score: {cfg['score_rows']} rows, Dask workers {list(workers) or 'not installed'}")
-    root.mkdir(parents=True, exist_ok=True)
-    return score_section(bundle_path, rows=int(cfg["score_rows"]), workdir=root, repeats=int(cfg["repeats"]),
-                         workers=workers)
 
 
 def format_table(result: dict[str, Any]) -> str:

@@ -37,7 +37,7 @@ from demur.serve.core.pipeline import Runtime
 from demur.serve.core.validation import PredictRequest
 from demur.serve.offline.scoring import DEFAULT_CHUNK_ROWS, score_file
 
-__all__ = ["SCORE_TARGET", "score_section"]
+__all__ = ["SCORE_TARGET", "bench_section", "score_section"]
 
 SCORE_TARGET = 0.7
 """demur score rows/s on one core over the engine-only rows/s (issue 25)."""
@@ -176,3 +176,17 @@ def _cluster_row(bundle: Path, parts: Path, out: Path, workers: int, rows: int, 
         return {"what": f"Dask local cluster, {workers} worker process{'es' if workers > 1 else ''} x 1 thread "
                         "(parquet -> parquet, bundle loaded)", "rows_per_s": _best(run, repeats),
                 "workers": workers}
+
+
+def bench_section(bundle_path: Path, cfg: dict[str, Any], root: Path, log: Callable[[str], None]) -> dict[str, Any]:
+    """``demur bench``'s call: ``score_section`` on ``cfg["score_rows"]`` rows, with the local Dask cluster
+    (``cfg["score_workers"]``, default 1 and 2 workers) when it is installed."""
+    workers = tuple(int(w) for w in cfg.get("score_workers", (1, 2)))
+    try:
+        import dask.distributed  # noqa: F401
+    except ImportError:
+        workers = ()
+    log(f"score: {cfg['score_rows']} rows, Dask workers {list(workers) or 'not installed'}")
+    root.mkdir(parents=True, exist_ok=True)
+    return score_section(bundle_path, rows=int(cfg["score_rows"]), workdir=root, repeats=int(cfg["repeats"]),
+                         workers=workers)
