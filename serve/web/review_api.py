@@ -144,7 +144,8 @@ def _decision_fields(body: dict[str, Any], item: ReviewItem) -> tuple[str | None
         if task == "classification":
             raise InvalidInput("this item is a classification case: give 'label', not 'value'", field="value")
         if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(float(value)):
-            raise InvalidInput(f"'value' must be a finite number; got {type(value).__name__}", field="value")
+            shown = repr(value)[:40] if isinstance(value, (int, float)) else type(value).__name__
+            raise InvalidInput(f"'value' must be a finite number; got {shown}", field="value")
         value = float(value)
     if note is not None:
         if note != "":  # an empty note is no note
