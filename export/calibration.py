@@ -290,6 +290,8 @@ def _calibrate(b: Bundle, cal: Cases, check: Cases | None, floor_x: np.ndarray |
             b, engine, served, cal, check, floor_x, d_cal, d_test, coverage,
             DEFAULT_REGRESSION_ABSTAIN if target_abstain is None else float(target_abstain), score, unit, data_info)
         figures["calibration_split"] = record.pop("_calibration_metrics")
+        if record["conformal"].get("warning"):
+            notes.append("warning: " + record["conformal"]["warning"])
         raw["target"] = new_target
         raw["interval_level"] = coverage
 
@@ -342,6 +344,12 @@ def _regression(b: Bundle, engine: Engine, served: ServedRule, cal: Cases, check
                  "aleatoric_floor": floor,
                  "aleatoric_floor_rule": f"quantile {FLOOR_QUANTILE:g} of the per-case aleatoric variance on "
                                          f"{floor_from} ({len(fx)} cases), target units squared"}
+    if before < 0.5 * level:  # a model on the wrong scale (a target's standardisation left out) looks like this
+        conformal["warning"] = (f"the model's own {level:.0%} interval covered only {before:.1%} of the cases: its "
+                                "means may be on another scale than the target (a regression model trained on a "
+                                "standardised target needs export_model(target={'center', 'scale'}) or demur export "
+                                "--target-stats); the conformal correction (q = "
+                                f"{q:.3g}) widens the interval to hide it, so check the model before serving it")
     record = calibration_record(choice, score=score, data=data_info, conformal=conformal)
     record["achieved"].update(_support_share(out_cal, sc_cal > choice.threshold))
     test = None

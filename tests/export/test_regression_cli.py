@@ -103,3 +103,23 @@ def test_regression_from_the_command_line_is_served_on_the_targets_scale(diabete
     # what stands in the way of far inputs: the support check puts them outside the training data
     assert body["shift"]["every_feature_x10"]["outside_training_data"] == 1.0
     assert body["shift"]["first_feature_far"]["accepted"] == 0.0
+
+
+def test_a_model_on_the_wrong_scale_is_called_out_by_calibrate(diabetes_bundle, copy_bundle):
+    """A regression bundle whose recorded target standardisation is wrong (centre 0, scale 1 for a
+    model trained on the standardised diabetes target, scikit-learn's load_diabetes) serves means
+    near 0 for targets of 25-346: its own 90% interval covers almost nothing. calibrate still
+    widens the interval until coverage holds (split conformal guarantees that much), so it must
+    say plainly that the model looks wrong."""
+    import json
+
+    from demur.export.calibration import calibrate_file
+    from demur.serve.core.bundle import write_manifest
+
+    path = copy_bundle(diabetes_bundle)
+    raw = json.loads((path / "manifest.json").read_text())
+    raw["target"] = {**raw["target"], "center": 0.0, "scale": 1.0}
+    write_manifest(path, raw)
+    out = calibrate_file(path, "diabetes", coverage=0.9)
+    assert any("covered only" in n and "--target-stats" in n for n in out.notes)
+    assert out.record["conformal"]["model_coverage_before"] < 0.45
