@@ -88,7 +88,7 @@ def validate_array(body: ArrayBody, spec: InputSpec, max_cases: int) -> np.ndarr
     arr = body.cases
     shape = tuple(spec.shape)
     if arr.dtype.kind not in "fiu":
-        raise InvalidInput(f"'cases' must be numbers (float32, float64 or integers); got dtype {arr.dtype}",
+        raise InvalidInput(f"'cases' must be numbers (float16, float32, float64 or integers); got dtype {arr.dtype}",
                            field="cases")
     forms = {shape, (spec.size,)}
     if arr.ndim < 1 or tuple(arr.shape[1:]) not in forms:
