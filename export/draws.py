@@ -181,6 +181,11 @@ class _Mode:
         w, b = self.weights(layer)
         return apply_draws(layer, x, w, b, self.S)
 
+    def per_draw(self, layer: VariationalLayer) -> list[_Mode]:
+        """S one-draw modes on an ordinary batch, the draws this mode makes (the torch reference)."""
+        w, b = self.weights(layer)
+        return [_Single(w[s], b[s]) for s in range(self.S)]
+
 
 def _plain_draws(layer: VariationalLayer, x: torch.Tensor, w_cat: torch.Tensor, b_cat: torch.Tensor,
                  S: int) -> torch.Tensor:
@@ -327,7 +332,7 @@ class DrawNetwork(nn.Module):
         super().__init__()
         if kind not in DRAW_KINDS:
             raise GraphBuildError(f"kind must be one of {', '.join(DRAW_KINDS)}; got '{kind}'", field="kind")
-        self.kind, self.task, self.feed = kind, task, Feed()
+        self.kind, self.task, self.feed, self.seed = kind, task, Feed(), int(seed)
         self.flip_rank = flip_rank  # the flip graph's base rank (export/flip.py); None: its default
         self.input_shape = tuple(int(d) for d in input_shape)
         self.ensemble = isinstance(model, (list, tuple, nn.ModuleList))
@@ -400,12 +405,18 @@ class DrawNetwork(nn.Module):
 
     def _set_modes(self, kind: str, seed: int) -> None:
         from demur.export.flip import FlipDraws
+        from demur.export.local import LocalDraws
 
         S, model = self.S, self.members[0]
         if kind == "stacked" and self.layers:
             sets = sample_network(model, S, torch.Generator().manual_seed(seed))
+        local = (_local_eligible(model, self.input_shape) if kind in ("sampler", "flip") and self.family == "gaussian"
+                 else set())
         for i, lay in enumerate(self.layers):
-            if kind == "means":
+            if id(lay) in local:
+                assert isinstance(lay, VariationalLinear)
+                lay._draw_mode = LocalDraws(lay, S, feed=self.feed, index=i)
+            elif kind == "means":
                 lay._draw_mode = _Fixed(lay.weight_mu[None], lay.bias_mu[None])
             elif kind == "stacked":
                 lay._draw_mode = _Fixed(sets[i]["weight"], sets[i]["bias"])
@@ -458,6 +469,8 @@ class DrawNetwork(nn.Module):
                 raise NotShareable(f"the shared forward differs from the per-draw forward (largest relative "
                                    f"difference {rel:.3g}); the forward may mix the cases of a batch")
             self.computation = plan.describe()
+            if self.kind == "stacked":
+                self._localise_entries(plan)
         except NotShareable as exc:
             self._plan, self.fell_back = None, True
             self.computation = f"per draw (the whole network runs S times): {exc}"
@@ -466,6 +479,22 @@ class DrawNetwork(nn.Module):
             first = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
             self.computation = (f"per draw (the whole network runs S times): the shared forward raised "
                                 f"{type(exc).__name__}: {first}")
+
+    def _localise_entries(self, plan: SharedPlan) -> None:
+        """Stacked: where draws enter on a dense layer, store output noise instead of S weight sets
+        (export/local.py): the layer reads its means and variances once per call, not S copies."""
+        from demur.export.local import LocalDraws, local_noise, stored_generator
+
+        gen = stored_generator(self.seed)
+        localised = []
+        for member in self.members:
+            eligible = _local_eligible(member, self.input_shape)
+            for lay in member.modules():
+                if id(lay) in eligible and any(lay is e for e in plan.entry_layers) and lay._draw_mode.S > 1:
+                    lay._draw_mode = LocalDraws(lay, lay._draw_mode.S, stored=local_noise(lay, lay._draw_mode.S, gen))
+                    localised.append(lay)
+        if localised:
+            self.computation += "; local reparameterisation where draws enter a dense layer"
 
     def train(self, mode: bool = True) -> DrawNetwork:
         """Always eval: batch norm must use its running statistics (per row, so draws never mix),
@@ -542,6 +571,33 @@ def _dropout_slots(model: nn.Module) -> list[tuple[nn.Module, str, nn.Module]]:
     return slots
 
 
+def _local_eligible(model: nn.Module, input_shape: tuple[int, ...]) -> set[int]:
+    """ids of the dense variational layers that see one vector per case ([B, in]) and run once per
+    forward: where local reparameterisation is exact (export/local.py). One dry pass on two zero
+    cases, the layers' own draws made under a forked RNG so the caller's torch RNG is untouched."""
+    seen: dict[int, list[int]] = {}
+
+    def record(mod: nn.Module, args: tuple[Any, ...]) -> None:
+        seen.setdefault(id(mod), []).append(args[0].dim() if isinstance(args[0], torch.Tensor) else -1)
+
+    layers = [m for m in model.modules() if isinstance(m, VariationalLinear)]
+    hooks = [m.register_forward_pre_hook(record) for m in layers]
+    modes = [m._draw_mode for m in layers]
+    try:
+        for m in layers:
+            m._draw_mode = None
+        with torch.no_grad(), torch.random.fork_rng(devices=[]):
+            model(torch.zeros((2, *input_shape)))
+    except Exception:  # the shape errors are reported by the export's own checks; here: no local draws
+        return set()
+    finally:
+        for h in hooks:
+            h.remove()
+        for m, mode in zip(layers, modes):
+            m._draw_mode = mode
+    return {key for key, dims in seen.items() if dims == [2]}
+
+
 def _dropout_input_shapes(model: nn.Module, input_shape: tuple[int, ...]) -> dict[nn.Module, tuple[int, ...]]:
     """Each dropout's input shape per case, recorded by one eval pass on two zero cases."""
     shapes: dict[nn.Module, tuple[int, ...]] = {}
@@ -572,13 +628,13 @@ def reference_draws(net: DrawNetwork, x: torch.Tensor, noise: dict[str, np.ndarr
                            for y in _member_draws(member, layers, net.per_member, x)])
         return _ensemble_mean(out, net.task) if net.kind == "means" else out
     modes = [lay._draw_mode for lay in net.layers]
-    sets = [mode.weights(lay) for mode, lay in zip(modes, net.layers)]
+    singles = [mode.per_draw(lay) for mode, lay in zip(modes, net.layers)]
     masks = [d.all_masks() for d in net.dropouts]
     outs = []
     try:
         for s in range(net.S):
-            for lay, (w, b) in zip(net.layers, sets):
-                lay._draw_mode = _Single(w[s], b[s])
+            for lay, one in zip(net.layers, singles):
+                lay._draw_mode = one[s]
             for drop, m in zip(net.dropouts, masks):
                 drop.single = m[s]
             outs.append(net.members[0](x))
@@ -593,12 +649,12 @@ def reference_draws(net: DrawNetwork, x: torch.Tensor, noise: dict[str, np.ndarr
 def _member_draws(member: nn.Module, layers: list[VariationalLayer], P: int, x: torch.Tensor) -> list[torch.Tensor]:
     """One ensemble member run once per stored draw with that draw's plain weights: P x [B, K]."""
     modes = [lay._draw_mode for lay in layers]
-    sets = [mode.weights(lay) for mode, lay in zip(modes, layers)]
+    singles = [mode.per_draw(lay) for mode, lay in zip(modes, layers)]
     outs = []
     try:
         for p in range(P):
-            for lay, (w, b) in zip(layers, sets):
-                lay._draw_mode = _Single(w[p], b[p])
+            for lay, one in zip(layers, singles):
+                lay._draw_mode = one[p]
             outs.append(member(x))
     finally:
         for lay, mode in zip(layers, modes):

@@ -89,6 +89,8 @@ class SharedPlan:
 
     members: list[_Member]
     entries: list[str] = field(default_factory=list)
+    entry_layers: list[nn.Module] = field(default_factory=list)
+    """The draw sources fed by a plain tensor, as module objects (every member's)."""
 
     def run(self, x: torch.Tensor, fan: int) -> list[torch.Tensor]:
         """Each member's output on ``x`` [B, ...] with ``fan`` draws: a list of [fan * B, K]
@@ -117,6 +119,7 @@ def plan_shared(members: Sequence[nn.Module], is_source: Callable[[nn.Module], b
         state, entries = _dependencies(module, graph, is_source)
         plan.members.append(_Member(module, graph, state, _keys(module, graph, state)))
         plan.entries.extend(e for e in entries if e not in plan.entries)
+        plan.entry_layers.extend(module.get_submodule(e) for e in entries)
     return plan
 
 

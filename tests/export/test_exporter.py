@@ -22,12 +22,15 @@ import demur.export.exporter as exporter
 from demur.export.datasets import load_dataset
 from demur.export.errors import ExportError
 from demur.export.exporter import export_bundle, export_model
-from demur.export.layers import forward_draws, sample_network
+from demur.export.layers import VariationalLinear, forward_draws, sample_network
+from demur.export.local import local_noise, stored_generator
 from demur.export.checkpoints import load_checkpoint
 from demur.export.training import standardise_inputs, train
 from demur.serve.core.bundle import load_bundle
 from demur.serve.cli import main
 from demur.serve.adapters.engine import Engine
+
+from tests.export._local import local_layer
 
 
 @pytest.fixture(scope="module")
@@ -53,7 +56,15 @@ def test_stacked_bundle_equals_torch_on_the_recorded_draws(quick_checkpoints, tm
     model, meta = load_checkpoint(ckpt)
     x_raw = load_dataset(meta["data"]["source"]).x_test[:20]
     draws = sample_network(model, 6, torch.Generator().manual_seed(17))
-    expected = forward_draws(model, torch.from_numpy(standardise_inputs(meta["inputs"], x_raw)), draws).numpy()
+    xs = torch.from_numpy(standardise_inputs(meta["inputs"], x_raw)).float()
+    if isinstance(model[1], VariationalLinear):  # an MLP: its first layer is where draws enter, by local noise
+        first, rest = model[1], model[2:]
+        n, b = local_noise(first, 6, stored_generator(17))
+        h = torch.stack([local_layer(model[0](xs), first, n[s], b[s]) for s in range(6)])
+        expected = torch.stack([forward_draws(rest, h[s], [{k: v[s:s + 1] for k, v in d.items()} for d in draws[1:]])[0]
+                                for s in range(6)]).numpy()
+    else:
+        expected = forward_draws(model, xs, draws).numpy()
     engine = Engine(bundle).load()
     got = engine.run(x_raw)
     assert got.shape == expected.shape == (6, 20, bundle.manifest.outputs)

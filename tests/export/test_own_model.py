@@ -32,10 +32,12 @@ from demur.export import export_model, input_spec
 from demur.export.draws import DrawNetwork, draw_noise, reference_draws
 from demur.export.errors import ExportError, GraphBuildError
 from demur.export.flip import FULL_RANK, LOW_RANK, FlipDraws
+from demur.export.local import local_noise, stored_generator
 from demur.serve.adapters.engine import Engine
 from demur.serve.cli import main
 from demur.serve.core.summary import summarise
 
+from tests.export._local import local_layer
 from tests.export._own_models import depot_conv_net, dropout_mlp, plain_mlp, residual_sequential
 
 TOL = 1e-4
@@ -115,12 +117,13 @@ def test_ensemble_of_variational_members_serves_the_mixture_of_their_posteriors(
     assert m.graphs["stacked"].draws == 6  # 3 members x (7 // 3) draws
     cases = x[1200:1240]
     xs = torch.from_numpy(spec.standardise(cases)).float()
-    gen = torch.Generator().manual_seed(3)
+    gen, local = torch.Generator().manual_seed(3), stored_generator(3)
     logits = []
     for member in members:
         (l1, l2) = sample_network(member, 2, gen)
+        n, b = local_noise(member[1], 2, local)  # the first layer: where draws enter, local noise (export/local.py)
         for p in range(2):
-            h = torch.relu(F.linear(xs, l1["weight"][p], l1["bias"][p]))
+            h = torch.relu(local_layer(xs, member[1], n[p], b[p]))
             logits.append(F.linear(h, l2["weight"][p], l2["bias"][p]))
     want_draws = torch.stack(logits).double()
     served = Engine(bundle).load().run(cases)

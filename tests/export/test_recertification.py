@@ -55,7 +55,7 @@ def _reviewed_export(bundle_path: Path, dataset: Any, tmp_path: Path, audit_frac
 def test_the_review_export_recertifies_the_served_rule(demo_bundle: Any, demo_dataset: Any, copy_bundle: Any,
                                                        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     path = copy_bundle(demo_bundle)
-    assert main(["calibrate", str(path), "--data", "digits", "--target-accuracy", "0.95", "--confidence", "0.9"]) == 0
+    assert main(["calibrate", str(path), "--data", "digits", "--target-accuracy", "0.98", "--confidence", "0.9"]) == 0
     served = load_bundle(path).manifest.decision.threshold
     reviewed = _reviewed_export(path, demo_dataset, tmp_path, audit_fraction=0.5)
     rows = list(csv.DictReader(io.StringIO(reviewed.read_text())))
@@ -108,7 +108,7 @@ def test_fresh_draws_recertify_on_the_scores_and_predictions_served(demo_sampler
     from demur.export.calibration import calibrate_file
 
     path = copy_bundle(demo_sampler_bundle)
-    assert main(["calibrate", str(path), "--data", "digits", "--target-accuracy", "0.95", "--confidence", "0.9"]) == 0
+    assert main(["calibrate", str(path), "--data", "digits", "--target-accuracy", "0.98", "--confidence", "0.9"]) == 0
     reviewed = _reviewed_export(path, demo_dataset, tmp_path, audit_fraction=0.5)
     rows = list(csv.DictReader(io.StringIO(reviewed.read_text())))
     served = load_bundle(path).manifest.decision.threshold

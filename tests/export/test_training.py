@@ -26,6 +26,8 @@ from demur.export.checkpoints import load_checkpoint
 from demur.export.training import predictive_metrics, standardise_inputs, train
 from demur.serve.cli import main
 
+from tests.export._local import local_layer
+
 
 def test_kl_warmup_is_linear_then_flat_and_rho_gets_its_own_step():
     """KL annealing as documented: beta = min(1, (step + 1) / (warmup * total)) * weight (linear ramp,
@@ -199,9 +201,10 @@ def test_ensemble_checkpoint_round_trips_and_exports_the_mixture(tmp_path, capsy
     net = DrawNetwork(members, "stacked", 10, seed=2, input_shape=[64])
     logits = []
     for member in net.members:  # the stored draws, applied by hand
-        l1, l2 = (lay._draw_mode for lay in member if isinstance(lay, VariationalLinear))
-        for p in range(3):
-            h = torch.relu(F.linear(xs, l1.w[p], l1.b[p]))
+        first, _ = (lay for lay in member if isinstance(lay, VariationalLinear))
+        l1, l2 = first._draw_mode, _._draw_mode
+        for p in range(3):  # the first layer stores local noise where draws enter (export/local.py)
+            h = torch.relu(local_layer(xs, first, l1.stored[0][p], l1.stored[1][p]))
             logits.append(F.linear(h, l2.w[p], l2.b[p]))
     want = torch.softmax(torch.stack(logits).double(), -1).mean(0).numpy()
     m = b.manifest

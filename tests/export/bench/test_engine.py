@@ -44,7 +44,9 @@ def test_tiny_run_has_every_section(tiny_result: dict[str, Any]) -> None:
         assert e["rows_per_s"] > 0 and e["draws"] == (1 if e["mode"] == "means" else 4)
     assert set(r["summaries"]) == {"draws", "batch", "engine_ms", "summary_ms", "share_of_engine"}
     mem = {m["mode"]: m for m in r["memory"]}
-    assert mem["stacked"]["file_over_param_bytes"] == pytest.approx(4, rel=0.02)   # S = 4 weight sets
+    # S = 4 weight sets, except the first dense layer: its means and variances plus 4 x out output noises
+    # (local reparameterisation where draws enter, export/local.py)
+    assert 2 < mem["stacked"]["file_over_param_bytes"] < 4
     assert mem["flip"]["file_over_param_bytes"] == pytest.approx(2, rel=0.15)      # mu + sigma, graph overhead
     assert r["http"] == {"skipped": "--no-http"}
     (conv,) = r["conv"]
