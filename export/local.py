@@ -129,7 +129,10 @@ class LocalDraws(_Mode):
         """x [S*B, in] (draw-carrying) or, where draws enter, [B, in] -> [S*B, out], draw-major."""
         n, b = self._draws()
         mean = F.linear(x, self.mu_w)
-        sd = torch.sqrt(F.linear(x * x, self.var_w))
+        # sqrt(x^2 . sigma^2) scaled by each row's largest |x|: x^2 would overflow float32 from |x| ~ 1.8e19,
+        # where the layer's own output (x . mu) is still finite
+        scale = x.abs().amax(dim=-1, keepdim=True).clamp_min(1e-30)
+        sd = torch.sqrt(F.linear((x / scale).square(), self.var_w)) * scale
         out = int(self.mu_w.shape[0])
         if self.entering:                                               # [B, out] -> [S, B, out]
             y = mean + b[:, None, :] + sd * n[:, None, :]

@@ -48,6 +48,7 @@ __all__ = [
     "ManifestInvalid",
     "NotFound",
     "NotLoaded",
+    "OutputNotFinite",
     "Overloaded",
     "PayloadTooLarge",
     "Refused",
@@ -111,6 +112,19 @@ class SmokeFailed(BundleError):
 class InvalidInput(DemurError, ValueError):
     status = 400
     code = "invalid_input"
+
+
+class OutputNotFinite(InvalidInput):
+    """Valid inputs the model's float32 arithmetic cannot carry: some draw of these cases is NaN or
+    infinite (an input far beyond the training data overflows a layer). Refused, never served: a
+    NaN probability would decide nothing. ``cases``: the offending positions in the graph's batch."""
+
+    status = 422
+    code = "output_not_finite"
+
+    def __init__(self, message: str, *, field: str | None = None, cases: list[int] | None = None) -> None:
+        super().__init__(message, field=field)
+        self.cases = list(cases or [])
 
 
 class PayloadTooLarge(InvalidInput):

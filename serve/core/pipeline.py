@@ -39,7 +39,7 @@ from demur.serve.core.decision import DecisionRule, ServedRule, Verdicts, rule_f
 from demur.serve.core.summary import Summary, summarise
 from demur.serve.core.support import support_from_manifest
 from demur.serve.core.validation import PredictRequest, validate_predict
-from demur.serve.errors import BundleError, DemurError, GraphRunError, NotLoaded
+from demur.serve.errors import BundleError, DemurError, GraphRunError, NotLoaded, OutputNotFinite
 
 __all__ = [
     "CAUTION",
@@ -227,6 +227,35 @@ def _run_engine(engine: Any, x: np.ndarray) -> np.ndarray:
     return engine.run(x)
 
 
+def _check_finite(draws: np.ndarray) -> None:
+    """``OutputNotFinite`` naming the cases of ``draws`` [S, B, K] with a NaN or infinite draw."""
+    if np.isfinite(draws).all():
+        return
+    cases = np.flatnonzero(~np.isfinite(draws).all(axis=(0, 2))).tolist()
+    raise OutputNotFinite(
+        f"the model's output is not a finite number for {len(cases)} case(s): their inputs overflow the "
+        "graph's float32 arithmetic (values far beyond the training data); send values in the range the "
+        "model was trained on", field=f"cases[{cases[0]}]", cases=cases)
+
+
+def _refuse_bodies(valid: list[tuple[int, PredictRequest]], exc: OutputNotFinite,
+                   answers: list[dict[str, Any] | DemurError]) -> list[tuple[int, PredictRequest]]:
+    """The bodies of ``valid`` holding none of ``exc.cases``; each other body gets its own 422 naming
+    its first such case (its own index), so one body's overflow never refuses another's cases."""
+    keep, start, bad = [], 0, set(exc.cases)
+    for i, r in valid:
+        mine = [j - start for j in range(start, start + r.size) if j in bad]
+        start += r.size
+        if not mine:
+            keep.append((i, r))
+            continue
+        answers[i] = OutputNotFinite(
+            f"the model's output is not a finite number for case(s) {mine[:10]}: their inputs overflow the "
+            "graph's float32 arithmetic (values far beyond the training data); send values in the range the "
+            "model was trained on", field=f"cases[{mine[0]}]", cases=mine)
+    return keep
+
+
 class Runtime:
     """Everything one server process answers with: config, the live model slot, the hooks.
 
@@ -322,11 +351,18 @@ class Runtime:
                 answers.append({})
             except DemurError as exc:
                 answers.append(exc)
-        if not valid:
-            return live, answers
-        req = valid[0][1] if len(valid) == 1 else PredictRequest(
-            x=np.concatenate([r.x for _, r in valid]), case_ids=[c for _, r in valid for c in r.case_ids])
-        answered = self.answer_request(req, caller=caller, live=live, started=t0)
+        for _ in range(2):  # a second pass only without the bodies whose cases the graph cannot carry
+            if not valid:
+                return live, answers
+            req = valid[0][1] if len(valid) == 1 else PredictRequest(
+                x=np.concatenate([r.x for _, r in valid]), case_ids=[c for _, r in valid for c in r.case_ids])
+            try:
+                answered = self.answer_request(req, caller=caller, live=live, started=t0)
+                break
+            except OutputNotFinite as exc:
+                valid = _refuse_bodies(valid, exc, answers)
+        else:  # pragma: no cover - the second pass holds only cases the first found finite
+            raise GraphRunError("the graph's output changed between two runs on the same cases")
         draw_count = answered.summary.draws
         start = 0
         for i, r in valid:
@@ -355,6 +391,7 @@ class Runtime:
         t2 = time.perf_counter()
         if draws.ndim != 3 or draws.shape[1] != req.size:
             raise GraphRunError(f"the graph returned draws of shape {list(draws.shape)} for {req.size} cases")
+        _check_finite(draws)
         summary = summarise(manifest.task, draws, live.level, manifest.target)
         decisions = live.served.decide(summary, req.x, x_std)
         if not rendered:

@@ -50,7 +50,7 @@ from demur.serve.config import ServeConfig, build_config
 from demur.serve.core.pipeline import CAUTION, Live, ReviewHook, Runtime
 from demur.serve.core.summary import ClassificationSummary
 from demur.serve.core.validation import MAX_CASE_ID_CHARS, PredictRequest, client_text
-from demur.serve.errors import ConfigError, InvalidInput
+from demur.serve.errors import ConfigError, InvalidInput, OutputNotFinite
 from demur.serve.offline.tables import Rows, open_reader, open_writer
 
 __all__ = ["DEFAULT_CHUNK_ROWS", "ScoreReport", "Scorer", "engine_loader", "output_columns", "register",
@@ -141,8 +141,22 @@ class Scorer:
         if idx.size:
             spec = live.manifest.inputs
             x = rows.x[idx].astype(np.float32).reshape((idx.size, *spec.shape))
-            req = PredictRequest(x=x, case_ids=[case_ids[i] for i in idx.tolist()])
-            self._fill(out, idx, self.runtime.answer_request(req, live=live, rendered=self.enqueue), live)
+            try:
+                answered = self.runtime.answer_request(
+                    PredictRequest(x=x, case_ids=[case_ids[i] for i in idx.tolist()]), live=live, rendered=self.enqueue)
+            except OutputNotFinite as exc:  # those rows get their reason; the rest of the chunk is scored
+                for j in exc.cases:
+                    i = int(idx[j])
+                    out["reason"][i] = f"row {int(rows.row[i])}: {exc.message.split(': ', 1)[0]}"
+                    good[i] = False
+                keep = np.ones(idx.size, dtype=bool)
+                keep[exc.cases] = False
+                idx, x = idx[keep], x[keep]
+                answered = self.runtime.answer_request(
+                    PredictRequest(x=x, case_ids=[case_ids[i] for i in idx.tolist()]), live=live,
+                    rendered=self.enqueue) if idx.size else None
+            if answered is not None:
+                self._fill(out, idx, answered, live)
         return out, good
 
     def _case_ids(self, rows: Rows, bad: list[str | None]) -> list[str | None]:

@@ -375,3 +375,30 @@ def test_an_unreachable_review_store_stops_the_run_before_any_row(tiny_bundle_fa
                  "--ignore", "depot", "--enqueue", url, "--quiet"]) == 1
     assert "demur score: no PostgreSQL connection for the review store" in capsys.readouterr().err
     assert not out.exists()
+
+
+def test_a_row_the_graph_cannot_carry_gets_its_reason_and_the_chunk_is_scored(tiny_bundle_factory: Any,
+                                                                                tmp_path: Path,
+                                                                                monkeypatch: Any) -> None:
+    """A row whose draws come back NaN (an overflow; here forced by wrapping the real engine, as in
+    tests/serve/web/test_output_not_finite.py) is ``invalid`` with the reason; the other rows of its
+    chunk are decided as the server decides them."""
+    import demur.serve.offline.scoring as scoring
+    from tests.serve.web.test_output_not_finite import _Overflowing
+
+    real = scoring.engine_loader
+    monkeypatch.setattr(scoring, "engine_loader", lambda config: (lambda p: _Overflowing(real(config)(p))))
+    bundle = tiny_bundle_factory(task="classification", kind="stacked", draws=8)
+    names = list(bundle.manifest.inputs.names)
+    data = tmp_path / "parcels.csv"
+    with open(data, "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(names)
+        for i in range(6):
+            w.writerow([3e38 if (i == 3 and j == 0) else 1.0 for j in range(len(names))])
+    out = tmp_path / "scored.csv"
+    report = score_file(ServeConfig(bundle=str(bundle.path), seed=0), data, out, chunk_rows=16)
+    rows = _read(out)
+    assert report.invalid == 1 and [r["decision"] == "invalid" for r in rows] == [False] * 3 + [True] + [False] * 2
+    assert rows[3]["reason"].startswith("row 4: the model's output is not a finite number")
+    assert all(r["p_0"] != "" for i, r in enumerate(rows) if i != 3)

@@ -1,0 +1,78 @@
+"""Cases whose draws are NaN or infinite are refused (422 naming the case), never served.
+
+A schema fuzz found it: one pixel at float32's largest value (3.4028235e38, which validation accepts)
+overflowed a graph to NaN, and the server answered 200 with null probabilities and "accept". The
+pipeline now checks the draws: the request holding such a case gets 422 ``output_not_finite`` with
+``field`` = ``cases[i]``; requests batched with it are answered; a scored file marks the row and
+goes on. The engine here is the real one, wrapped so that cases whose first raw input is above 1e30
+come back NaN (the overflow itself depends on the graph; the refusal must not).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from prometheus_client import CollectorRegistry
+
+from demur.serve.adapters.engine import Engine
+from demur.serve.config import ServeConfig
+from demur.serve.core.bundle import load_bundle
+from demur.serve.core.pipeline import Runtime
+from demur.serve.errors import OutputNotFinite
+from demur.serve.web.app import create_app
+from demur.serve.web.metrics_http import Metrics
+
+
+class _Overflowing:
+    """The real engine, except that a case whose first raw input exceeds 1e30 gets NaN draws."""
+
+    def __init__(self, engine: Engine) -> None:
+        self._engine, self._raw = engine, None
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._engine, name)
+
+    def standardise(self, x: np.ndarray) -> np.ndarray:
+        self._raw = x
+        return self._engine.standardise(x)
+
+    def run_standardised(self, x_std: np.ndarray) -> np.ndarray:
+        draws = self._engine.run_standardised(x_std)
+        huge = self._raw.reshape(len(self._raw), -1)[:, 0] > 1e30
+        draws[:, huge, :] = np.nan
+        return draws
+
+
+def _runtime(bundle: Any, tmp_path: Path) -> Runtime:
+    config = ServeConfig(bundle=str(bundle.path), seed=0, data_dir=str(tmp_path / "data"))
+    runtime = Runtime(config, load_engine=lambda p: _Overflowing(Engine(load_bundle(p), seed=0)))
+    runtime.start()
+    return runtime
+
+
+def test_only_the_body_with_the_case_is_refused(tiny_bundle_factory: Any, tmp_path: Path) -> None:
+    bundle = tiny_bundle_factory()
+    n = bundle.manifest.inputs.size
+    fine, huge = [0.0] * n, [3.4e38] + [0.0] * (n - 1)
+    runtime = _runtime(bundle, tmp_path)
+    _, answers = runtime.answer([{"cases": [fine, fine]}, {"cases": [fine, huge, fine]}, {"cases": [fine]}])
+    assert [len(a["results"]) for a in (answers[0], answers[2])] == [2, 1]
+    err = answers[1]
+    assert isinstance(err, OutputNotFinite) and err.status == 422 and err.field == "cases[1]"
+    assert "not a finite number" in err.message
+    for a in (answers[0], answers[2]):
+        assert all(np.isfinite(r["uncertainty"]["predictive_entropy"]) for r in a["results"])
+
+
+def test_http_answers_422_naming_the_case(tiny_bundle_factory: Any, tmp_path: Path) -> None:
+    bundle = tiny_bundle_factory()
+    n = bundle.manifest.inputs.size
+    config = ServeConfig(bundle=str(bundle.path), seed=0, data_dir=str(tmp_path / "data"))
+    app = create_app(config, engine=_Overflowing(Engine(load_bundle(bundle.path), seed=0)),
+                     metrics=Metrics(config, registry=CollectorRegistry()))
+    r = app.test_client().post("/v1/predict", json={"cases": [[0.0] * n, [3.4e38] + [0.0] * (n - 1)]})
+    assert r.status_code == 422
+    body = r.get_json()["error"]
+    assert body["code"] == "output_not_finite" and body["field"] == "cases[1]"
