@@ -25,14 +25,21 @@ draws; the parity check in export/exporter.py refuses such an export.)
 Where the draws come from, per graph kind:
 
 ``stacked``  S weight sets drawn at export (``sample_network`` with the seed)
-             and S dropout masks, stored as constants.
+             and S dropout masks, stored as constants; where draws enter a
+             dense layer (fed by the draw-free part), S output noises instead
+             of S weight sets (local reparameterisation, export/local.py).
 ``sampler``  fresh every call, from noise the engine feeds as graph inputs
              (serve/adapters/engine.py, "Noise fed by the engine"): per
              variational layer ``normals.L{i}.weight`` [S, *w],
              ``normals.L{i}.bias`` [S, out] and, radial, ``normals.L{i}.radius``
              [S, 2]; per dropout layer ``uniforms.D{j}`` [S, 1, *mask shape]
-             (keep where u > p, u uniform on (0, 1]).
-``flip``     fresh Flipout draws (export/flip.py), noise fed the same way.
+             (keep where u > p, u uniform on (0, 1]). A gaussian dense layer
+             that sees one vector per case draws its outputs instead:
+             ``normals.L{i}.local`` [S, out] and ``normals.L{i}.bias`` [S, out]
+             (export/local.py; exact per case).
+``flip``     fresh Flipout draws (export/flip.py), noise fed the same way;
+             gaussian dense layers as in the sampler (local, exact and cheaper
+             than Flipout's base).
 ``means``    one draw: the posterior means, dropout off (identity); for an
              ensemble, the members' averaged prediction.
 
@@ -405,12 +412,12 @@ class DrawNetwork(nn.Module):
 
     def _set_modes(self, kind: str, seed: int) -> None:
         from demur.export.flip import FlipDraws
-        from demur.export.local import LocalDraws
+        from demur.export.local import LocalDraws, local_eligible
 
         S, model = self.S, self.members[0]
         if kind == "stacked" and self.layers:
             sets = sample_network(model, S, torch.Generator().manual_seed(seed))
-        local = (_local_eligible(model, self.input_shape) if kind in ("sampler", "flip") and self.family == "gaussian"
+        local = (local_eligible(model, self.input_shape) if kind in ("sampler", "flip") and self.family == "gaussian"
                  else set())
         for i, lay in enumerate(self.layers):
             if id(lay) in local:
@@ -481,19 +488,10 @@ class DrawNetwork(nn.Module):
                                 f"{type(exc).__name__}: {first}")
 
     def _localise_entries(self, plan: SharedPlan) -> None:
-        """Stacked: where draws enter on a dense layer, store output noise instead of S weight sets
-        (export/local.py): the layer reads its means and variances once per call, not S copies."""
-        from demur.export.local import LocalDraws, local_noise, stored_generator
+        """Stacked: output noise instead of S weight sets where draws enter a dense layer (export/local.py)."""
+        from demur.export.local import localise_entries
 
-        gen = stored_generator(self.seed)
-        localised = []
-        for member in self.members:
-            eligible = _local_eligible(member, self.input_shape)
-            for lay in member.modules():
-                if id(lay) in eligible and any(lay is e for e in plan.entry_layers) and lay._draw_mode.S > 1:
-                    lay._draw_mode = LocalDraws(lay, lay._draw_mode.S, stored=local_noise(lay, lay._draw_mode.S, gen))
-                    localised.append(lay)
-        if localised:
+        if localise_entries(self.members, plan.entry_layers, self.input_shape, self.seed):
             self.computation += "; local reparameterisation where draws enter a dense layer"
 
     def train(self, mode: bool = True) -> DrawNetwork:
@@ -569,33 +567,6 @@ def _dropout_slots(model: nn.Module) -> list[tuple[nn.Module, str, nn.Module]]:
                 raise GraphBuildError(f"{type(child).__name__} has no MC-dropout form in demur (nn.Dropout and "
                                       "nn.Dropout2d do)", field="model")
     return slots
-
-
-def _local_eligible(model: nn.Module, input_shape: tuple[int, ...]) -> set[int]:
-    """ids of the dense variational layers that see one vector per case ([B, in]) and run once per
-    forward: where local reparameterisation is exact (export/local.py). One dry pass on two zero
-    cases, the layers' own draws made under a forked RNG so the caller's torch RNG is untouched."""
-    seen: dict[int, list[int]] = {}
-
-    def record(mod: nn.Module, args: tuple[Any, ...]) -> None:
-        seen.setdefault(id(mod), []).append(args[0].dim() if isinstance(args[0], torch.Tensor) else -1)
-
-    layers = [m for m in model.modules() if isinstance(m, VariationalLinear)]
-    hooks = [m.register_forward_pre_hook(record) for m in layers]
-    modes = [m._draw_mode for m in layers]
-    try:
-        for m in layers:
-            m._draw_mode = None
-        with torch.no_grad(), torch.random.fork_rng(devices=[]):
-            model(torch.zeros((2, *input_shape)))
-    except Exception:  # the shape errors are reported by the export's own checks; here: no local draws
-        return set()
-    finally:
-        for h in hooks:
-            h.remove()
-        for m, mode in zip(layers, modes):
-            m._draw_mode = mode
-    return {key for key, dims in seen.items() if dims == [2]}
 
 
 def _dropout_input_shapes(model: nn.Module, input_shape: tuple[int, ...]) -> dict[nn.Module, tuple[int, ...]]:

@@ -60,14 +60,18 @@ Where demur uses it (export/draws.py):
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+from typing import Any
+
 import numpy as np
 import torch
 import torch.nn.functional as F
+from torch import nn
 
 from demur.export.draws import Feed, NoiseInput, _Mode
 from demur.export.layers import VariationalLayer, VariationalLinear
 
-__all__ = ["LocalDraws", "local_noise", "stored_generator"]
+__all__ = ["LocalDraws", "local_eligible", "local_noise", "localise_entries", "stored_generator"]
 
 
 def stored_generator(seed: int) -> torch.Generator:
@@ -158,3 +162,47 @@ class _OneLocal(_Mode):
 
     def run(self, layer: VariationalLayer, x: torch.Tensor) -> torch.Tensor:
         return F.linear(x, self.mu_w, self.b) + torch.sqrt(F.linear(x.square(), self.var_w)) * self.n
+
+
+def local_eligible(model: nn.Module, input_shape: tuple[int, ...]) -> set[int]:
+    """ids of the dense variational layers that see one vector per case ([B, in]) and run once per
+    forward: where local reparameterisation is exact (export/local.py). One dry pass on two zero
+    cases, the layers' own draws made under a forked RNG so the caller's torch RNG is untouched."""
+    seen: dict[int, list[int]] = {}
+
+    def record(mod: nn.Module, args: tuple[Any, ...]) -> None:
+        seen.setdefault(id(mod), []).append(args[0].dim() if isinstance(args[0], torch.Tensor) else -1)
+
+    layers = [m for m in model.modules() if isinstance(m, VariationalLinear)]
+    hooks = [m.register_forward_pre_hook(record) for m in layers]
+    modes = [m._draw_mode for m in layers]
+    try:
+        for m in layers:
+            m._draw_mode = None
+        with torch.no_grad(), torch.random.fork_rng(devices=[]):
+            model(torch.zeros((2, *input_shape)))
+    except Exception:  # the shape errors are reported by the export's own checks; here: no local draws
+        return set()
+    finally:
+        for h in hooks:
+            h.remove()
+        for m, mode in zip(layers, modes):
+            m._draw_mode = mode
+    return {key for key, dims in seen.items() if dims == [2]}
+
+
+def localise_entries(members: Sequence[nn.Module], entries: Sequence[nn.Module], input_shape: tuple[int, ...],
+                     seed: int) -> int:
+    """Stacked graphs: give every eligible dense layer among ``entries`` (where draws enter, fed by the
+    draw-free part) stored local draws in place of its S weight sets; the number of layers changed.
+    Why only there: on a draw-free [B, in] batch two small matmuls replace reading S weight copies;
+    on draw-carrying rows [S*B, in] they would cost twice a stored set's matmul at large B."""
+    gen, changed = stored_generator(seed), 0
+    for member in members:
+        eligible = local_eligible(member, input_shape)
+        for lay in member.modules():
+            mode = getattr(lay, "_draw_mode", None)
+            if id(lay) in eligible and any(lay is e for e in entries) and mode is not None and mode.S > 1:
+                lay._draw_mode = LocalDraws(lay, mode.S, stored=local_noise(lay, mode.S, gen))
+                changed += 1
+    return changed

@@ -193,6 +193,23 @@ def transport_section(bundle: Bundle, x: np.ndarray, root: Path, seconds: int, h
     return out
 
 
+def _interleaved(runs: dict[str, Callable[[np.ndarray], Any]], x: np.ndarray,
+                 timer: Callable[[Callable[[], Any], int, float], dict[str, float]], repeats: int,
+                 budget_s: float) -> dict[str, dict[str, float]]:
+    """Per-call seconds of every runner on ``x``, round-robin: each round times each runner once
+    (``timer`` with one repeat), so a change in the machine's load falls on all of them alike and
+    the ratios to the deterministic network are side by side in time, not only in one run."""
+    per_call: dict[str, list[float]] = {label: [] for label in runs}
+    for _ in range(max(1, repeats)):
+        for label, run in runs.items():
+            per_call[label].append(timer(lambda: run(x), 1, budget_s)["median"])
+    base = per_call.get("means")
+    return {label: {"median": float(np.median(v)), "min": min(v), "max": max(v),
+                    # the median of the rounds' ratios: each ratio is taken within one round
+                    **({"over_means": float(np.median(np.divide(v, base)))} if base else {})}
+            for label, v in per_call.items()}
+
+
 def backbone_section(cfg: dict[str, Any], root: Path,
                      timer: Callable[[Callable[[], Any], int, float], dict[str, float]],
                      log: Callable[[str], None], http: bool = False) -> list[dict[str, Any]]:
@@ -216,16 +233,20 @@ def backbone_section(cfg: dict[str, Any], root: Path,
             variants.append(("stacked per draw (before)", before))
             sizes["stacked per draw (before)"] = before_sizes["stacked"]
         rows = []
+        runs = {label: Engine(b, graph=label.split()[0], intra_threads=1, inter_threads=1).load().run
+                for label, b in variants}
         for B in cfg["backbone_batches"]:
             x = x_raw[:B]
-            for label, b in variants:
-                run = Engine(b, graph=label.split()[0], intra_threads=1, inter_threads=1).load().run
-                t = timer(lambda: run(x), cfg["repeats"], cfg["budget_s"])
-                rows.append({"mode": label, "batch": B, "latency_ms": {k: v * 1e3 for k, v in t.items()}})
+            rounds = int(cfg.get("backbone_repeats", max(7, int(cfg["repeats"]))))
+            for label, t in _interleaved(runs, x, timer, rounds, float(cfg["budget_s"])).items():
+                ratio = t.pop("over_means", None)
+                rows.append({"mode": label, "batch": B, "latency_ms": {k: v * 1e3 for k, v in t.items()},
+                             "round_ratio": ratio})
                 log(f"  backbone {side:>3} {label:>26} S={S} B={B:<3} {t['median'] * 1e3:9.2f} ms")
         det = {r["batch"]: r["latency_ms"]["median"] for r in rows if r["mode"] == "means"}
         for r in rows:
-            r["over_deterministic"] = r["latency_ms"]["median"] / det[r["batch"]]
+            ratio = r.pop("round_ratio", None)
+            r["over_deterministic"] = ratio if ratio is not None else r["latency_ms"]["median"] / det[r["batch"]]
         transport = transport_section(bundle, x_raw[0], root / f"backbone-{side}", int(cfg["http_s"]), http, log)
         out.append({"input": list(shape), "draws": S, "parameters": numbers, "rows": rows,
                     "computation": computation, "transport": transport,

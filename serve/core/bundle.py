@@ -77,10 +77,11 @@ MANIFEST = "manifest.json"
 SEAL = "manifest.sha256"
 
 GRAPH_KINDS = ("stacked", "sampler", "means", "flip")
-"""stacked: S pre-drawn weight sets in one graph; sampler: fresh noise drawn in
-the graph per call; means: the deterministic graph of the posterior means
-(S = 1); flip: Flipout sign flips on a fresh low-rank base per call, its noise
-fed by the engine (export/flip.py)."""
+"""stacked: S pre-drawn weight sets in one graph (output noise where draws enter a dense layer,
+export/local.py); sampler: fresh weights per call from noise the engine feeds; means: the
+deterministic graph of the posterior means (S = 1); flip: Flipout sign flips on a fresh base per
+call, its noise fed by the engine (export/flip.py); in the fresh kinds a gaussian dense layer draws
+its outputs, not its weights (local reparameterisation, export/local.py)."""
 
 FRESH_KINDS = ("sampler", "flip")
 """The graph kinds that draw fresh weights on every call (their random nodes are reseeded at load)."""
