@@ -229,9 +229,11 @@ def _run_engine(engine: Any, x: np.ndarray) -> np.ndarray:
 
 def _check_finite(draws: np.ndarray) -> None:
     """``OutputNotFinite`` naming the cases of ``draws`` [S, B, K] with a NaN or infinite draw."""
-    if np.isfinite(draws).all():
+    if np.isfinite(draws.sum()):  # one reduction: NaN and infinity propagate into a sum
         return
     cases = np.flatnonzero(~np.isfinite(draws).all(axis=(0, 2))).tolist()
+    if not cases:  # every draw finite; only their sum overflowed
+        return
     raise OutputNotFinite(
         f"the model's output is not a finite number for {len(cases)} case(s): their inputs overflow the "
         "graph's float32 arithmetic (values far beyond the training data); send values in the range the "

@@ -76,3 +76,17 @@ def test_http_answers_422_naming_the_case(tiny_bundle_factory: Any, tmp_path: Pa
     assert r.status_code == 422
     body = r.get_json()["error"]
     assert body["code"] == "output_not_finite" and body["field"] == "cases[1]"
+
+
+def test_huge_but_finite_draws_are_served() -> None:
+    """Draws near float32's largest value are finite: their sum overflowing must not refuse them."""
+    import pytest
+
+    from demur.serve.core.pipeline import _check_finite
+
+    draws = np.full((4, 3, 2), 3e38, dtype=np.float32)
+    _check_finite(draws)                      # no refusal
+    draws[1, 2, 0] = np.inf
+    with pytest.raises(OutputNotFinite) as info:
+        _check_finite(draws)
+    assert info.value.cases == [2] and info.value.field == "cases[2]"
