@@ -229,7 +229,9 @@ def _run_engine(engine: Any, x: np.ndarray) -> np.ndarray:
 
 def _check_finite(draws: np.ndarray) -> None:
     """``OutputNotFinite`` naming the cases of ``draws`` [S, B, K] with a NaN or infinite draw."""
-    if np.isfinite(draws.sum()):  # one reduction: NaN and infinity propagate into a sum
+    with np.errstate(over="ignore", invalid="ignore"):
+        total = draws.sum()
+    if np.isfinite(total):  # one reduction: NaN and infinity propagate into a sum
         return
     cases = np.flatnonzero(~np.isfinite(draws).all(axis=(0, 2))).tolist()
     if not cases:  # every draw finite; only their sum overflowed
