@@ -33,13 +33,12 @@ Where the draws come from, per graph kind:
              variational layer ``normals.L{i}.weight`` [S, *w],
              ``normals.L{i}.bias`` [S, out] and, radial, ``normals.L{i}.radius``
              [S, 2]; per dropout layer ``uniforms.D{j}`` [S, 1, *mask shape]
-             (keep where u > p, u uniform on (0, 1]). A gaussian dense layer
-             that sees one vector per case draws its outputs instead:
-             ``normals.L{i}.local`` [S, out] and ``normals.L{i}.bias`` [S, out]
-             (export/local.py; exact per case).
+             (keep where u > p, u uniform on (0, 1]). A dense layer that sees
+             one vector per case draws its outputs instead (``LocalDraws``,
+             export/local.py; exact per case).
 ``flip``     fresh Flipout draws (export/flip.py), noise fed the same way;
-             gaussian dense layers as in the sampler (local, exact and cheaper
-             than Flipout's base).
+             dense layers as in the sampler (local: exact and cheaper than
+             Flipout's base).
 ``means``    one draw: the posterior means, dropout off (identity); for an
              ensemble, the members' averaged prediction.
 
@@ -71,7 +70,8 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from demur.serve.core.bundle import GRAPH_KINDS, noise_law
+from demur.serve.core.bundle import GRAPH_KINDS
+from demur.serve.core.noise import noise_dof, noise_law
 
 from demur.export.errors import GraphBuildError
 from demur.export.layers import VariationalConv2d, VariationalLayer, VariationalLinear, sample_network
@@ -126,10 +126,13 @@ class Feed:
 
 
 def draw_noise(inputs: Sequence[NoiseInput], rng: np.random.Generator) -> dict[str, np.ndarray]:
-    """Values for ``inputs`` by the engine's laws (signs +-1, normals N(0, 1), uniforms on (0, 1])."""
+    """Values for ``inputs`` by the engine's laws (signs +-1, normals N(0, 1), uniforms on (0, 1],
+    chi-square with the name's degrees of freedom)."""
     out = {}
     for spec in inputs:
-        if spec.law == "signs":
+        if spec.law == "chisquare":
+            out[spec.name] = rng.chisquare(noise_dof(spec.name), spec.shape).astype(np.float32)
+        elif spec.law == "signs":
             out[spec.name] = np.where(rng.integers(0, 2, spec.shape) == 1, 1.0, -1.0).astype(np.float32)
         elif spec.law == "normals":
             out[spec.name] = rng.standard_normal(spec.shape).astype(np.float32)
@@ -417,8 +420,7 @@ class DrawNetwork(nn.Module):
         S, model = self.S, self.members[0]
         if kind == "stacked" and self.layers:
             sets = sample_network(model, S, torch.Generator().manual_seed(seed))
-        local = (local_eligible(model, self.input_shape) if kind in ("sampler", "flip") and self.family == "gaussian"
-                 else set())
+        local = local_eligible(model, self.input_shape) if kind in ("sampler", "flip") and self.layers else set()
         for i, lay in enumerate(self.layers):
             if id(lay) in local:
                 assert isinstance(lay, VariationalLinear)

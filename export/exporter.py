@@ -54,15 +54,8 @@ from typing import Any
 
 import numpy as np
 
-from demur.serve.core.bundle import (
-    FRESH_KINDS,
-    GRAPH_KINDS,
-    MANIFEST,
-    SEED_MODULUS,
-    Bundle,
-    load_bundle,
-    write_bundle,
-)
+from demur.serve.core.bundle import FRESH_KINDS, GRAPH_KINDS, MANIFEST, Bundle, load_bundle, write_bundle
+from demur.serve.core.noise import SEED_MODULUS
 from demur.serve.core.decision import score_values
 from demur.serve.core.drift import feature_reference, score_reference
 from demur.serve.core.fingerprint import training_fingerprint

@@ -1,8 +1,8 @@
 """The "flip" draws: fresh weight draws on every call at close to stacked-draws cost.
 
-(Gaussian dense layers that see one vector per case do not use this module in a flip graph:
-they draw their outputs by local reparameterisation, export/local.py, exact per case and cheaper
-than a base of one normal per weight. Convolutions and radial layers use Flipout as below.)
+(Dense layers that see one vector per case do not use this module in a flip graph: they draw
+their outputs by local reparameterisation, export/local.py, exact per case and cheaper than a
+base of one normal per weight. Convolutions, and dense layers on sequences, use Flipout.)
 
 Why: stacked draws are fast but replay the same S weight sets forever and
 store S copies of the weights; the sampler draws S fresh weight tensors per

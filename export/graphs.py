@@ -21,7 +21,7 @@ saw) and torch's message, never a raw traceback.
 
 The seed rule of the random nodes in sampler graphs written by earlier versions
 of demur is the bundle format's (``node_seed``, ``SEED_MODULUS`` in
-serve/core/bundle.py); the engine still reseeds such graphs at load by it.
+serve/core/noise.py); the engine still reseeds such graphs at load by it.
 """
 
 from __future__ import annotations

@@ -50,12 +50,10 @@ Where demur uses it (export/draws.py):
              sigma^2 once instead of S weight copies. Layers after it keep
              their stored weight sets: on [S*B, in] rows the two matmuls here
              cost twice a stored set's at large B.
-``sampler``, ``flip``  every eligible dense gaussian layer, fresh per call from
-             fed normals ``normals.L{i}.local`` [S, out] and ``normals.L{i}.bias``
-             [S, out]: S x out numbers, not S x out x in (the sampler) or out x in
-             (Flipout's base). The radial family keeps weight draws in these
-             graphs: its C would need a chi-square per draw, which the engine's
-             noise laws do not make.
+``sampler``, ``flip``  every eligible dense layer, fresh per call from noise the
+             engine feeds (``LocalDraws``): S x out normals (radial: plus S x 2
+             radii and S chi-squares, the engine's ``chisquare`` law), not
+             S x out x in (the sampler's weights) or out x in (Flipout's base).
 """
 
 from __future__ import annotations
@@ -102,7 +100,9 @@ class LocalDraws(_Mode):
     """One dense variational layer's S draws by local reparameterisation (module docstring).
 
     ``stored``: (n [S, out], b [S, out]) fixed at export (stacked); None: fresh per call from the
-    fed normals ``normals.L{index}.local`` and ``normals.L{index}.bias`` (gaussian only)."""
+    fed normals ``normals.L{index}.local`` (g) and ``normals.L{index}.bias``, and, radial,
+    ``normals.L{index}.radius`` [S, 2] (r for the weight and the bias) and
+    ``chisquare.L{index}.dof{k}`` [S] (C, k = out (in - 1); absent when in = 1)."""
 
     def __init__(self, layer: VariationalLinear, S: int, *, stored: tuple[torch.Tensor, torch.Tensor] | None = None,
                  feed: Feed | None = None, index: int = 0) -> None:
@@ -111,20 +111,32 @@ class LocalDraws(_Mode):
             self.mu_w, self.mu_b = layer.weight_mu.detach().clone(), layer.bias_mu.detach().clone()
             self.var_w = layer.weight_sigma.detach().square()
             self.sigma_b = layer.bias_sigma.detach().clone()
-        self.stored, self.feed = stored, feed
-        self.names = (f"normals.L{index}.local", f"normals.L{index}.bias")
+        self.stored, self.feed, self.radial = stored, feed, layer.posterior == "radial"
+        out = int(layer.out_features)
+        self.dof = out * (int(layer.in_features) - 1)
+        self.names = (f"normals.L{index}.local", f"normals.L{index}.bias", f"normals.L{index}.radius",
+                      f"chisquare.L{index}.dof{self.dof}")
         if stored is None:
-            if layer.posterior != "gaussian":
-                raise ValueError("fresh local draws are for the gaussian family (module docstring)")
-            out = int(layer.out_features)
-            self.noise = (NoiseInput(self.names[0], (self.S, out)), NoiseInput(self.names[1], (self.S, out)))
+            specs = [NoiseInput(self.names[0], (self.S, out)), NoiseInput(self.names[1], (self.S, out))]
+            if self.radial:
+                specs.append(NoiseInput(self.names[2], (self.S, 2)))
+                if self.dof:
+                    specs.append(NoiseInput(self.names[3], (self.S,)))
+            self.noise = tuple(specs)
 
     def _draws(self) -> tuple[torch.Tensor, torch.Tensor]:
-        """(n [S, out], b [S, out]) of this call."""
+        """(n [S, out], b [S, out]) of this call: stored, or from the fed noise (module docstring)."""
         if self.stored is not None:
             return self.stored
         assert self.feed is not None
-        return self.feed[self.names[0]], self.mu_b + self.sigma_b * self.feed[self.names[1]]
+        g, eps_b = self.feed[self.names[0]], self.feed[self.names[1]]
+        if not self.radial:
+            return g, self.mu_b + self.sigma_b * eps_b
+        r = self.feed[self.names[2]]                                                  # [S, 2]: weight, bias
+        rest = self.feed[self.names[3]][:, None] if self.dof else torch.zeros_like(r[:, :1])
+        n = r[:, :1] * g / torch.sqrt(g.square().sum(dim=1, keepdim=True) + rest)
+        b = self.mu_b + self.sigma_b * (eps_b / torch.linalg.vector_norm(eps_b, dim=1, keepdim=True)) * r[:, 1:]
+        return n, b
 
     def weights(self, layer: VariationalLayer) -> tuple[torch.Tensor, torch.Tensor]:
         raise NotImplementedError("local draws have no weight sets; use per_draw for the reference")

@@ -16,7 +16,8 @@ export/flip.py, draws nothing itself: onnxruntime's generators cost 6-17 ns a
 number; numpy fills the bench MLP's 60k noise numbers at S = 32 in about
 43 us, mostly signs from raw bits). The input's name says its law, by the
 part before the first dot: ``signs`` uniform +-1 (one random bit each),
-``normals`` N(0, 1), ``uniforms`` uniform on (0, 1]; the shape is the
+``normals`` N(0, 1), ``uniforms`` uniform on (0, 1], ``chisquare`` chi-square
+with the degrees of freedom the name ends with (``.dof<k>``); the shape is the
 graph's, fixed. ``load()`` reads them from the session, so the bundle needs no
 extra manifest field, and a graph with an input of another law is refused
 (``UnsupportedFormat``). The numbers come from one ``numpy`` PCG64 generator
@@ -57,15 +58,8 @@ from typing import Any, TypeVar
 import numpy as np
 import onnxruntime as ort
 
-from demur.serve.core.bundle import (
-    FRESH_KINDS,
-    NOISE_LAWS,
-    SEED_MODULUS,
-    Bundle,
-    Manifest,
-    node_seed,
-    noise_law,
-)
+from demur.serve.core.bundle import FRESH_KINDS, Bundle, Manifest
+from demur.serve.core.noise import NOISE_LAWS, SEED_MODULUS, node_seed, noise_dof, noise_law
 from demur.serve.config import GRAPH_CHOICES
 from demur.serve.errors import ChecksumMismatch, ConfigError, GraphRunError, InvalidInput, NotLoaded, UnsupportedFormat
 
@@ -127,7 +121,11 @@ class _Noise:
         self.inputs = inputs                                   # (name, law, shape), in graph order
         self.counts = dict.fromkeys(NOISE_LAWS, 0)
         self._parts: list[tuple[str, str, int, int, tuple[int, ...]]] = []  # name, law, start, end, shape
+        self._chi: list[tuple[str, int, tuple[int, ...]]] = []              # name, degrees of freedom, shape
         for name, law, shape in inputs:
+            if law == "chisquare":
+                self._chi.append((name, int(noise_dof(name) or 0), shape))
+                continue
             size = int(np.prod(shape))
             self._parts.append((name, law, self.counts[law], self.counts[law] + size, shape))
             self.counts[law] += size
@@ -142,7 +140,8 @@ class _Noise:
                 continue
             law = noise_law(arg.name)
             shape = tuple(arg.shape)
-            if law not in NOISE_LAWS or arg.type != "tensor(float)" or not all(isinstance(d, int) for d in shape):
+            if (law not in NOISE_LAWS or arg.type != "tensor(float)" or not all(isinstance(d, int) for d in shape)
+                    or (law == "chisquare" and noise_dof(arg.name) is None)):
                 raise UnsupportedFormat(
                     f"the {kind} graph has an input '{arg.name}' ({arg.type}, shape {list(shape)}) that this engine "
                     f"cannot fill: noise inputs are float32 of fixed shape named {', '.join(NOISE_LAWS)}; re-export "
@@ -162,7 +161,10 @@ class _Noise:
         if self.counts["uniforms"]:
             u = self.rng.random(self.counts["uniforms"], dtype=np.float32)   # [0, 1) in steps of 2**-24
             blocks["uniforms"] = np.subtract(np.float32(1.0), u, out=u)     # (0, 1]: logs stay finite
-        return {name: blocks[law][start:end].reshape(shape) for name, law, start, end, shape in self._parts}
+        out = {name: blocks[law][start:end].reshape(shape) for name, law, start, end, shape in self._parts}
+        for name, dof, shape in self._chi:
+            out[name] = self.rng.chisquare(dof, shape).astype(np.float32)
+        return out
 
 
 @dataclass(frozen=True)

@@ -48,12 +48,9 @@ __all__ = [
     "FORMAT_VERSION",
     "FRESH_KINDS",
     "GRAPH_KINDS",
-    "NOISE_LAWS",
     "SCORES",
     "SCORE_TASKS",
     "SCORE_UNITS",
-    "SEED_MODULUS",
-    "SEED_STRIDE",
     "Bundle",
     "DecisionSection",
     "FingerprintSection",
@@ -64,8 +61,6 @@ __all__ = [
     "TrainingData",
     "TrainingSection",
     "load_bundle",
-    "node_seed",
-    "noise_law",
     "sha256_file",
     "write_bundle",
     "write_manifest",
@@ -80,24 +75,11 @@ GRAPH_KINDS = ("stacked", "sampler", "means", "flip")
 """stacked: S pre-drawn weight sets in one graph (output noise where draws enter a dense layer,
 export/local.py); sampler: fresh weights per call from noise the engine feeds; means: the
 deterministic graph of the posterior means (S = 1); flip: Flipout sign flips on a fresh base per
-call, its noise fed by the engine (export/flip.py); in the fresh kinds a gaussian dense layer draws
-its outputs, not its weights (local reparameterisation, export/local.py)."""
+call, its noise fed by the engine (export/flip.py); in the fresh kinds a dense layer draws its
+outputs, not its weights (local reparameterisation, export/local.py)."""
 
 FRESH_KINDS = ("sampler", "flip")
 """The graph kinds that draw fresh weights on every call (their random nodes are reseeded at load)."""
-
-NOISE_LAWS = ("signs", "normals", "uniforms")
-"""Laws of the noise inputs a graph may take besides ``x``, filled afresh by the engine on
-every call: ``signs`` uniform +-1, ``normals`` N(0, 1), ``uniforms`` uniform on (0, 1]. An
-input's law is its name before the first dot (``noise_law``)."""
-
-SEED_MODULUS = 1 << 24
-"""Seeds of random nodes stay below 2**24, where float32 (RandomNormal's ``seed`` attribute) is exact."""
-
-SEED_STRIDE = 7919
-"""Node ``i`` of a graph seeded with ``base`` gets ``(base + SEED_STRIDE * i) mod SEED_MODULUS``
-(``node_seed``): distinct nodes keep distinct streams. The exporter wrote sampler graphs by
-this rule; the engine reseeds them by it at load."""
 
 SCORE_TASKS: dict[str, tuple[str, ...]] = {
     "mutual_information": ("classification", "regression"),
@@ -122,16 +104,6 @@ SCORE_UNITS: dict[str, str] = {
     "joint_rank": "",
 }
 """The unit of each score, for reports and metric help."""
-
-
-def noise_law(name: str) -> str:
-    """The law of a graph's noise input ``name``: the part before the first dot (``signs.flip.L0`` -> signs)."""
-    return name.split(".")[0]
-
-
-def node_seed(base: int, index: int) -> float:
-    """Seed attribute of the ``index``-th random node of a graph seeded with ``base`` (``SEED_STRIDE``)."""
-    return float((int(base) + SEED_STRIDE * int(index)) % SEED_MODULUS)
 
 
 Task = Literal["classification", "regression"]

@@ -70,13 +70,43 @@ def test_stored_radial_noise_has_the_weight_space_law(d_in: int, out: int) -> No
         assert stats.ks_2samp(a.numpy(), c.numpy()).pvalue > 1e-3, name
 
 
+@torch.no_grad()
+def test_fresh_radial_outputs_have_the_weight_space_law() -> None:
+    """The sampler graph's radial local draws (fed g, radii and the engine's chi-square) against the
+    layer's own weight-space draws, as above; the noise is filled by the serving engine's own
+    generator (serve/adapters/engine.py), chi-square included."""
+    from demur.serve.adapters.engine import _Noise
+
+    layer = _layer("radial", 12, 5)
+    x = torch.randn(1, 12, generator=torch.Generator().manual_seed(1))
+    net = DrawNetwork(nn.Sequential(layer), "sampler", 8, seed=0, input_shape=(12,))
+    assert [n.name for n in net.noise][-1] == "chisquare.L0.dof55"                   # 5 x (12 - 1)
+
+    class _Session:  # what _Noise.of reads from an onnxruntime session
+        def get_inputs(self) -> list:
+            return [type("A", (), {"name": n.name, "shape": list(n.shape), "type": "tensor(float)"})
+                    for n in net.noise]
+
+    engine_noise = _Noise.of(_Session(), "sampler", 5)
+    local = []
+    for _ in range(500):
+        feed = engine_noise.draw()
+        local.append(net(x, *(torch.from_numpy(feed[n.name]) for n in net.noise))[:, 0, :])
+    local = torch.cat(local)                                                            # [4000, 5]
+    d = layer.draw(4000, torch.Generator().manual_seed(4))
+    weights = torch.einsum("bi,soi->so", x, d["weight"]) + d["bias"]
+    mean = layer.bias_mu + x @ layer.weight_mu.T
+    assert stats.ks_2samp(local[:, 2].numpy(), weights[:, 2].numpy()).pvalue > 1e-3
+    assert stats.ks_2samp((local - mean).norm(dim=1).numpy(), (weights - mean).norm(dim=1).numpy()).pvalue > 1e-3
+
+
 def test_graphs_match_the_per_draw_reference_in_onnxruntime(tmp_path) -> None:
     for posterior in ("gaussian", "radial"):
         for kind in ("stacked", "sampler", "flip"):
             net = DrawNetwork(backbone_head(posterior), kind, 6, seed=0, input_shape=SHAPE)
             local = [isinstance(lay._draw_mode, LocalDraws) for lay in net.layers]
-            # stacked: where draws enter (the first head layer); fresh kinds: every gaussian dense layer
-            assert local == ([True, False] if kind == "stacked" else [posterior == "gaussian"] * 2), (posterior, kind)
+            # stacked: where draws enter (the first head layer); fresh kinds: every dense layer
+            assert local == ([True, False] if kind == "stacked" else [True, True]), (posterior, kind)
             path = tmp_path / f"{posterior}-{kind}.onnx"
             export_graph(net, path, name=kind)
             x = np.random.default_rng(1).normal(size=(3, *SHAPE)).astype(np.float32)

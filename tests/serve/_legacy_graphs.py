@@ -8,7 +8,7 @@ import numpy as np
 import onnx
 from onnx import TensorProto, helper, numpy_helper
 
-from demur.serve.core.bundle import node_seed
+from demur.serve.core.noise import node_seed
 
 
 def legacy_sampler_graph(inputs: int, outputs: int, draws: int, seed: int) -> onnx.ModelProto:

@@ -119,7 +119,7 @@ def test_reseed_rule_matches_the_exporter() -> None:
     older exporters wrote sampler graphs by."""
     import onnx
 
-    from demur.serve.core.bundle import node_seed
+    from demur.serve.core.noise import node_seed
 
     from tests.serve._legacy_graphs import legacy_sampler_graph
 
@@ -154,7 +154,8 @@ def test_flip_noise_is_fresh_per_call_repeats_under_a_seed_and_differs_between_u
 
 def test_noise_inputs_follow_their_laws(tiny_bundle_factory) -> None:
     """signs: exactly +-1, balanced (scipy.stats.binomtest); normals: scipy.stats.kstest against norm;
-    uniforms: in (0, 1] and kstest against uniform. Over 20 calls of the tiny flip graph."""
+    uniforms: in (0, 1] and kstest against uniform; chi-square: kstest against scipy.stats.chi2 with
+    the name's degrees of freedom. Over 20 calls of the tiny flip graph."""
     from scipy import stats
 
     from demur.serve.adapters.engine import _Noise
@@ -162,16 +163,24 @@ def test_noise_inputs_follow_their_laws(tiny_bundle_factory) -> None:
     engine = Engine(tiny_bundle_factory(kind="flip"), seed=3).load()
     noise = engine._loaded().noise
     assert noise is not None
-    # the flip graph's full-rank base (export/flip.py) feeds signs and normals; uniforms are MC
-    # dropout's law (export/draws.py, uniforms.D{j}): added here with a shape of that form
-    assert {name.split(".")[0] for name, _, _ in noise.inputs} == {"signs", "normals"}
-    noise = _Noise([*noise.inputs, ("uniforms.D0", "uniforms", (8, 1, 16))], seed=3)
-    pooled: dict[str, list[np.ndarray]] = {"signs": [], "normals": [], "uniforms": []}
+    # the tiny radial MLP's dense layers draw their outputs (export/local.py): normals and chi-squares;
+    # signs are Flipout's law (export/flip.py, conv layers) and uniforms MC dropout's (export/draws.py):
+    # added here with shapes of those forms
+    assert {name.split(".")[0] for name, _, _ in noise.inputs} == {"normals", "chisquare"}
+    chi = [(name, int(name.rsplit(".dof", 1)[1])) for name, law, _ in noise.inputs if law == "chisquare"]
+    noise = _Noise([*noise.inputs, ("signs.flip.L9", "signs", (8, 40)), ("uniforms.D0", "uniforms", (8, 1, 16))],
+                   seed=3)
+    pooled: dict[str, list[np.ndarray]] = {"signs": [], "normals": [], "uniforms": [], "chisquare": []}
+    by_name: dict[str, list[np.ndarray]] = {name: [] for name, _ in chi}
     for _ in range(20):
         feed = noise.draw()
         for name, law, shape in noise.inputs:
             assert feed[name].shape == shape and feed[name].dtype == np.float32
             pooled[law].append(feed[name].ravel())
+            if name in by_name:
+                by_name[name].append(feed[name].ravel())
+    for name, dof in chi:
+        assert stats.kstest(np.concatenate(by_name[name]), stats.chi2(dof).cdf).pvalue > 1e-3, name
     signs, normals, uniforms = (np.concatenate(pooled[k]) for k in ("signs", "normals", "uniforms"))
     assert set(np.unique(signs)) == {-1.0, 1.0}
     assert stats.binomtest(int((signs > 0).sum()), signs.size, 0.5).pvalue > 1e-3
