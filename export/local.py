@@ -176,14 +176,20 @@ class _OneLocal(_Mode):
         return F.linear(x, self.mu_w, self.b) + torch.sqrt(F.linear(x.square(), self.var_w)) * self.n
 
 
+_DRY_CASES = 3
+"""Cases in ``local_eligible``'s dry pass: one vector per case means a [3, in] input, so rows
+flattened from a sequence ([B * T, in], T > 1) never pass for cases."""
+
+
 def local_eligible(model: nn.Module, input_shape: tuple[int, ...]) -> set[int]:
-    """ids of the dense variational layers that see one vector per case ([B, in]) and run once per
-    forward: where local reparameterisation is exact (export/local.py). One dry pass on two zero
+    """ids of the dense variational layers that see one vector per case ([B, in], B rows, not a
+    sequence [B, T, in] nor its positions flattened to [B * T, in] rows) and run once per forward:
+    where local reparameterisation is exact (export/local.py). One dry pass on ``_DRY_CASES`` zero
     cases, the layers' own draws made under a forked RNG so the caller's torch RNG is untouched."""
-    seen: dict[int, list[int]] = {}
+    seen: dict[int, list[tuple[int, ...]]] = {}
 
     def record(mod: nn.Module, args: tuple[Any, ...]) -> None:
-        seen.setdefault(id(mod), []).append(args[0].dim() if isinstance(args[0], torch.Tensor) else -1)
+        seen.setdefault(id(mod), []).append(tuple(args[0].shape) if isinstance(args[0], torch.Tensor) else ())
 
     layers = [m for m in model.modules() if isinstance(m, VariationalLinear)]
     hooks = [m.register_forward_pre_hook(record) for m in layers]
@@ -192,7 +198,7 @@ def local_eligible(model: nn.Module, input_shape: tuple[int, ...]) -> set[int]:
         for m in layers:
             m._draw_mode = None
         with torch.no_grad(), torch.random.fork_rng(devices=[]):
-            model(torch.zeros((2, *input_shape)))
+            model(torch.zeros((_DRY_CASES, *input_shape)))
     except Exception:  # the shape errors are reported by the export's own checks; here: no local draws
         return set()
     finally:
@@ -200,7 +206,8 @@ def local_eligible(model: nn.Module, input_shape: tuple[int, ...]) -> set[int]:
             h.remove()
         for m, mode in zip(layers, modes):
             m._draw_mode = mode
-    return {key for key, dims in seen.items() if dims == [2]}
+    return {key for key, shapes in seen.items() if len(shapes) == 1 and len(shapes[0]) == 2
+            and shapes[0][0] == _DRY_CASES}
 
 
 def localise_entries(members: Sequence[nn.Module], entries: Sequence[nn.Module], input_shape: tuple[int, ...],

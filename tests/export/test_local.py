@@ -130,6 +130,18 @@ class _Sequence(nn.Module):
         return self.layer(x.reshape(x.shape[0], 2, 4)).sum(dim=1)
 
 
+class _Rows(nn.Module):
+    """The same sequence flattened to rows [B * T, in] before the layer (the common ``reshape(-1, in)``
+    idiom): still one weight draw shared by a case's positions, though the layer sees 2-d input."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.layer = VariationalLinear(4, 3, posterior="gaussian", init_sigma=0.1)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return self.layer(x.reshape(-1, 4)).reshape(x.shape[0], 2, 3).sum(dim=1)
+
+
 class _Twice(nn.Module):
     """One dense variational layer applied twice per forward (its two calls share one weight draw)."""
 
@@ -141,7 +153,8 @@ class _Twice(nn.Module):
         return self.layer(torch.relu(self.layer(x)))
 
 
-@pytest.mark.parametrize("make, shape", [(_Sequence, (8,)), (_Twice, (4,))], ids=["sequence", "called twice"])
+@pytest.mark.parametrize("make, shape", [(_Sequence, (8,)), (_Rows, (8,)), (_Twice, (4,))],
+                         ids=["sequence", "sequence flattened to rows", "called twice"])
 def test_layers_where_outputs_share_a_draw_keep_weight_draws(make, shape) -> None:
     """Local noise is exact only for one vector per case and one call per forward (export/local.py)."""
     for kind in ("stacked", "sampler", "flip"):
