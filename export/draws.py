@@ -381,6 +381,10 @@ class DrawNetwork(nn.Module):
             self._share()
         elif not self.computation:
             self.computation = "per draw: shared computation switched off"
+        local = [name for m in self.members for name, lay in m.named_modules()
+                 if type(getattr(lay, "_draw_mode", None)).__name__ == "LocalDraws"]
+        if local:
+            self.computation += f"; local reparameterisation (draws made in the outputs) at {', '.join(local)}"
 
     # -- construction ---------------------------------------------------------------------
     def _family(self) -> str:
@@ -481,20 +485,26 @@ class DrawNetwork(nn.Module):
             if self.kind == "stacked":
                 self._localise_entries(plan)
         except NotShareable as exc:
-            self._plan, self.fell_back = None, True
-            self.computation = f"per draw (the whole network runs S times): {exc}"
+            self.fall_back(str(exc))
         except Exception as exc:  # the user's forward raised on the shared path: today's path still works
-            self._plan, self.fell_back = None, True
             first = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
-            self.computation = (f"per draw (the whole network runs S times): the shared forward raised "
-                                f"{type(exc).__name__}: {first}")
+            self.fall_back(f"the shared forward raised {type(exc).__name__}: {first}")
+
+    @property
+    def shared(self) -> bool:
+        """Does the forward run with shared computation (export/shared.py)?"""
+        return self._plan is not None
+
+    def fall_back(self, reason: str) -> None:
+        """Run the whole network once per draw from now on, and say why (``computation``)."""
+        self._plan, self.fell_back = None, True
+        self.computation = f"per draw (the whole network runs S times): {reason}"
 
     def _localise_entries(self, plan: SharedPlan) -> None:
         """Stacked: output noise instead of S weight sets where draws enter a dense layer (export/local.py)."""
         from demur.export.local import localise_entries
 
-        if localise_entries(self.members, plan.entry_layers, self.input_shape, self.seed):
-            self.computation += "; local reparameterisation where draws enter a dense layer"
+        localise_entries(self.members, plan.entry_layers, self.input_shape, self.seed)
 
     def train(self, mode: bool = True) -> DrawNetwork:
         """Always eval: batch norm must use its running statistics (per row, so draws never mix),

@@ -64,6 +64,10 @@ def export_graph(net: DrawNetwork, path: str | Path, *, name: str) -> int:
     except GraphBuildError:
         raise
     except Exception as exc:  # torch raises many unrelated types here; this is the one place they become ours
+        if net.shared:  # ran in torch, but the ONNX tracer cannot follow the shared forward: per draw, said
+            first = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
+            net.fall_back(f"the shared forward did not export to ONNX ({type(exc).__name__}: {first})")
+            return export_graph(net, path, name=name)
         raise _culprit(net, x, exc) from exc
     model = onnx.load_from_string(data)
     if len(data) >= (2 << 30) - (1 << 20):

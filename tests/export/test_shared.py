@@ -146,3 +146,27 @@ def test_untraceable_forward_exports_the_old_way_and_says_so(digits, tmp_path) -
     entry = bundle.manifest.raw["graphs"]["stacked"]
     assert entry["computation"].startswith("per draw") and "TraceError" in entry["computation"]
     _torch_matches_reference(net, torch.randn(3, *SHAPE))
+
+
+class _SizeFromTheCases(torch.nn.Module):
+    """Reads B from the draw-free input and reshapes the draw-carrying output with it: the shared
+    forward runs in torch, but the ONNX tracer cannot follow it (a new user's idiom, found in trial)."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        from demur.export.layers import VariationalLinear
+
+        torch.manual_seed(0)
+        self.var = VariationalLinear(4, 3, posterior="gaussian", init_sigma=0.1)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        B = x.shape[0]
+        return self.var(x.reshape(-1, 4)).reshape(B, 2, 3).sum(1)
+
+
+def test_a_shared_forward_the_onnx_tracer_refuses_exports_per_draw_and_says_so(tmp_path) -> None:
+    x = np.random.default_rng(0).normal(size=(60, 8))
+    with pytest.warns(SharedComputationNotice, match="did not export to ONNX"):
+        bundle = export_model(_SizeFromTheCases().eval(), tmp_path / "b", inputs=input_spec(x[:50]),
+                              labels=["a", "b", "c"], kind="sampler", draws=8, reference=x[50:], seed=0)
+    assert bundle.manifest.raw["graphs"]["sampler"]["computation"].startswith("per draw")
