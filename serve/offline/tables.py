@@ -3,8 +3,8 @@
 The boundary of ``demur score`` (serve/offline/scoring.py) and of the cluster scorer
 (serve/offline/cluster.py): a file's cells become ``Rows`` (raw feature values in the
 bundle's feature order, float64[n, F], plus a reason for each row that cannot be
-scored), read ``chunk_rows`` at a time so memory stays bounded whatever the file's
-size. Columns are matched by name in any order; a column that is neither a feature,
+scored), read ``chunk_rows`` at a time (Parquet: fetched ``READ_ROWS`` at a time and
+sliced) so memory stays bounded whatever the file's size. Columns are matched by name in any order; a column that is neither a feature,
 the id column nor ignored is refused before any row is read (a typo must not pass
 silently).
 
@@ -38,6 +38,7 @@ from demur.serve.errors import ConfigError, InvalidInput
 __all__ = [
     "FORMATS",
     "PARQUET_EXTRA",
+    "READ_ROWS",
     "ROW_GROUP_ROWS",
     "Rows",
     "TableReader",
@@ -61,6 +62,10 @@ ROW_GROUP_ROWS = 65_536
 the digits' 42 output columns), because a row group per 1,024-row chunk keeps a growing
 footer in memory (measured: 707 MB peak RSS over 7.2 million rows) and makes files that
 readers scan slowly."""
+
+READ_ROWS = 8192
+"""Rows a Parquet reader fetches per call and then slices into chunks (about 4 MB for 64
+float64 features): reading is bounded by this or the chunk, whichever is larger."""
 
 _F32_MAX = float(np.finfo(np.float32).max)
 _OK, _EMPTY, _TEXT, _NONFINITE, _RANGE, _TYPE = range(6)
@@ -335,10 +340,14 @@ class _ParquetReader(TableReader):
 
     def __iter__(self) -> Iterator[Rows]:
         columns = [*self._names, *([self._id] if self._id else [])]
-        for batch in self._file.iter_batches(batch_size=self._chunk, columns=columns):
-            rows = arrow_rows(batch, self._names, self._id, self._next_row)
-            self._next_row += rows.size
-            yield rows
+        # read READ_ROWS at a time and hand out zero-copy slices of ``chunk_rows``: a call of
+        # iter_batches costs about as much for 1,024 rows as for 8,192 (measured: 26 ms against
+        # 10 ms for 20,000 rows of 65 columns in 1,024- and 4,096-row reads)
+        for batch in self._file.iter_batches(batch_size=max(self._chunk, READ_ROWS), columns=columns):
+            for start in range(0, batch.num_rows, self._chunk):
+                rows = arrow_rows(batch.slice(start, self._chunk), self._names, self._id, self._next_row)
+                self._next_row += rows.size
+                yield rows
 
 
 def arrow_rows(batch: Any, names: Sequence[str], id_column: str | None, first_row: int,
@@ -499,9 +508,13 @@ class _ArrowWriter(TableWriter):
     def _put(self, table: Any) -> None:
         if self._writer is None:
             if self._kind == "parquet":
+                import pyarrow as pa
                 import pyarrow.parquet as pq
 
-                self._writer = pq.ParquetWriter(self.tmp, table.schema)
+                # dictionary pages for text and ids only: float columns of probabilities rarely
+                # repeat, and trying a dictionary on them cost ~20% of the write (measured)
+                text = [f.name for f in table.schema if not pa.types.is_floating(f.type)]
+                self._writer = pq.ParquetWriter(self.tmp, table.schema, use_dictionary=text)
             else:
                 import pyarrow.csv as pacsv
 
