@@ -165,10 +165,10 @@ class ServedRule:
         abstain = score > rule.threshold
         unit = SCORE_UNITS[rule.score]
         unit = f" {unit}" if unit else ""
-        reason = [
-            f"{rule.score} {v:.4g}{unit} {'>' if a else '<='} threshold {rule.threshold:.4g}"
-            for v, a in zip(score.tolist(), abstain.tolist())
-        ]
+        # "<score> <value>[ unit] <=|> threshold <t>": only the value is formatted per case
+        head, tail = f"{rule.score} ", (f"{unit} <= threshold {rule.threshold:.4g}",
+                                        f"{unit} > threshold {rule.threshold:.4g}")
+        reason = [f"{head}{v:.4g}{tail[a]}" for v, a in zip(score.tolist(), abstain.tolist())]
         if self.support is None:
             return Verdicts(score=score, abstain=abstain, reason=reason)
         outside, why = self.outside(x_raw, len(score), x_std)

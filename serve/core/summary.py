@@ -209,8 +209,12 @@ class RegressionSummary:
 Summary = ClassificationSummary | RegressionSummary
 
 
-def _check_draws(draws: np.ndarray, k: int | None = None) -> np.ndarray:
-    a = np.asarray(draws, dtype=np.float64)
+def _check_draws(draws: np.ndarray, k: int | None = None, *, cast: bool = True) -> np.ndarray:
+    """``draws`` as an array of shape [S >= 1, B, K]: float64, or with ``cast=False`` float32
+    kept as it is (the caller converts it in its own copy)."""
+    a = np.asarray(draws)
+    if cast or a.dtype not in (np.float32, np.float64):
+        a = np.asarray(a, dtype=np.float64)
     if a.ndim != 3:
         raise InvalidInput(f"draws must be a 3-d array [S, B, K]; got shape {list(a.shape)}", field="draws")
     if a.shape[0] < 1:
@@ -220,19 +224,24 @@ def _check_draws(draws: np.ndarray, k: int | None = None) -> np.ndarray:
     return a
 
 
-def _quantiles(a: np.ndarray, probs: tuple[float, ...], axis: int = 0) -> np.ndarray:
-    """Quantiles along ``axis`` from one sort: numpy's default 'linear' rule
-    (h = (S - 1) q, interpolate between order statistics floor(h) and floor(h) + 1),
-    the same values as np.quantile(a, probs, axis=axis), for all probs at once
-    (the quantile axis first, then ``a``'s other axes in order)."""
-    s = np.moveaxis(np.sort(a, axis=axis), axis, 0)
-    n = s.shape[0]
+def _quantiles(a: np.ndarray, probs: tuple[float, ...]) -> np.ndarray:
+    """Quantiles along ``a``'s last axis, which this SORTS IN PLACE (pass a scratch array):
+    numpy's default 'linear' rule (h = (S - 1) q, interpolate between order statistics
+    floor(h) and floor(h) + 1), the same values as np.quantile(a, probs, axis=-1), for all
+    probs at once (the quantile axis first, then ``a``'s other axes in order).
+
+    Why the last axis, in place: numpy sorts a strided axis one gathered slice at a time;
+    on the demo's p [K=10, B=1,024, S=30] sorting contiguous rows of draws measured ~2x
+    faster than the sort along the middle axis of [K, S, B] (a partition at the 4 needed
+    ranks, and a min/max selection network over the draws, measured slower than either)."""
+    a.sort(axis=-1)
+    n = a.shape[-1]
     out = []
     for q in probs:
         h = (n - 1) * q
         lo = int(np.floor(h))
         hi = min(lo + 1, n - 1)
-        out.append(s[lo] + (h - lo) * (s[hi] - s[lo]))
+        out.append(a[..., lo] + (h - lo) * (a[..., hi] - a[..., lo]))
     return np.stack(out)
 
 
@@ -264,33 +273,35 @@ def classification_summary(logits: np.ndarray, level: float = 0.9, *, temperatur
         s = classification_summary(np.zeros((8, 3, 10)), 0.9)
         s.mutual_information   # array([0., 0., 0.]): every draw agrees
     """
-    z = _check_draws(logits)
+    z = _check_draws(logits, cast=False)
     level = _check_level(level)
     n_draws = z.shape[0]
     if z.shape[2] < 2:
         raise InvalidInput(f"a classifier needs K >= 2 logits; got {z.shape[2]}", field="draws")
 
     n_cases, k = z.shape[1], z.shape[2]
-    # Class axis first, [K, S*B]: every reduction over classes is then K whole-row
-    # operations (_rows), and exp runs once over the draws (measured ~2.5x faster
-    # than reducing over a trailing axis of 10 at S = 32, B = 64).
-    zk = np.array(np.moveaxis(z, 2, 0), order="C").reshape(k, -1)  # a copy: changed in place below
+    # Class axis first, [K, B*S] (draws last): every reduction over classes is then K
+    # whole-row operations (_rows), exp runs once over the draws (measured ~2.5x faster
+    # than reducing over a trailing axis of 10 at S = 32, B = 64), and each case's draws of
+    # a class are contiguous for the quantiles' sort. One float64 copy, changed in place below.
+    zk = np.array(z.transpose(2, 1, 0), dtype=np.float64, order="C").reshape(k, -1)
     zk -= _rows(np.maximum, zk)                            # shift by the max logit: exp <= 1
-    e = np.exp(zk)
-    total = _rows(np.add, e)                               # [S*B], >= 1
-    p = e / total                                          # softmax [K, S*B]
-    log_p = zk - np.log(total)                             # log-softmax, finite where p underflows
+    p = np.exp(zk)
+    total = _rows(np.add, p)                               # [B*S], >= 1
+    p /= total                                             # softmax [K, B*S]
+    zk -= np.log(total)                                    # log-softmax, finite where p underflows
     # Σ_k p ln p from log p: finite even where p underflows to 0.
-    expected_entropy = -_rows(np.add, p * log_p).reshape(n_draws, n_cases).mean(axis=0)  # [B]
-    p = p.reshape(k, n_draws, n_cases)
-    mean_probs = p.mean(axis=1)                            # [K, B], p̄
+    zk *= p
+    expected_entropy = -_rows(np.add, zk).reshape(n_cases, n_draws).mean(axis=1)  # [B]
+    p = p.reshape(k, n_cases, n_draws)
+    mean_probs = p.mean(axis=2)                            # [K, B], p̄
     log_mean = np.log(np.where(mean_probs > 0.0, mean_probs, 1.0))  # 0 ln 0 = 0 where every draw underflowed
     predictive_entropy = -_rows(np.add, mean_probs * log_mean)
     mutual_information = predictive_entropy - expected_entropy
     # Round-off of the difference (two sums of the same terms when every draw agrees, e.g. the
     # means graph) is set to 0: ~1e-17 nats of noise must not rank cases or meet a threshold.
     mutual_information[mutual_information <= _ROUND_OFF * np.maximum(predictive_entropy, 1.0)] = 0.0
-    q = _quantiles(p, ((1.0 - level) / 2.0, (1.0 + level) / 2.0), axis=1)  # [2, K, B]
+    q = _quantiles(p, ((1.0 - level) / 2.0, (1.0 + level) / 2.0))  # [2, K, B]; sorts p
     t = _check_temperature(temperature)
     if t != 1.0:  # p -> p^(1/T) / sum_k mean_k^(1/T), in logs (module docstring)
         with np.errstate(divide="ignore", invalid="ignore"):

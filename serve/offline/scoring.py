@@ -134,16 +134,19 @@ class Scorer:
         n = rows.size
         bad = list(rows.bad)
         case_ids = self._case_ids(rows, bad)
-        good = np.fromiter((b is None for b in bad), dtype=bool, count=n)
+        every = bad.count(None) == n    # the common chunk: no bad row, no gathering
+        good = np.ones(n, dtype=bool) if every else np.array([b is None for b in bad], dtype=bool)
         live = self.live
         out = self._empty(rows, bad, live)
         idx = np.flatnonzero(good)
         if idx.size:
             spec = live.manifest.inputs
-            x = rows.x[idx].astype(np.float32).reshape((idx.size, *spec.shape))
+            x = (rows.x if every else rows.x[idx]).astype(np.float32).reshape((idx.size, *spec.shape))
+            at: Any = slice(None) if every else idx
             try:
                 answered = self.runtime.answer_request(
-                    PredictRequest(x=x, case_ids=[case_ids[i] for i in idx.tolist()]), live=live, rendered=self.enqueue)
+                    PredictRequest(x=x, case_ids=case_ids if every else [case_ids[i] for i in idx.tolist()]),
+                    live=live, rendered=self.enqueue)
             except OutputNotFinite as exc:  # those rows get their reason; the rest of the chunk is scored
                 for j in exc.cases:
                     i = int(idx[j])
@@ -151,12 +154,12 @@ class Scorer:
                     good[i] = False
                 keep = np.ones(idx.size, dtype=bool)
                 keep[exc.cases] = False
-                idx, x = idx[keep], x[keep]
+                at, x = idx[keep], x[keep]
                 answered = self.runtime.answer_request(
-                    PredictRequest(x=x, case_ids=[case_ids[i] for i in idx.tolist()]), live=live,
-                    rendered=self.enqueue) if idx.size else None
+                    PredictRequest(x=x, case_ids=[case_ids[i] for i in at.tolist()]), live=live,
+                    rendered=self.enqueue) if at.size else None
             if answered is not None:
-                self._fill(out, idx, answered, live)
+                self._fill(out, at, answered, live)
         return out, good
 
     def _case_ids(self, rows: Rows, bad: list[str | None]) -> list[str | None]:
@@ -191,7 +194,7 @@ class Scorer:
         out["model_checksum"][:] = live.model["checksum"]
         return {name: out[name] for name in self.columns}
 
-    def _fill(self, out: dict[str, Any], idx: np.ndarray, answered: Any, live: Live) -> None:
+    def _fill(self, out: dict[str, Any], idx: np.ndarray | slice, answered: Any, live: Live) -> None:
         s, d = answered.summary, answered.decisions
         out["decision"][idx] = np.where(d.abstain, "abstain", "accept")
         out["reason"][idx] = d.reason
@@ -272,9 +275,9 @@ def score_file(config: ServeConfig, data: str | os.PathLike[str], out: str | os.
         for rows in reader:
             columns, valid = scorer.score(rows)
             writer.write(columns, valid, scorer.columns)
-            decided, n = np.unique(columns["decision"].astype(str), return_counts=True)
-            for name, c in zip(decided.tolist(), n.tolist()):
-                counts[name] += c
+            decided = columns["decision"].tolist()
+            for name in counts:
+                counts[name] += decided.count(name)
             if bar is not None:
                 bar.update(sum(counts.values()))
         if not sum(counts.values()):  # a header and no rows: an output with its header and no rows

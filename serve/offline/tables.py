@@ -3,8 +3,8 @@
 The boundary of ``demur score`` (serve/offline/scoring.py) and of the cluster scorer
 (serve/offline/cluster.py): a file's cells become ``Rows`` (raw feature values in the
 bundle's feature order, float64[n, F], plus a reason for each row that cannot be
-scored), read ``chunk_rows`` at a time so memory stays bounded whatever the file's
-size. Columns are matched by name in any order; a column that is neither a feature,
+scored), read ``chunk_rows`` at a time (Parquet: fetched ``READ_ROWS`` at a time and
+sliced) so memory stays bounded whatever the file's size. Columns are matched by name in any order; a column that is neither a feature,
 the id column nor ignored is refused before any row is read (a typo must not pass
 silently).
 
@@ -38,6 +38,7 @@ from demur.serve.errors import ConfigError, InvalidInput
 __all__ = [
     "FORMATS",
     "PARQUET_EXTRA",
+    "READ_ROWS",
     "ROW_GROUP_ROWS",
     "Rows",
     "TableReader",
@@ -61,6 +62,10 @@ ROW_GROUP_ROWS = 65_536
 the digits' 42 output columns), because a row group per 1,024-row chunk keeps a growing
 footer in memory (measured: 707 MB peak RSS over 7.2 million rows) and makes files that
 readers scan slowly."""
+
+READ_ROWS = 8192
+"""Rows a Parquet reader fetches per call and then slices into chunks (about 4 MB for 64
+float64 features): reading is bounded by this or the chunk, whichever is larger."""
 
 _F32_MAX = float(np.finfo(np.float32).max)
 _OK, _EMPTY, _TEXT, _NONFINITE, _RANGE, _TYPE = range(6)
@@ -335,10 +340,14 @@ class _ParquetReader(TableReader):
 
     def __iter__(self) -> Iterator[Rows]:
         columns = [*self._names, *([self._id] if self._id else [])]
-        for batch in self._file.iter_batches(batch_size=self._chunk, columns=columns):
-            rows = arrow_rows(batch, self._names, self._id, self._next_row)
-            self._next_row += rows.size
-            yield rows
+        # read READ_ROWS at a time and hand out zero-copy slices of ``chunk_rows``: a call of
+        # iter_batches costs about as much for 1,024 rows as for 8,192 (measured: 26 ms against
+        # 10 ms for 20,000 rows of 65 columns in 1,024- and 4,096-row reads)
+        for batch in self._file.iter_batches(batch_size=max(self._chunk, READ_ROWS), columns=columns):
+            for start in range(0, batch.num_rows, self._chunk):
+                rows = arrow_rows(batch.slice(start, self._chunk), self._names, self._id, self._next_row)
+                self._next_row += rows.size
+                yield rows
 
 
 def arrow_rows(batch: Any, names: Sequence[str], id_column: str | None, first_row: int,
@@ -346,15 +355,32 @@ def arrow_rows(batch: Any, names: Sequence[str], id_column: str | None, first_ro
     """``Rows`` from a pyarrow RecordBatch or Table (Parquet chunks, Dask partitions):
     numeric columns convert in C; text columns are parsed as CSV cells are; nulls, bools
     and other types give their rows a reason. ``label`` prefixes row numbers in reasons."""
+    n = batch.num_rows
+    row = np.arange(first_row, first_row + n, dtype=np.int64)
+    shown: dict[tuple[int, int], Any] = {}
+    types: dict[int, str] = {}
+    x = _float64_block(batch, names)
+    codes = None
+    if x is None:
+        x, codes = _column_by_column(batch, names, shown, types)
+    bad: list[str | None] = [None] * n
+    _reasons(x, codes if codes is not None and codes.any() else None, row, names, bad, range(n), shown, types)
+    if label != "row":
+        bad = [b.replace("row ", f"{label} row ", 1) if b else b for b in bad]
+    ids = batch.column(id_column).to_pylist() if id_column else None
+    return Rows(row=row, x=x, bad=bad, ids=ids)
+
+
+def _column_by_column(batch: Any, names: Sequence[str], shown: dict[tuple[int, int], Any],
+                      types: dict[int, str]) -> tuple[np.ndarray, np.ndarray]:
+    """(float64[n, F] values, int8[n, F] codes) of any column types: numbers cast, text parsed,
+    nulls and other types coded (their cells in ``shown``, type names in ``types``)."""
     import pyarrow as pa
     import pyarrow.types as pt
 
     n = batch.num_rows
-    row = np.arange(first_row, first_row + n, dtype=np.int64)
     x = np.zeros((n, len(names)), dtype=np.float64)
     codes = np.zeros(x.shape, dtype=np.int8)
-    shown: dict[tuple[int, int], Any] = {}
-    types: dict[int, str] = {}
     for j, name in enumerate(names):
         col = batch.column(name)
         if isinstance(col, pa.ChunkedArray):
@@ -378,12 +404,22 @@ def arrow_rows(batch: Any, names: Sequence[str], id_column: str | None, first_ro
         if nulls is not None:
             codes[nulls & (codes[:, j] == _OK), j] = _EMPTY
             x[nulls, j] = 0.0
-    bad: list[str | None] = [None] * n
-    _reasons(x, codes if codes.any() else None, row, names, bad, range(n), shown, types)
-    if label != "row":
-        bad = [b.replace("row ", f"{label} row ", 1) if b else b for b in bad]
-    ids = batch.column(id_column).to_pylist() if id_column else None
-    return Rows(row=row, x=x, bad=bad, ids=ids)
+    return x, codes
+
+
+def _float64_block(batch: Any, names: Sequence[str]) -> np.ndarray | None:
+    """float64[n, F] of the feature columns in one conversion when every one is float64 without
+    nulls (the common file: measured 0.16 ms against 1.9 ms column by column for 1,024 rows of
+    64 features), else None (the caller converts and checks column by column)."""
+    import pyarrow as pa
+
+    features = batch.select(list(names))
+    if not names or any(t != pa.float64() for t in features.schema.types):
+        return None
+    try:
+        return np.asarray(features.to_tensor(row_major=True), dtype=np.float64).reshape(batch.num_rows, len(names))
+    except pa.ArrowTypeError:  # nulls: named cell by cell by the caller
+        return None
 
 
 # --- writing ----------------------------------------------------------------------------
@@ -499,9 +535,13 @@ class _ArrowWriter(TableWriter):
     def _put(self, table: Any) -> None:
         if self._writer is None:
             if self._kind == "parquet":
+                import pyarrow as pa
                 import pyarrow.parquet as pq
 
-                self._writer = pq.ParquetWriter(self.tmp, table.schema)
+                # dictionary pages for text and ids only: float columns of probabilities rarely
+                # repeat, and trying a dictionary on them cost ~20% of the write (measured)
+                text = [f.name for f in table.schema if not pa.types.is_floating(f.type)]
+                self._writer = pq.ParquetWriter(self.tmp, table.schema, use_dictionary=text)
             else:
                 import pyarrow.csv as pacsv
 
