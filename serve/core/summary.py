@@ -292,11 +292,12 @@ def classification_summary(logits: np.ndarray, level: float = 0.9, *, temperatur
     zk -= np.log(total)                                    # log-softmax, finite where p underflows
     # Σ_k p ln p from log p: finite even where p underflows to 0.
     zk *= p
-    expected_entropy = -_rows(np.add, zk).reshape(n_cases, n_draws).mean(axis=1)  # [B]
+    # entropies >= 0: np.maximum also turns the -0.0 of a negated zero sum into 0.0 for the response
+    expected_entropy = np.maximum(-_rows(np.add, zk).reshape(n_cases, n_draws).mean(axis=1), 0.0)  # [B]
     p = p.reshape(k, n_cases, n_draws)
     mean_probs = p.mean(axis=2)                            # [K, B], p̄
     log_mean = np.log(np.where(mean_probs > 0.0, mean_probs, 1.0))  # 0 ln 0 = 0 where every draw underflowed
-    predictive_entropy = -_rows(np.add, mean_probs * log_mean)
+    predictive_entropy = np.maximum(-_rows(np.add, mean_probs * log_mean), 0.0)
     mutual_information = predictive_entropy - expected_entropy
     # Round-off of the difference (two sums of the same terms when every draw agrees, e.g. the
     # means graph) is set to 0: ~1e-17 nats of noise must not rank cases or meet a threshold.
@@ -310,7 +311,8 @@ def classification_summary(logits: np.ndarray, level: float = 0.9, *, temperatur
             log_z = np.log(_rows(np.add, np.exp(tempered - top))) + top
             tempered -= log_z
             mean_probs = np.exp(tempered)
-            predictive_entropy = -_rows(np.add, np.where(mean_probs > 0.0, mean_probs * tempered, 0.0))
+            predictive_entropy = np.maximum(-_rows(np.add, np.where(mean_probs > 0.0, mean_probs * tempered, 0.0)),
+                                            0.0)
             q = np.minimum(np.exp(np.log(q) / t - log_z), 1.0)
     mean_probs = np.ascontiguousarray(mean_probs.T)       # [B, K]
     q = np.ascontiguousarray(np.moveaxis(q, 1, 2))         # [2, B, K]

@@ -299,3 +299,13 @@ def test_joint_rank_worked_example():
     assert classification_summary(z, 0.9).joint_rank is None
     s = summarise("classification", z, 0.9, {"score_reference": ref})
     assert np.allclose(s.joint_rank, summary_mod.joint_rank(s.predictive_entropy, s.mutual_information, ref))
+
+
+def test_certain_draws_give_entropies_of_plus_zero() -> None:
+    """Every draw certain of one class: H = 0 exactly (Shannon's definition, 0 ln 0 = 0), never the
+    -0.0 a negated zero sum gives (a trial found "predictive_entropy": -0.0 in responses)."""
+    logits = np.zeros((4, 2, 3))
+    logits[..., 0] = 1e4                      # softmax = (1, 0, 0) in float64
+    s = classification_summary(logits)
+    for values in (s.predictive_entropy, s.expected_entropy, s.mutual_information):
+        assert np.all(values == 0.0) and not np.any(np.signbit(values))
