@@ -27,7 +27,9 @@ remaining squared length, independent of g. So, exactly::
               n = r * g / sqrt(||g||^2 + C),  g ~ N(0, I_out), r ~ N(0, 1)
 
 The bias draw ``b`` is the layer's own (gaussian mu + sigma * eps; radial
-its own direction and radius), as in weight space.
+its own direction and radius), as in weight space. In the fresh gaussian
+draws the bias's normal joins the output's: y_j = x . mu_j + mu_b_j +
+sqrt(sum_i x_i^2 sigma_ji^2 + sigma_b_j^2) * g_j, one normal per output.
 
 What is exact and what is not. Per case, the S outputs are S independent
 draws of exactly the law the S weight draws give: the case's mean,
@@ -100,8 +102,9 @@ class LocalDraws(_Mode):
     """One dense variational layer's S draws by local reparameterisation (module docstring).
 
     ``stored``: (n [S, out], b [S, out]) fixed at export (stacked); None: fresh per call from the
-    fed normals ``normals.L{index}.local`` (g) and ``normals.L{index}.bias``, and, radial,
-    ``normals.L{index}.radius`` [S, 2] (r for the weight and the bias) and
+    fed normals ``normals.L{index}.local`` (g; gaussian: the bias's variance joins the output's, so
+    this is the only input) and, radial, ``normals.L{index}.bias``, ``normals.L{index}.radius`` [S, 2]
+    (r for the weight and the bias) and
     ``chisquare.L{index}.dof{k}`` [S] (C, k = out (in - 1); absent when in = 1)."""
 
     def __init__(self, layer: VariationalLinear, S: int, *, stored: tuple[torch.Tensor, torch.Tensor] | None = None,
@@ -117,21 +120,25 @@ class LocalDraws(_Mode):
         self.names = (f"normals.L{index}.local", f"normals.L{index}.bias", f"normals.L{index}.radius",
                       f"chisquare.L{index}.dof{self.dof}")
         if stored is None:
-            specs = [NoiseInput(self.names[0], (self.S, out)), NoiseInput(self.names[1], (self.S, out))]
+            # gaussian: the bias's normal joins the output's (a sum of independent normals), one input
+            specs = [NoiseInput(self.names[0], (self.S, out))]
             if self.radial:
-                specs.append(NoiseInput(self.names[2], (self.S, 2)))
+                specs += [NoiseInput(self.names[1], (self.S, out)), NoiseInput(self.names[2], (self.S, 2))]
                 if self.dof:
                     specs.append(NoiseInput(self.names[3], (self.S,)))
             self.noise = tuple(specs)
+        self.fold_bias = stored is None and not self.radial
+        """Fresh gaussian draws: b = mu_b and the bias's variance joins the output's (``run``)."""
 
     def _draws(self) -> tuple[torch.Tensor, torch.Tensor]:
         """(n [S, out], b [S, out]) of this call: stored, or from the fed noise (module docstring)."""
         if self.stored is not None:
             return self.stored
         assert self.feed is not None
-        g, eps_b = self.feed[self.names[0]], self.feed[self.names[1]]
+        g = self.feed[self.names[0]]
         if not self.radial:
-            return g, self.mu_b + self.sigma_b * eps_b
+            return g, self.mu_b.expand(self.S, -1)
+        eps_b = self.feed[self.names[1]]
         r = self.feed[self.names[2]]                                                  # [S, 2]: weight, bias
         rest = self.feed[self.names[3]][:, None] if self.dof else torch.zeros_like(r[:, :1])
         n = r[:, :1] * g / torch.sqrt(g.square().sum(dim=1, keepdim=True) + rest)
@@ -148,7 +155,10 @@ class LocalDraws(_Mode):
         # sqrt(x^2 . sigma^2) scaled by each row's largest |x|: x^2 would overflow float32 from |x| ~ 1.8e19,
         # where the layer's own output (x . mu) is still finite
         scale = x.abs().amax(dim=-1, keepdim=True).clamp_min(1e-30)
-        sd = torch.sqrt(F.linear((x / scale).square(), self.var_w)) * scale
+        if self.fold_bias:  # sigma_b^2 scaled like x^2 . sigma^2, so the square root takes one sum
+            sd = torch.sqrt(F.linear((x / scale).square(), self.var_w, self.sigma_b.square() / scale.square())) * scale
+        else:
+            sd = torch.sqrt(F.linear((x / scale).square(), self.var_w)) * scale
         out = int(self.mu_w.shape[0])
         if self.entering:                                               # [B, out] -> [S, B, out]
             y = mean + b[:, None, :] + sd * n[:, None, :]
@@ -163,17 +173,20 @@ class LocalDraws(_Mode):
     def per_draw(self, layer: VariationalLayer) -> list[_Mode]:
         """The reference's S one-draw layers on a plain batch (export/draws.py, ``reference_draws``)."""
         n, b = self._draws()
-        return [_OneLocal(self.mu_w, self.var_w, n[s], b[s]) for s in range(self.S)]
+        var_b = self.sigma_b.square() if self.fold_bias else torch.zeros_like(self.sigma_b)
+        return [_OneLocal(self.mu_w, self.var_w, var_b, n[s], b[s]) for s in range(self.S)]
 
 
 class _OneLocal(_Mode):
-    """Draw s alone: y = x mu^T + b_s + sqrt(x^2 (sigma^2)^T) n_s, per case, on an ordinary batch."""
+    """Draw s alone: y = x mu^T + b_s + sqrt(x^2 (sigma^2)^T + var_b) n_s, per case, on an ordinary
+    batch (var_b: the bias's variance where it joins the output's noise, else 0)."""
 
-    def __init__(self, mu_w: torch.Tensor, var_w: torch.Tensor, n: torch.Tensor, b: torch.Tensor) -> None:
-        self.mu_w, self.var_w, self.n, self.b = mu_w, var_w, n, b
+    def __init__(self, mu_w: torch.Tensor, var_w: torch.Tensor, var_b: torch.Tensor, n: torch.Tensor,
+                 b: torch.Tensor) -> None:
+        self.mu_w, self.var_w, self.var_b, self.n, self.b = mu_w, var_w, var_b, n, b
 
     def run(self, layer: VariationalLayer, x: torch.Tensor) -> torch.Tensor:
-        return F.linear(x, self.mu_w, self.b) + torch.sqrt(F.linear(x.square(), self.var_w)) * self.n
+        return F.linear(x, self.mu_w, self.b) + torch.sqrt(F.linear(x.square(), self.var_w, self.var_b)) * self.n
 
 
 _DRY_CASES = 3
