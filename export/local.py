@@ -154,7 +154,8 @@ class LocalDraws(_Mode):
         mean = F.linear(x, self.mu_w)
         # sqrt(x^2 . sigma^2) scaled by each row's largest |x|: x^2 would overflow float32 from |x| ~ 1.8e19,
         # where the layer's own output (x . mu) is still finite
-        scale = x.abs().amax(dim=-1, keepdim=True).clamp_min(1e-30)
+        # (at least 1, so sigma_b^2 / scale^2 below cannot overflow where x is all zeros)
+        scale = x.abs().amax(dim=-1, keepdim=True).clamp_min(1.0)
         if self.fold_bias:  # sigma_b^2 scaled like x^2 . sigma^2, so the square root takes one sum
             sd = torch.sqrt(F.linear((x / scale).square(), self.var_w, self.sigma_b.square() / scale.square())) * scale
         else:

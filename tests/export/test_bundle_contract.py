@@ -23,6 +23,7 @@ import pytest
 import torch
 
 from demur.serve.core.bundle import FORMAT_NAME, FORMAT_VERSION, GRAPH_KINDS, SCORES
+from demur.serve.core.noise import NOISE_LAWS
 from demur.serve.adapters.engine import Engine
 
 TOL = 1e-4
@@ -145,7 +146,7 @@ def test_graph_interfaces(exported) -> None:
         sess = ort.InferenceSession(str(bundle.graph_path(kind)), providers=["CPUExecutionProvider"])
         x, *noise = sess.get_inputs()
         assert x.name == "x" and x.type == "tensor(float)"
-        assert all(n.name.split(".")[0] in ("signs", "normals", "uniforms") and n.type == "tensor(float)"
+        assert all(n.name.split(".")[0] in NOISE_LAWS and n.type == "tensor(float)"
                    and all(isinstance(d, int) for d in n.shape) for n in noise)   # filled by the engine
         assert isinstance(x.shape[0], str) and list(x.shape[1:]) == list(m.inputs.shape)
         out = sess.get_outputs()[0]

@@ -162,3 +162,20 @@ def test_layers_where_outputs_share_a_draw_keep_weight_draws(make, shape) -> Non
         assert not isinstance(net.layers[0]._draw_mode, LocalDraws), kind
         if kind == "flip":
             assert isinstance(net.layers[0]._draw_mode, FlipDraws)
+
+
+@torch.no_grad()
+@pytest.mark.parametrize("posterior", ["gaussian", "radial"])
+@pytest.mark.parametrize("value", [0.0, 1e-20, 1e20])
+def test_inputs_of_zeros_or_extreme_size_keep_finite_draws(posterior: str, value: float) -> None:
+    """The scaled square root (export/local.py, ``run``): all-zero, tiny and huge (x^2 beyond float32)
+    inputs give finite draws, equal to the plain per-draw formula wherever that one is finite."""
+    layer = _layer(posterior)
+    x = torch.full((2, 12), value)
+    for kind in ("sampler", "stacked"):
+        net = DrawNetwork(nn.Sequential(layer), kind, 6, seed=0, input_shape=(12,))
+        noise = draw_noise(net.noise, np.random.default_rng(0))
+        y = net(x, *(torch.from_numpy(noise[n.name]) for n in net.noise))
+        assert torch.isfinite(y).all(), (kind, value)
+        if value < 1e19:  # the reference squares x itself: comparable only where x^2 is a float32
+            assert torch.allclose(y, reference_draws(net, x, noise), rtol=1e-4, atol=1e-6), (kind, value)
