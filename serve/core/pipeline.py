@@ -236,10 +236,14 @@ def _check_finite(draws: np.ndarray) -> None:
     cases = np.flatnonzero(~np.isfinite(draws).all(axis=(0, 2))).tolist()
     if not cases:  # every draw finite; only their sum overflowed
         return
-    raise OutputNotFinite(
-        f"the model's output is not a finite number for {len(cases)} case(s): their inputs overflow the "
-        "graph's float32 arithmetic (values far beyond the training data); send values in the range the "
-        "model was trained on", field=f"cases[{cases[0]}]", cases=cases)
+    raise _not_finite(cases, f"{len(cases)} case(s)")
+
+
+def _not_finite(cases: list[int], which: str) -> OutputNotFinite:
+    return OutputNotFinite(
+        f"the model's output is not a finite number for {which}: their inputs overflow the graph's float32 "
+        "arithmetic (values far beyond the training data); send values in the range the model was trained on",
+        field=f"cases[{cases[0]}]", cases=cases)
 
 
 def _refuse_bodies(valid: list[tuple[int, PredictRequest]], exc: OutputNotFinite,
@@ -253,10 +257,7 @@ def _refuse_bodies(valid: list[tuple[int, PredictRequest]], exc: OutputNotFinite
         if not mine:
             keep.append((i, r))
             continue
-        answers[i] = OutputNotFinite(
-            f"the model's output is not a finite number for case(s) {mine[:10]}: their inputs overflow the "
-            "graph's float32 arithmetic (values far beyond the training data); send values in the range the "
-            "model was trained on", field=f"cases[{mine[0]}]", cases=mine)
+        answers[i] = _not_finite(mine, f"case(s) {mine[:10]}")
     return keep
 
 
