@@ -46,6 +46,7 @@ from demur.serve.errors import BundleError, BundleNotFound, ChecksumMismatch, Ma
 __all__ = [
     "FORMAT_NAME",
     "FORMAT_VERSION",
+    "F32_LIMIT",
     "FRESH_KINDS",
     "GRAPH_KINDS",
     "SCORES",
@@ -77,6 +78,13 @@ export/local.py); sampler: fresh weights per call from noise the engine feeds; m
 deterministic graph of the posterior means (S = 1); flip: Flipout sign flips on a fresh base per
 call, its noise fed by the engine (export/flip.py); in the fresh kinds a dense layer draws its
 outputs, not its weights (local reparameterisation, export/local.py)."""
+
+F32_LIMIT = (2.0 - 2.0 ** -23) * 2.0 ** 127 + 2.0 ** 103
+"""Every feature value a graph takes must be below this in magnitude: it then rounds to a finite
+float32. The bound is float32's largest value, (2 - 2**-23) * 2**127, plus half its last step
+(2**103), so
+``3.4028235e38``, the way float32's largest value prints, is accepted whether it comes as JSON
+text, a float64 ``.npy`` or a file cell."""
 
 FRESH_KINDS = ("sampler", "flip")
 """The graph kinds that draw fresh weights on every call (their random nodes are reseeded at load)."""

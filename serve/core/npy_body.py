@@ -32,7 +32,7 @@ from dataclasses import dataclass
 import numpy as np
 import numpy.lib.format as npy_format
 
-from demur.serve.core.bundle import InputSpec
+from demur.serve.core.bundle import F32_LIMIT, InputSpec
 from demur.serve.errors import InvalidInput, PayloadTooLarge
 
 __all__ = ["NPY_MEDIA_TYPE", "ArrayBody", "parse_npy", "validate_array"]
@@ -41,7 +41,6 @@ NPY_MEDIA_TYPE = "application/x-npy"
 """The Content-Type of a binary predict body."""
 
 _MAGIC = b"\x93NUMPY"
-_F32_MAX = float(np.finfo(np.float32).max)
 
 
 @dataclass(frozen=True)
@@ -101,7 +100,7 @@ def validate_array(body: ArrayBody, spec: InputSpec, max_cases: int) -> np.ndarr
     if arr.dtype.kind == "f":
         bad = ~np.isfinite(arr)
         if arr.dtype.itemsize > 4:
-            bad |= np.abs(arr) > _F32_MAX
+            bad |= np.abs(arr) >= F32_LIMIT
         if bad.any():
             at = np.unravel_index(int(np.argmax(bad)), arr.shape)
             value = float(arr[at])

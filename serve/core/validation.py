@@ -38,7 +38,7 @@ from typing import Any
 import numpy as np
 import orjson
 
-from demur.serve.core.bundle import InputSpec
+from demur.serve.core.bundle import F32_LIMIT, InputSpec
 from demur.serve.core.npy_body import ArrayBody, validate_array
 from demur.serve.errors import InvalidInput, PayloadTooLarge
 
@@ -50,7 +50,6 @@ BODY_KEYS = ("cases", "case_ids")
 MAX_CASE_ID_CHARS = 200
 """Longest client case id accepted (characters)."""
 
-_F32_MAX = float(np.finfo(np.float32).max)
 _BAD_TEXT = re.compile("[\x00-\x1f\x7f-\x9f\ud800-\udfff]")
 """What no client text may hold: C0 and C1 control characters (NUL included) and lone
 surrogates (U+D800..U+DFFF are not Unicode scalar values, so no UTF-8 form exists;
@@ -223,7 +222,7 @@ def _fast(cases: list[Any], spec: InputSpec) -> np.ndarray | None:
         flat = chain.from_iterable(flat)
     if not set(map(type, flat)) <= _NUMBER_TYPES:
         return None
-    if not np.isfinite(arr).all() or np.abs(arr).max(initial=0.0) > _F32_MAX:
+    if not np.isfinite(arr).all() or np.abs(arr).max(initial=0.0) >= F32_LIMIT:
         return None
     return arr.astype(np.float32).reshape((len(cases), *shape))
 
@@ -317,7 +316,7 @@ def _check_number(value: Any, path: str) -> None:
     if not math.isfinite(number):
         got = "NaN" if math.isnan(number) else ("Infinity" if number > 0 else "-Infinity")
         raise InvalidInput(f"'{path}' must be a finite number; got {got}", field=path)
-    if abs(number) > _F32_MAX:
+    if abs(number) >= F32_LIMIT:
         raise InvalidInput(f"'{path}' is {number:.3g}, outside the float32 range (about ±3.4e38)", field=path)
 
 

@@ -33,6 +33,7 @@ from typing import Any
 
 import numpy as np
 
+from demur.serve.core.bundle import F32_LIMIT
 from demur.serve.errors import ConfigError, InvalidInput
 
 __all__ = [
@@ -67,7 +68,6 @@ READ_ROWS = 8192
 """Rows a Parquet reader fetches per call and then slices into chunks (about 4 MB for 64
 float64 features): reading is bounded by this or the chunk, whichever is larger."""
 
-_F32_MAX = float(np.finfo(np.float32).max)
 _OK, _EMPTY, _TEXT, _NONFINITE, _RANGE, _TYPE = range(6)
 
 
@@ -289,12 +289,12 @@ def _reasons(x: np.ndarray, codes: np.ndarray | None, rows: np.ndarray, names: S
     (the first bad column named, with how many more)."""
     finite = np.isfinite(x)
     if codes is None:
-        if finite.all() and (x.size == 0 or np.abs(x).max() <= _F32_MAX):
+        if finite.all() and (x.size == 0 or np.abs(x).max() < F32_LIMIT):
             return
         codes = np.zeros(x.shape, dtype=np.int8)
     codes[(codes == _OK) & ~finite] = _NONFINITE
     with np.errstate(invalid="ignore"):
-        codes[(codes == _OK) & (np.abs(x) > _F32_MAX)] = _RANGE
+        codes[(codes == _OK) & (np.abs(x) >= F32_LIMIT)] = _RANGE
     for i in np.flatnonzero(codes.any(axis=1)).tolist():
         cols = np.flatnonzero(codes[i]).tolist()
         j = cols[0]

@@ -95,6 +95,33 @@ def test_float32_max_itself_is_accepted() -> None:
     assert np.isfinite(req.x).all()
 
 
+def test_float32_max_as_printed_is_accepted_by_every_transport() -> None:
+    """IEEE 754 round to nearest, ties to even: '3.4028235e38', the way numpy prints float32's largest
+    value, is a float64 just above it that rounds to it, so JSON text and a float64 .npy both carry it
+    (a trial found JSON refusing what a float32 .npy accepted). The halfway value max + 2**103 rounds to
+    infinity, so it is refused, naming the element, by both (file scoring reads the same bound,
+    serve/core/bundle.py's F32_LIMIT)."""
+    import io
+
+    from demur.serve.core.npy_body import parse_npy, validate_array
+
+    printed = json.loads("3.4028235e38")
+    assert printed > F32_MAX and np.float32(printed) == np.float32(F32_MAX)
+    assert np.isfinite(validate_predict(parse_json(b'{"cases": [[3.4028235e38' + b', 0' * 63 + b']]}'), FLAT, 4).x).all()
+    tie = F32_MAX + 2.0 ** 103
+    assert _error({"cases": [[0, tie] + [0] * 62]}).field == "cases[0][1]"
+    for value, ok in ((printed, True), (-printed, True), (tie, False)):
+        buf = io.BytesIO()
+        np.save(buf, np.array([[0.0] * 10 + [value] + [0.0] * 53]))       # float64, as a client would send it
+        body = parse_npy(buf.getvalue())
+        if ok:
+            assert np.isfinite(validate_array(body, FLAT, 4)).all()
+        else:
+            with pytest.raises(InvalidInput) as info:
+                validate_array(body, FLAT, 4)
+            assert info.value.field == "cases[0][10]"
+
+
 def test_missing_feature_named() -> None:
     case = dict.fromkeys(NAMES, 1.0)
     del case["px_r3c4"]
