@@ -302,7 +302,8 @@ class Engine:
             else:
                 raise InvalidInput(f"x must be [B, {', '.join(map(str, spec.shape))}] (or [B, {spec.size}]); "
                                    f"got {list(x.shape)}", field="x")
-        return (x - state.center) / state.scale   # a new C-contiguous float32 array
+        with np.errstate(over="ignore"):   # a value that overflows becomes inf: the pipeline refuses its case
+            return (x - state.center) / state.scale   # a new C-contiguous float32 array
 
     def _run(self, session: Any, x_std: np.ndarray, what: str, noise: _Noise | None = None) -> np.ndarray:
         feed = {"x": x_std, **noise.draw()} if noise is not None else {"x": x_std}

@@ -228,7 +228,9 @@ def _run_engine(engine: Any, x: np.ndarray) -> np.ndarray:
 
 
 def _check_finite(draws: np.ndarray) -> None:
-    """``OutputNotFinite`` naming the cases of ``draws`` [S, B, K] with a NaN or infinite draw."""
+    """``OutputNotFinite`` naming the cases of ``draws`` [S, B, K] with a NaN or infinite draw (also
+    given the standardised cases as [1, B, F]: a finite value far past the training range can
+    standardise to infinity, (x - center) / scale in float32)."""
     with np.errstate(over="ignore", invalid="ignore"):
         total = draws.sum()
     if np.isfinite(total):  # one reduction: NaN and infinity propagate into a sum
@@ -392,6 +394,7 @@ class Runtime:
         manifest = live.manifest
         t1 = time.perf_counter()
         x_std = live.engine.standardise(req.x)   # once: the graph and the support check read it
+        _check_finite(x_std.reshape(1, req.size, -1))   # a value that standardises past float32: no graph run
         draws = live.engine.run_standardised(x_std)
         t2 = time.perf_counter()
         if draws.ndim != 3 or draws.shape[1] != req.size:

@@ -223,7 +223,8 @@ class SupportCheck:
     def standardised(self, x_raw: np.ndarray) -> np.ndarray:
         """float32[B, F]: (x - center) / scale, in float32 (the engine's standardisation)."""
         x = np.asarray(x_raw, dtype=np.float32).reshape(len(x_raw), -1)
-        return (x - self._pre["center"]) / self._pre["scale"]
+        with np.errstate(over="ignore"):   # inf past float32: scores() puts such a case outside the support
+            return (x - self._pre["center"]) / self._pre["scale"]
 
     def _z(self, x_raw: np.ndarray, x_std: np.ndarray | None) -> np.ndarray:
         if x_std is None:
@@ -249,7 +250,8 @@ class SupportCheck:
             blocks = g.reshape(b, width, -1)
             near = np.argpartition(blocks.min(axis=1), k - 1, axis=1)[:, :k]  # [B, k]
             g = np.take_along_axis(blocks, near[:, None, :], axis=2).reshape(b, width * k)
-        kth = np.partition(g, k - 1, axis=1)[:, k - 1] + np.einsum("ij,ij->i", z, z)
+        with np.errstate(invalid="ignore", over="ignore"):  # a case past float32 gets NaN here; scores() makes it inf
+            kth = np.partition(g, k - 1, axis=1)[:, k - 1] + np.einsum("ij,ij->i", z, z)
         return np.sqrt(np.maximum(kth, 0.0)).astype(np.float64)
 
     def scores(self, x_raw: np.ndarray, x_std: np.ndarray | None = None) -> np.ndarray:

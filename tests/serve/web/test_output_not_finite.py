@@ -90,3 +90,46 @@ def test_huge_but_finite_draws_are_served() -> None:
     with pytest.raises(OutputNotFinite) as info:
         _check_finite(draws)
     assert info.value.cases == [2] and info.value.field == "cases[2]"
+
+
+def test_a_value_that_standardises_past_float32_is_refused_before_the_graph(tmp_path: Path) -> None:
+    """(x - center) / scale runs in float32 (the graph's input type): 3e38 over a scale of 0.01 is 3e40,
+    past float32's largest value (about 3.4e38, numpy.finfo(np.float32).max), so it standardises to
+    infinity although validation accepted it. Refused with the same 422 naming the case, before the
+    graph runs, the support check silent (warnings are errors in this suite), the other body answered."""
+    import torch
+
+    from demur.export import export_model
+    from demur.export.layers import build_model
+
+    rng = np.random.default_rng(0)
+    reference = rng.uniform(0.0, 1.0, size=(64, 4))
+    spec = {"names": ["a", "b", "c", "d"], "shape": [4], "dtype": "float32", "center": [0.5] * 4,
+            "scale": [0.01, 1.0, 1.0, 1.0], "low": [0.0] * 4, "high": [1.0] * 4, "kind": "tabular"}
+    torch.manual_seed(0)
+    model = build_model("mlp", [4], 3, "radial", hidden=(8,), init_sigma=0.05)
+    bundle = export_model(model, tmp_path / "bundle", labels=["x", "y", "z"], inputs=spec, reference=reference,
+                          kind="stacked", draws=8, seed=0, name="tiny-scale", version="0")
+    runs = []
+
+    class _Counting:
+        def __init__(self, engine: Engine) -> None:
+            self._engine = engine
+
+        def __getattr__(self, name: str) -> Any:
+            return getattr(self._engine, name)
+
+        def run_standardised(self, x_std: np.ndarray) -> np.ndarray:
+            runs.append(len(x_std))
+            return self._engine.run_standardised(x_std)
+
+    config = ServeConfig(bundle=str(bundle.path), seed=0, data_dir=str(tmp_path / "data"))
+    runtime = Runtime(config, load_engine=lambda p: _Counting(Engine(load_bundle(p), seed=0)))
+    runtime.start()
+    runs.clear()
+    _, answers = runtime.answer([{"cases": [[0.5, 0.5, 0.5, 0.5], [3e38, 0.5, 0.5, 0.5]]},
+                                 {"cases": [[0.4, 0.5, 0.6, 0.5]]}])
+    err = answers[0]
+    assert isinstance(err, OutputNotFinite) and err.status == 422 and err.field == "cases[1]"
+    assert len(answers[1]["results"]) == 1
+    assert runs == [1]            # only the second body's case reached the graph
