@@ -65,6 +65,7 @@ class ServeConfig:
     graph: str = "auto"  # auto | stacked | sampler | flip | means
     ort_intra_threads: int = 1
     ort_inter_threads: int = 1
+    blas_threads: int = 1  # numpy's BLAS threads per process (the support check); more oversubscribe the cores
     seed: int | None = None  # fixes the sampler's random stream (tests only)
     # decision
     score: str = ""  # empty: the bundle's decision.score
@@ -189,7 +190,7 @@ def _check(cfg: ServeConfig) -> None:
         raise ConfigError(f"port must be in 1..65535; got {cfg.port}", field="port")
     if cfg.workers < 0:
         raise ConfigError(f"workers must be >= 0 (0: one per core); got {cfg.workers}", field="workers")
-    for name in ("threads", "ort_intra_threads", "ort_inter_threads", "max_cases",
+    for name in ("threads", "ort_intra_threads", "ort_inter_threads", "blas_threads", "max_cases",
                  "max_body_bytes", "queue_max_requests", "drift_window", "abstain_window"):
         if getattr(cfg, name) < 1:
             raise ConfigError(f"{name} must be at least 1; got {getattr(cfg, name)}", field=name)

@@ -317,7 +317,7 @@ print(json.dumps({"base": base, "loaded": rss()}))
 
 def _rss(code: str, *argv: str) -> dict[str, int]:
     out = subprocess.run([sys.executable, "-c", code, *argv], capture_output=True, text=True, timeout=120,
-                         env=child_env())
+                         env=child_env(one_thread=True))
     if out.returncode != 0:
         return {"base": -1, "loaded": -1}
     return json.loads(out.stdout.strip().splitlines()[-1])

@@ -62,10 +62,17 @@ MODEL_ENV = "DEMUR_BENCH_TORCH_MODEL"  # read by torch_app() in the baseline ser
 _P99_MS = 30.0                         # the one-case p99 target (TARGETS in export/bench/engine.py)
 
 
-def child_env(**extra: str) -> dict[str, str]:
-    """The environment of a measured child: no inherited ``DEMUR_*``, one BLAS/OpenMP thread."""
-    env = {k: v for k, v in os.environ.items() if not k.startswith("DEMUR_")}
-    env.update({"OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1", **extra})
+def child_env(*, one_thread: bool = False, **extra: str) -> dict[str, str]:
+    """The environment of a measured child: no inherited ``DEMUR_*`` and no inherited thread
+    settings. ``one_thread``: OpenMP, MKL and OpenBLAS at one thread, for the children whose own
+    code sets none (the torch baseline server, engine-only processes). demur's servers get no such
+    variable: they run with the threads ``demur serve`` sets itself (``blas_threads``,
+    serve/adapters/compute.py), which is what a user gets."""
+    env = {k: v for k, v in os.environ.items()
+           if not k.startswith("DEMUR_") and k not in ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS")}
+    if one_thread:
+        env.update({"OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1"})
+    env.update(extra)
     return env
 
 
@@ -242,7 +249,7 @@ def _parallel_rows(bundle: Bundle, kind: str, xs_file: Path, rows: int, procs: i
     start = time.time() + 3.0  # all loaded before any starts
     argv = [str(bundle.path), kind, str(rows), str(threads), str(start), str(seconds), str(xs_file)]
     children = [subprocess.Popen([sys.executable, "-c", _RATE_DEMUR, *argv], stdout=subprocess.PIPE, text=True,
-                                 env=child_env()) for _ in range(procs)]
+                                 env=child_env(one_thread=True)) for _ in range(procs)]
     total = 0.0
     for child in children:
         out, _ = child.communicate(timeout=120 + seconds)
@@ -289,7 +296,7 @@ class _Runner:
 
     def torch(self, model_file: Path, S: int, workers: int, threads: int, B: int) -> dict[str, Any]:
         port = _free_port()
-        env = child_env(**{MODEL_ENV: str(model_file), "DEMUR_BENCH_DRAWS": str(S)})
+        env = child_env(one_thread=True, **{MODEL_ENV: str(model_file), "DEMUR_BENCH_DRAWS": str(S)})
         r = self._run(_torch_argv(port, workers, threads), env, port, B)
         r.update({"server": "torch_loop_flask", "front": "gthread", "graph": "torch loop", "workers": workers,
                   "threads": threads, "ort_threads": None, "batch_wait_ms": None})

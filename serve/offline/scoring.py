@@ -46,6 +46,7 @@ from typing import Any
 
 import numpy as np
 
+from demur.serve.adapters.compute import engine_loader
 from demur.serve.config import ServeConfig, build_config
 from demur.serve.core.pipeline import CAUTION, Live, ReviewHook, Runtime
 from demur.serve.core.summary import ClassificationSummary
@@ -53,22 +54,11 @@ from demur.serve.core.validation import MAX_CASE_ID_CHARS, PredictRequest, clien
 from demur.serve.errors import ConfigError, InvalidInput, OutputNotFinite
 from demur.serve.offline.tables import Rows, open_reader, open_writer
 
-__all__ = ["DEFAULT_CHUNK_ROWS", "ScoreReport", "Scorer", "engine_loader", "output_columns", "register",
+__all__ = ["DEFAULT_CHUNK_ROWS", "ScoreReport", "Scorer", "output_columns", "register",
            "score_file"]
 
 DEFAULT_CHUNK_ROWS = 1024
 """Rows per graph run: the server's default ``max_cases``, the batch it is measured at."""
-
-
-def engine_loader(config: ServeConfig) -> Any:
-    """``path -> Engine`` with the config's graph and thread settings (what the server opens)."""
-    def load(path: str) -> Any:
-        from demur.serve.adapters.engine import Engine  # onnxruntime: only once a bundle is opened
-        from demur.serve.core.bundle import load_bundle
-
-        return Engine(load_bundle(path), graph=config.graph, intra_threads=config.ort_intra_threads,
-                      inter_threads=config.ort_inter_threads, seed=config.seed)
-    return load
 
 
 def output_columns(manifest: Any, id_column: str | None = None, review: bool = False) -> dict[str, str]:

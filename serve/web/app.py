@@ -28,11 +28,10 @@ from typing import Any
 from flask import Flask, Response, g, request
 from werkzeug.exceptions import HTTPException
 
-from demur.serve.adapters.engine import Engine
+from demur.serve.adapters.compute import engine_loader
 from demur.serve.adapters.metrics import Metrics
 from demur.serve.web.metrics_http import install_metrics
 from demur.serve.config import ServeConfig
-from demur.serve.core.bundle import load_bundle
 from demur.serve.core.pipeline import CAUTION, Runtime
 from demur.serve.errors import DemurError, PayloadTooLarge, Refused, internal_error
 from demur.serve.review.router import ReviewRouter
@@ -64,13 +63,6 @@ def json_response(payload: Any, status: int = 200, headers: list[tuple[str, str]
     if headers:
         response.headers.extend(list(headers.items()) if isinstance(headers, dict) else headers)
     return response
-
-
-def _engine_loader(config: ServeConfig) -> Any:
-    def load(path: str) -> Engine:
-        return Engine(load_bundle(path), graph=config.graph, intra_threads=config.ort_intra_threads,
-                      inter_threads=config.ort_inter_threads, seed=config.seed)
-    return load
 
 
 def create_app(
@@ -107,7 +99,7 @@ def create_app(
         review = ReviewRouter.from_config(config)
     tokens = tokens if tokens is not None else TokenSet.from_config(config)
     app.extensions[AUTH_EXTENSION] = tokens
-    runtime = Runtime(config, load_engine=_engine_loader(config), review=review, metrics=metrics)
+    runtime = Runtime(config, load_engine=engine_loader(config), review=review, metrics=metrics)
     app.extensions[EXTENSION] = runtime
     openapi = OPENAPI_PATH.read_bytes()
 

@@ -66,6 +66,8 @@ def register(subparsers: Any) -> None:
     p.add_argument("--interval-level", type=float, help="interval level in (0, 1), default the bundle's")
     p.add_argument("--graph", choices=GRAPH_CHOICES, help="graph kind to run")
     p.add_argument("--ort-threads", type=int, dest="ort_intra_threads", help="onnxruntime threads per session")
+    p.add_argument("--blas-threads", type=int, help="numpy BLAS threads per worker (default 1: the workers fill the "
+                                                     "cores already)")
     p.add_argument("--max-cases", type=int, help="most cases per request (default 1024)")
     p.add_argument("--max-body-bytes", type=int, help="largest request body (default 8 MiB)")
     p.add_argument("--seed", type=int, help="fix the sampler's random stream (tests only)")
@@ -79,7 +81,7 @@ def register(subparsers: Any) -> None:
 
 
 _FLAG_FIELDS = ("host", "port", "workers", "threads", "trusted_proxies", "score", "threshold", "interval_level", "graph",
-                "ort_intra_threads", "max_cases", "max_body_bytes", "seed", "data_dir", "review_store", "review_order")
+                "ort_intra_threads", "blas_threads", "max_cases", "max_body_bytes", "seed", "data_dir", "review_store", "review_order")
 
 
 def _main(args: argparse.Namespace) -> int:
