@@ -241,7 +241,7 @@ class SupportCheck:
         ones[:, :f], ones[:, f] = z, 1.0
         g = ones @ self._pre["gram"]                           # [B, W * nb]: d^2 - |z|^2
         width: int = self._pre["width"]
-        if width > 1:
+        if width > 1 and b > _DIRECT_ROWS:
             # The k nearest lie in the k blocks with the smallest minima (a block left out has
             # its minimum, and so every member, at or above k chosen blocks' minima, which are
             # k distinct values), so the k-th smallest of those blocks' W * k values is the k-th
@@ -291,6 +291,13 @@ class SupportCheck:
     def describe(self) -> dict[str, Any]:
         """What ``GET /v1/model`` shows (the record without the stored sample)."""
         return {"checked": True, **{k: v for k, v in self.record.items() if k not in ("sample", "margin")}}
+
+
+_DIRECT_ROWS = 128
+"""Up to this many cases ``distance`` partitions all N distances of each case: the preselection's
+extra numpy calls cost more than they save. Measured on the bench bundle's 1,000-row sample (one
+BLAS thread, microseconds per call, preselection / all N): B = 1 26 / 14, B = 64 142 / 130,
+B = 128 262 / 255, B = 256 523 / 537, B = 1,024 2,146 / 2,751."""
 
 
 def _block_width(n: int, k: int) -> int:

@@ -89,6 +89,10 @@ def test_knn_distance_matches_sklearn() -> None:
     ref = NearestNeighbors(n_neighbors=support_mod.NEIGHBOURS).fit(z(x_train).astype(np.float32))
     dist, _ = ref.kneighbors(z(x_new))
     np.testing.assert_allclose(check.distance(x_new), dist[:, -1], rtol=1e-4, atol=1e-4)
+    many = DIGITS[1000:]          # past _DIRECT_ROWS: the block preselection's path
+    assert len(many) > support_mod._DIRECT_ROWS
+    dist, _ = ref.kneighbors(z(many))
+    np.testing.assert_allclose(check.distance(many), dist[:, -1], rtol=1e-4, atol=1e-4)
 
 
 def test_conformal_rank_and_small_samples() -> None:
