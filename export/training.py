@@ -66,7 +66,7 @@ and:
   checkpoint's ``arch`` (``input_sigma_param``) and ``training``. Measured (digits, seed 0): at
   the rho step 1e-3 every first-layer weight widens alike (0.02 -> 0.07); at 1e-2 the ELBO sends
   every first-layer weight, not only those on silent pixels, to the prior (sd ~1; accuracy .958,
-  NLL .30). Not the way to reach the silent inputs; README, "Meeting issue 26's targets".
+  NLL .30). Not the way to reach the silent inputs; README, "Weights on quiet inputs at their prior".
 * **Weights on quiet inputs toward the prior (``silent_inputs``, opt-in).** ``"prior"``: the
   first layer's weights on inputs that are 0 in every standardised training row are set, after
   training, to their exact posterior, the prior; ``"energy"``: every input's weights are moved
@@ -432,7 +432,7 @@ def _fit(
         init_sigma=float(h["init_sigma"]),
         init_spread=None if h["init_spread"] is None else float(h["init_spread"]),
         sigma_param=str(h["sigma_param"]),  # type: ignore[arg-type]
-        input_sigma_param=None if h["input_sigma_param"] is None else str(h["input_sigma_param"]),  # type: ignore[arg-type]
+        input_sigma_param=h["input_sigma_param"],
     )
     if start is not None:
         from demur.export.continual import posterior_as_prior
