@@ -4,7 +4,8 @@
 ``torch.load(..., weights_only=True)`` reads it and nothing else is unpickled. Keys
 (DEVELOPERS.md, "Checkpoint"): ``format`` (``CHECKPOINT_FORMAT``), ``version``
 (``CHECKPOINT_VERSION``), ``arch`` ({"kind", "hidden", "channels", "posterior",
-"prior_scale", "init_sigma"}), ``state_dict``, ``task``, ``labels``, ``inputs`` (the
+"prior_scale", "init_sigma", "sigma_param", "input_sigma_param"}; the last two
+absent in older checkpoints: softplus, and the first layer like the rest), ``state_dict``, ``task``, ``labels``, ``inputs`` (the
 bundle's input spec), ``target``, ``data`` (how to reload the splits), ``metrics``,
 ``training`` (the settings), ``drift_features``. An ensemble checkpoint adds ``members``
 (M), ``member_metrics`` and ``training.member_seeds``; its ``state_dict`` is a list of M
@@ -81,7 +82,7 @@ def load_checkpoint(directory: Path | str) -> tuple[nn.Sequential | list[nn.Sequ
         model = build_model(
             arch["kind"], meta["inputs"]["shape"], outputs, arch["posterior"], prior_scale=arch["prior_scale"],
             hidden=arch["hidden"], channels=arch["channels"], init_sigma=arch.get("init_sigma", 1e-3),
-            sigma_param=arch.get("sigma_param", "softplus"),
+            sigma_param=arch.get("sigma_param", "softplus"), input_sigma_param=arch.get("input_sigma_param"),
         )
         try:
             model.load_state_dict(state)

@@ -61,6 +61,15 @@ def register_train(subparsers: _Subparsers) -> None:
     p.add_argument("--sigma-param", choices=SIGMA_PARAMS, default=DEFAULTS["sigma_param"],
                    help="sigma = softplus(rho) or exp(rho) ('log': steps relative to sigma, so the ELBO sets the "
                         f"spread; default {DEFAULTS['sigma_param']})")
+    p.add_argument("--input-sigma-param", choices=SIGMA_PARAMS, default=DEFAULTS["input_sigma_param"],
+                   help="sigma parameterisation of the first variational layer only (default: as --sigma-param)")
+    p.add_argument("--input-rho-lr", type=float, default=DEFAULTS["input_rho_lr"],
+                   help="Adam step size of the first variational layer's sigma parameters (default: as --rho-lr)")
+    p.add_argument("--silent-inputs", choices=("learn", "prior", "energy"), default=DEFAULTS["silent_inputs"],
+                   help="the first layer's weights on inputs that are 0 in every training row: trained like the "
+                        "rest, set to their exact posterior, the prior ('prior'), or every input's weights moved toward the "
+                        "prior by how little signal it carries in training ('energy'; default "
+                        f"{DEFAULTS['silent_inputs']})")
     p.add_argument("--fit-temperature", action=argparse.BooleanOptionalAction, default=DEFAULTS["fit_temperature"],
                    help="fit a temperature for the predictive mean on the validation split and serve it "
                         f"(default {DEFAULTS['fit_temperature']})")
@@ -105,6 +114,8 @@ def _train(args: argparse.Namespace) -> int:
     ds = load_dataset(args.data, args.target, seed=args.seed, task=args.task)
     options = dict(arch=args.arch, posterior=args.posterior, epochs=args.epochs, seed=args.seed, out=args.out,
                    lr=args.lr, rho_lr=args.rho_lr, init_spread=args.init_spread, sigma_param=args.sigma_param,
+                   input_sigma_param=args.input_sigma_param, input_rho_lr=args.input_rho_lr,
+                   silent_inputs=args.silent_inputs,
                    fit_temperature=args.fit_temperature,
                    batch_size=args.batch_size, prior_scale=args.prior_scale, kl_weight=args.kl_weight,
                    kl_warmup=args.kl_warmup, hidden=args.hidden, channels=args.channels, threads=args.threads)

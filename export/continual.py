@@ -103,6 +103,7 @@ def update_start(prior_from: Path | str | tuple[nn.Module, dict[str, Any]], data
     arch = meta["arch"]
     settings = {"hidden": tuple(arch["hidden"]), "channels": tuple(arch["channels"]),
                 "prior_scale": float(arch["prior_scale"]), "init_sigma": float(arch.get("init_sigma", 1e-3)),
-                "sigma_param": arch.get("sigma_param", "softplus")}
+                "sigma_param": arch.get("sigma_param", "softplus"),
+                "input_sigma_param": arch.get("input_sigma_param")}
     return {"model": model, "meta": meta, "arch": arch["kind"], "posterior": arch["posterior"],
             "settings": settings, "dataset": dataset, "source": source}

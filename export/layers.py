@@ -414,6 +414,7 @@ def build_model(
     init_sigma: float = 1e-3,
     init_spread: float | None = None,
     sigma_param: SigmaParam = "softplus",
+    input_sigma_param: SigmaParam | None = None,
 ) -> nn.Sequential:
     """The demo architectures of ``demur train``.
 
@@ -425,14 +426,23 @@ def build_model(
     further entry of ``channels``, ReLU after each, Flatten, VariationalLinear
     to ``outputs``. Digits: [1,8,8] -> [16,8,8] -> [32,4,4] -> 512 -> 10.
 
-    ``init_sigma`` / ``init_spread`` / ``sigma_param`` go to every layer (module docstring).
+    ``init_sigma`` / ``init_spread`` / ``sigma_param`` go to every layer (module docstring);
+    ``input_sigma_param``, when given, replaces ``sigma_param`` in the first variational layer
+    only (the one that sees the inputs; ``demur train --input-sigma-param``, export/training.py).
     """
-    kw = {"posterior": posterior, "prior_scale": prior_scale, "init_sigma": init_sigma, "init_spread": init_spread,
-          "sigma_param": sigma_param}
+    built: list[int] = []
+
+    def kw() -> dict[str, Any]:
+        first = not built
+        built.append(1)
+        return {"posterior": posterior, "prior_scale": prior_scale, "init_sigma": init_sigma,
+                "init_spread": init_spread,
+                "sigma_param": input_sigma_param if first and input_sigma_param is not None else sigma_param}
+
     return _assemble(
         kind, input_shape, outputs, hidden, channels,
-        linear=lambda a, b: VariationalLinear(a, b, **kw),
-        conv=lambda a, b, stride: VariationalConv2d(a, b, 3, stride=stride, padding=1, **kw),
+        linear=lambda a, b: VariationalLinear(a, b, **kw()),
+        conv=lambda a, b, stride: VariationalConv2d(a, b, 3, stride=stride, padding=1, **kw()),
     )
 
 

@@ -25,7 +25,8 @@ def test_checkpoint_loads_with_weights_only(tmp_path):
     for key in ("arch", "state_dict", "task", "labels", "inputs", "target", "data", "metrics", "drift_features"):
         assert key in raw, key
     assert raw["arch"] == {"kind": "mlp", "hidden": [16], "channels": [16, 32], "posterior": "radial",
-                           "prior_scale": 1.0, "init_sigma": 1e-3, "sigma_param": DEFAULTS["sigma_param"]}
+                           "prior_scale": 1.0, "init_sigma": 1e-3, "sigma_param": DEFAULTS["sigma_param"],
+                           "input_sigma_param": None}
     assert raw["data"] == {"source": "digits", "target": "digit", "seed": 0}
     assert set(raw["inputs"]) >= {"names", "shape", "center", "scale", "low", "high", "kind"}
     assert len(raw["drift_features"]["edges"]) == 64
