@@ -34,7 +34,7 @@ python -c "from demur.export.datasets import load_dataset, write_labelled as w; 
 [w('$BUILD/holdout-' + s + '.csv', *d.split(s)[:1], [str(v) for v in d.split(s)[1]], d.feature_names, 'digit') \
  for s in ('cal', 'test')]"
 demur calibrate "$BUILD/bundle" --data "$BUILD/holdout-cal.csv" --test "$BUILD/holdout-test.csv" \
-  --target-accuracy 0.99 --confidence 0.9 --max-abstain 0.3 --score predictive_entropy --report "$BUILD/report"
+  --target-accuracy 0.99 --confidence 0.9 --max-abstain 0.3 --score joint_rank --report "$BUILD/report"
 
 step "4/8 serve on $URL"
 rm -rf "$BUILD/data"
