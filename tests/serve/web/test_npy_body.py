@@ -121,10 +121,14 @@ def _hand_header(header: str) -> bytes:
     ("{'descr': '<f4', 'fortran_order': False, 'shape': (-2, -32), }", b"\x00" * 256),
     # a zero-byte void dtype: numpy reads the header; np.frombuffer then refuses it
     ("{'descr': '|V0', 'fortran_order': False, 'shape': (1, 64), }", b""),
+    # an unbalanced bracket: numpy's header filter raises tokenize.TokenError, not a ValueError
+    ("{'descr': '<f4', 'fortran_order': False, 'shape': (999999, }", b"\x00" * 256),
+    ("{'descr': '<f4', 'fortran_order': False, 'shape': [[[[(1, 64)", b"\x00" * 256),
 ])
 def test_headers_numpy_reads_but_cannot_hold_cases_are_400_naming_body(client: Any, header: str,
                                                                       values: bytes) -> None:
-    """Found by a new-user trial: both were 500 (reshape / frombuffer raised ValueError)."""
+    """Found by a new-user trial: all were 500 (reshape / frombuffer raised ValueError; numpy's header
+    filter raised tokenize.TokenError)."""
     r = _post(client, _hand_header(header) + values)
     assert r.status_code == 400, r.get_data()
     assert r.get_json()["error"]["field"] == "body"
