@@ -208,6 +208,9 @@ def _export(args: argparse.Namespace) -> int:
     print(f"wrote {bundle.path}: {m.model_name} v{m.model_version} ({m.posterior['family']}), {kind} graph with "
           f"{m.graphs[kind].draws} draws ({sizes}); default threshold {m.decision.score} > "
           f"{m.decision.threshold:.4f} (uncalibrated); checksum {bundle.checksum[:12]}")
+    how = m.raw["graphs"][kind].get("computation")
+    if how:  # where the draws enter, or why the whole network runs once per draw
+        print(f"  {kind} graph: {how}")
     return 0
 
 

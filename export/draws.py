@@ -75,6 +75,7 @@ from demur.serve.core.noise import noise_dof, noise_law
 
 from demur.export.errors import GraphBuildError
 from demur.export.layers import VariationalConv2d, VariationalLayer, VariationalLinear, sample_network
+from demur.export.pooling import fixed_window_pools
 from demur.export.shared import NotShareable, SharedPlan, plan_shared
 
 __all__ = [
@@ -351,6 +352,8 @@ class DrawNetwork(nn.Module):
             raise GraphBuildError(f"a deep ensemble needs at least 2 members; got {len(members)}", field="model")
         # one deepcopy of all members, so a module they share (a frozen backbone) stays one object
         self.members = nn.ModuleList(m.eval() for m in copy.deepcopy(members))
+        for m in self.members:  # adaptive pools the ONNX exporter can write after draws (export/pooling.py)
+            fixed_window_pools(m)
         self.layers = [lay for m in self.members for lay in m.modules() if isinstance(lay, VariationalLayer)]
         self.family = self._family()
         if int(draws) < 1:

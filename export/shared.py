@@ -48,6 +48,8 @@ from typing import Any
 import torch
 from torch import fx, nn
 
+from demur.export.pooling import FixedWindowPool
+
 __all__ = ["CARRY", "CONST", "PLAIN", "NotShareable", "SharedComputationNotice", "SharedPlan", "plan_shared"]
 
 CONST, PLAIN, CARRY = 0, 1, 2
@@ -63,14 +65,15 @@ class SharedComputationNotice(UserWarning):
 
 
 class _Tracer(fx.Tracer):
-    """torch.nn's own modules and demur's draw-making modules are leaves (never traced into)."""
+    """torch.nn's own modules, demur's draw-making modules and its fixed-window pools (export/pooling.py:
+    they read sizes as ints) are leaves (never traced into)."""
 
     def __init__(self, is_source: Callable[[nn.Module], bool]) -> None:
         super().__init__()
         self._is_source = is_source
 
     def is_leaf_module(self, m: nn.Module, module_qualified_name: str) -> bool:
-        return (getattr(m, "_draw_mode", None) is not None or self._is_source(m)
+        return (getattr(m, "_draw_mode", None) is not None or self._is_source(m) or isinstance(m, FixedWindowPool)
                 or super().is_leaf_module(m, module_qualified_name))
 
 

@@ -69,10 +69,15 @@ def parse_npy(data: bytes) -> ArrayBody:
             shape, fortran, dtype = npy_format.read_array_header_2_0(fp)
         else:
             raise ValueError(f"format version {version[0]}.{version[1]} (1.0 and 2.0 are accepted)")
-    except (ValueError, TypeError, SyntaxError, EOFError) as exc:
-        raise InvalidInput(f"body is not a readable .npy array: {str(exc)[:200]}", field="body") from None
-    if dtype.hasobject or dtype.fields is not None or dtype.subdtype is not None:
+    except Exception as exc:  # the header is the client's text: whatever numpy's reader raises
+        # on it (ValueError, SyntaxError, EOFError, tokenize.TokenError for an unbalanced bracket, ...) is a 400
+        raise InvalidInput(f"body is not a readable .npy array: {type(exc).__name__}: {str(exc)[:200]}",
+                           field="body") from None
+    if dtype.hasobject or dtype.fields is not None or dtype.subdtype is not None or dtype.itemsize == 0:
         raise InvalidInput(f"body's .npy array must hold plain numbers; got dtype {str(dtype)[:60]}", field="body")
+    if any(d < 0 for d in shape):  # numpy's header reader lets them through; reshape would fail on them
+        raise InvalidInput(f"body's .npy header declares shape {list(shape)[:8]}: dimensions must not be negative",
+                           field="body")
     count = math.prod(shape)
     have = len(data) - fp.tell()
     if count * dtype.itemsize != have:

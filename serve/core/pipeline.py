@@ -441,6 +441,7 @@ class Runtime:
             "target": dict(m.target) if m.task == "regression" else None,
             "posterior": m.posterior,
             "graph": live.engine.kind,
+            "computation": (m.raw.get("graphs", {}).get(live.engine.kind) or {}).get("computation"),
             "draws": live.engine.draws,
             "interval_level": live.level,
             "decision_rule": live.decision_rule,

@@ -294,7 +294,10 @@ def test_cli_factory_exports_a_users_module(digits, tmp_path: Path, capsys) -> N
             str(tmp_path / "held.csv"), "--target", "digit", "--shape", "1,8,8", "--flip", "--draws", "4",
             "--seed", "3", "--out", str(tmp_path / "bundle")]
     assert main(argv) == 0
-    assert "(radial), flip graph with 4 draws" in capsys.readouterr().out
+    out = capsys.readouterr().out
+    assert "(radial), flip graph with 4 draws" in out
+    # where the draws enter is printed, as the manifest records it (graphs.flip.computation)
+    assert "  flip graph: shared: the draw-free part runs once per call; draws enter at " in out
     from demur.serve.core.bundle import load_bundle
 
     bundle = load_bundle(tmp_path / "bundle")

@@ -106,6 +106,8 @@ def test_model_health_ready_follow_the_schema(client: Any) -> None:
     assert desc["inputs"]["names"][0] == "px_r0c0" and desc["draws"] == 8
     assert desc["decision_rule"]["source"] in ("calibrated", "bundle")
     assert "never replaces" in desc["caution"]
+    # how the served graph computes, as the bundle records it (None for a bundle that records nothing)
+    assert desc["computation"] is None or desc["computation"].startswith(("shared", "per draw", "one pass"))
     _validator("Alive").validate(client.get("/healthz").get_json())
     ready = client.get("/readyz")
     assert ready.status_code == 200

@@ -106,3 +106,29 @@ def test_other_media_types_are_still_415(client: Any) -> None:
     r = _post(client, _npy(_rows(1)), ctype="application/octet-stream")
     assert r.status_code == 415 and r.get_json()["error"]["field"] == "Content-Type"
     assert NPY in r.get_json()["error"]["message"]
+
+
+def _hand_header(header: str) -> bytes:
+    """A version 1.0 .npy preamble around ``header`` (layout: numpy.lib.format's documentation)."""
+    header += " " * (63 - (len(header) + 10) % 64) + "\n"
+    return b"\x93NUMPY\x01\x00" + struct.pack("<H", len(header)) + header.encode()
+
+
+@pytest.mark.parametrize("header, values", [
+    # numpy.lib.format.read_array_header_1_0 accepts negative ints in 'shape' (NumPy 2.x, checked
+    # by hand); the byte count of (-1, -64) matches 64 float32 values, so only the sign can refuse it
+    ("{'descr': '<f4', 'fortran_order': False, 'shape': (-1, -64), }", b"\x00" * 256),
+    ("{'descr': '<f4', 'fortran_order': False, 'shape': (-2, -32), }", b"\x00" * 256),
+    # a zero-byte void dtype: numpy reads the header; np.frombuffer then refuses it
+    ("{'descr': '|V0', 'fortran_order': False, 'shape': (1, 64), }", b""),
+    # an unbalanced bracket: numpy's header filter raises tokenize.TokenError, not a ValueError
+    ("{'descr': '<f4', 'fortran_order': False, 'shape': (999999, }", b"\x00" * 256),
+    ("{'descr': '<f4', 'fortran_order': False, 'shape': [[[[(1, 64)", b"\x00" * 256),
+])
+def test_headers_numpy_reads_but_cannot_hold_cases_are_400_naming_body(client: Any, header: str,
+                                                                      values: bytes) -> None:
+    """Found by a new-user trial: all were 500 (reshape / frombuffer raised ValueError; numpy's header
+    filter raised tokenize.TokenError)."""
+    r = _post(client, _hand_header(header) + values)
+    assert r.status_code == 400, r.get_data()
+    assert r.get_json()["error"]["field"] == "body"

@@ -14,6 +14,7 @@ import json
 import re
 from typing import Any
 
+import numpy as np
 import pytest
 
 from jsonschema import Draft202012Validator
@@ -122,3 +123,24 @@ def test_the_bound_case_schema_allows_exactly_what_the_server_accepts(
         status = c.post("/v1/predict", json=body).status_code
         assert (status == 200) == allowed, (body if len(str(body)) < 300 else str(body)[:300], allowed, status)
         assert status < 500
+
+
+@pytest.mark.parametrize("value, allowed", [
+    # float32's largest value, (2 - 2**-23) * 2**127 (IEEE 754 binary32; numpy.finfo(np.float32).max),
+    # as float32 prints it and as float64 holds it; then the next float64 up, which still rounds to it
+    (3.4028235e38, True), (float(np.finfo(np.float32).max), True), (3.402823466385289e+38, True),
+    # the halfway point to the next power of two, 2**128 - 2**103, rounds to infinity (round half to even)
+    (2.0 ** 128 - 2.0 ** 103, False), (1e39, False),
+])
+@pytest.mark.parametrize("sign", [1.0, -1.0])
+def test_case_number_bound_is_the_float32_rounding_bound(value: float, allowed: bool, sign: float,
+                                                         client: Any) -> None:
+    """The schema fuzz found 3.402823466385289e+38 accepted by the server but outside the document's
+    'maximum' (float32's largest value): the document's bound is validation's F32_LIMIT, exclusive."""
+    with np.errstate(over="ignore"):
+        assert bool(np.isfinite(np.float32(sign * value))) == allowed  # numpy's float64 -> float32 rounding
+    doc = client.get("/openapi.json").get_json()
+    body = {"cases": [[sign * value] + [1.0] * 63]}
+    assert _validator(doc, "PredictRequest").is_valid(body) == allowed
+    status = client.post("/v1/predict", json=body).status_code
+    assert (status < 400 or status == 422) if allowed else status == 400, status
