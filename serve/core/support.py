@@ -67,6 +67,7 @@ from typing import Any
 
 import numpy as np
 
+from demur.serve.core.projection import Projection, projection_record
 from demur.serve.errors import ConfigError, ManifestInvalid
 
 __all__ = [
@@ -199,6 +200,9 @@ class SupportCheck:
     neighbours: int
     threshold: float
     record: dict[str, Any]
+    projection: Projection | None = None
+    """Above ``PROJECT_ABOVE`` features: the distance is measured on ``projection.apply(z)`` and
+    ``sample`` holds the projected rows (serve/core/projection.py); the range check stays per feature."""
     _pre: dict[str, Any] = field(default_factory=dict, init=False, repr=False, compare=False)
 
     def __post_init__(self) -> None:
@@ -235,6 +239,8 @@ class SupportCheck:
         """k-NN distance of each case to the training sample, float64[B] (standardised units);
         ``x_std``: the same cases already standardised (skips standardising them again)."""
         z = self._z(x_raw, x_std)
+        if self.projection is not None:
+            z = self.projection.apply(z)
         b, f = z.shape
         k = min(self.neighbours, self.sample.shape[0])
         ones = np.empty((b, f + 1), dtype=np.float32)
@@ -363,14 +369,20 @@ def support_record(
     needs only a score fixed before the held-out rows are seen)."""
     if summary not in ("rows", "centroids"):
         raise ConfigError(f"summary must be 'rows' or 'centroids'; got {summary!r}", field="support")
-    x = np.asarray(x_train, dtype=np.float64).reshape(len(x_train), -1)
+    x = np.asarray(x_train).reshape(len(x_train), -1)   # no float64 copy: at 3x224x224 that is 2.4 GB
     center = np.asarray(inputs["center"], dtype=np.float64)
     scale = np.asarray(inputs["scale"], dtype=np.float64)
     if x.shape[1] != center.size:
         raise ConfigError(f"x_train has {x.shape[1]} features; the input spec has {center.size}", field="x_train")
     if len(x) > max_sample:
         x = x[np.sort(np.random.default_rng(seed).choice(len(x), max_sample, replace=False))]
-    sample = ((x - center) / scale).astype(np.float32)
+    projected = projection_record(int(center.size), seed=seed)
+    projection = Projection.build(center.size, int(projected["dims"]), seed) if projected is not None else None
+    rows = []
+    for start in range(0, len(x), 256):   # standardised (and projected) in chunks, float32
+        part = ((np.asarray(x[start:start + 256], dtype=np.float64) - center) / scale).astype(np.float32)
+        rows.append(projection.apply(part) if projection is not None else part)
+    sample = np.concatenate(rows) if rows else np.empty((0, center.size), dtype=np.float32)
     if summary == "centroids":
         sample = kmeans_centroids(sample, CENTROIDS, seed=seed)
         neighbours = 1
@@ -385,7 +397,8 @@ def support_record(
                           "training rows"}
     record: dict[str, Any] = {
         "method": f"range check (margin {RANGE_MARGIN:g} scale units) and {neighbours}-nearest-"
-                  f"{'centroid' if summary == 'centroids' else 'neighbour'} distance in standardised units; "
+                  f"{'centroid' if summary == 'centroids' else 'neighbour'} distance in standardised units"
+                  f"{' after a sparse random projection' if projection is not None else ''}; "
                   "split-conformal threshold",
         "stored": stored,
         "neighbours": int(neighbours),
@@ -398,6 +411,8 @@ def support_record(
                    "base64": base64.b64encode(sample.astype("<f4").tobytes()).decode("ascii")},
         "threshold": 0.0,
     }
+    if projected is not None:
+        record["projection"] = projected
     return recalibrated(record, inputs, x_heldout, alpha=alpha, split="validation")
 
 
@@ -443,7 +458,8 @@ def _from_record(record: dict[str, Any], inputs: Any) -> SupportCheck:
     try:
         packed = record["sample"]
         sample = np.frombuffer(base64.b64decode(packed["base64"], validate=True), dtype="<f4")
-        sample = sample.reshape(-1, f).astype(np.float32)
+        projection = _projection(record.get("projection"), f)
+        sample = sample.reshape(-1, projection.dims if projection is not None else f).astype(np.float32)
         vec = {k: np.asarray(record[k], dtype=np.float64) for k in ("low", "high", "margin")}
         threshold = float(record["threshold"])
         neighbours = int(record.get("neighbours", NEIGHBOURS))
@@ -456,8 +472,20 @@ def _from_record(record: dict[str, Any], inputs: Any) -> SupportCheck:
     return SupportCheck(
         names=tuple(str(n) for n in get("names")), low=vec["low"], high=vec["high"], margin=vec["margin"],
         center=np.asarray(get("center"), dtype=np.float64), scale=np.asarray(get("scale"), dtype=np.float64),
-        sample=sample, neighbours=neighbours, threshold=threshold, record=record,
+        sample=sample, neighbours=neighbours, threshold=threshold, record=record, projection=projection,
     )
+
+
+def _projection(record: Any, features: int) -> Projection | None:
+    """The projection a support record names (None if it names none); its R is rebuilt from the seed."""
+    if record is None:
+        return None
+    if not isinstance(record, dict) or record.get("kind") != "very_sparse_random" or int(record["features"]) != features:
+        raise ValueError(f"projection must be a very_sparse_random record for {features} features; got {record!r:.200}")
+    dims, seed = int(record["dims"]), int(record["seed"])
+    if not 1 <= dims <= 65536:
+        raise ValueError(f"projection dims must be in 1..65536; got {dims}")
+    return Projection.build(features, dims, seed)
 
 
 def support_from_manifest(manifest: Any) -> SupportCheck | None:
