@@ -25,7 +25,8 @@ demur_model_info                    info       name, version, checksum of the se
 demur_abstain_ratio                 gauge      abstentions / decisions over the recent window
 demur_abstain_window_cases          gauge      decisions in that window
 demur_abstain_window_abstentions    gauge      abstentions in that window
-demur_drift_feature_psi             gauge      PSI per input feature, label ``feature``
+demur_drift_feature_psi             gauge      PSI per input feature, label ``feature`` (at most 256: past that, a
+                                               fixed random sample of the features, serve/core/drift.py)
 demur_drift_psi_max                 gauge      largest feature PSI
 demur_drift_score_ks                gauge      KS statistic, recent scores vs calibration scores
 demur_drift_score_ks_critical       gauge      KS value noise alone exceeds with probability 0.001
@@ -283,13 +284,15 @@ class Metrics:
             score_ref = ref.get("score") or {}
             if score_ref.get("name") not in (None, rule.score):
                 ref["score"] = {}  # scores on another scale: no KS rather than a wrong one
-            edges = (ref.get("features") or {}).get("edges", [])
-            if edges and len(edges) != m.inputs.size:
+            feats = ref.get("features") or {}
+            edges, indices = feats.get("edges", []), feats.get("indices")
+            monitored = list(range(m.inputs.size)) if indices is None else [int(i) for i in indices]
+            if edges and (len(edges) != len(monitored) or any(not 0 <= i < m.inputs.size for i in monitored)):
                 log.warning("drift_reference has %d features but the inputs have %d; feature drift is off",
                             len(edges), m.inputs.size)
-                ref["features"] = {}
+                ref["features"], monitored = {}, []
             self._drift = DriftMonitor(ref, self.config.drift_window) if ref else None
-            self._feature_names = list(m.inputs.names)
+            self._feature_names = [m.inputs.names[i] for i in monitored]
             self._calibrated_ratio = calibrated_abstain_ratio(m, rule)
             # the certificate covers the calibrated rule only: none for an overridden threshold or score
             same_rule = rule.threshold == m.decision.threshold and rule.score == m.decision.score

@@ -41,6 +41,7 @@ from scipy.stats import kstwobign
 from demur.serve.errors import ConfigError
 
 __all__ = [
+    "DRIFT_MAX_FEATURES",
     "KS_ALPHA",
     "PSI_FLOOR",
     "DriftMonitor",
@@ -54,13 +55,27 @@ __all__ = [
 PSI_FLOOR = 1e-4
 """Smallest fraction used in PSI, for bins empty on either side (common practice)."""
 
+DRIFT_MAX_FEATURES = 256
+"""Inputs with more features than this (images past 16x16) are monitored on a fixed random subset
+of this many features (``features.indices`` in the reference): per-feature bins of every pixel of a
+3x224x224 image would keep 150,528 counters per case in the window (150 MB per worker at 500
+cases), cost about 7 ms per case and publish 150,528 Prometheus series. A shift that moves the
+input distribution moves the sampled pixels' too; which ones is fixed at export, by seed."""
+
 KS_ALPHA = 0.001
 """Level of the KS critical value the score-drift alert compares with: 1 false alarm in 1000 windows."""
 
 
-def feature_reference(x: np.ndarray, bins: int = 10) -> dict[str, Any]:
-    """Quantile-bin reference of raw training inputs ``x``: float[N, F]."""
-    x = np.asarray(x, dtype=np.float64).reshape(len(x), -1)
+def feature_reference(x: np.ndarray, bins: int = 10, *, max_features: int = DRIFT_MAX_FEATURES,
+                      seed: int = 0) -> dict[str, Any]:
+    """Quantile-bin reference of raw training inputs ``x``: float[N, F]; past ``max_features``
+    features, of a random subset of that many (sorted ``indices``, chosen by ``seed``)."""
+    x = np.asarray(x).reshape(len(x), -1)
+    indices = None
+    if x.shape[1] > max_features:
+        indices = np.sort(np.random.default_rng(seed).choice(x.shape[1], max_features, replace=False))
+        x = x[:, indices]
+    x = np.asarray(x, dtype=np.float64)
     qs = np.linspace(0.0, 1.0, bins + 1)[1:-1]
     edges: list[list[float]] = []
     fractions: list[list[float]] = []
@@ -68,7 +83,10 @@ def feature_reference(x: np.ndarray, bins: int = 10) -> dict[str, Any]:
         cuts = np.unique(np.quantile(x[:, j], qs))
         edges.append([float(c) for c in cuts])
         fractions.append([float(f) for f in bin_fractions(x[:, j], cuts)])
-    return {"edges": edges, "fractions": fractions, "bins": bins, "n": int(x.shape[0])}
+    ref: dict[str, Any] = {"edges": edges, "fractions": fractions, "bins": bins, "n": int(x.shape[0])}
+    if indices is not None:
+        ref["indices"] = [int(i) for i in indices]
+    return ref
 
 
 def bin_fractions(values: np.ndarray, cuts: np.ndarray | list[float]) -> np.ndarray:
@@ -144,6 +162,12 @@ class DriftMonitor:
         feats = dict(reference.get("features") or {})
         edges = [np.asarray(e, dtype=np.float64) for e in feats.get("edges", [])]
         self.n_features = len(edges)
+        indices = feats.get("indices")
+        self.indices = None if indices is None else np.asarray(indices, dtype=np.int64)
+        """The input features monitored (``DRIFT_MAX_FEATURES``); None: all of them, in order."""
+        if self.indices is not None and (self.indices.shape != (self.n_features,) or (self.indices < 0).any()):
+            raise ConfigError(f"drift_reference.features.indices must hold {self.n_features} feature indices",
+                              field="drift_reference.features.indices")
         width = max((len(e) for e in edges), default=0)
         # cut points padded with +inf (never below a value), reference fractions padded with 0
         self._cuts = np.full((self.n_features, width), np.inf)
@@ -182,7 +206,12 @@ class DriftMonitor:
         x = x.reshape(x.shape[0], -1)
         if s.shape[0] != x.shape[0]:
             raise ValueError(f"drift: {x.shape[0]} cases but {s.shape[0]} scores")
-        if self.n_features and x.shape[1] != self.n_features:
+        if self.indices is not None and self.n_features:
+            if x.shape[1] <= int(self.indices.max()):
+                raise ValueError(f"drift: cases have {x.shape[1]} features; the reference monitors feature "
+                                 f"{int(self.indices.max())}")
+            x = x[:, self.indices]
+        elif self.n_features and x.shape[1] != self.n_features:
             raise ValueError(f"drift: cases have {x.shape[1]} features; the reference has {self.n_features}")
         if x.shape[0] > self.window:  # only the newest `window` cases can stay
             x, s = x[-self.window :], s[-self.window :]

@@ -179,3 +179,26 @@ def test_digits_clean_split_is_stable_and_shifted_inputs_drift(demo_dataset: obj
     assert psi_clean.max() < 0.25  # no major shift on held-out data of the same source
     assert np.median(psi_shift[left]) > 0.25  # the shifted features read as a major shift
     np.testing.assert_allclose(psi_shift[~left], psi_clean[~left])  # untouched features unchanged
+
+
+def test_a_large_input_is_monitored_on_a_fixed_sample_of_its_features() -> None:
+    """Past DRIFT_MAX_FEATURES features the reference keeps a seeded random subset; the monitor's
+    PSI of each monitored feature equals the PSI (the formula in this module's docstring, checked
+    above against its published form) computed directly on that column."""
+    rng = np.random.default_rng(0)
+    x_train = rng.normal(size=(400, 3000))
+    ref = feature_reference(x_train)
+    assert len(ref["indices"]) == drift.DRIFT_MAX_FEATURES == len(ref["edges"])
+    assert ref == feature_reference(x_train)                       # the same sample every export
+    recent = rng.normal(size=(100, 3000))
+    recent[:, ref["indices"][7]] += 2.0                            # one monitored pixel shifts
+    mon = DriftMonitor({"features": ref}, window=100)
+    mon.observe(recent, np.zeros(100))
+    got = mon.feature_psi()
+    j = ref["indices"][7]
+    want = psi(np.asarray(ref["fractions"][7]), bin_fractions(recent[:, j], ref["edges"][7]))
+    assert got[7] == pytest.approx(want) and got.argmax() == 7
+    small = feature_reference(x_train[:, :64])
+    assert "indices" not in small and len(small["edges"]) == 64
+    with pytest.raises(ValueError, match="monitors feature"):
+        mon.observe(recent[:, :100], np.zeros(100))
