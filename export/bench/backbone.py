@@ -47,9 +47,10 @@ from demur.export.layers import VariationalLinear
 from demur.serve.adapters.engine import Engine
 from demur.serve.core.bundle import GRAPH_KINDS, Bundle, write_bundle
 from demur.serve.core.npy_body import NPY_MEDIA_TYPE
+from demur.serve.core.support import support_from_manifest
 
-__all__ = ["BACKBONE_KINDS", "BayesianLastLayers", "backbone_lines", "backbone_ratios", "backbone_section", "image_spec",
-           "transport_section"]
+__all__ = ["BACKBONE_KINDS", "BayesianLastLayers", "backbone_lines", "backbone_ratios", "backbone_section",
+           "default_sections", "image_spec", "transport_section"]
 
 BACKBONE_KINDS = GRAPH_KINDS
 """Graph kinds measured (every kind of the bundle format); ``means`` is the deterministic network."""
@@ -129,8 +130,23 @@ def _checked_graph(net: DrawNetwork, path: Path, x_std: np.ndarray) -> int:
     return size
 
 
+def default_sections(shape: tuple[int, ...], rows: int, seed: int = 0) -> dict[str, Any]:
+    """The support record and drift reference ``demur export`` writes by default, from ``rows``
+    reference images drawn like the measured cases (uniform on [0, 1]) and ``rows // 4`` held out:
+    what a user's default export serves with (serve/core/support.py; past 1,024 features a projected
+    distance, serve/core/projection.py)."""
+    from demur.serve.core.drift import feature_reference
+    from demur.serve.core.support import support_record
+
+    rng = np.random.default_rng(seed)
+    x = rng.uniform(0.0, 1.0, (rows + rows // 4, int(np.prod(shape)))).astype(np.float32)
+    return {"support": support_record(x[:rows], x[rows:], image_spec(shape), seed=seed),
+            "drift_reference": {"features": feature_reference(x[:rows], seed=seed)}}
+
+
 def _bundle(root: Path, model: nn.Module, shape: tuple[int, ...], S: int, shared: bool,
-            kinds: tuple[str, ...], x_std: np.ndarray) -> tuple[Bundle, dict[str, int], dict[str, str]]:
+            kinds: tuple[str, ...], x_std: np.ndarray, checked: dict[str, Any] | None = None
+            ) -> tuple[Bundle, dict[str, int], dict[str, str]]:
     root.mkdir(parents=True, exist_ok=True)
     entries, sizes, computation = {}, {}, {}
     for kind in kinds:
@@ -141,7 +157,7 @@ def _bundle(root: Path, model: nn.Module, shape: tuple[int, ...], S: int, shared
     bundle = write_bundle(root, model_name="bench-backbone", model_version="0", task="classification",
                           labels=[str(i) for i in range(10)], inputs=image_spec(shape),
                           posterior={"family": "gaussian", "params": 0}, graphs=entries,
-                          decision={"score": "mutual_information", "threshold": 10.0})
+                          decision={"score": "mutual_information", "threshold": 10.0}, **(checked or {}))
     return bundle, sizes, computation
 
 
@@ -181,9 +197,19 @@ def transport_section(bundle: Bundle, x: np.ndarray, root: Path, seconds: int, h
     bodies = _bodies(x)
     cpu = _boundary_cpu_ms(bodies, bundle.manifest.inputs, 0.3)
     out: dict[str, Any] = {"bytes": {k: len(v[0]) for k, v in bodies.items()}, "boundary_cpu_ms": cpu,
-                           "boundary_npy_over_json": cpu["npy"] / cpu["json"]}
+                           "boundary_npy_over_json": cpu["npy"] / cpu["json"],
+                           "manifest_bytes": (bundle.path / "manifest.json").stat().st_size}
+    check = support_from_manifest(bundle.manifest)
+    if check is not None:  # the default export's support check, one case, in process
+        one = x.reshape(1, -1)
+        n, t0 = 0, time.process_time()
+        while n < 3 or time.process_time() - t0 < 0.3:
+            check.check(one)
+            n += 1
+        out["support_cpu_ms"] = (time.process_time() - t0) / n * 1e3
     log(f"  transport {'x'.join(map(str, x.shape))}: boundary CPU per case json {cpu['json']:.3f} ms, npy "
-        f"{cpu['npy']:.3f} ms")
+        f"{cpu['npy']:.3f} ms; support check {out.get('support_cpu_ms', float('nan')):.3f} ms; manifest "
+        f"{out['manifest_bytes'] / 1e6:.1f} MB")
     if http and os.access(WRK, os.X_OK):
         rows = body_cost(bundle, bodies, root, seconds, log)
         med = {k: {m: float(np.median([r[m] for r in rows if r["body"] == k]))
@@ -225,7 +251,12 @@ def backbone_section(cfg: dict[str, Any], root: Path,
         shape = (3, int(side), int(side))
         x_raw = rng.uniform(0.0, 1.0, (max(cfg["backbone_batches"]), *shape)).astype(np.float32)
         x_std = ((x_raw[:2] - 0.5) / 0.25).astype(np.float32)
-        bundle, sizes, computation = _bundle(root / f"backbone-{side}", model, shape, S, True, BACKBONE_KINDS, x_std)
+        # as demur export writes it: support check and drift reference (2,000 reference rows, as many as
+        # the default stores; 500 past 3x32x32, where 2,000 would take GBs to generate and the projected
+        # check's cost per case no longer grows with them)
+        checked = default_sections(shape, 2000 if side <= 32 else 500)
+        bundle, sizes, computation = _bundle(root / f"backbone-{side}", model, shape, S, True, BACKBONE_KINDS, x_std,
+                                             checked)
         variants = [(kind, bundle) for kind in BACKBONE_KINDS]
         if side <= 32:  # today's path for the before/after ratio; at 224 it takes seconds per call
             before, before_sizes, _ = _bundle(root / f"backbone-{side}-per-draw", model, shape, S, False,
@@ -275,6 +306,9 @@ def backbone_lines(section: list[dict[str, Any]]) -> list[str]:
             lines.append(f"  one case JSON {t['bytes']['json'] / 1e3:.0f} kB vs .npy {t['bytes']['npy'] / 1e3:.0f} kB: "
                          f"boundary CPU (parse + validate) {cpu['json']:.3f} vs {cpu['npy']:.3f} ms per case = "
                          f"{t['boundary_npy_over_json']:.3f}x")
+            if "support_cpu_ms" in t:
+                lines.append(f"  the default export's support check: {t['support_cpu_ms']:.3f} ms CPU per case; "
+                             f"manifest {t['manifest_bytes'] / 1e6:.1f} MB")
             for label, m in t.get("http_median", {}).items():
                 lines.append(f"  HTTP one case, {label:>4} body, stacked S={part['draws']}, default demur serve: "
                              f"{m['requests_per_s']:.1f} req/s, p99 {m['p99_ms']:.0f} ms, server CPU "

@@ -199,7 +199,7 @@ class DriftMonitor:
 
     def observe(self, x_raw: np.ndarray, scores: np.ndarray) -> None:
         """Add a batch: raw (unstandardised) inputs float[B, F], decision scores float[B]."""
-        x = np.asarray(x_raw, dtype=np.float64)
+        x = np.asarray(x_raw)   # float64 only for the monitored features (below)
         s = np.asarray(scores, dtype=np.float64).ravel()
         if x.shape[0] == 0 and s.size == 0:
             return
@@ -213,6 +213,7 @@ class DriftMonitor:
             x = x[:, self.indices]
         elif self.n_features and x.shape[1] != self.n_features:
             raise ValueError(f"drift: cases have {x.shape[1]} features; the reference has {self.n_features}")
+        x = np.asarray(x, dtype=np.float64)
         if x.shape[0] > self.window:  # only the newest `window` cases can stay
             x, s = x[-self.window :], s[-self.window :]
         b = x.shape[0]
