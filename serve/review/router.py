@@ -41,10 +41,10 @@ Limits, so no client can flood the people who review:
 - a **ceiling** on pending items (``config.review_max_pending``, default 50,000; 0
   turns it off). Above it the prediction is still answered and the abstention says
   ``{"review": {"queued": false, "reason": "not queued: backlog full"}}``. The
-  pending count is read from the store once a second (``PENDING_REFRESH_S``; every
-  0.1 s past half the ceiling) and this process's own enqueues are added in
-  between, so with several workers the queue can pass the ceiling by what the
-  others queued since the last read;
+  pending count is read from the store once a second (``PENDING_REFRESH_S``; before
+  every batch past half the ceiling) and this process's own enqueues are added in
+  between, so with several workers the queue can pass the ceiling by at most what
+  the others queue between one worker's read and its write (about a batch each);
 - an optional **quota** per caller (``config.review_quota_per_min``: items per
   token fingerprint, ``Answered.caller``, per minute, counted per process; 0, the
   default, turns it off; an open predict endpoint is one caller): above it,
@@ -301,7 +301,9 @@ class ReviewRouter:
             return 1 << 62
         now = self._clock()
         near = 2 * (self._pending + wanted) > self.max_pending
-        every = PENDING_REFRESH_S / 10 if near else PENDING_REFRESH_S
+        # past half the ceiling the store is asked before every batch: a fast worker queues several
+        # batches in 0.1 s, and the others' items must be seen before this one adds to them
+        every = 0.0 if near else PENDING_REFRESH_S
         if now - self._pending_at >= every and time.monotonic() >= self._skip_until:
             self._pending_at = now
             try:
