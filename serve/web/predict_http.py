@@ -9,6 +9,7 @@ What a predict request meets, in order::
 
     Authorization (predict scope)                401 / 403
     Content-Type: application/json (or application/x-npy)   415
+    no Content-Encoding (or identity)            415
     body size <= max_body_bytes                  413
     JSON (or .npy, serve/core/npy_body.py)       400
     admission: fewer than queue_max_requests     503 + Retry-After
@@ -70,6 +71,10 @@ def admit(header: Callable[[str], str | None], body: bytes, *, tokens: TokenSet,
     if media not in ("application/json", NPY_MEDIA_TYPE):
         raise UnsupportedMediaType(f"Content-Type must be application/json (or {NPY_MEDIA_TYPE}: the cases as one "
                                    f"NumPy .npy array); got {ctype or 'no Content-Type'}", field="Content-Type")
+    coding = (header("content-encoding") or "").strip()
+    if coding and coding.lower() != "identity":  # RFC 9110, 8.4: a coding the server does not support is a 415
+        raise UnsupportedMediaType(f"the body is read as sent: Content-Encoding {coding[:40]!r} is not supported; "
+                                   "send it uncompressed", field="Content-Encoding")
     if len(body) > config.max_body_bytes:
         raise PayloadTooLarge(f"body is {len(body)} bytes; the limit is {config.max_body_bytes}", field="body")
     if media == NPY_MEDIA_TYPE:

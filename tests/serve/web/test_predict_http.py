@@ -1,6 +1,7 @@
 """serve/web/predict_http.py: the predict route's checks and headers, shared by both ways in.
 
-References: RFC 9110 section 15.5.16 (415 Unsupported Media Type), 15.5.14 (413 Content
+References: RFC 9110 section 15.5.16 (415 Unsupported Media Type) with 8.4 (a content coding
+the server does not accept: 415), 15.5.14 (413 Content
 Too Large), 15.6.4 (503) with 10.2.3 (Retry-After: a delay in whole seconds); RFC 6750
 section 3 (401 with a ``WWW-Authenticate: Bearer`` challenge, 403 for a missing scope).
 """
@@ -39,6 +40,13 @@ def test_checks_in_order_each_naming_its_field() -> None:
     assert _error(JSON, b"{not json").status == 400
     full = _error(JSON, b"{}", waiting=2)
     assert isinstance(full, Overloaded) and full.status == 503
+
+
+def test_a_content_coding_is_refused_naming_the_header() -> None:
+    """A gzip body would otherwise be read as JSON and refused as malformed (a trial's finding)."""
+    e = _error({**JSON, "content-encoding": "gzip"}, b"\x1f\x8b\x08")
+    assert (e.status, e.field) == (415, "Content-Encoding") and "gzip" in e.message
+    assert _admit({**JSON, "content-encoding": "identity"}, b"{}").body == {}
 
 
 def test_admitted_request_names_its_caller_and_rows() -> None:
