@@ -310,6 +310,29 @@ def _calibrate(b: Bundle, cal: Cases, check: Cases | None, floor_x: np.ndarray |
                               notes=tuple(notes), verdicts=verdicts)
 
 
+def _coverage_warning(before: float, level: float, q: float, mean: np.ndarray, y: np.ndarray) -> str | None:
+    """The warning for a regression model whose own ``level`` interval covered only ``before`` of
+    the held-out cases (None from half the level up). Two causes look alike in coverage and need
+    different fixes: means on another scale than the target (a standardised target left
+    unstandardised: the means' centre or spread is off by more than the target's own spread) and
+    an overconfident model on the right scale (the conformal correction is then the fix)."""
+    if before >= 0.5 * level:
+        return None
+    mean, y = np.asarray(mean, dtype=np.float64), np.asarray(y, dtype=np.float64)
+    spread = float(np.std(y)) or 1.0
+    ratio = float(np.std(mean)) / spread
+    if abs(float(np.mean(mean) - np.mean(y))) > spread or not 0.2 <= ratio <= 5.0:
+        return (f"the model's own {level:.0%} interval covered only {before:.1%} of the cases and its means are off "
+                f"the target's scale (centre {float(np.mean(mean)):.4g} against {float(np.mean(y)):.4g}, spread "
+                f"{ratio:.2g} x the target's): a regression model trained on a standardised target needs "
+                "export_model(target={'center', 'scale'}) or demur export --target-stats; the conformal correction "
+                f"(q = {q:.3g}) widens the interval to hide it, so check the model before serving it")
+    return (f"the model's own {level:.0%} interval covered only {before:.1%} of the cases: its means are on the "
+            "target's scale but its intervals are too narrow (overconfident); the served interval is the conformal "
+            f"one (q = {q:.3g}), which restores the stated coverage. A wider posterior or a larger aleatoric floor "
+            "would give the model's own intervals the same")
+
+
 def _regression(b: Bundle, engine: Engine, served: ServedRule, cal: Cases, check: Cases | None,
                 floor_x: np.ndarray | None, d_cal: np.ndarray, d_test: np.ndarray | None, level: float,
                 target_abstain: float,
@@ -344,12 +367,9 @@ def _regression(b: Bundle, engine: Engine, served: ServedRule, cal: Cases, check
                  "aleatoric_floor": floor,
                  "aleatoric_floor_rule": f"quantile {FLOOR_QUANTILE:g} of the per-case aleatoric variance on "
                                          f"{floor_from} ({len(fx)} cases), target units squared"}
-    if before < 0.5 * level:  # a model on the wrong scale (a target's standardisation left out) looks like this
-        conformal["warning"] = (f"the model's own {level:.0%} interval covered only {before:.1%} of the cases: its "
-                                "means may be on another scale than the target (a regression model trained on a "
-                                "standardised target needs export_model(target={'center', 'scale'}) or demur export "
-                                "--target-stats); the conformal correction (q = "
-                                f"{q:.3g}) widens the interval to hide it, so check the model before serving it")
+    warning = _coverage_warning(before, level, q, raw_v.mean, v_cases.y)
+    if warning:
+        conformal["warning"] = warning
     record = calibration_record(choice, score=score, data=data_info, conformal=conformal)
     record["achieved"].update(_support_share(out_cal, sc_cal > choice.threshold))
     test = None

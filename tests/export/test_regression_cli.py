@@ -123,3 +123,21 @@ def test_a_model_on_the_wrong_scale_is_called_out_by_calibrate(diabetes_bundle, 
     out = calibrate_file(path, "diabetes", coverage=0.9)
     assert any("covered only" in n and "--target-stats" in n for n in out.notes)
     assert out.record["conformal"]["model_coverage_before"] < 0.45
+
+
+def test_the_coverage_warning_tells_a_scale_mistake_from_overconfidence() -> None:
+    """Targets: scikit-learn's bundled diabetes progression (load_diabetes). Means on the target's
+    scale with intervals too narrow are overconfidence (the conformal interval is the fix); the same
+    means standardised, as when a target's standardisation is left out of the export, are a scale
+    mistake. Above half the level there is no warning."""
+    from sklearn.datasets import load_diabetes
+
+    from demur.export.calibration import _coverage_warning
+
+    y = load_diabetes().target.astype(float)
+    near = y + np.random.default_rng(0).normal(0.0, 0.3 * y.std(), size=y.shape)
+    over = _coverage_warning(0.2, 0.9, 1.7, near, y)
+    assert over is not None and "overconfident" in over and "--target-stats" not in over
+    scaled = _coverage_warning(0.2, 0.9, 1.7, (near - y.mean()) / y.std(), y)
+    assert scaled is not None and "--target-stats" in scaled and "off the target's scale" in scaled
+    assert _coverage_warning(0.46, 0.9, 1.7, near, y) is None
