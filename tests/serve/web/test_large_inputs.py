@@ -17,7 +17,6 @@ practice against high-cardinality labels (prometheus.io/docs/practices/naming) f
 from __future__ import annotations
 
 import io
-from pathlib import Path
 from typing import Any
 
 import numpy as np
