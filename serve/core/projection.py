@@ -16,7 +16,7 @@ The projection is part of the score, a fixed function of the case given the reco
 F and dims), so the split-conformal threshold set on projected held-out distances keeps its
 stated false-alarm bound (serve/core/support.py); what the projection changes is only how well
 the distance separates far-off cases, measured in tests/serve/core/test_projection.py.
-R is rebuilt from the seed at load (``projection_matrix``), never stored.
+R is rebuilt from the seed at load (``Projection.build``), never stored.
 """
 
 from __future__ import annotations
@@ -26,7 +26,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["PROJECT_ABOVE", "PROJECTION_DIMS", "Projection", "projection_record"]
+__all__ = ["PROJECT_ABOVE", "PROJECTION_DIMS", "Projection", "projection_for"]
 
 PROJECT_ABOVE = 1024
 """Inputs with more features than this (a 32x32 grey image has 1,024) get a projected support
@@ -81,8 +81,6 @@ class Projection:
                           "signs, scaled so that squared distances are kept in expectation"}
 
 
-def projection_record(features: int, seed: int = 0, dims: int = PROJECTION_DIMS) -> dict[str, object] | None:
-    """The record for an input of ``features`` features: None at or below ``PROJECT_ABOVE``."""
-    if features <= PROJECT_ABOVE:
-        return None
-    return Projection.build(features, dims, seed).record()
+def projection_for(features: int, seed: int = 0, dims: int = PROJECTION_DIMS) -> Projection | None:
+    """The projection an input of ``features`` features gets: None at or below ``PROJECT_ABOVE``."""
+    return Projection.build(features, dims, seed) if features > PROJECT_ABOVE else None

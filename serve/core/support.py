@@ -67,7 +67,7 @@ from typing import Any
 
 import numpy as np
 
-from demur.serve.core.projection import Projection, projection_record
+from demur.serve.core.projection import Projection, projection_for
 from demur.serve.errors import ConfigError, ManifestInvalid
 
 __all__ = [
@@ -376,8 +376,7 @@ def support_record(
         raise ConfigError(f"x_train has {x.shape[1]} features; the input spec has {center.size}", field="x_train")
     if len(x) > max_sample:
         x = x[np.sort(np.random.default_rng(seed).choice(len(x), max_sample, replace=False))]
-    projected = projection_record(int(center.size), seed=seed)
-    projection = Projection.build(center.size, int(projected["dims"]), seed) if projected is not None else None
+    projection = projection_for(int(center.size), seed=seed)
     rows = []
     for start in range(0, len(x), 256):   # standardised (and projected) in chunks, float32
         part = ((np.asarray(x[start:start + 256], dtype=np.float64) - center) / scale).astype(np.float32)
@@ -411,8 +410,8 @@ def support_record(
                    "base64": base64.b64encode(sample.astype("<f4").tobytes()).decode("ascii")},
         "threshold": 0.0,
     }
-    if projected is not None:
-        record["projection"] = projected
+    if projection is not None:
+        record["projection"] = projection.record()
     return recalibrated(record, inputs, x_heldout, alpha=alpha, split="validation")
 
 
