@@ -13,16 +13,12 @@ threads, 13 ms with one thread; the support check alone 11 ms against 0.3 ms per
 
 from __future__ import annotations
 
-import logging
 from collections.abc import Callable
 from typing import Any
 
 from demur.serve.config import ServeConfig
 
 __all__ = ["engine_loader", "limit_blas_threads"]
-
-log = logging.getLogger("demur.compute")
-
 
 def limit_blas_threads(threads: int) -> None:
     """At most ``threads`` BLAS threads in this process from now on (threadpoolctl, which finds
