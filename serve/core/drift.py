@@ -57,10 +57,11 @@ PSI_FLOOR = 1e-4
 
 DRIFT_MAX_FEATURES = 256
 """Inputs with more features than this (images past 16x16, tables of more than 256 columns) are
-monitored on a fixed random subset of this many features (``features.indices`` in the reference): per-feature bins of every pixel of a
-3x224x224 image would keep 150,528 counters per case in the window (150 MB per worker at 500
-cases), cost about 7 ms per case and publish 150,528 Prometheus series. A shift that moves the
-input distribution moves the sampled pixels' too; which ones is fixed at export, by seed."""
+monitored on a fixed random subset of this many features (``features.indices`` in the
+reference): per-feature bins of every pixel of a 3x224x224 image would keep 150,528 counters per
+case in the window (150 MB per worker at 500 cases), cost about 7 ms per case and publish
+150,528 Prometheus series. A shift that moves the input distribution moves the sampled
+features' too; which ones is fixed at export, by seed."""
 
 KS_ALPHA = 0.001
 """Level of the KS critical value the score-drift alert compares with: 1 false alarm in 1000 windows."""
