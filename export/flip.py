@@ -9,8 +9,9 @@ the layer builds its S weight sets ``W_s = mu + D * (c_s a_s^T)`` from the call'
 (``BUILT_WEIGHTS_MAX``) and runs one convolution of the batch with the S sets side by side, as
 stacked draws do, instead of repeating the batch S times through the two convolutions of the
 identity below. The law is the same draw for draw (these are the weights ``FlipDraws.weights``
-gives the reference). Measured (S = 32, B = 1, one onnxruntime thread, flip over stacked): the
-2k-parameter conv net of ``demur bench`` 2.4x -> 1.5-2.1x; the 86k-parameter one 1.85x either way.
+gives the reference). Measured (S = 32, B = 1, one onnxruntime thread, flip over stacked, engine
+runs side by side): the 2k-parameter conv net of ``demur bench`` 2.4x -> 1.5-2.1x, the 86k-parameter
+one 1.85x either way; the day's full ``demur bench`` run gave 2.8x and 2.0x (README, "Performance").
 Built weights on draw-carrying layers too (a grouped convolution) made the 86k-parameter net
 slower (2.0x): building S x 9,216 weights costs more than the second convolution at 4x4 pixels.
 
