@@ -38,7 +38,7 @@ _Subparsers = argparse._SubParsersAction
 def register_train(subparsers: _Subparsers) -> None:
     """Add ``demur train`` to the ``demur`` command."""
     from demur.export.layers import ARCHITECTURES, POSTERIORS, SIGMA_PARAMS
-    from demur.export.training import DEFAULTS
+    from demur.export.training import DEFAULTS, LR_SCHEDULES
 
     p = subparsers.add_parser(
         "train",
@@ -75,6 +75,9 @@ def register_train(subparsers: _Subparsers) -> None:
                         f"(default {DEFAULTS['fit_temperature']})")
     p.add_argument("--init-spread", type=float, default=DEFAULTS["init_spread"],
                    help=f"initial posterior sd of each weight (default {DEFAULTS['init_spread']})")
+    p.add_argument("--lr-schedule", choices=LR_SCHEDULES, default=DEFAULTS["lr_schedule"],
+                   help="every step size kept ('constant') or decayed to 0 along a half cosine ('cosine'; "
+                        f"default {DEFAULTS['lr_schedule']})")
     p.add_argument("--batch-size", type=int, default=DEFAULTS["batch_size"])
     p.add_argument("--kl-weight", type=float, default=DEFAULTS["kl_weight"],
                    help=f"temper the KL term (1 = plain ELBO; default {DEFAULTS['kl_weight']})")
@@ -116,7 +119,7 @@ def _train(args: argparse.Namespace) -> int:
                    lr=args.lr, rho_lr=args.rho_lr, init_spread=args.init_spread, sigma_param=args.sigma_param,
                    input_sigma_param=args.input_sigma_param, input_rho_lr=args.input_rho_lr,
                    silent_inputs=args.silent_inputs,
-                   fit_temperature=args.fit_temperature,
+                   fit_temperature=args.fit_temperature, lr_schedule=args.lr_schedule,
                    batch_size=args.batch_size, prior_scale=args.prior_scale, kl_weight=args.kl_weight,
                    kl_warmup=args.kl_warmup, hidden=args.hidden, channels=args.channels, threads=args.threads)
     members = args.members

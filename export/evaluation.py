@@ -159,15 +159,17 @@ def _recipe(bundle: Bundle | None) -> dict[str, Any]:
     checkpoint records (``extensions.training.arch`` / ``.settings``); ``recorded`` is False
     (and the training defaults, MLP, are used) when the bundle records none: a model of the
     user's own, or an export from before the record existed."""
-    from demur.export.training import DEFAULTS
+    from demur.export.training import DEFAULTS, UNRECORDED
 
     t = bundle.manifest.training if bundle is not None else None
     settings, arch = (t.settings, t.arch) if t is not None else (None, None)
     recorded = settings is not None and arch is not None and arch.get("kind") in ("mlp", "conv")
     chosen = {k: settings[k] for k in DEFAULTS if recorded and settings is not None and k in settings}
     seed = settings.get("seed") if recorded and settings is not None else None
+    # a setting added after the bundle was trained: it was trained the way demur did then
+    before = UNRECORDED if recorded else {}
     return {"recorded": recorded, "arch": arch["kind"] if recorded and arch is not None else "mlp",
-            "settings": {**DEFAULTS, **chosen}, "seed": int(seed) if isinstance(seed, int) else None}
+            "settings": {**DEFAULTS, **before, **chosen}, "seed": int(seed) if isinstance(seed, int) else None}
 
 
 def _baseline(members: list[Any], bundle: Bundle, x: np.ndarray, y: np.ndarray,

@@ -76,6 +76,14 @@ and:
   quiet pixels stay quiet get nearly the same predictive. The default since the 5-seed
   measurement (README, "Weights on quiet inputs at their prior"): far-off AUROC (predictive
   entropy) .895 / .930 -> .997 / .963, NLL .078 -> .079, unseen class .948 -> .947.
+* **Step sizes decayed along a half cosine (``lr_schedule``, default ``"cosine"``).** Every
+  param group's step (the means' ``lr`` and the sigmas' ``rho_lr``) goes from its set value to
+  0 over the run, eta_t = eta (1 + cos(pi t / T)) / 2 (Loshchilov & Hutter, "SGDR", ICLR 2017,
+  eq. (5), one cycle, eta_min = 0; common practice for the last steps of a noisy ELBO, whose
+  one weight draw per step keeps a constant-step Adam wandering). The default since the 5-seed
+  measurement in README, "The step-size schedule": NLL .078 -> .076, ECE .022 -> .018, unseen
+  class (joint rank) .944 -> .949, uniform noise .974 -> .982, the same cost; on scikit-learn's
+  breast cancer, wine and diabetes no worse. ``"constant"`` trains as before.
 * **Served temperature and score reference.** For a classifier ``served_statistics`` records in
   ``target`` the PE and MI quantiles of the training rows (the ``joint_rank`` score,
   serve/core/summary.py) and, with ``--fit-temperature``, a temperature fitted on the
@@ -143,8 +151,10 @@ __all__ = [
     "EVAL_DRAWS",
     "KL_WARMUP",
     "KL_WEIGHT",
+    "LR_SCHEDULES",
     "SCALE_FLOOR",
     "TrainResult",
+    "UNRECORDED",
     "elbo_optimiser",
     "kl_weight",
     "predict_draws",
@@ -187,8 +197,14 @@ DEFAULTS: dict[str, Any] = {
     "hidden": (256, 256),
     "channels": (16, 32),
     "threads": 1,
+    "lr_schedule": "cosine",
 }
 """Training settings used when ``train`` is not told otherwise."""
+
+UNRECORDED: dict[str, Any] = {"silent_inputs": "learn", "lr_schedule": "constant"}
+"""How a checkpoint that does not record a setting was trained: each was added, with a new
+default, after such checkpoints were written (``demur evaluate --holdout-class`` retrains them
+as they were, not with today's defaults)."""
 
 
 @dataclass(frozen=True)
@@ -334,6 +350,9 @@ def train(
     if h["silent_inputs"] not in SILENT_INPUTS:
         raise LayerConfigError(f"silent_inputs must be one of {list(SILENT_INPUTS)}; got {h['silent_inputs']!r}",
                                field="silent_inputs")
+    if h["lr_schedule"] not in LR_SCHEDULES:
+        raise LayerConfigError(f"lr_schedule must be one of {list(LR_SCHEDULES)}; got {h['lr_schedule']!r}",
+                               field="lr_schedule")
     if int(h["threads"]) < 1:
         raise LayerConfigError(f"threads must be >= 1; got {h['threads']}", field="threads")
     previous_threads = torch.get_num_threads()
@@ -448,6 +467,7 @@ def _fit(
     steps_per_epoch = math.ceil(n / bs)
     total_steps = h["epochs"] * steps_per_epoch
     shuffle = torch.Generator().manual_seed(seed)
+    schedule = _lr_schedule(opt, str(h["lr_schedule"]), total_steps)
     history: list[dict[str, float]] = []
     show = sys.stderr.isatty() if progress is None else progress
     from tqdm import tqdm
@@ -470,6 +490,7 @@ def _fit(
             opt.zero_grad(set_to_none=True)
             loss.backward()
             opt.step()
+            schedule.step()
             step += 1
             sums["nll"] += nll.item() * len(idx) / n
             sums["kl"] = kl.item()
@@ -543,6 +564,18 @@ def kl_weight(step: int, total_steps: int, *, warmup: float = KL_WARMUP, weight:
     ``nll + kl_weight(step, total) * total_kl(model) / n_train`` (module docstring)."""
     warm = max(1, int(round(float(warmup) * int(total_steps))))
     return min(1.0, (int(step) + 1) / warm) * float(weight)
+
+
+LR_SCHEDULES = ("constant", "cosine")
+"""How every step size changes over training: kept, or decayed to 0 along a half cosine
+(Loshchilov & Hutter, "SGDR", ICLR 2017, eq. (5) with one cycle and eta_min = 0)."""
+
+
+def _lr_schedule(opt: torch.optim.Optimizer, kind: str, total_steps: int) -> torch.optim.lr_scheduler.LambdaLR:
+    if kind == "cosine":
+        return torch.optim.lr_scheduler.LambdaLR(
+            opt, lambda step: 0.5 * (1.0 + math.cos(math.pi * min(step, total_steps) / total_steps)))
+    return torch.optim.lr_scheduler.LambdaLR(opt, lambda step: 1.0)
 
 
 def elbo_optimiser(model: nn.Module, lr: float = 3e-3, rho_lr: float | None = 1e-3) -> torch.optim.Optimizer:
