@@ -65,6 +65,8 @@ PREDICT_PATH = predict_http.PREDICT_PATH.encode("ascii")
 """The one route answered on the loop; every other path goes to the Flask app."""
 
 HEARTBEAT_S = 0.5
+SWEEP_LATE_S = 4 * HEARTBEAT_S
+"""A sweep that comes this long after the previous one ran behind a held-up loop (``Front.sweep``)."""
 ACCEPT_PAUSE_S = 0.5
 REFUSAL_LOG_S = 1.0  # at most one log line a second about refused connections
 
@@ -124,6 +126,7 @@ class Front:
         self._refusal_logged = 0.0
         self.refused_connections = 0
         self.wsgi_busy = 0
+        self.swept = time.monotonic()
 
     # -- connections ------------------------------------------------------------
     def accept(self, conn: Connection) -> bool:
@@ -157,8 +160,16 @@ class Front:
 
     def sweep(self) -> None:
         """Close connections idle past the keep-alive time, and requests whose bytes have
-        been arriving for longer than the request timeout (a client trickling a request)."""
+        been arriving for longer than the request timeout (a client trickling a request).
+
+        A sweep that runs late closes nothing. The loop was held up (a predict batch waiting
+        on a stalled review store runs on it), and bytes that arrived meanwhile are still
+        unread: a connection that looks idle may hold the client's next request, and closing
+        it then resets that request. The next sweep comes after the loop has read them."""
         now = time.monotonic()
+        late, self.swept = now - self.swept > SWEEP_LATE_S, now
+        if late:
+            return
         stall = self.config.request_timeout_s
         for conn in list(self.connections):
             if conn.transport is None:

@@ -377,3 +377,29 @@ def test_refusals_are_counted_with_the_client(live: Server) -> None:
         status, _, body = _Reader(sock).response()
     assert status == 400 and json.loads(body)["error"]["field"] == "request"
     assert _metric(live, "demur_http_requests_total") >= before + 1
+
+
+def test_a_late_sweep_closes_nothing_and_the_next_one_does() -> None:
+    """The keep-alive sweep after a held-up loop (a predict batch waiting on a stalled review
+    store) must not close a connection that only looks idle: the client's next request may be
+    sitting unread in the socket, and closing it resets that request (one reset seen in the
+    PostgreSQL cut test). A sweep on time closes what is idle past the keep-alive time."""
+    import time
+    from types import SimpleNamespace
+
+    from demur.serve.web.loop.worker import SWEEP_LATE_S, Front
+
+    closed: list[str] = []
+
+    def conn(name: str) -> SimpleNamespace:
+        transport = SimpleNamespace(close=lambda: closed.append(name))
+        return SimpleNamespace(transport=transport, idle=True, in_message=False, began=0.0,
+                               last_active=time.monotonic() - 60.0)
+
+    now = time.monotonic()
+    front = SimpleNamespace(connections=[conn("a")], keepalive_s=5.0, config=SimpleNamespace(request_timeout_s=30.0),
+                            swept=now - SWEEP_LATE_S - 5.0)
+    Front.sweep(front)  # type: ignore[arg-type]
+    assert closed == [] and front.swept >= now
+    Front.sweep(front)  # type: ignore[arg-type]
+    assert closed == ["a"]
